@@ -1,0 +1,44 @@
+# thresher: two commands do all the set-up.
+#   make demo   creates .venv if missing, installs, runs the default flow on sample_inputs/
+#   make test   creates .venv if missing, installs with test extras, runs the whole suite
+
+PYTHON ?= $(shell command -v python3.11 2>/dev/null || command -v python3)
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.thresher-installed
+
+.PHONY: demo test bench sample clean-store help
+
+help:
+	@echo "make demo    run the default flow on sample_inputs/ (store in .thresher-store/)"
+	@echo "make test    run the test suite"
+	@echo "make bench   run the benchmarks (prints measured ratios)"
+	@echo "make sample  regenerate sample_inputs/ from tools/make_sample_drive.py"
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+# Reinstall when the project's metadata changes.
+$(STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	@touch $@
+
+demo: $(STAMP)
+	$(BIN)/thresher run
+	@echo
+	$(BIN)/thresher status
+	@echo
+	@echo "next: $(BIN)/thresher trail operations/branch-operations-handbook.pdf"
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+bench: $(STAMP)
+	$(BIN)/python -m bench
+
+sample: $(STAMP)
+	$(BIN)/python tools/make_sample_drive.py
+
+clean-store:
+	rm -rf .thresher-store

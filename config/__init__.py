@@ -1,0 +1,1 @@
+"""Declarative flow definitions shipped with thresher (data only)."""

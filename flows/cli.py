@@ -1,0 +1,316 @@
+"""The `thresher` command line. Each verb answers from the store or runs the flow."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from pathlib import Path
+from typing import Any, NoReturn
+
+from thresher.flows.config import ConfigError, FlowDefinition, load_definition
+
+EXIT_USAGE = 2
+
+
+class UsageError(Exception):
+    """Bad input from the user: printed as one line, exit code 2."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> NoReturn:  # one line, not argparse's usage dump
+        self.exit(EXIT_USAGE, f"{self.prog}: {message} (see {self.prog} --help)\n")
+
+
+def _common(p: argparse.ArgumentParser, json_flag: bool = True) -> None:
+    p.add_argument("--config", metavar="FLOW.yaml", help="flow definition file (default: the embedded default)")
+    p.add_argument("--store", metavar="DIR", help="store root (default: from the flow definition)")
+    if json_flag:
+        p.add_argument("--json", action="store_true", help="print the answer as JSON")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="thresher", description=(
+        "Turn a shared drive of documents into clean, deduplicated, token-counted chunks "
+        "with exact provenance, stage by stage in an auditable store."))
+    sub = parser.add_subparsers(dest="verb", metavar="VERB", parser_class=_Parser)
+    sub.required = True
+
+    p = sub.add_parser("run", help="run the flow over the source folder", description=(
+        "Run the chain (extract, clean, language, split, dedup, tokens) over the source folder, "
+        "skipping documents already processed with the same steps and parameters."))
+    _common(p)
+    p.add_argument("--source", metavar="DIR", help="source folder (default: from the flow definition)")
+    p.add_argument("--workers", metavar="N", type=_positive_int, help="parallel tasks (default: from the flow definition)")
+    p.add_argument("--force", action="store_true", help="process every document again, even unchanged ones")
+    p.add_argument("--quiet", action="store_true", help="no progress lines, only the summary")
+
+    p = sub.add_parser("status", help="recent runs and per stage the counts by status",
+                       description="Recent runs, and for each stage the current units by status.")
+    _common(p)
+    p.add_argument("--runs", metavar="N", type=_positive_int, default=5, help="how many recent runs to list (default 5)")
+
+    p = sub.add_parser("trail", help="one document's way through every stage",
+                       description="Show one document's units at every stage, with status, reasons and warnings.")
+    p.add_argument("document", metavar="DOC_ID|PATH", help="a doc_id (or a unique prefix of at least 6 characters) or a source path")
+    _common(p)
+    p.add_argument("--text", action="store_true", help="also print each unit's text")
+    return parser
+
+
+def _positive_int(value: str) -> int:
+    try:
+        n = int(value)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {value!r}") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {n}")
+    return n
+
+
+def _definition(args: argparse.Namespace) -> FlowDefinition:
+    try:
+        return load_definition(args.config)
+    except ConfigError as exc:
+        raise UsageError(str(exc)) from None
+
+
+def _store_root(args: argparse.Namespace, definition: FlowDefinition) -> str:
+    return args.store or definition.model.store
+
+
+def _open_store(args: argparse.Namespace, definition: FlowDefinition):
+    from thresher.flows.store import Store
+
+    root = _store_root(args, definition)
+    store = Store(root)
+    if not store.runs():
+        raise UsageError(f"no committed run in store {root}; run `thresher run` first")
+    return store
+
+
+# ----------------------------------------------------------------------------- run
+
+def cmd_run(args: argparse.Namespace) -> int:
+    definition = _definition(args)
+    source = args.source or definition.model.source.root
+    if not Path(source).is_dir():
+        raise UsageError(f"source folder not found: {source}")
+    store_root = _store_root(args, definition)
+    if Path(store_root).exists() and not Path(store_root).is_dir():
+        raise UsageError(f"store path exists and is not a folder: {store_root}")
+    from thresher.flows.encodings import EncodingUnavailable, get_encoding
+    from thresher.flows.store import StoreLocked
+
+    for step in definition.steps:  # fail before starting Prefect if an encoding is missing
+        for name in step.spec.encoding_params:
+            value = getattr(step.params, name)
+            for enc in ([value] if isinstance(value, str) else list(value)):
+                try:
+                    get_encoding(enc)
+                except EncodingUnavailable as exc:
+                    raise UsageError(str(exc).replace("\n", " ")) from None
+
+    if not args.quiet:
+        print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
+              "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
+    from thresher.flows import pipeline
+
+    try:
+        manifest = pipeline.run(definition, source, store_root, workers=args.workers, force=args.force,
+                                quiet=args.quiet)
+    except StoreLocked as exc:
+        raise UsageError(str(exc)) from None
+    if args.json:
+        print(json.dumps(manifest, indent=2, default=str))
+    else:
+        print("\n".join(run_summary_lines(manifest)))
+    return 0
+
+
+def run_summary_lines(m: dict[str, Any]) -> list[str]:
+    from thresher.flows.summary import STATUS_ORDER
+
+    d = m["documents"]
+    lines = [
+        f"run {m['run_id']} finished in {m['seconds']:.1f} s",
+        f"  documents  {d['files']} files, {d['distinct']} distinct; {d['processed']} processed, "
+        f"{d['unchanged']} unchanged, {d['removed']} removed",
+        f"  hand-off   {m['chunks']} chunks, {m['tokens']:,} tokens "
+        f"({m['changes']['upsert']} to upsert, {m['changes']['delete']} to delete)",
+        "  stage       units  by status (current view)",
+    ]
+    units = {s["name"]: s["unit"] for s in m["definition"]["steps"]}
+    for stage, by_status in m["current"].items():
+        total = sum(by_status.values())
+        parts = ", ".join(f"{by_status[s]} {s}" for s in STATUS_ORDER if by_status.get(s))
+        lines.append(f"  {stage:<10} {total:>6} {units.get(stage, ''):<7} {parts or 'none'}")
+    lines.append(f"  store      {m['store_root']}")
+    if m.get("failures"):
+        lines.append(f"  {m['failures']} unit(s) failed this run; `thresher trail PATH` shows why")
+    return lines
+
+
+# ----------------------------------------------------------------------------- status
+
+def cmd_status(args: argparse.Namespace) -> int:
+    from thresher.flows.summary import format_stage_counts, live_doc_ids, stage_counts, stages_of
+
+    definition = _definition(args)
+    store = _open_store(args, definition)
+    runs = store.runs()
+    latest = runs[-1].manifest
+    docs = live_doc_ids(store)
+    counts = stage_counts(store, stages_of(latest), docs)
+    recent = runs[-args.runs:][::-1]
+    if args.json:
+        print(json.dumps({
+            "store": store.root,
+            "runs": [{"run_id": r.run_id, "kind": r.manifest.get("kind"), "finished_at": r.manifest.get("finished_at"),
+                      "seconds": r.manifest.get("seconds"), "documents": r.manifest.get("documents"),
+                      "chunks": r.manifest.get("chunks"), "tokens": r.manifest.get("tokens"),
+                      "failures": r.manifest.get("failures")} for r in recent],
+            "live_documents": len(docs),
+            "stages": {c.stage: c.by_status for c in counts},
+        }, indent=2, default=str))
+        return 0
+    print(f"store {store.root}: {len(runs)} committed run(s), {len(docs)} live documents")
+    print("recent runs:")
+    for r in recent:
+        m = r.manifest
+        d = m.get("documents", {})
+        print(f"  {r.run_id}  {m.get('kind', 'run'):<5} {m.get('finished_at', '')[:19]}  "
+              f"{m.get('seconds', 0):6.1f} s  {d.get('processed', 0)} processed, {d.get('unchanged', 0)} unchanged, "
+              f"{m.get('chunks', 0)} chunks, {m.get('tokens', 0):,} tokens, {m.get('failures', 0)} failed units")
+    print("current view by stage:")
+    print("\n".join(format_stage_counts(counts)))
+    return 0
+
+
+# ----------------------------------------------------------------------------- trail
+
+def resolve_document(store, definition: FlowDefinition, ref: str) -> tuple[str, list[dict[str, Any]]]:
+    """A doc_id, unique doc_id prefix, or source path -> (doc_id, its catalog rows)."""
+    catalog = store.catalog().to_pylist()
+    by_doc: dict[str, list[dict[str, Any]]] = {}
+    for r in catalog:
+        by_doc.setdefault(r["doc_id"], []).append(r)
+    ref_l = ref.lower()
+    if len(ref_l) >= 6 and all(c in "0123456789abcdef" for c in ref_l):
+        hits = [d for d in by_doc if d.startswith(ref_l)]
+        if len(hits) == 1:
+            return hits[0], by_doc[hits[0]]
+        if len(hits) > 1:
+            raise UsageError(f"doc_id prefix {ref} matches {len(hits)} documents; give more characters")
+    candidates = [ref.replace(os.sep, "/")]
+    roots = [definition.model.source.root]
+    latest = store.latest_run()
+    if latest is not None:
+        roots.append(latest.manifest.get("source_root", ""))
+    p = Path(ref)
+    for root in roots:
+        if not root:
+            continue
+        try:
+            candidates.append(p.resolve().relative_to(Path(root).resolve()).as_posix())
+        except ValueError:
+            pass
+    for c in candidates:
+        rows = [r for r in catalog if r["source_path"] == c]
+        if rows:
+            row = max(rows, key=lambda r: r["present"])
+            return row["doc_id"], by_doc[row["doc_id"]]
+    suffix = [r for r in catalog if r["source_path"].endswith("/" + candidates[0])]
+    if len({r["doc_id"] for r in suffix}) == 1:
+        return suffix[0]["doc_id"], by_doc[suffix[0]["doc_id"]]
+    raise UsageError(f"no document {ref!r} in the store's catalog (give a doc_id or a path relative to the source folder)")
+
+
+def _unit_detail(stage: str, row: dict[str, Any]) -> str:
+    bits = []
+    if row.get("language") and stage != "extract":
+        prob = row.get("language_prob")
+        bits.append(f"{row['language']}" + (f" {prob:.2f}" if prob is not None else ""))
+    for key, label in (("method", "method"), ("word_count", "words"), ("chars_removed", "chars removed")):
+        if row.get(key) not in (None, "", 0):
+            bits.append(f"{label} {row[key]}")
+    if row.get("fixes"):
+        fixes = dict(row["fixes"])
+        bits.append("fixes " + ", ".join(f"{k} {v}" for k, v in sorted(fixes.items())))
+    if row.get("chunk_id") is not None:
+        if row.get("token_count") is not None:
+            bits.append(f"{row['token_count']} tokens")
+        span = f"p{row.get('page_start')}-{row.get('page_end')}" if row.get("page_start") else ""
+        if span:
+            bits.append(span)
+        if row.get("heading_path"):
+            bits.append(" > ".join(row["heading_path"]))
+    if row.get("duplicate_of"):
+        bits.append(f"duplicate of {row['duplicate_of']}")
+    return "; ".join(str(b) for b in bits)
+
+
+def cmd_trail(args: argparse.Namespace) -> int:
+    from thresher.flows.summary import stages_of
+
+    definition = _definition(args)
+    store = _open_store(args, definition)
+    doc_id, cat_rows = resolve_document(store, definition, args.document)
+    stages = stages_of(store.latest_run().manifest)
+    per_stage = {}
+    for name, unit in stages:
+        rows = store.current(name, unit, [doc_id]).to_pylist()
+        rows.sort(key=lambda r: (r.get("chunk_index") or 0, r.get("page") or 0, r["locator"]))
+        per_stage[name] = rows
+    if args.json:
+        print(json.dumps({"doc_id": doc_id, "catalog": cat_rows, "stages": per_stage}, indent=2, default=str))
+        return 0
+    present = [r for r in cat_rows if r["present"]]
+    paths = ", ".join(r["source_path"] for r in (present or cat_rows))
+    print(f"{paths}")
+    print(f"  doc_id {doc_id}")
+    if present:
+        r = present[0]
+        print(f"  {r['size']:,} bytes, first seen in run {r['first_run']}, last seen in run {r['last_run']}")
+        if len(present) > 1:
+            print(f"  the same bytes sit at {len(present)} paths; {r['canonical_path']} stands for all of them")
+    else:
+        print("  removed from the source folder (no present path)")
+    for name, _unit in stages:
+        rows = per_stage[name]
+        print(f"{name}: {len(rows)} unit(s)")
+        if not rows:
+            print("  (none: nothing reached this stage)")
+        for row in rows:
+            where = row["locator"]
+            line = f"  {where:<12} {row['status']:<8} {_unit_detail(name, row)}"
+            print(line.rstrip())
+            if row.get("reason"):
+                print(f"    reason: {row['reason']}")
+            for w in row.get("warnings") or []:
+                print(f"    warning: {w}")
+            if args.text and row.get("text"):
+                for t in row["text"].splitlines():
+                    print(f"    | {t}")
+    return 0
+
+
+COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail}
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return COMMANDS[args.verb](args)
+    except UsageError as exc:
+        print(f"thresher {args.verb}: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        print(f"thresher {args.verb}: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,190 @@
+"""Between step units (steps.units) and stage-table rows (flows.schema).
+
+Here unit ids and lineage are made: a unit's id is a hash of (doc_id, step,
+locator), its parents' ids are the same hash at the previous stage.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+import pyarrow as pa
+
+from thresher.flows import schema
+from thresher.steps.units import Block, Chunk, Page
+
+
+def unit_id(doc_id: str, step: str, locator: str) -> str:
+    return hashlib.sha256(f"{doc_id}\x1f{step}\x1f{locator}".encode()).hexdigest()[:32]
+
+
+@dataclass
+class RowContext:
+    """What every row of one document at one stage shares."""
+
+    run_id: str
+    doc_id: str
+    source_path: str
+    step: str
+    step_version: str
+    config_digest: str
+    unit: str  # "pages" | "chunks"
+    prev_step: str | None
+    started_at: datetime
+    duration_ms: float
+    attempts: dict[str, int]  # unit_id -> highest attempt already stored
+
+
+def _payload(stage: str, unit: str, payload: dict[str, Any]) -> dict[str, Any]:
+    fields = schema.payload_fields(stage, unit)
+    if len(fields) == 1 and fields[0].name == "notes" and stage not in schema.STAGE_PAYLOAD:
+        return {"notes": {str(k): str(v) for k, v in payload.items()}}
+    names = {f.name for f in fields}
+    unknown = set(payload) - names
+    if unknown:
+        raise ValueError(
+            f"step {stage} returned payload keys {sorted(unknown)} that its stage table has no "
+            f"column for (columns: {sorted(names)})"
+        )
+    return {name: payload.get(name) for name in names}
+
+
+def _common(ctx: RowContext, unit: Page | Chunk) -> dict[str, Any]:
+    uid = unit_id(ctx.doc_id, ctx.step, unit.locator)
+    parents = [unit_id(ctx.doc_id, ctx.prev_step, p) for p in unit.parents] if ctx.prev_step else []
+    return {
+        "run_id": ctx.run_id,
+        "doc_id": ctx.doc_id,
+        "source_path": ctx.source_path,
+        "unit_id": uid,
+        "parent_ids": parents,
+        "locator": unit.locator,
+        "step": ctx.step,
+        "step_version": ctx.step_version,
+        "config_digest": ctx.config_digest,
+        "status": unit.status,
+        "reason": unit.reason or None,
+        "error_type": unit.error_type or None,
+        "traceback": unit.traceback or None,
+        "attempt": ctx.attempts.get(uid, 0) + 1,
+        "started_at": ctx.started_at,
+        "duration_ms": ctx.duration_ms,
+        "warnings": list(unit.warnings),
+    }
+
+
+def page_row(ctx: RowContext, page: Page) -> dict[str, Any]:
+    row = _common(ctx, page)
+    row.update(
+        page=page.page,
+        text=page.text,
+        blocks=[{"kind": b.kind, "level": b.level, "text": b.text} for b in page.blocks],
+        title=page.title,
+        format=page.format,
+        language=page.language,
+        language_prob=page.language_prob,
+    )
+    row.update(_payload(ctx.step, "pages", page.payload))
+    return row
+
+
+def chunk_row(ctx: RowContext, chunk: Chunk) -> dict[str, Any]:
+    row = _common(ctx, chunk)
+    chunk_id = chunk.chunk_id or row["unit_id"]  # born here: the split stage names it
+    row.update(
+        page=chunk.page_start,
+        chunk_id=chunk_id,
+        chunk_index=chunk.index,
+        text=chunk.text,
+        heading_path=list(chunk.heading_path),
+        page_start=chunk.page_start,
+        page_end=chunk.page_end,
+        char_start=chunk.char_start,
+        char_end=chunk.char_end,
+        title=chunk.title,
+        format=chunk.format,
+        language=chunk.language,
+        language_prob=chunk.language_prob,
+        token_count=chunk.token_count,
+        encoding=chunk.encoding,
+    )
+    row.update(_payload(ctx.step, "chunks", chunk.payload))
+    return row
+
+
+def to_row(ctx: RowContext, unit: Page | Chunk) -> dict[str, Any]:
+    return page_row(ctx, unit) if ctx.unit == "pages" else chunk_row(ctx, unit)
+
+
+def rows_to_table(stage: str, unit: str, rows: list[dict[str, Any]]) -> pa.Table:
+    sch = schema.stage_schema(stage, unit)
+    return pa.Table.from_pylist(rows, schema=sch)
+
+
+def _outcome(row: dict[str, Any]) -> dict[str, Any]:
+    return {
+        "status": row["status"],
+        "reason": row.get("reason") or "",
+        "error_type": row.get("error_type") or "",
+        "traceback": row.get("traceback") or "",
+        "warnings": list(row.get("warnings") or []),
+    }
+
+
+def _stored_payload(stage: str, unit: str, row: dict[str, Any]) -> dict[str, Any]:
+    fields = schema.payload_fields(stage, unit)
+    if stage not in schema.STAGE_PAYLOAD:
+        return dict(row.get("notes") or {})
+    out = {}
+    for f in fields:
+        value = row.get(f.name)
+        if pa.types.is_map(f.type) and value is not None and not isinstance(value, dict):
+            value = dict(value)
+        out[f.name] = value
+    return out
+
+
+def row_to_page(stage: str, row: dict[str, Any]) -> Page:
+    """A stored page row as the next step's input unit (its locator is kept)."""
+    return Page(
+        locator=row["locator"],
+        page=row.get("page"),
+        blocks=[Block(kind=b["kind"], text=b["text"], level=int(b["level"] or 0)) for b in row.get("blocks") or []],
+        title=row.get("title") or "",
+        format=row.get("format") or "",
+        language=row.get("language"),
+        language_prob=row.get("language_prob"),
+        parents=[],
+        payload=_stored_payload(stage, "pages", row),
+        **_outcome(row),
+    )
+
+
+def row_to_chunk(stage: str, row: dict[str, Any]) -> Chunk:
+    return Chunk(
+        locator=row["locator"],
+        index=int(row.get("chunk_index") or 0),
+        text=row.get("text") or "",
+        heading_path=list(row.get("heading_path") or []),
+        page_start=row.get("page_start"),
+        page_end=row.get("page_end"),
+        char_start=int(row.get("char_start") or 0),
+        char_end=int(row.get("char_end") or 0),
+        title=row.get("title") or "",
+        format=row.get("format") or "",
+        language=row.get("language"),
+        language_prob=row.get("language_prob"),
+        token_count=row.get("token_count"),
+        encoding=row.get("encoding"),
+        chunk_id=row.get("chunk_id") or "",
+        parents=[],
+        payload=_stored_payload(stage, "chunks", row),
+        **_outcome(row),
+    )
+
+
+def row_to_unit(stage: str, unit: str, row: dict[str, Any]) -> Page | Chunk:
+    return row_to_page(stage, row) if unit == "pages" else row_to_chunk(stage, row)

@@ -1,0 +1,196 @@
+"""Every table thresher writes, defined once as pyarrow schemas.
+
+Stage tables share COMMON columns, then the unit's columns (PAGE_COLUMNS or
+CHUNK_COLUMNS), then the producing step's own payload columns (STAGE_PAYLOAD).
+A custom step's payload goes into the `notes` column (a string-to-string map).
+The README documents the hand-off table column by column from HANDOFF.
+"""
+
+from __future__ import annotations
+
+import pyarrow as pa
+
+TS = pa.timestamp("us", tz="UTC")
+STR_LIST = pa.list_(pa.string())
+
+COMMON = [
+    pa.field("run_id", pa.string(), nullable=False),
+    pa.field("doc_id", pa.string(), nullable=False),
+    pa.field("source_path", pa.string(), nullable=False),
+    pa.field("unit_id", pa.string(), nullable=False),
+    pa.field("parent_ids", STR_LIST),
+    pa.field("locator", pa.string(), nullable=False),
+    pa.field("page", pa.int32()),
+    pa.field("step", pa.string(), nullable=False),
+    pa.field("step_version", pa.string(), nullable=False),
+    pa.field("config_digest", pa.string(), nullable=False),
+    pa.field("status", pa.string(), nullable=False),
+    pa.field("reason", pa.string()),
+    pa.field("error_type", pa.string()),
+    pa.field("traceback", pa.string()),
+    pa.field("attempt", pa.int32(), nullable=False),
+    pa.field("started_at", TS),
+    pa.field("duration_ms", pa.float64()),
+    pa.field("warnings", STR_LIST),
+]
+
+BLOCK = pa.struct(
+    [
+        pa.field("kind", pa.string()),
+        pa.field("level", pa.int8()),
+        pa.field("text", pa.string()),
+    ]
+)
+
+PAGE_COLUMNS = [
+    pa.field("text", pa.string()),
+    pa.field("blocks", pa.list_(BLOCK)),
+    pa.field("title", pa.string()),
+    pa.field("format", pa.string()),
+    pa.field("language", pa.string()),
+    pa.field("language_prob", pa.float64()),
+]
+
+CHUNK_COLUMNS = [
+    pa.field("chunk_id", pa.string()),
+    pa.field("chunk_index", pa.int32()),
+    pa.field("text", pa.string()),
+    pa.field("heading_path", STR_LIST),
+    pa.field("page_start", pa.int32()),
+    pa.field("page_end", pa.int32()),
+    pa.field("char_start", pa.int32()),
+    pa.field("char_end", pa.int32()),
+    pa.field("title", pa.string()),
+    pa.field("format", pa.string()),
+    pa.field("language", pa.string()),
+    pa.field("language_prob", pa.float64()),
+    pa.field("token_count", pa.int32()),
+    pa.field("encoding", pa.string()),
+]
+
+NOTES = pa.field("notes", pa.map_(pa.string(), pa.string()))
+
+STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
+    "extract": [
+        pa.field("method", pa.string()),
+        pa.field("page_count", pa.int32()),
+        pa.field("char_count", pa.int32()),
+        pa.field("word_count", pa.int32()),
+        pa.field("unprintable_share", pa.float64()),
+        pa.field("table_share", pa.float64()),
+        pa.field("encoding", pa.string()),
+    ],
+    "clean": [
+        pa.field("fixes", pa.map_(pa.string(), pa.int32())),
+        pa.field("chars_removed", pa.int32()),
+        pa.field("removed_share", pa.float64()),
+    ],
+    "language": [
+        pa.field("doc_language", pa.string()),
+        pa.field("doc_mixed", pa.bool_()),
+    ],
+    "split": [],
+    "dedup": [
+        pa.field("content_hash", pa.string()),
+        pa.field("duplicate_of", pa.string()),
+        pa.field("similarity", pa.float64()),
+    ],
+    "tokens": [
+        pa.field("token_counts", pa.map_(pa.string(), pa.int32())),
+    ],
+}
+
+
+def stage_schema(stage: str, unit: str) -> pa.Schema:
+    """Schema of a stage table: common, unit and payload columns, in that order."""
+    unit_cols = PAGE_COLUMNS if unit == "pages" else CHUNK_COLUMNS
+    payload = STAGE_PAYLOAD.get(stage, [NOTES])
+    names = {f.name for f in unit_cols}
+    # A payload column may share a unit column's name (e.g. extract's "encoding" is a
+    # text encoding, the chunk's is a token encoding): units never collide with it.
+    payload = [f for f in payload if f.name not in names]
+    return pa.schema(COMMON + unit_cols + payload)
+
+
+def payload_fields(stage: str, unit: str) -> list[pa.Field]:
+    unit_names = {f.name for f in (PAGE_COLUMNS if unit == "pages" else CHUNK_COLUMNS)}
+    return [f for f in STAGE_PAYLOAD.get(stage, [NOTES]) if f.name not in unit_names]
+
+
+CATALOG = pa.schema(
+    [
+        pa.field("source_path", pa.string(), nullable=False),
+        pa.field("doc_id", pa.string(), nullable=False),
+        pa.field("size", pa.int64()),
+        pa.field("mtime", TS),
+        pa.field("first_run", pa.string()),
+        pa.field("last_run", pa.string()),
+        pa.field("present", pa.bool_()),
+        pa.field("canonical_path", pa.string()),
+        pa.field("chain_digest", pa.string()),
+    ]
+)
+
+HANDOFF = pa.schema(
+    [
+        pa.field("chunk_id", pa.string(), nullable=False),
+        pa.field("doc_id", pa.string(), nullable=False),
+        pa.field("source_path", pa.string(), nullable=False),
+        pa.field("title", pa.string()),
+        pa.field("heading_path", STR_LIST),
+        pa.field("chunk_index", pa.int32()),
+        pa.field("page_start", pa.int32()),
+        pa.field("page_end", pa.int32()),
+        pa.field("char_start", pa.int32()),
+        pa.field("char_end", pa.int32()),
+        pa.field("language", pa.string()),
+        pa.field("text", pa.string()),
+        pa.field("token_count", pa.int32()),
+        pa.field("encoding", pa.string()),
+        pa.field("token_counts", pa.map_(pa.string(), pa.int32())),
+        pa.field("content_hash", pa.string()),
+        pa.field("run_id", pa.string()),
+    ]
+)
+
+# What each hand-off column means; the README's table is generated from this.
+HANDOFF_DOC = {
+    "chunk_id": "Stable id of the chunk: hash of (doc_id, split, chunk locator). Same input and config give the same id.",
+    "doc_id": "SHA-256 of the source file's bytes. A renamed file keeps it; an edited file gets a new one.",
+    "source_path": "Path of the file relative to the source root, as of the latest run (the first path in path order when the same bytes sit at several paths).",
+    "title": "Document title: PDF metadata, HTML <title>, Word core property, else the first heading, else the file name.",
+    "heading_path": "Headings from the top of the document down to the chunk's section.",
+    "chunk_index": "Position of the chunk within its document, from 0.",
+    "page_start": "1-based page the chunk starts on (null for formats without pages).",
+    "page_end": "1-based page the chunk ends on (null for formats without pages).",
+    "char_start": "Offset of the chunk's first character in the cleaned text of page_start (of the whole file when there are no pages).",
+    "char_end": "Exclusive offset of the chunk's end in the cleaned text of page_end.",
+    "language": "ISO 639-1 code of the chunk's language, or 'unknown'.",
+    "text": "The chunk's cleaned text.",
+    "token_count": "Tokens in the chunk in the primary encoding.",
+    "encoding": "Name of the primary tiktoken encoding.",
+    "token_counts": "Tokens per configured encoding.",
+    "content_hash": "SHA-256 of the chunk's normalised text (the exact-duplicate key).",
+    "run_id": "The run that produced this version of the chunk.",
+}
+
+CHANGES = pa.schema(
+    [
+        pa.field("chunk_id", pa.string(), nullable=False),
+        pa.field("action", pa.string(), nullable=False),  # upsert | delete
+        pa.field("doc_id", pa.string()),
+        pa.field("source_path", pa.string()),
+        pa.field("content_hash", pa.string()),
+        pa.field("run_id", pa.string(), nullable=False),
+    ]
+)
+
+WRITES = pa.schema(
+    [
+        pa.field("stage", pa.string(), nullable=False),
+        pa.field("doc_id", pa.string(), nullable=False),
+        # "document": every unit of the document at this stage was written (older
+        # rows of that document stop being current); "units": only some units were.
+        pa.field("scope", pa.string(), nullable=False),
+    ]
+)

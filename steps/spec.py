@@ -1,0 +1,67 @@
+"""What a step is: its name, version, the units it takes and gives, its parameters.
+
+A flow definition names steps; the flows layer looks each name up (built-in name or
+a dotted path "package.module:ATTRIBUTE" to a StepSpec) and calls `run`.
+
+Calling conventions, by (consumes, scope):
+  source, document  run(source: Source, params, ctx) -> list[Page]
+  pages,  document  run(pages: list[Page], params, ctx) -> list[Page]        (page step)
+                    run(pages: list[Page], params, ctx) -> list[Chunk]       (when produces="chunks")
+  chunks, document  run(chunks: list[Chunk], params, ctx) -> list[Chunk]
+  chunks, corpus    run(docs: list[DocChunks], params, ctx) -> list[Chunk]
+
+A document-scope step receives only the units that are ok upstream, in document
+order. It returns one unit per unit it decided about; a unit it cannot handle is
+returned with status failed and a reason rather than raising. If it raises anyway,
+the flows layer records every unit of that document as failed with the traceback.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Callable, Literal
+
+from pydantic import BaseModel, ConfigDict
+
+
+class StepParams(BaseModel):
+    """Base of every step's parameter model: unknown keys are errors, not ignored."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class NoParams(StepParams):
+    pass
+
+
+Consumes = Literal["source", "pages", "chunks"]
+Produces = Literal["pages", "chunks"]
+Scope = Literal["document", "corpus"]
+
+
+@dataclass
+class StepContext:
+    """What the flows layer hands a step besides its units and parameters.
+
+    `encoding(name)` returns a ready tiktoken Encoding (loaded offline by flows).
+    """
+
+    doc_id: str = ""
+    source_path: str = ""
+    encoding: Callable[[str], Any] | None = None
+    extras: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class StepSpec:
+    name: str
+    version: str
+    consumes: Consumes
+    produces: Produces
+    scope: Scope
+    params: type[StepParams]
+    run: Callable[..., list]
+    summary: str = ""
+    # Names of the params fields that hold tiktoken encoding names, so the flows layer
+    # can load those encodings before the step runs.
+    encoding_params: tuple[str, ...] = ()

@@ -1,0 +1,159 @@
+"""The units that flow between steps: source documents, pages and chunks.
+
+Steps see only these plain dataclasses. The flows layer turns them into stage-table
+rows (see thresher.flows.schema) and back; it also derives unit ids from `locator`
+and lineage from `parents`, so a step never has to know about ids or the store.
+"""
+
+from __future__ import annotations
+
+import traceback as _traceback
+from dataclasses import dataclass, field
+from typing import Any
+
+# Unit outcomes, as the stage tables record them.
+OK = "ok"
+FAILED = "failed"
+DROPPED = "dropped"
+SKIPPED = "skipped"
+STATUSES = (OK, FAILED, DROPPED, SKIPPED)
+
+# Block kinds extraction may produce. Headings carry their rank (1 = top) in `level`.
+HEADING = "heading"
+PARAGRAPH = "paragraph"
+TABLE = "table"
+CODE = "code"
+BLOCK_KINDS = (HEADING, PARAGRAPH, TABLE, CODE)
+
+# Separator between blocks in a page's text. Char offsets everywhere assume it.
+BLOCK_SEP = "\n\n"
+
+# Locator of the single unit that stands for a whole document when the document
+# fails before it could be split into pages (unreadable, too large, password...).
+DOCUMENT_LOCATOR = "document"
+
+
+@dataclass
+class Block:
+    """One structural piece of a page: a heading, a paragraph, a table or code."""
+
+    kind: str
+    text: str
+    level: int = 0
+
+
+@dataclass
+class Source:
+    """One source file, with its bytes handed in by the flows layer."""
+
+    doc_id: str
+    source_path: str
+    data: bytes
+    size: int
+    mtime: float
+
+
+@dataclass
+class Outcome:
+    """Status fields shared by pages and chunks."""
+
+    status: str = OK
+    reason: str = ""
+    error_type: str = ""
+    traceback: str = ""
+    warnings: list[str] = field(default_factory=list)
+
+    def fail(self, reason: str, exc: BaseException | None = None) -> None:
+        """Mark this unit failed; keep the exception's type and traceback if given."""
+        self.status = FAILED
+        self.reason = reason
+        if exc is not None:
+            self.error_type = type(exc).__name__
+            self.traceback = "".join(
+                _traceback.format_exception(type(exc), exc, exc.__traceback__)
+            )
+
+    def drop(self, reason: str) -> None:
+        self.status = DROPPED
+        self.reason = reason
+
+    @property
+    def ok(self) -> bool:
+        return self.status == OK
+
+
+@dataclass
+class Page(Outcome):
+    """A page of a document (a PDF page; the whole file for formats without pages).
+
+    `page` is 1-based and None for formats without pages. `locator` names the page
+    within its document ("page/3", "file"); `parents` names the locators of the units
+    of the previous stage it came from (empty for extraction).
+    `payload` holds the producing step's own columns (see flows.schema.STAGE_PAYLOAD).
+    """
+
+    locator: str = ""
+    page: int | None = None
+    blocks: list[Block] = field(default_factory=list)
+    title: str = ""
+    format: str = ""
+    language: str | None = None
+    language_prob: float | None = None
+    parents: list[str] = field(default_factory=list)
+    payload: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def text(self) -> str:
+        return BLOCK_SEP.join(b.text for b in self.blocks)
+
+
+@dataclass
+class Chunk(Outcome):
+    """A piece of a document's text bounded by a token budget.
+
+    Spans: `page_start`/`page_end` are the pages the chunk starts and ends on (None
+    for formats without pages); `char_start` is an offset into the cleaned text of
+    the start page and `char_end` an exclusive offset into the cleaned text of the
+    end page. `chunk_id` is assigned by the flows layer (the split stage's unit id)
+    and stays with the chunk through later stages.
+    """
+
+    locator: str = ""
+    index: int = 0
+    text: str = ""
+    heading_path: list[str] = field(default_factory=list)
+    page_start: int | None = None
+    page_end: int | None = None
+    char_start: int = 0
+    char_end: int = 0
+    title: str = ""
+    format: str = ""
+    language: str | None = None
+    language_prob: float | None = None
+    token_count: int | None = None
+    encoding: str | None = None
+    chunk_id: str = ""
+    parents: list[str] = field(default_factory=list)
+    payload: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class DocChunks:
+    """A document's chunks as a corpus-wide step sees them.
+
+    `rank` orders documents for deterministic choices (lower wins): the flows layer
+    sets it from when the document was first seen, then its path.
+    """
+
+    doc_id: str
+    source_path: str
+    rank: int
+    chunks: list[Chunk]
+
+
+def chunk_locator(index: int) -> str:
+    return f"chunk/{index:05d}"
+
+
+def page_locator(page: int | None) -> str:
+    return "file" if page is None else f"page/{page}"

@@ -1,0 +1,30 @@
+"""Shared fixtures. Prefect runs embedded against a temporary database (its own
+test harness), started once per session because it costs 10-15 s."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import pytest
+
+from thresher.flows import runtime  # noqa: F401 - quiet, offline Prefect settings first
+
+REPO = Path(__file__).resolve().parents[1]
+SAMPLE = REPO / "sample_inputs"
+
+
+@pytest.fixture(scope="session")
+def prefect_harness():
+    from prefect.testing.utilities import prefect_test_harness
+
+    with prefect_test_harness(server_startup_timeout=90):
+        yield
+
+
+@pytest.fixture()
+def sample_drive(tmp_path: Path) -> Path:
+    """A private copy of the demo drive, so a test may change files in it."""
+    dst = tmp_path / "drive"
+    shutil.copytree(SAMPLE, dst)
+    return dst

@@ -1,0 +1,136 @@
+"""The stage store on its own: commits, the current view, the lock, recovery."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from datetime import datetime, timezone
+
+import pyarrow as pa
+import pytest
+
+from thresher.flows import schema
+from thresher.flows.rows import RowContext, rows_to_table, to_row, unit_id
+from thresher.flows.store import Store, StoreLocked
+from thresher.steps.units import Block, Page
+
+
+def _pages(run_id: str, doc: str, texts: dict[str, str], attempts: dict[str, int] | None = None) -> pa.Table:
+    ctx = RowContext(run_id, doc, f"{doc}.txt", "extract", "1", "d1", "pages", None,
+                     datetime(2026, 1, 1, tzinfo=timezone.utc), 1.0, attempts or {})
+    rows = [to_row(ctx, Page(locator=loc, page=i + 1, blocks=[Block("paragraph", t)]))
+            for i, (loc, t) in enumerate(texts.items())]
+    return rows_to_table("extract", "pages", rows)
+
+
+def _commit(store: Store, run_id: str) -> None:
+    store.commit(run_id, {"run_id": run_id, "sequence": store.next_sequence(), "publish": {}})
+
+
+def _current_texts(store: Store, doc: str, include_run: str | None = None) -> dict[str, str]:
+    t = store.current("extract", "pages", [doc], include_run=include_run)
+    return dict(zip(t.column("locator").to_pylist(), t.column("text").to_pylist()))
+
+
+def test_uncommitted_run_is_invisible_until_its_manifest_exists(tmp_path):
+    store = Store(tmp_path / "s")
+    store.write_stage_part("extract", "r1", "a", _pages("r1", "docA", {"page/1": "one"}), [("docA", "document")])
+    assert _current_texts(store, "docA") == {}
+    # ...but the run itself can read what it wrote so far.
+    assert _current_texts(store, "docA", include_run="r1") == {"page/1": "one"}
+    _commit(store, "r1")
+    assert _current_texts(Store(tmp_path / "s"), "docA") == {"page/1": "one"}
+
+
+def test_whole_document_rewrite_retires_units_the_new_run_did_not_produce(tmp_path):
+    store = Store(tmp_path / "s")
+    store.write_stage_part("extract", "r1", "a", _pages("r1", "docA", {"page/1": "one", "page/2": "two"}),
+                           [("docA", "document")])
+    _commit(store, "r1")
+    store.write_stage_part("extract", "r2", "a", _pages("r2", "docA", {"page/1": "uno"}), [("docA", "document")])
+    _commit(store, "r2")
+    assert _current_texts(store, "docA") == {"page/1": "uno"}
+    # Old attempts stay for audit.
+    all_rows = store.stage_rows("extract", "pages", ["docA"])
+    assert all_rows.num_rows == 3
+
+
+def test_unit_rewrite_overlays_one_page_and_counts_the_attempt(tmp_path):
+    store = Store(tmp_path / "s")
+    store.write_stage_part("extract", "r1", "a", _pages("r1", "docA", {"page/1": "one", "page/2": "two"}),
+                           [("docA", "document")])
+    _commit(store, "r1")
+    attempts = store.max_attempts("extract", "pages", ["docA"])
+    assert set(attempts.values()) == {1}
+    t = _pages("r2", "docA", {"page/2": "two, repaired"}, attempts)
+    # A rerun of page 2 only: page 1 must stay current from r1.
+    t = t.set_column(t.schema.get_field_index("page"), "page", pa.array([2], pa.int32()))
+    store.write_stage_part("extract", "r2", "a", t, [("docA", "units")])
+    _commit(store, "r2")
+    cur = store.current("extract", "pages", ["docA"]).to_pylist()
+    by_loc = {r["locator"]: r for r in cur}
+    assert by_loc["page/1"]["text"] == "one" and by_loc["page/1"]["run_id"] == "r1"
+    assert by_loc["page/2"]["text"] == "two, repaired" and by_loc["page/2"]["attempt"] == 2
+
+
+def test_doc_filter_reads_one_document_only(tmp_path):
+    store = Store(tmp_path / "s")
+    for doc in ("docA", "docB", "docC"):
+        store.write_stage_part("extract", "r1", doc, _pages("r1", doc, {"page/1": doc}), [(doc, "document")])
+    _commit(store, "r1")
+    t = store.current("extract", "pages", ["docB"])
+    assert t.column("doc_id").to_pylist() == ["docB"]
+
+
+def test_unit_ids_are_content_and_locator_hashes_not_row_numbers():
+    a = unit_id("d" * 64, "extract", "page/1")
+    assert a == unit_id("d" * 64, "extract", "page/1")
+    assert a != unit_id("d" * 64, "extract", "page/2")
+    assert a != unit_id("d" * 64, "clean", "page/1")
+    assert len(a) == 32 and int(a, 16) >= 0
+
+
+def test_second_writer_is_refused_with_a_reason(tmp_path):
+    store = Store(tmp_path / "s")
+    store.acquire_lock("r1")
+    with pytest.raises(StoreLocked, match="in use by run r1"):
+        Store(tmp_path / "s").acquire_lock("r2")
+    store.release_lock("r1")
+    Store(tmp_path / "s").acquire_lock("r2")  # free again
+
+
+def test_lock_left_by_a_dead_process_is_taken_over(tmp_path):
+    root = tmp_path / "s"
+    code = ("import sys; from thresher.flows.store import Store; Store(sys.argv[1]).acquire_lock('dead')")
+    subprocess.run([sys.executable, "-c", code, str(root)], check=True)  # exits holding the lock
+    holder = json.loads((root / ".lock").read_text())
+    assert holder["run_id"] == "dead"
+    Store(root).acquire_lock("alive")
+    assert json.loads((root / ".lock").read_text())["pid"] == os.getpid()
+
+
+def test_run_killed_after_commit_but_before_publishing_is_read_from_staging(tmp_path):
+    store = Store(tmp_path / "s")
+    cat = pa.Table.from_pylist([{"source_path": "a.txt", "doc_id": "x", "present": True}], schema=schema.CATALOG)
+    store.write_table("runs/r1/staged/catalog.parquet", cat, run_id="r1")
+    # Commit point reached (manifest written) but the publish step never ran.
+    store.write_json("runs/r1/manifest.json", {"run_id": "r1", "sequence": 1,
+                                                "publish": {"staged/catalog.parquet": "catalog.parquet"}})
+    fresh = Store(tmp_path / "s")
+    assert fresh.catalog().column("source_path").to_pylist() == ["a.txt"]
+    fresh.recover()
+    assert (tmp_path / "s" / "catalog.parquet").exists()
+    assert fresh.catalog().column("doc_id").to_pylist() == ["x"]
+
+
+def test_sweep_removes_what_an_uncommitted_run_left(tmp_path):
+    store = Store(tmp_path / "s")
+    store.write_stage_part("extract", "r1", "a", _pages("r1", "docA", {"page/1": "one"}), [("docA", "document")])
+    _commit(store, "r1")
+    store.write_stage_part("extract", "r2", "a", _pages("r2", "docA", {"page/1": "half"}), [("docA", "document")])
+    assert sorted(store.uncommitted_run_dirs()) == ["runs/r2", "stages/extract/r2"]
+    store.sweep_uncommitted()
+    assert not (tmp_path / "s" / "stages" / "extract" / "r2").exists()
+    assert _current_texts(store, "docA") == {"page/1": "one"}
