@@ -1,0 +1,120 @@
+"""Flow definitions: the embedded default loads, and every mistake names its key."""
+
+from __future__ import annotations
+
+import pytest
+import yaml
+
+from thresher.flows.config import ConfigError, build_definition, default_config_text, load_definition
+
+
+def _default() -> dict:
+    return yaml.safe_load(default_config_text())
+
+
+def test_embedded_default_has_the_whole_chain_in_order():
+    d = load_definition()
+    assert [s.name for s in d.steps] == ["extract", "clean", "language", "split", "dedup", "tokens"]
+    assert d.model.schedule.cron == "0 3 * * 1"
+    assert d.step("split").params.encoding == "cl100k_base"
+
+
+def test_misspelt_top_level_key_names_it_and_the_allowed_keys():
+    data = _default()
+    data["stroe"] = data.pop("store")
+    with pytest.raises(ConfigError) as e:
+        build_definition(data, "flow.yaml")
+    msg = str(e.value)
+    assert "flow.yaml: stroe: unknown key" in msg
+    assert "name, source, store, runner, schedule, steps" in msg
+
+
+def test_misspelt_step_parameter_lists_that_steps_parameters():
+    data = _default()
+    data["steps"][3]["params"] = {"max_tokns": 200}
+    with pytest.raises(ConfigError) as e:
+        build_definition(data, "flow.yaml")
+    assert "steps[3].params.max_tokns: unknown key" in str(e.value)
+    assert "max_tokens" in str(e.value) and "overlap_tokens" in str(e.value)
+
+
+def test_bad_value_names_the_key_and_the_allowed_values():
+    data = _default()
+    data["runner"]["kind"] = "gpu"
+    with pytest.raises(ConfigError) as e:
+        build_definition(data, "flow.yaml")
+    assert "runner.kind" in str(e.value)
+    assert "'sequential', 'threads' or 'processes'" in str(e.value)
+
+
+def test_bad_step_parameter_value_is_reported_with_its_path():
+    data = _default()
+    data["steps"][1]["params"] = {"normalization": "NFKX"}
+    with pytest.raises(ConfigError, match=r"steps\[1\]\.params\.normalization"):
+        build_definition(data, "flow.yaml")
+
+
+def test_unknown_step_lists_the_built_in_steps():
+    data = _default()
+    data["steps"][2] = {"step": "langauge"}
+    with pytest.raises(ConfigError) as e:
+        build_definition(data, "flow.yaml")
+    assert "steps[2].step: unknown step 'langauge'" in str(e.value)
+    assert "extract, clean, language, split, dedup, tokens" in str(e.value)
+
+
+def test_bad_cron_and_time_zone_are_explained():
+    data = _default()
+    data["schedule"] = {"cron": "every monday", "timezone": "Mars/Olympus"}
+    with pytest.raises(ConfigError) as e:
+        build_definition(data, "flow.yaml")
+    assert "schedule.cron: a cron expression has 5 fields" in str(e.value)
+    assert "schedule.timezone: unknown time zone 'Mars/Olympus'" in str(e.value)
+
+
+def test_chain_order_is_checked():
+    data = _default()
+    data["steps"] = [{"step": "extract"}, {"step": "split"}, {"step": "clean"}]
+    with pytest.raises(ConfigError, match=r"steps\[2\] \(clean\): takes pages but the step before it gives chunks"):
+        build_definition(data, "flow.yaml")
+
+
+def test_a_step_can_be_dropped():
+    data = _default()
+    data["steps"] = [s for s in data["steps"] if s["step"] != "language"]
+    d = build_definition(data)
+    assert "language" not in [s.name for s in d.steps]
+
+
+def test_own_step_by_dotted_path_and_its_parameters_are_validated():
+    data = _default()
+    data["steps"].insert(2, {"step": "example_steps:MASK_EMAILS", "params": {"replacement": "<hidden>"}})
+    d = build_definition(data)
+    assert d.steps[2].name == "mask_emails" and d.steps[2].params.replacement == "<hidden>"
+    data["steps"][2]["params"] = {"replace": "x"}
+    with pytest.raises(ConfigError, match=r"steps\[2\]\.params\.replace: unknown key; allowed keys here: replacement"):
+        build_definition(data)
+
+
+def test_dotted_path_that_does_not_import_says_so():
+    data = _default()
+    data["steps"].insert(1, {"step": "no_such_module:STEP"})
+    with pytest.raises(ConfigError, match="cannot import module 'no_such_module'"):
+        build_definition(data)
+
+
+def test_parameter_change_changes_digests_from_that_step_on_only():
+    a = build_definition(_default())
+    data = _default()
+    data["steps"][3]["params"]["max_tokens"] = 200
+    b = build_definition(data)
+    assert [x.digest == y.digest for x, y in zip(a.steps, b.steps)] == [True, True, True, False, False, False]
+
+
+def test_missing_file_and_bad_yaml(tmp_path):
+    with pytest.raises(ConfigError, match="flow definition not found"):
+        load_definition(tmp_path / "nope.yaml")
+    p = tmp_path / "bad.yaml"
+    p.write_text("steps: [extract\n")
+    with pytest.raises(ConfigError, match="not valid YAML"):
+        load_definition(p)
