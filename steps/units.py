@@ -132,6 +132,9 @@ class Chunk(Outcome):
     language_prob: float | None = None
     token_count: int | None = None
     encoding: str | None = None
+    # Leading characters of `text` that are not in the span: a table piece repeats its
+    # header row there. `text[prefix_chars:]` is exactly the span's text.
+    prefix_chars: int = 0
     chunk_id: str = ""
     parents: list[str] = field(default_factory=list)
     payload: dict[str, Any] = field(default_factory=dict)

@@ -1,0 +1,84 @@
+"""What Prefect costs thresher: fixed start-up of embedded mode and per-batch overhead.
+
+Measured side by side in one process run:
+  1. start-up: wall time of the first (empty) flow run in a fresh process, which
+     starts Prefect's temporary server, against a second empty flow run;
+  2. per batch: a flow submitting N no-op batch tasks against calling the same
+     no-op N times in plain Python, so the difference is Prefect's per-task cost;
+  3. the demo drive end to end, and the share of it spent inside the steps.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parents[1]
+
+CHILD = r"""
+import json, sys, time
+t0 = time.perf_counter()
+from thresher.flows import runtime
+from prefect import flow, task
+from prefect.cache_policies import NO_CACHE
+from prefect.task_runners import ThreadPoolTaskRunner
+t_import = time.perf_counter() - t0
+
+@task(cache_policy=NO_CACHE)
+def noop(i):
+    return i
+
+@flow(task_runner=ThreadPoolTaskRunner(max_workers=2))
+def many(n):
+    futs = [noop.submit(i) for i in range(n)]
+    return sum(f.result() for f in futs)
+
+@flow
+def empty():
+    return 0
+
+N = int(sys.argv[1])
+t = time.perf_counter(); empty(); first = time.perf_counter() - t
+t = time.perf_counter(); empty(); second = time.perf_counter() - t
+t = time.perf_counter(); many(N); with_tasks = time.perf_counter() - t
+t = time.perf_counter(); sum(noop.fn(i) for i in range(N)); plain = time.perf_counter() - t
+print(json.dumps({"import": t_import, "first": first, "second": second, "with_tasks": with_tasks, "plain": plain}))
+"""
+
+
+def main() -> None:
+    import json
+
+    n = 200
+    env = dict(os.environ)
+    env.pop("PREFECT_API_URL", None)
+    with tempfile.TemporaryDirectory() as home:
+        env["PREFECT_HOME"] = home  # a new database, as on a fresh machine
+        out = subprocess.run([sys.executable, "-c", CHILD, str(n)], check=True, capture_output=True, text=True,
+                             env=env, cwd=REPO)
+    r = json.loads(out.stdout.strip().splitlines()[-1])
+    per_task_ms = (r["with_tasks"] - r["second"] - r["plain"]) / n * 1000
+    print(f"prefect import                 {r['import']:.2f} s")
+    print(f"first flow run (server start)  {r['first']:.2f} s")
+    print(f"second flow run                {r['second']:.2f} s   ratio first/second {r['first'] / r['second']:.1f}x")
+    print(f"{n} batch tasks in one flow     {r['with_tasks']:.2f} s   -> {per_task_ms:.1f} ms per batch task")
+
+    with tempfile.TemporaryDirectory() as tmp:
+        store = Path(tmp) / "store"
+        env2 = dict(env)
+        env2["PREFECT_HOME"] = str(Path(tmp) / "prefect")
+        t = time.perf_counter()
+        res = subprocess.run([str(Path(sys.executable).with_name("thresher")), "run", "--source",
+                              str(REPO / "sample_inputs"), "--store", str(store), "--json", "--quiet"],
+                             check=True, capture_output=True, text=True, env=env2, cwd=REPO)
+        wall = time.perf_counter() - t
+        m = json.loads(res.stdout)
+        inside = m["step_seconds"]
+        print(f"demo drive, fresh process       {wall:.2f} s wall; flow body {m['seconds']:.2f} s; "
+              f"steps {inside:.2f} s (summed over workers; {inside / wall:.0%} of wall)")
+        shutil.rmtree(store, ignore_errors=True)

@@ -1,0 +1,202 @@
+"""The real Prefect flow, embedded, on the demo drive: every stage table, lineage,
+failures as data, determinism and incremental reuse."""
+
+from __future__ import annotations
+
+import socket
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+import yaml
+
+from thresher.flows import pipeline
+from thresher.flows.config import build_definition, default_config_text, load_definition
+from thresher.flows.store import Store
+
+STAGES = ["extract", "clean", "language", "split", "dedup", "tokens"]
+UNITS = {"extract": "pages", "clean": "pages", "language": "pages", "split": "chunks", "dedup": "chunks",
+         "tokens": "chunks"}
+
+
+def _run(source: Path, store: Path, workers: int = 2, definition=None) -> dict:
+    return pipeline.run(definition or load_definition(), str(source), str(store), workers=workers, quiet=True)
+
+
+@pytest.fixture(scope="module")
+def first_run(tmp_path_factory, prefect_harness):
+    """One run on the demo drive, shared by the read-only checks below."""
+    import shutil
+
+    from conftest import SAMPLE
+
+    base = tmp_path_factory.mktemp("e2e")
+    drive = base / "drive"
+    shutil.copytree(SAMPLE, drive)
+    attempts: list[tuple] = []
+    real_connect = socket.socket.connect
+
+    def recording_connect(self, address):
+        attempts.append(address)
+        return real_connect(self, address)
+
+    socket.socket.connect = recording_connect
+    try:
+        manifest = _run(drive, base / "store", workers=1)
+    finally:
+        socket.socket.connect = real_connect
+    return {"drive": drive, "store": Store(base / "store"), "manifest": manifest, "connects": attempts}
+
+
+def test_every_stage_table_and_the_handoff_are_written(first_run):
+    root = Path(first_run["store"].base)
+    for stage in STAGES:
+        assert list((root / "stages" / stage).rglob("*.parquet")), stage
+    assert (root / "handoff" / "chunks.parquet").is_file()
+    assert (root / "catalog.parquet").is_file()
+    run_id = first_run["manifest"]["run_id"]
+    assert (root / "runs" / run_id / "manifest.json").is_file()
+    chunks = pq.read_table(root / "handoff" / "chunks.parquet")
+    assert chunks.num_rows == first_run["manifest"]["chunks"] > 20
+    assert all(n > 0 for n in chunks.column("token_count").to_pylist())
+    langs = set(chunks.column("language").to_pylist())
+    assert {"en", "de", "fr"} <= langs
+
+
+def test_nothing_but_loopback_was_contacted(first_run):
+    # The embedded Prefect server listens on 127.0.0.1; anything else would be telemetry
+    # or a download (tiktoken encodings, analytics) that must not happen offline.
+    outside = [a for a in first_run["connects"]
+               if isinstance(a, tuple) and a and a[0] not in ("127.0.0.1", "::1", "localhost")]
+    assert outside == []
+
+
+def test_every_chunk_walks_back_to_a_page_and_a_file(first_run):
+    store = first_run["store"]
+    by_id = {}
+    for stage in STAGES:
+        for row in store.current(stage, UNITS[stage]).to_pylist():
+            by_id[row["unit_id"]] = row
+    catalog = {r["doc_id"]: r for r in store.catalog().to_pylist()}
+    handoff = store.handoff().to_pylist()
+    assert handoff
+    for chunk in handoff:
+        chain = []
+        row = next(r for r in by_id.values() if r["step"] == "tokens" and r["chunk_id"] == chunk["chunk_id"])
+        frontier = [row]
+        while frontier:
+            r = frontier.pop()
+            chain.append(r["step"])
+            for pid in r["parent_ids"]:
+                assert pid in by_id, f"parent {pid} of {r['step']} unit {r['unit_id']} is missing"
+                assert by_id[pid]["doc_id"] == chunk["doc_id"]
+                frontier.append(by_id[pid])
+        assert set(chain) == set(STAGES), chain
+        assert (first_run["drive"] / catalog[chunk["doc_id"]]["source_path"]).is_file()
+
+
+def test_forward_from_a_page_to_its_chunks(first_run):
+    store = first_run["store"]
+    pages = [r for r in store.current("language", "pages").to_pylist()
+             if r["source_path"] == "archive/2025/branch-operations-handbook.pdf" and r["page"] == 2]
+    assert len(pages) == 1
+    splits = [r for r in store.current("split", "chunks").to_pylist() if pages[0]["unit_id"] in r["parent_ids"]]
+    assert splits and all(r["page_start"] <= 2 <= r["page_end"] for r in splits)
+
+
+def _extract_rows(store: Store, path: str) -> list[dict]:
+    return [r for r in store.current("extract", "pages").to_pylist() if r["source_path"] == path]
+
+
+@pytest.mark.parametrize("path, reason", [
+    ("events/spring-reading-programme-2026.pdf", "unreadable PDF"),
+    ("hr/salary-review-2026-protected.pdf", "password protected"),
+    ("it/scanner-log.txt", "empty file (0 bytes)"),
+    ("it/label-printer-logo.txt", "not text"),
+    ("finance/2026-01-14-receipt-stationery-scan.pdf", "no text layer"),
+])
+def test_broken_files_fail_with_specific_reasons_and_the_run_completes(first_run, path, reason):
+    rows = _extract_rows(first_run["store"], path)
+    assert rows, f"no extract row for {path}"
+    assert all(r["status"] == "failed" for r in rows)
+    assert any(reason in (r["reason"] or "") for r in rows), [r["reason"] for r in rows]
+    assert first_run["manifest"]["chunks"] > 0  # the rest of the drive got through
+
+
+def test_the_archived_copy_is_one_document_at_two_paths(first_run):
+    cat = first_run["store"].catalog().to_pylist()
+    a = next(r for r in cat if r["source_path"] == "operations/branch-operations-handbook.pdf")
+    b = next(r for r in cat if r["source_path"] == "archive/2025/branch-operations-handbook.pdf")
+    assert a["doc_id"] == b["doc_id"]
+    assert a["canonical_path"] == b["canonical_path"] == "archive/2025/branch-operations-handbook.pdf"
+    handoff_paths = set(first_run["store"].handoff().column("source_path").to_pylist())
+    assert "operations/branch-operations-handbook.pdf" not in handoff_paths  # one copy, not two
+
+
+def _unit_ids(store: Store) -> dict[str, list[str]]:
+    return {s: sorted(store.current(s, UNITS[s]).column("unit_id").to_pylist()) for s in STAGES}
+
+
+def _handoff_content(store: Store) -> list[dict]:
+    return [{k: v for k, v in r.items() if k != "run_id"} for r in store.handoff().to_pylist()]
+
+
+def test_same_input_gives_the_same_ids_and_handoff_whatever_the_worker_count(first_run, tmp_path):
+    _run(first_run["drive"], tmp_path / "other", workers=2)
+    other = Store(tmp_path / "other")
+    assert _unit_ids(other) == _unit_ids(first_run["store"])
+    assert _handoff_content(other) == _handoff_content(first_run["store"])
+
+
+def test_a_second_run_reuses_everything_and_hands_off_no_changes(prefect_harness, sample_drive, tmp_path):
+    store_dir = tmp_path / "store"
+    first = _run(sample_drive, store_dir)
+    files_before = sorted(p.relative_to(store_dir) for p in (store_dir / "stages").rglob("*.parquet"))
+    second = _run(sample_drive, store_dir)
+    assert second["documents"]["processed"] == 0
+    assert second["documents"]["unchanged"] == first["documents"]["distinct"]
+    assert second["changes"] == {"upsert": 0, "delete": 0}
+    assert second["chunks"] == first["chunks"]
+    files_after = sorted(p.relative_to(store_dir) for p in (store_dir / "stages").rglob("*.parquet"))
+    assert files_after == files_before  # nothing recomputed, nothing rewritten
+
+    # An edited file is a new document: its old chunks are deleted, new ones upserted.
+    minutes = sample_drive / "board" / "2026-01-20-board-minutes.md"
+    minutes.write_text(minutes.read_text() + "\n\n## Any other business\n\nThe chair thanked the volunteers of "
+                       "the Brackenmoor branch for running the winter reading hour.\n")
+    third = _run(sample_drive, store_dir)
+    assert third["documents"]["processed"] == 1 and third["documents"]["removed"] == 1
+    assert third["changes"]["upsert"] >= 1 and third["changes"]["delete"] >= 1
+    changes = pq.read_table(store_dir / "handoff" / "changes" / f"{third['run_id']}.parquet").to_pylist()
+    assert {c["source_path"] for c in changes} == {"board/2026-01-20-board-minutes.md"}
+    texts = Store(store_dir).handoff().column("text").to_pylist()
+    assert any("winter reading hour" in t for t in texts)
+
+
+def test_a_parameter_change_reruns_from_that_step_only(prefect_harness, sample_drive, tmp_path):
+    store_dir = tmp_path / "store"
+    _run(sample_drive, store_dir)
+    data = yaml.safe_load(default_config_text())
+    data["steps"][3]["params"]["max_tokens"] = 120
+    changed = build_definition(data, "test")
+    m = _run(sample_drive, store_dir, definition=changed)
+    assert m["written"].get("extract") is None and m["written"].get("clean") is None
+    assert sum(m["written"]["split"].values()) > 0
+    store = Store(store_dir)
+    assert max(store.handoff().column("token_count").to_pylist()) <= 120
+
+
+def test_a_dropped_step_and_an_own_step_run_without_touching_flows(prefect_harness, sample_drive, tmp_path):
+    data = yaml.safe_load(default_config_text())
+    data["steps"] = [s for s in data["steps"] if s["step"] != "language"]
+    data["steps"].insert(1, {"step": "example_steps:MASK_EMAILS"})
+    (sample_drive / "contacts.txt").write_text(
+        "Questions about the rota go to rota.desk@quillfern.example or to the duty manager at the branch.\n")
+    m = _run(sample_drive, tmp_path / "store", definition=build_definition(data, "test"))
+    store = Store(tmp_path / "store")
+    assert "language" not in m["current"] and "mask_emails" in m["current"]
+    texts = " ".join(store.handoff().column("text").to_pylist())
+    assert "rota.desk@quillfern.example" not in texts and "[email]" in texts
+    notes = [r["notes"] for r in store.current("mask_emails", "pages").to_pylist()
+             if r["source_path"] == "contacts.txt"]
+    assert dict(notes[0])["masked"] == "1"
