@@ -1,0 +1,96 @@
+"""The `thresher` command as a user runs it: a real process, embedded Prefect."""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from conftest import REPO, SAMPLE
+
+THRESHER = str(Path(sys.executable).with_name("thresher"))
+
+
+def _cli(*args: str, cwd: Path = REPO, env: dict | None = None, timeout: int = 300) -> subprocess.CompletedProcess:
+    return subprocess.run([THRESHER, *args], capture_output=True, text=True, cwd=cwd, env=env, timeout=timeout)
+
+
+@pytest.mark.parametrize("verb", ["run", "status", "trail"])
+def test_every_verb_has_help(verb):
+    r = _cli(verb, "--help")
+    assert r.returncode == 0
+    assert "--store" in r.stdout and "--config" in r.stdout
+
+
+@pytest.mark.parametrize("args, message", [
+    (["run", "--workers", "none"], "argument --workers: expected a whole number, got 'none'"),
+    (["run", "--workers", "0"], "argument --workers: must be at least 1"),
+    (["run", "--source", "/no/such/folder"], "source folder not found: /no/such/folder"),
+    (["run", "--config", "/no/such/flow.yaml"], "flow definition not found"),
+    (["sing"], "invalid choice: 'sing'"),
+    (["run", "--colour"], "unrecognized arguments: --colour"),
+])
+def test_bad_input_gets_one_line_and_exit_code_2(args, message, tmp_path):
+    extra = ["--store", str(tmp_path / "s")] if args[0] == "run" else []
+    r = _cli(*args, *extra, cwd=tmp_path)
+    assert r.returncode == 2
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1, r.stderr
+    assert message in lines[0]
+    assert not (tmp_path / "s").exists()  # nothing was created
+
+
+def test_bad_flow_definition_names_the_key(tmp_path):
+    flow = tmp_path / "flow.yaml"
+    flow.write_text("steps:\n  - step: extract\n  - step: split\n    params: {max_tokens: -5}\n")
+    r = _cli("run", "--config", str(flow), "--source", str(SAMPLE), "--store", str(tmp_path / "s"), cwd=tmp_path)
+    assert r.returncode == 2
+    assert "steps[1].params.max_tokens" in r.stderr and len(r.stderr.strip().splitlines()) == 1
+
+
+def test_status_and_trail_on_an_empty_store_say_so(tmp_path):
+    for verb in (["status"], ["trail", "x.pdf"]):
+        r = _cli(*verb, "--store", str(tmp_path / "empty"), cwd=tmp_path)
+        assert r.returncode == 2
+        assert "no committed run in store" in r.stderr
+
+
+def test_run_then_status_then_trail_answer_from_the_store(tmp_path):
+    drive = tmp_path / "drive"
+    shutil.copytree(SAMPLE, drive)
+    store = tmp_path / "store"
+    env = dict(os.environ)
+    env.pop("PREFECT_API_URL", None)
+    env["PREFECT_HOME"] = str(tmp_path / "prefect")  # a new embedded database, as for a new user
+    r = _cli("run", "--source", str(drive), "--store", str(store), cwd=tmp_path, env=env)
+    assert r.returncode == 0, r.stderr
+    # Progress while it works (stderr), a summary at the end (stdout).
+    assert "batch 1/" in r.stderr and "found 20 files (19 distinct documents)" in r.stderr
+    out = r.stdout
+    assert "documents  20 files, 19 distinct; 19 processed" in out
+    for stage in ("extract", "clean", "language", "split", "dedup", "tokens"):
+        assert f"\n  {stage} " in out
+    assert f"store      {store}" in out
+
+    s = _cli("status", "--store", str(store), cwd=tmp_path)
+    assert s.returncode == 0
+    assert "1 committed run(s), 19 live documents" in s.stdout
+    assert "current view by stage:" in s.stdout
+    js = json.loads(_cli("status", "--store", str(store), "--json", cwd=tmp_path).stdout)
+    assert js["stages"]["extract"]["failed"] >= 5
+
+    t = _cli("trail", str(drive / "board" / "2025-11-18-board-minutes.md"), "--store", str(store), cwd=tmp_path)
+    assert t.returncode == 0, t.stderr
+    assert t.stdout.startswith("board/2025-11-18-board-minutes.md")
+    assert "extract: 1 unit(s)" in t.stdout and "tokens" in t.stdout and "Board" in t.stdout
+
+    bad = _cli("trail", "hr/salary-review-2026-protected.pdf", "--store", str(store), cwd=tmp_path)
+    assert bad.returncode == 0 and "reason: password protected" in bad.stdout
+
+    missing = _cli("trail", "nowhere/nothing.pdf", "--store", str(store), cwd=tmp_path)
+    assert missing.returncode == 2 and "no document 'nowhere/nothing.pdf'" in missing.stderr
