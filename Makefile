@@ -7,7 +7,11 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.thresher-installed
 
-.PHONY: demo test bench sample clean-store help
+# Debian packages the tests read as outside references (PDFs and HTML manuals that
+# Debian ships, and poppler's pdftotext/pdfinfo as the reference PDF extractor).
+DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev
+
+.PHONY: demo test bench sample clean-store help system-deps
 
 help:
 	@echo "make demo    run the default flow on sample_inputs/ (store in .thresher-store/)"
@@ -31,8 +35,19 @@ demo: $(STAMP)
 	@echo
 	@echo "next: $(BIN)/thresher trail operations/branch-operations-handbook.pdf"
 
-test: $(STAMP)
+test: $(STAMP) system-deps
 	$(BIN)/python -m pytest
+
+# Installs only what is missing; needs root (as on CI) or sudo.
+system-deps:
+	@missing=""; for p in $(DEBIAN_TEST_PACKAGES); do \
+	  dpkg-query -W -f='$${Status}' $$p 2>/dev/null | grep -q "install ok installed" || missing="$$missing $$p"; \
+	done; \
+	if [ -n "$$missing" ]; then \
+	  echo "installing Debian packages the tests need:$$missing"; \
+	  SUDO=""; [ "$$(id -u)" = 0 ] || SUDO=sudo; \
+	  $$SUDO apt-get update -qq && $$SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends $$missing; \
+	fi
 
 bench: $(STAMP)
 	$(BIN)/python -m bench

@@ -1,0 +1,170 @@
+"""Markdown, parsed with markdown-it-py (CommonMark plus GFM tables); one page per file.
+
+- ATX and Setext headings keep their level (h1..h6).
+- Paragraphs and block quotes become paragraphs; inline markup is dropped (emphasis
+  markers, link targets) and soft line breaks become spaces, as a renderer shows them.
+- A list (with its nested lists) becomes one paragraph of item lines: "- item" for
+  bullets, "3. item" for ordered items, two spaces of indent per nesting level.
+- Fenced and indented code become CODE blocks with their lines intact.
+- Tables become TABLE blocks, header row first.
+- Raw HTML blocks contribute their text; YAML front matter at the top (between "---"
+  lines) is not content, but its `title:` is the document title.
+"""
+
+from __future__ import annotations
+
+import re
+
+from markdown_it import MarkdownIt
+from markdown_it.token import Token
+
+from .extract import (
+    PagePart,
+    ReadResult,
+    code_block,
+    heading_block,
+    inline,
+    list_block,
+    paragraph_block,
+    table_block,
+)
+from .extract_html import visible_text
+
+_FRONT_MATTER = re.compile(r"\A---[^\S\n]*\n(.*?\n)(?:---|\.\.\.)[^\S\n]*(?:\n|\Z)", re.DOTALL)
+_FRONT_KEY = re.compile(r"^[A-Za-z_][\w-]*\s*:")
+_FRONT_TITLE = re.compile(r"^title\s*:\s*(.+?)\s*$", re.MULTILINE | re.IGNORECASE)
+
+
+def _parser() -> MarkdownIt:
+    return MarkdownIt("commonmark").enable("table")
+
+
+def split_front_matter(text: str) -> tuple[str, str]:
+    """(title from front matter or "", the text without it)."""
+    found = _FRONT_MATTER.match(text)
+    if not found:
+        return "", text
+    body = found.group(1)
+    first = next((line for line in body.split("\n") if line.strip()), "")
+    if not _FRONT_KEY.match(first):
+        return "", text  # a thematic break followed by text, not front matter
+    title = ""
+    match = _FRONT_TITLE.search(body)
+    if match:
+        title = match.group(1).strip().strip("\"'")
+    # Keep the line count so nothing else shifts; the lines are blank now.
+    return title, "\n" * found.group(0).count("\n") + text[found.end():]
+
+
+def _inline_text(token: Token) -> str:
+    out: list[str] = []
+    for child in token.children or []:
+        if child.type in ("text", "code_inline"):
+            out.append(child.content)
+        elif child.type in ("softbreak", "hardbreak"):
+            out.append(" ")
+        elif child.type == "image":
+            out.append(_inline_text(child) or child.attrs.get("alt", "") or "")
+        elif child.type == "html_inline":
+            continue
+    return "".join(out)
+
+
+def markdown_blocks(text: str) -> list:
+    tokens = _parser().parse(text)
+    blocks = []
+    list_lines: list[str] = []
+    # One entry per open list: [ordered, next number]
+    lists: list[list] = []
+    item_open: list[bool] = []  # per open list item: has its first line been written
+    i = 0
+
+    def flush_list() -> None:
+        if list_lines:
+            block = list_block(list_lines)
+            if block:
+                blocks.append(block)
+            list_lines.clear()
+
+    def add_text(value: str) -> None:
+        value = inline(value)
+        if not value:
+            return
+        if lists:
+            depth = len(lists) - 1
+            if item_open and not item_open[-1]:
+                ordered, number = lists[-1]
+                marker = f"{number}." if ordered else "-"
+                list_lines.append("  " * depth + f"{marker} {value}")
+                item_open[-1] = True
+            elif list_lines:
+                list_lines[-1] += " " + value
+            else:
+                list_lines.append("  " * depth + value)
+        else:
+            block = paragraph_block(value)
+            if block:
+                blocks.append(block)
+
+    while i < len(tokens):
+        tok = tokens[i]
+        kind = tok.type
+        if kind == "heading_open":
+            flush_list()
+            block = heading_block(_inline_text(tokens[i + 1]), int(tok.tag[1:]))
+            if block:
+                blocks.append(block)
+            i += 3
+            continue
+        if kind in ("bullet_list_open", "ordered_list_open"):
+            start = tok.attrs.get("start", 1) if kind == "ordered_list_open" else 1
+            lists.append([kind == "ordered_list_open", int(start or 1)])
+        elif kind in ("bullet_list_close", "ordered_list_close"):
+            lists.pop()
+            if not lists:
+                flush_list()
+        elif kind == "list_item_open":
+            item_open.append(False)
+            if lists and lists[-1][0] and tok.info:
+                lists[-1][1] = int(tok.info)
+        elif kind == "list_item_close":
+            item_open.pop()
+            if lists and lists[-1][0]:
+                lists[-1][1] += 1
+        elif kind == "inline":
+            add_text(_inline_text(tok))
+        elif kind in ("fence", "code_block"):
+            flush_list()
+            block = code_block(tok.content)
+            if block:
+                blocks.append(block)
+        elif kind == "table_open":
+            flush_list()
+            rows: list[list[str]] = []
+            i += 1
+            while i < len(tokens) and tokens[i].type != "table_close":
+                t = tokens[i]
+                if t.type == "tr_open":
+                    rows.append([])
+                elif t.type == "inline" and rows:
+                    rows[-1].append(_inline_text(t))
+                i += 1
+            block = table_block(rows)
+            if block:
+                blocks.append(block)
+        elif kind == "html_block":
+            add_text(visible_text(tok.content))
+        i += 1
+    flush_list()
+    return blocks
+
+
+def read_markdown(text: str, encoding: str) -> ReadResult:
+    title, body = split_front_matter(text)
+    blocks = markdown_blocks(body)
+    part = PagePart(page=None, blocks=blocks)
+    if not blocks:
+        part.warnings.append("no text (the file holds no Markdown content)")
+    return ReadResult(
+        format="markdown", method="markdown", pages=[part], title=title, encoding=encoding
+    )

@@ -1,0 +1,365 @@
+"""What a file is, judged by its bytes; and how its text decodes.
+
+The extension only breaks ties (HTML fragment vs text, Markdown vs text) and is
+reported in a warning when the content says otherwise. Order of the checks:
+
+1. Signatures: PDF, zip containers (a .docx is a zip with word/document.xml), OLE2
+   (legacy Office, or an encrypted Office file), RTF, and common binary formats.
+2. Binary test on the first 64 KiB: any NUL byte (outside UTF-16/32 text), or more
+   than 5 % control bytes, means "not text". Git and grep use the NUL test on the
+   first 8000 bytes (common practice); the 5 % control share is our rule of thumb.
+3. Decoding (see `decode`); text with more than 10 % unprintable characters after
+   decoding is not text either.
+4. HTML when the text starts like an HTML document (a doctype, html, head or body tag
+   first, after any XML declaration and comments), or is named .html/.htm/.xhtml and
+   holds markup; Markdown when named .md/.markdown; everything else is plain text.
+"""
+
+from __future__ import annotations
+
+import codecs
+import io
+import re
+import zipfile
+from dataclasses import dataclass, field
+
+import charset_normalizer
+
+
+SAMPLE = 64 * 1024
+CONTROL_SHARE_LIMIT = 0.05
+UNPRINTABLE_SHARE_LIMIT = 0.10
+
+# Format names the extension suggests, to warn when the content disagrees.
+EXTENSION_FORMATS = {
+    "pdf": "pdf",
+    "docx": "docx",
+    "html": "html",
+    "htm": "html",
+    "xhtml": "html",
+    "md": "markdown",
+    "markdown": "markdown",
+    "txt": "text",
+    "text": "text",
+}
+
+# Signatures of binary formats we do not read; the name goes into the reason.
+_BINARY_SIGNATURES = (
+    (b"\x89PNG\r\n\x1a\n", "PNG image"),
+    (b"\xff\xd8\xff", "JPEG image"),
+    (b"GIF87a", "GIF image"),
+    (b"GIF89a", "GIF image"),
+    (b"II*\x00", "TIFF image"),
+    (b"MM\x00*", "TIFF image"),
+    (b"\x1f\x8b", "gzip archive"),
+    (b"BZh", "bzip2 archive"),
+    (b"\xfd7zXZ\x00", "xz archive"),
+    (b"7z\xbc\xaf\x27\x1c", "7-Zip archive"),
+    (b"Rar!\x1a\x07", "RAR archive"),
+    (b"\x7fELF", "ELF executable"),
+    (b"PAR1", "Parquet file"),
+    (b"SQLite format 3\x00", "SQLite database"),
+)
+_OLE2 = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
+# An encrypted .docx/.xlsx is an OLE2 file holding a stream with this name (MS-OFFCRYPTO).
+_ENCRYPTION_INFO = "EncryptionInfo".encode("utf-16-le")
+
+# Byte-order marks, longest first (the UTF-32-LE mark starts with the UTF-16-LE one).
+_BOMS = (
+    (codecs.BOM_UTF32_LE, "utf-32-le"),
+    (codecs.BOM_UTF32_BE, "utf-32-be"),
+    (codecs.BOM_UTF8, "utf-8"),
+    (codecs.BOM_UTF16_LE, "utf-16-le"),
+    (codecs.BOM_UTF16_BE, "utf-16-be"),
+)
+
+_HTML_START = re.compile(
+    r"\A\s*(?:<\?xml[^>]*>\s*)?(?:<!--.*?-->\s*)*(?:<!doctype\s+html|<(?:html|head|body)[\s>/])",
+    re.IGNORECASE | re.DOTALL,
+)
+_ANY_TAG = re.compile(r"</?[a-zA-Z][a-zA-Z0-9-]*(?:\s[^<>]*)?/?>")
+_META_CHARSET = re.compile(
+    rb"""<meta[^>]+charset\s*=\s*["']?\s*([A-Za-z0-9._:-]+)""", re.IGNORECASE
+)
+
+# WHATWG Encoding Standard: these labels decode as windows-1252, and a <meta> that
+# names UTF-16 in a file without a BOM means UTF-8 (HTML standard, "prescan").
+_WHATWG_LABELS = {
+    "iso-8859-1": "cp1252",
+    "iso8859-1": "cp1252",
+    "latin1": "cp1252",
+    "latin-1": "cp1252",
+    "l1": "cp1252",
+    "ascii": "cp1252",
+    "us-ascii": "cp1252",
+    "windows-1252": "cp1252",
+    "utf-16": "utf-8",
+    "utf-16le": "utf-8",
+    "utf-16be": "utf-8",
+}
+
+
+# Control characters other than tab and line feed, surrogates, private-use code
+# points and U+FFFD (what decoders put where bytes made no sense).
+_UNPRINTABLE = re.compile(
+    "[\x00-\x08\x0b-\x1f\x7f-\x9f\ud800-\udfff\ue000-\uf8ff"
+    "\U000f0000-\U000ffffd\U00100000-\U0010fffd\ufffd]"
+)
+
+
+def unprintable_count(text: str) -> int:
+    return len(_UNPRINTABLE.findall(text))
+
+
+def extension(source_path: str) -> str:
+    """The file name's extension, lower case, without the dot ("" if none)."""
+    name = re.split(r"[\\/]", source_path)[-1]
+    _, dot, ext = name.rpartition(".")
+    return ext.lower() if dot else ""
+
+
+class NotText(Exception):
+    """The bytes do not decode to text; the message is the reason's detail."""
+
+
+@dataclass
+class Decoded:
+    text: str
+    encoding: str
+    warnings: list[str] = field(default_factory=list)
+
+
+@dataclass
+class Sniffed:
+    """The verdict: a format and, for text formats, the decoded text.
+
+    `reason` is set (and the document fails with it) when the bytes cannot be read.
+    """
+
+    format: str = ""
+    reason: str = ""
+    text: str | None = None
+    encoding: str = ""
+    warnings: list[str] = field(default_factory=list)
+
+
+def codec_name(name: str) -> str | None:
+    """Python's canonical name for an encoding label, or None if it has none."""
+    try:
+        return codecs.lookup(name).name
+    except (LookupError, TypeError):
+        return None
+
+
+def _bom(data: bytes) -> tuple[str, int] | None:
+    for mark, name in _BOMS:
+        if data.startswith(mark):
+            return name, len(mark)
+    return None
+
+
+def _normalise_newlines(text: str) -> str:
+    return text.replace("\r\n", "\n").replace("\r", "\n")
+
+
+def _utf16_without_bom(sample: bytes) -> str | None:
+    """UTF-16 text without a BOM: NULs in about half the bytes, all on one side."""
+    if len(sample) < 4:
+        return None
+    even = sample[0::2].count(0)
+    odd = sample[1::2].count(0)
+    half = len(sample) // 2
+    if odd >= 0.3 * half and even == 0:
+        return "utf-16-le"
+    if even >= 0.3 * half and odd == 0:
+        return "utf-16-be"
+    return None
+
+
+def _control_share(sample: bytes) -> float:
+    if not sample:
+        return 0.0
+    # C0 controls other than tab, LF, VT, FF, CR, and ESC (used by terminal colours),
+    # plus DEL.
+    allowed = {0x09, 0x0A, 0x0B, 0x0C, 0x0D, 0x1B}
+    controls = sum(1 for b in sample if (b < 0x20 and b not in allowed) or b == 0x7F)
+    return controls / len(sample)
+
+
+def _decode_replacing(data: bytes, encoding: str) -> tuple[str, int]:
+    """Decode with U+FFFD for bad bytes; count the bad sequences (not existing U+FFFDs)."""
+    text = data.decode(encoding, errors="replace")
+    existing = data.count("\ufffd".encode(encoding)) if encoding.startswith("utf") else 0
+    return text, max(0, text.count("\ufffd") - existing)
+
+
+def decode(data: bytes, declared: str | None = None) -> Decoded:
+    """Decode text bytes; raises NotText when no encoding fits.
+
+    Order: byte-order mark; UTF-16 without one (NULs on one side of every byte pair);
+    a declared charset (HTML <meta>); strict UTF-8; UTF-8 with
+    a few bad sequences (when valid multi-byte sequences outnumber the bad ones, the
+    file is UTF-8 with damage, not a legacy encoding: our rule of thumb); else
+    charset-normalizer's best guess (legacy single-byte code pages such as cp1252 or
+    KOI8-R). Line endings become "\\n".
+    """
+    warnings: list[str] = []
+    bom = _bom(data)
+    if bom:
+        name, skip = bom
+        text, bad = _decode_replacing(data[skip:], name)
+        if bad:
+            warnings.append(f"{bad} invalid byte sequences replaced (declared {name} by BOM)")
+        return Decoded(_normalise_newlines(text), name, warnings)
+
+    utf16 = _utf16_without_bom(data[:SAMPLE])
+    if utf16:
+        text, bad = _decode_replacing(data, utf16)
+        if bad:
+            warnings.append(f"{bad} invalid byte sequences replaced")
+        return Decoded(_normalise_newlines(text), utf16, warnings)
+
+    if declared:
+        label = declared.strip().lower()
+        name = codec_name(_WHATWG_LABELS.get(label, label))
+        if name:
+            text, bad = _decode_replacing(data, name)
+            if bad:
+                warnings.append(
+                    f"{bad} invalid byte sequences replaced (declared charset {declared})"
+                )
+            return Decoded(_normalise_newlines(text), name, warnings)
+        warnings.append(f"declared charset {declared!r} is unknown; detected instead")
+
+    try:
+        return Decoded(_normalise_newlines(data.decode("utf-8")), "utf-8", warnings)
+    except UnicodeDecodeError:
+        pass
+
+    text, bad = _decode_replacing(data, "utf-8")
+    non_ascii = len(text) - len(text.encode("ascii", "ignore"))
+    multibyte = non_ascii - bad
+    if multibyte >= bad:
+        warnings.append(f"{bad} invalid byte sequences replaced")
+        return Decoded(_normalise_newlines(text), "utf-8", warnings)
+
+    matches = list(charset_normalizer.from_bytes(data))
+    if not matches:
+        raise NotText("no text encoding fits the bytes")
+    best = matches[0]
+    # On a tie (same mess and coherence scores: the bytes cannot tell the code pages
+    # apart) take windows-1252, the HTML standard's default legacy encoding for most
+    # locales; charset-normalizer would otherwise pick e.g. cp1250 and turn a French
+    # "à" into "ŕ".
+    for match in matches[1:]:
+        if (
+            match.encoding == "cp1252"
+            and abs(match.chaos - best.chaos) < 1e-9
+            and abs(match.coherence - best.coherence) < 1e-9
+        ):
+            best = match
+            break
+    name = codec_name(best.encoding) or best.encoding
+    return Decoded(_normalise_newlines(str(best)), name, warnings)
+
+
+def html_declared_charset(data: bytes) -> str | None:
+    """The charset a <meta> declares in the first 1024 bytes (the HTML standard's prescan)."""
+    found = _META_CHARSET.search(data[:1024])
+    return found.group(1).decode("ascii", "replace") if found else None
+
+
+def _zip_kind(data: bytes, ext: str) -> Sniffed:
+    try:
+        with zipfile.ZipFile(io.BytesIO(data)) as archive:
+            names = set(archive.namelist())
+            mimetype = b""
+            if "mimetype" in names:
+                mimetype = archive.read("mimetype")[:100].strip()
+    except (zipfile.BadZipFile, OSError, EOFError, ValueError) as exc:
+        what = "DOCX" if ext == "docx" else "zip archive"
+        return Sniffed(reason=f"unreadable {what}: {exc}")
+    if "word/document.xml" in names:
+        return Sniffed(format="docx")
+    if "xl/workbook.xml" in names:
+        kind = "XLSX spreadsheet"
+    elif "ppt/presentation.xml" in names:
+        kind = "PPTX presentation"
+    elif mimetype.startswith(b"application/vnd.oasis.opendocument"):
+        kind = f"OpenDocument file ({mimetype.decode('ascii', 'replace')})"
+    elif mimetype == b"application/epub+zip":
+        kind = "EPUB book"
+    else:
+        kind = "zip archive without word/document.xml (not a .docx)"
+    return Sniffed(reason=f"unsupported format: {kind}")
+
+
+def sniff(data: bytes, source_path: str) -> Sniffed:
+    ext = extension(source_path)
+    head = data[:1024]
+
+    if b"%PDF-" in head:
+        return _with_extension_note(Sniffed(format="pdf"), ext)
+    if data.startswith((b"PK\x03\x04", b"PK\x05\x06")):
+        return _with_extension_note(_zip_kind(data, ext), ext)
+    if data.startswith(_OLE2):
+        if _ENCRYPTION_INFO in data:
+            return Sniffed(reason="password protected")
+        return Sniffed(
+            reason="unsupported format: legacy Microsoft Office binary file (.doc/.xls/.ppt)"
+        )
+    if data.startswith(b"{\\rtf"):
+        return Sniffed(reason="unsupported format: RTF document")
+    for magic, kind in _BINARY_SIGNATURES:
+        if data.startswith(magic):
+            return Sniffed(reason=f"not text: {kind} (binary content)")
+
+    sample = data[:SAMPLE]
+    declared = None
+    if not _bom(data) and not _utf16_without_bom(sample):
+        nuls = sample.count(0)
+        if nuls:
+            return Sniffed(
+                reason=f"not text: {nuls} NUL bytes in the first {len(sample)} bytes "
+                "(binary content)"
+            )
+        share = _control_share(sample)
+        if share > CONTROL_SHARE_LIMIT:
+            return Sniffed(reason=f"not text: {share:.0%} control bytes (binary content)")
+        if _looks_html(sample.decode("latin-1"), ext):
+            declared = html_declared_charset(data)
+
+    try:
+        decoded = decode(data, declared)
+    except NotText as exc:
+        return Sniffed(reason=f"not text: {exc} (binary content)")
+    text = decoded.text
+    if text:
+        share = unprintable_count(text) / len(text)
+        if share > UNPRINTABLE_SHARE_LIMIT:
+            return Sniffed(
+                reason=f"not text: {share:.0%} unprintable characters after decoding as "
+                f"{decoded.encoding} (binary content)"
+            )
+
+    if _looks_html(text, ext):
+        fmt = "html"
+    elif ext in ("md", "markdown"):
+        fmt = "markdown"
+    else:
+        fmt = "text"
+    found = Sniffed(format=fmt, text=text, encoding=decoded.encoding, warnings=decoded.warnings)
+    return _with_extension_note(found, ext)
+
+
+def _looks_html(text: str, ext: str) -> bool:
+    if _HTML_START.search(text[:2048]):
+        return True
+    return ext in ("html", "htm", "xhtml") and bool(_ANY_TAG.search(text[:SAMPLE]))
+
+
+def _with_extension_note(found: Sniffed, ext: str) -> Sniffed:
+    expected = EXTENSION_FORMATS.get(ext)
+    if found.format and expected and expected != found.format:
+        found.warnings.append(f"content is {found.format} although the file is named .{ext}")
+    return found

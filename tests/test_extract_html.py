@@ -1,0 +1,155 @@
+"""HTML extraction: what is dropped, what is kept, and how the charset is found."""
+
+from __future__ import annotations
+
+import codecs
+
+from thresher.steps.extract import ExtractParams, extract
+from thresher.steps.spec import StepContext
+from thresher.steps.units import BLOCK_SEP, CODE, HEADING, OK, PARAGRAPH, TABLE, Source
+
+
+def one(data: bytes | str, name: str = "page.html"):
+    if isinstance(data, str):
+        data = data.encode("utf-8")
+    source = Source(doc_id="d", source_path=f"intranet/{name}", data=data, size=len(data), mtime=0.0)
+    pages = extract(source, ExtractParams(), StepContext())
+    assert len(pages) == 1
+    return pages[0]
+
+
+INTRANET = """<!DOCTYPE html>
+<html lang="en">
+<head>
+  <meta charset="utf-8">
+  <title>Volunteer Rota | Quillfern Intranet</title>
+  <style>body { font-family: serif; } .secret { color: red }</style>
+  <script>var trackingCode = "do-not-index";</script>
+</head>
+<body>
+  <header><a href="/">Quillfern Intranet home</a> <span>Signed in as volunteer</span></header>
+  <nav><ul><li><a href="/rota">Rota</a></li><li><a href="/news">News menu link</a></li></ul></nav>
+  <main>
+    <article>
+      <header><h1>Volunteer   Rota</h1><p>Updated weekly by the branch coordinators.</p></header>
+      <p>Shifts run from <b>nine</b> to <em>noon</em> and from noon to three.<br>
+         Swap shifts on the board.</p>
+      <h2>Who to call</h2>
+      <ul>
+        <li>Front desk: extension 12</li>
+        <li>Duty coordinator
+          <ul><li>weekdays: Ana</li><li>weekends: Bo</li></ul>
+        </li>
+      </ul>
+      <ol start="3"><li>Sign in.</li><li>Collect the keys.</li></ol>
+      <h3>Shift table</h3>
+      <table>
+        <tbody><tr><td>Monday</td><td>Ana</td><td>Bo</td></tr>
+               <tr><td>Tuesday</td><td colspan="2">Cy</td></tr></tbody>
+        <thead><tr><th>Day</th><th>Morning</th><th>Afternoon</th></tr></thead>
+      </table>
+      <pre><code>rota --week 12
+  --branch east
+
+  --print</code></pre>
+      <div hidden>Hidden draft text.</div>
+      <p style="display: none">Invisible note.</p>
+      <form><label>Search the intranet</label><input name="q"></form>
+      <footer>Article footer: reviewed in March.</footer>
+    </article>
+    <aside>Related links sidebar</aside>
+  </main>
+  <div role="contentinfo">Landmark footer text</div>
+  <footer>Site footer: Quillfern Library Cooperative</footer>
+  <noscript>Enable scripts please</noscript>
+</body>
+</html>
+"""
+
+
+def test_drops_chrome_and_keeps_content_in_order():
+    page = one(INTRANET)
+    assert page.status == OK and page.format == "html"
+    assert page.title == "Volunteer Rota | Quillfern Intranet"
+    blocks = [(b.kind, b.level, b.text) for b in page.blocks]
+    assert blocks == [
+        (HEADING, 1, "Volunteer Rota"),
+        (PARAGRAPH, 0, "Updated weekly by the branch coordinators."),
+        (PARAGRAPH, 0, "Shifts run from nine to noon and from noon to three.\nSwap shifts on the board."),
+        (HEADING, 2, "Who to call"),
+        (PARAGRAPH, 0, "- Front desk: extension 12\n- Duty coordinator\n  - weekdays: Ana\n  - weekends: Bo"),
+        (PARAGRAPH, 0, "3. Sign in.\n4. Collect the keys."),
+        (HEADING, 3, "Shift table"),
+        # thead first although the source has it after tbody; colspan leaves an empty cell
+        (TABLE, 0, "Day | Morning | Afternoon\nMonday | Ana | Bo\nTuesday | Cy | "),
+        (CODE, 0, "rota --week 12\n  --branch east\n \n  --print"),
+        (PARAGRAPH, 0, "Article footer: reviewed in March."),
+    ]
+    text = page.text
+    for absent in ("trackingCode", "do-not-index", "font-family", "News menu link",
+                   "Quillfern Intranet home", "Signed in as", "Hidden draft", "Invisible note",
+                   "Search the intranet", "Related links", "Landmark footer", "Site footer",
+                   "Enable scripts"):
+        assert absent not in text, absent
+    assert page.payload["method"] == "html" and page.payload["encoding"] == "utf-8"
+    table = next(b for b in page.blocks if b.kind == TABLE)
+    assert page.payload["table_share"] == len(table.text) / len(text)
+    assert all(BLOCK_SEP not in b.text for b in page.blocks)
+
+
+def test_layout_table_is_read_as_blocks():
+    page = one("<html><body><table><tr><td><h2>Notice</h2><p>Roof repairs this week.</p>"
+               "</td></tr></table></body></html>")
+    assert [(b.kind, b.text) for b in page.blocks] == [
+        (HEADING, "Notice"), (PARAGRAPH, "Roof repairs this week.")]
+
+
+def test_title_falls_back_to_first_heading_then_file_stem():
+    assert one("<html><body><h2>Branch news</h2><p>x</p></body></html>").title == "Branch news"
+    assert one("<html><body><p>Only words.</p></body></html>", "branch-news.html").title == "branch-news"
+
+
+def test_meta_charset_windows_1252():
+    html = '<html><head><meta charset="windows-1252"><title>Caf\xe9</title></head>' \
+           "<body><p>\u201eLeihfristen\u201c kosten 2\u20ac.</p></body></html>"
+    page = one(html.encode("cp1252"))
+    assert page.payload["encoding"] == "cp1252"
+    assert page.title == "Café"
+    assert page.text == "\u201eLeihfristen\u201c kosten 2\u20ac."
+
+
+def test_meta_iso_8859_1_decodes_as_windows_1252():
+    # WHATWG Encoding Standard: the label "iso-8859-1" means windows-1252, so byte 0x80
+    # is the euro sign, as every browser shows it.
+    html = b'<html><head><meta http-equiv="Content-Type" content="text/html; charset=iso-8859-1">' \
+           b"</head><body><p>Fee: 5\x80, caf\xe9</p></body></html>"
+    page = one(html)
+    assert page.text == "Fee: 5\u20ac, café"
+    assert page.payload["encoding"] == "cp1252"
+
+
+def test_bom_wins_over_meta():
+    html = codecs.BOM_UTF8 + '<html><head><meta charset="iso-8859-1"></head><body><p>Grüße</p></body></html>'.encode()
+    page = one(html)
+    assert page.text == "Grüße" and page.payload["encoding"] == "utf-8"
+
+
+def test_no_declaration_falls_back_to_detection():
+    html = "<html><body><p>Читатели могут брать до шести книг одновременно, "\
+           "а просроченные книги нужно вернуть в течение недели.</p></body></html>"
+    page = one(html.encode("cp1251"))
+    assert page.payload["encoding"] == "cp1251"
+    assert "просроченные" in page.text
+
+
+def test_fragment_with_html_extension():
+    page = one(b"<h3>Lost property</h3><p>Ask at the <i>front</i> desk.</p>", "lost.htm")
+    assert page.format == "html"
+    assert [(b.kind, b.level, b.text) for b in page.blocks] == [
+        (HEADING, 3, "Lost property"), (PARAGRAPH, 0, "Ask at the front desk.")]
+
+
+def test_page_without_visible_content():
+    page = one("<html><head><title>Empty</title></head><body><script>x()</script></body></html>")
+    assert page.status == OK and page.blocks == []
+    assert page.warnings == ["no text (the page has no visible content)"]

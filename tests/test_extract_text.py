@@ -1,0 +1,207 @@
+"""Plain text, encodings and format sniffing."""
+
+from __future__ import annotations
+
+import codecs
+import io
+import random
+import zipfile
+
+from thresher.steps.extract import ExtractParams, extract
+from thresher.steps.sniff import decode, sniff
+from thresher.steps.spec import StepContext
+from thresher.steps.units import DOCUMENT_LOCATOR, FAILED, HEADING, OK, PARAGRAPH, Source
+
+FRENCH = (
+    "Le café de la coopérative ouvre à huit heures.\n"
+    "Les bénévoles réparent les reliures abîmées et accueillent les lecteurs.\n"
+    "\n"
+    "Où rangez-vous les romans policiers ? À côté de la fenêtre, près du piano.\n"
+)
+RUSSIAN = (
+    "Библиотечный кооператив открывается в девять часов утра.\n"
+    "Читатели могут брать до шести книг одновременно.\n"
+    "\n"
+    "Просроченные книги нужно вернуть в течение недели, иначе выдача приостанавливается.\n"
+)
+
+
+def run(data: bytes, name: str = "notes.txt", **params):
+    source = Source(doc_id="d", source_path=f"notices/{name}", data=data, size=len(data), mtime=0.0)
+    return extract(source, ExtractParams(**params), StepContext())
+
+
+def one(data: bytes, name: str = "notes.txt", **params):
+    pages = run(data, name, **params)
+    assert len(pages) == 1
+    return pages[0]
+
+
+def test_paragraphs_split_at_blank_lines_and_lines_kept():
+    page = one("Opening hours\r\nMon-Fri 9-18\r\n\r\n\r\nSat 10-14\r\n  \r\nClosed on Sundays.\r\n".encode())
+    assert page.status == OK and page.format == "text"
+    assert page.locator == "file" and page.page is None and page.parents == []
+    assert [(b.kind, b.text) for b in page.blocks] == [
+        (PARAGRAPH, "Opening hours\nMon-Fri 9-18"),
+        (PARAGRAPH, "Sat 10-14"),
+        (PARAGRAPH, "Closed on Sundays."),
+    ]
+    assert page.text == "Opening hours\nMon-Fri 9-18\n\nSat 10-14\n\nClosed on Sundays."
+    assert page.payload["method"] == "plain" and page.payload["encoding"] == "utf-8"
+    assert page.payload["page_count"] == 1
+    assert page.payload["char_count"] == len(page.text)
+    assert page.payload["word_count"] == 9
+    assert page.title == "notes"  # no heading: the file stem
+
+
+def test_old_mac_line_endings_and_form_feeds():
+    page = one(b"First part\rstill first\r\x0cSecond part")
+    assert [b.text for b in page.blocks] == ["First part\nstill first", "Second part"]
+
+
+def test_indentation_inside_a_paragraph_is_kept():
+    page = one(b"Shelf   Count\n  A1      12\n  B2       7\n")
+    assert page.blocks[0].text == "Shelf   Count\n  A1      12\n  B2       7"
+
+
+def test_underlined_title_lines_are_headings():
+    page = one(b"Branch Notices\n==============\n\nRoof repairs\n------------\n\nThe east wing is closed.\n")
+    assert [(b.kind, b.level, b.text) for b in page.blocks] == [
+        (HEADING, 1, "Branch Notices"),
+        (HEADING, 2, "Roof repairs"),
+        (PARAGRAPH, 0, "The east wing is closed."),
+    ]
+    assert page.title == "Branch Notices"
+
+
+def test_latin1_text_decodes_accented_letters():
+    page = one(FRENCH.encode("latin-1"), "avis.txt")
+    assert page.status == OK
+    assert "coopérative" in page.text and "À côté de la fenêtre" in page.text
+    assert page.text == FRENCH.strip()
+    # Latin-1 and its superset cp1252 agree on every letter here.
+    assert page.payload["encoding"] in ("cp1252", "iso8859-1")
+    assert page.payload["unprintable_share"] == 0.0
+
+
+def test_koi8r_text_decodes_cyrillic():
+    page = one(RUSSIAN.encode("koi8-r"), "объявление.txt")
+    assert page.payload["encoding"] == "koi8-r"
+    assert page.text == RUSSIAN.strip()
+
+
+def test_mostly_utf8_with_three_bad_bytes_is_utf8_with_replacements():
+    good = "Ünïcödé résumé for the Quillfern café — naïve façade.\n" * 3
+    data = good.encode("utf-8")
+    # Three stray bytes between ASCII letters: three invalid sequences.
+    damaged = data.replace(b"for", b"f\xffor", 1).replace(b"Quillfern", b"Quill\xfefern", 1)
+    damaged = damaged.replace(b"the", b"th\xffe", 1)
+    page = one(damaged)
+    assert page.payload["encoding"] == "utf-8"
+    assert "3 invalid byte sequences replaced" in page.warnings
+    assert page.text.count("\ufffd") == 3
+    assert page.payload["unprintable_share"] == 3 / len(page.text)
+
+
+def test_utf8_bom_and_utf16_with_and_without_bom():
+    assert one(codecs.BOM_UTF8 + "Grüße".encode()).text == "Grüße"
+    page = one("Grüße aus der Bücherei\n".encode("utf-16"))  # with BOM
+    assert page.text == "Grüße aus der Bücherei" and page.payload["encoding"].startswith("utf-16")
+    page = one("Grüße aus der Bücherei\n".encode("utf-16-le"))  # no BOM
+    assert page.text == "Grüße aus der Bücherei" and page.payload["encoding"] == "utf-16-le"
+
+
+def test_decode_prefers_bom_over_declared_charset():
+    decoded = decode(codecs.BOM_UTF8 + "café".encode(), declared="iso-8859-1")
+    assert decoded.text == "café" and decoded.encoding == "utf-8"
+
+
+def test_binary_named_txt_is_not_text():
+    noise = random.Random(7).randbytes(4096)
+    page = one(noise, "budget.txt")
+    assert page.status == FAILED and page.locator == DOCUMENT_LOCATOR
+    assert page.reason.startswith("not text: ") and page.reason.endswith("(binary content)")
+    assert "NUL" in page.reason
+
+
+def test_control_heavy_bytes_without_nul_are_not_text():
+    data = bytes(range(1, 9)) * 100 + b"some words" * 5
+    page = one(data, "log.txt")
+    assert page.status == FAILED
+    assert page.reason.startswith("not text: ") and page.reason.endswith("control bytes (binary content)")
+
+
+def test_known_binary_signatures_name_the_format():
+    png = b"\x89PNG\r\n\x1a\n" + b"\x00\x00\x00\rIHDR" + bytes(40)
+    assert one(png, "scan.txt").reason == "not text: PNG image (binary content)"
+    assert one(b"\x1f\x8b\x08\x00" + bytes(30), "notes.txt").reason == "not text: gzip archive (binary content)"
+
+
+def test_empty_file():
+    page = one(b"", "empty.txt")
+    assert page.status == FAILED and page.reason == "empty file (0 bytes)"
+    assert page.locator == DOCUMENT_LOCATOR and page.page is None and page.blocks == []
+
+
+def test_whitespace_only_file_is_ok_and_empty_with_a_warning():
+    page = one(b"  \n\n\t\n")
+    assert page.status == OK and page.blocks == []
+    assert page.warnings == ["no text (the file holds only whitespace)"]
+
+
+def test_file_too_large_names_both_sizes():
+    page = one(b"a" * 2_500_000, max_file_mb=2)
+    assert page.status == FAILED
+    assert page.reason == "file too large: 2.5 MB over the limit of 2 MB"
+
+
+def zip_with(names: dict[str, bytes]) -> bytes:
+    buf = io.BytesIO()
+    with zipfile.ZipFile(buf, "w") as archive:
+        for name, content in names.items():
+            archive.writestr(name, content)
+    return buf.getvalue()
+
+
+def test_zip_containers_other_than_docx_are_unsupported():
+    assert one(zip_with({"a.txt": b"x"}), "bundle.docx").reason == (
+        "unsupported format: zip archive without word/document.xml (not a .docx)"
+    )
+    assert one(zip_with({"xl/workbook.xml": b"<x/>"}), "budget.xlsx").reason == (
+        "unsupported format: XLSX spreadsheet"
+    )
+    data = zip_with({"mimetype": b"application/vnd.oasis.opendocument.text"})
+    assert one(data, "minutes.odt").reason == (
+        "unsupported format: OpenDocument file (application/vnd.oasis.opendocument.text)"
+    )
+
+
+def test_damaged_zip_named_docx():
+    data = zip_with({"word/document.xml": b"<w:document/>" * 50})
+    page = one(data[: len(data) // 2], "minutes.docx")
+    assert page.status == FAILED and page.reason.startswith("unreadable DOCX: ")
+
+
+def test_legacy_office_and_encrypted_office_files():
+    ole = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1" + bytes(504)
+    assert one(ole + b"WordDocument", "minutes.doc").reason == (
+        "unsupported format: legacy Microsoft Office binary file (.doc/.xls/.ppt)"
+    )
+    encrypted = ole + "EncryptionInfo".encode("utf-16-le") + bytes(100)
+    assert one(encrypted, "salaries.docx").reason == "password protected"
+
+
+def test_rtf_is_unsupported():
+    assert one(b"{\\rtf1\\ansi Hello}", "letter.rtf").reason == "unsupported format: RTF document"
+
+
+def test_content_decides_the_format_and_a_mismatch_is_noted():
+    html = b"<!DOCTYPE html><html><head><title>Rota</title></head><body><p>Shifts</p></body></html>"
+    page = one(html, "rota.txt")
+    assert page.format == "html" and page.title == "Rota"
+    assert "content is html although the file is named .txt" in page.warnings
+    found = sniff(b"# Notes\n\nplain words", "notes.md")
+    assert found.format == "markdown"
+    assert sniff(b"# Notes\n\nplain words", "notes.txt").format == "text"
+    assert sniff(b"<p>Only a fragment</p>", "fragment.htm").format == "html"
+    assert sniff(b"Use <b> for bold.", "howto.txt").format == "text"
