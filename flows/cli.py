@@ -241,18 +241,18 @@ def _unit_detail(stage: str, row: dict[str, Any]) -> str:
     if row.get("chunk_id") is not None:
         if row.get("token_count") is not None:
             bits.append(f"{row['token_count']} tokens")
-        span = f"p{row.get('page_start')}-{row.get('page_end')}" if row.get("page_start") else ""
-        if span:
-            bits.append(span)
+        first, last = row.get("page_start"), row.get("page_end")
+        if first:
+            bits.append(f"page {first}" if first == last else f"pages {first}-{last}")
         if row.get("heading_path"):
             bits.append(" > ".join(row["heading_path"]))
-    if row.get("duplicate_of"):
-        bits.append(f"duplicate of {row['duplicate_of']}")
     return "; ".join(str(b) for b in bits)
 
 
 def cmd_trail(args: argparse.Namespace) -> int:
-    from thresher.flows.summary import stages_of
+    from collections import Counter
+
+    from thresher.flows.summary import STATUS_ORDER, stages_of
 
     definition = _definition(args)
     store = _open_store(args, definition)
@@ -277,11 +277,16 @@ def cmd_trail(args: argparse.Namespace) -> int:
             print(f"  the same bytes sit at {len(present)} paths; {r['canonical_path']} stands for all of them")
     else:
         print("  removed from the source folder (no present path)")
-    for name, _unit in stages:
+    for n, (name, unit) in enumerate(stages):
         rows = per_stage[name]
-        print(f"{name}: {len(rows)} unit(s)")
         if not rows:
-            print("  (none: nothing reached this stage)")
+            rest = [s for s, _ in stages[n:]]
+            if all(not per_stage[s] for s in rest):
+                print(f"{', '.join(rest)}: no units (nothing ok reached {'them' if len(rest) > 1 else 'it'})")
+                break
+        by_status = Counter(r["status"] for r in rows)
+        summary = ", ".join(f"{by_status[s]} {s}" for s in STATUS_ORDER if by_status.get(s))
+        print(f"{name}: {len(rows)} {'page' if unit == 'pages' else 'chunk'} unit(s){': ' + summary if summary else ''}")
         for row in rows:
             where = row["locator"]
             line = f"  {where:<12} {row['status']:<8} {_unit_detail(name, row)}"
@@ -310,6 +315,9 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"thresher {args.verb}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # e.g. `thresher trail X | head`: the reader has what it wanted
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":

@@ -154,38 +154,50 @@ class BatchRunner:
         if not indices:
             return
         first = indices[0]
+        prev = steps[first - 1].name if first > 0 else None
         if first == 0:
-            data = Path(doc.abs_path).read_bytes()
+            spec, params = steps[0].spec, steps[0].params
+            limit = spec.source_limit(params) if spec.source_limit else None
+            try:
+                data = b"" if limit is not None and doc.size > limit else Path(doc.abs_path).read_bytes()
+            except OSError as exc:  # moved, deleted or locked since the scan: this file only
+                failed = _failed_document_unit("pages", f"cannot read file: {exc.strerror or exc}", exc, [])
+                self._record(doc, steps[0], None, [failed], _now(), 0.0, rows, writes, result)
+                return
             inputs: Any = Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime)
         else:
             inputs = stored
             if not inputs:
                 return  # nothing upstream is ok: the trail ends at the earlier stage
-        prev = steps[first - 1].name if first > 0 else None
         for i in indices:
             step = steps[i]
-            kind = _unit_kind(step)
-            attempts = self.store.max_attempts(step.name, kind, [doc.doc_id]) if doc.known else {}
             ctx = StepContext(doc_id=doc.doc_id, source_path=doc.source_path, encoding=get_encoding)
             started = _now()
             t0 = time.perf_counter()
             out = _call_step(step, inputs, ctx)
             ms = (time.perf_counter() - t0) * 1000.0
-            result.step_seconds += ms / 1000.0
-            rctx = RowContext(self.run_id, doc.doc_id, doc.source_path, step.name, step.spec.version,
-                              step.digest, kind, prev, started, round(ms, 3), attempts)
-            stage_rows = _rows_for(step, rctx, out)
-            rows[step.name].extend(stage_rows)
-            writes[step.name].append((doc.doc_id, "document"))
-            counts = result.counts.setdefault(step.name, {})
-            for u in out:
-                counts[u.status] = counts.get(u.status, 0) + 1
-                if u.status == "failed":
-                    result.failures.append((doc.source_path, step.name, u.reason))
+            self._record(doc, step, prev, out, started, ms, rows, writes, result)
             inputs = sorted((u for u in out if u.ok), key=_order_key)
             if not inputs:
                 return
             prev = step.name
+
+    def _record(self, doc: DocJob, step: ResolvedStep, prev: str | None, out: list[Page | Chunk],
+                started: datetime, ms: float, rows: dict[str, list[dict[str, Any]]],
+                writes: dict[str, list[tuple[str, str]]], result: BatchResult) -> None:
+        """Turn one step's units for one document into rows, and count them."""
+        kind = _unit_kind(step)
+        attempts = self.store.max_attempts(step.name, kind, [doc.doc_id]) if doc.known else {}
+        result.step_seconds += ms / 1000.0
+        rctx = RowContext(self.run_id, doc.doc_id, doc.source_path, step.name, step.spec.version,
+                          step.digest, kind, prev, started, round(ms, 3), attempts)
+        rows[step.name].extend(_rows_for(step, rctx, out))
+        writes[step.name].append((doc.doc_id, "document"))
+        counts = result.counts.setdefault(step.name, {})
+        for u in out:
+            counts[u.status] = counts.get(u.status, 0) + 1
+            if u.status == "failed":
+                result.failures.append((doc.source_path, step.name, u.reason))
 
 
 @dataclass

@@ -274,15 +274,17 @@ def _mb(value: float) -> str:
 def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Page]:
     """Read one source file into pages; bad input gives a failed unit, never an exception."""
     data = source.data
-    if len(data) == 0:
-        return failed_document(source, "empty file (0 bytes)")
-    limit = params.max_file_mb * MB
-    if len(data) > limit:
+    # The size comes from the file system: the flows layer does not read a file over
+    # the limit (see source_limit below), so `data` may then be empty.
+    size = max(source.size, len(data))
+    if size > params.max_file_mb * MB:
         return failed_document(
             source,
-            f"file too large: {_mb(len(data) / MB)} MB over the limit of "
+            f"file too large: {_mb(size / MB)} MB over the limit of "
             f"{params.max_file_mb:g} MB",
         )
+    if len(data) == 0:
+        return failed_document(source, "empty file (0 bytes)")
 
     found = sniff(data, source.source_path)
     if found.reason:
@@ -328,6 +330,7 @@ EXTRACT = StepSpec(
     scope="document",
     params=ExtractParams,
     run=extract,
+    source_limit=lambda params: int(params.max_file_mb * MB),
     summary=(
         "Reads a source file (PDF, HTML, Markdown, plain text, DOCX; format sniffed from "
         "content) into pages of heading, paragraph, table and code blocks."

@@ -65,3 +65,7 @@ class StepSpec:
     # Names of the params fields that hold tiktoken encoding names, so the flows layer
     # can load those encodings before the step runs.
     encoding_params: tuple[str, ...] = ()
+    # For a step that reads source files: the most bytes it will accept, given its
+    # parameters. The flows layer does not read a larger file into memory at all; it
+    # hands the step an empty Source carrying the file's size, and the step says why.
+    source_limit: Callable[[StepParams], int | None] | None = None

@@ -87,7 +87,7 @@ def test_run_then_status_then_trail_answer_from_the_store(tmp_path):
     t = _cli("trail", str(drive / "board" / "2025-11-18-board-minutes.md"), "--store", str(store), cwd=tmp_path)
     assert t.returncode == 0, t.stderr
     assert t.stdout.startswith("board/2025-11-18-board-minutes.md")
-    assert "extract: 1 unit(s)" in t.stdout and "tokens" in t.stdout and "Board" in t.stdout
+    assert "extract: 1 page unit(s): 1 ok" in t.stdout and "tokens" in t.stdout and "Board" in t.stdout
 
     bad = _cli("trail", "hr/salary-review-2026-protected.pdf", "--store", str(store), cwd=tmp_path)
     assert bad.returncode == 0 and "reason: password protected" in bad.stdout

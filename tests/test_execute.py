@@ -1,0 +1,59 @@
+"""The batch runner without Prefect: per-document faults become rows, not crashes."""
+
+from __future__ import annotations
+
+import yaml
+
+from thresher.flows.config import build_definition, default_config_text
+from thresher.flows.execute import BatchJob, BatchRunner, DocJob
+from thresher.flows.store import Store
+
+
+def _definition(max_file_mb: float = 200):
+    data = yaml.safe_load(default_config_text())
+    data["steps"][0]["params"]["max_file_mb"] = max_file_mb
+    return build_definition(data, "test")
+
+
+def _run(tmp_path, definition, doc: DocJob):
+    store = Store(tmp_path / "store")
+    runner = BatchRunner(definition, store, "r1")
+    result = runner.run(BatchJob("r1", str(tmp_path / "store"), [0, 1, 2, 3], "b0", [doc]))
+    rows = store.current("extract", "pages", include_run="r1").to_pylist()
+    return result, rows
+
+
+def test_a_file_gone_since_the_scan_fails_alone_with_the_reason(tmp_path):
+    doc = DocJob("a" * 64, "gone.txt", str(tmp_path / "gone.txt"), 10, 0.0, 0, False)
+    result, rows = _run(tmp_path, _definition(), doc)
+    assert [r["status"] for r in rows] == ["failed"]
+    assert rows[0]["reason"] == "cannot read file: No such file or directory"
+    assert rows[0]["error_type"] == "FileNotFoundError"
+    assert result.failures == [("gone.txt", "extract", "cannot read file: No such file or directory")]
+
+
+def test_a_file_over_the_size_limit_is_not_read_at_all(tmp_path):
+    # The path does not exist: had the runner tried to read it, the reason would say so.
+    doc = DocJob("b" * 64, "huge.pdf", str(tmp_path / "huge.pdf"), 3_000_000, 0.0, 0, False)
+    _, rows = _run(tmp_path, _definition(max_file_mb=1), doc)
+    assert rows[0]["reason"] == "file too large: 3.0 MB over the limit of 1 MB"
+
+
+def test_a_step_that_raises_fails_that_document_with_its_traceback(tmp_path):
+    (tmp_path / "ok.md").write_text("# Heading\n\nSome text about the reading room.\n")
+    data = yaml.safe_load(default_config_text())
+    data["steps"].insert(1, {"step": "example_steps:MASK_EMAILS"})
+    definition = build_definition(data, "test")
+    step = definition.steps[1]
+    broken = type(step.spec)(**{**step.spec.__dict__, "run": lambda pages, params, ctx: 1 / 0})
+    object.__setattr__(step, "spec", broken)
+    store = Store(tmp_path / "store")
+    doc = DocJob("c" * 64, "ok.md", str(tmp_path / "ok.md"), 40, 0.0, 0, False)
+    BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, [0, 1, 2, 3, 4], "b0", [doc]))
+    rows = store.current("mask_emails", "pages", include_run="r1").to_pylist()
+    assert len(rows) == 1 and rows[0]["locator"] == "document"
+    assert rows[0]["reason"] == "mask_emails failed: ZeroDivisionError: division by zero"
+    assert "ZeroDivisionError" in rows[0]["traceback"]
+    # The unit names the pages it could not handle, so the trail stays connected.
+    extract_ids = {r["unit_id"] for r in store.current("extract", "pages", include_run="r1").to_pylist()}
+    assert set(rows[0]["parent_ids"]) == extract_ids
