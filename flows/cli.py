@@ -148,7 +148,13 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
         lines.append(f"  {stage:<10} {total:>6} {units.get(stage, ''):<7} {parts or 'none'}")
     lines.append(f"  store      {m['store_root']}")
     if m.get("failures"):
-        lines.append(f"  {m['failures']} unit(s) failed this run; `thresher trail PATH` shows why")
+        lines.append(f"  {m['failures']} unit(s) failed this run; `thresher trail PATH` shows each one's way:")
+        shown = m.get("failed_units", [])[:10]
+        width = max((len(f["source_path"]) for f in shown), default=0)
+        for f in shown:
+            lines.append(f"    {f['source_path']:<{width}}  {f['stage']}: {f['reason']}")
+        if m["failures"] > len(shown):
+            lines.append(f"    ... and {m['failures'] - len(shown)} more")
     return lines
 
 

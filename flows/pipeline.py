@@ -224,7 +224,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "finished_at": datetime.now(timezone.utc).isoformat(),
             "seconds": round(time.perf_counter() - t_start, 3),
             "source_root": str(Path(source_root).resolve()),
-            "store_root": store.root,
+            "store_root": store.base if "://" not in store.root else store.root,
             "definition_origin": definition.origin,
             "definition": definition.snapshot(),
             "chain_digest": definition.chain_digest,
@@ -240,6 +240,8 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "tokens": tokens,
             "changes": {"upsert": handoff.upserts, "delete": handoff.deletes},
             "failures": len(failures),
+            # The first ones, for the summary; every one is in the stage tables.
+            "failed_units": [{"source_path": p, "stage": s, "reason": r} for p, s, r in sorted(failures)[:50]],
             "timings": {k: round(v, 3) for k, v in timings.items()},
             "step_seconds": round(step_seconds, 3),
             "swept": swept,
