@@ -16,8 +16,14 @@ from conftest import REPO, SAMPLE
 THRESHER = str(Path(sys.executable).with_name("thresher"))
 
 
-def _cli(*args: str, cwd: Path = REPO, env: dict | None = None, timeout: int = 300) -> subprocess.CompletedProcess:
-    return subprocess.run([THRESHER, *args], capture_output=True, text=True, cwd=cwd, env=env, timeout=timeout)
+def _cli(*args: str, cwd: Path = REPO, env: dict | None = None, timeout: int = 300,
+         offline: bool = False) -> subprocess.CompletedProcess:
+    cmd = [THRESHER, *args]
+    if offline:
+        # A new network namespace with only loopback up: no route to anywhere else, so a
+        # download or telemetry call would fail the run instead of passing unnoticed.
+        cmd = ["unshare", "--net", "sh", "-c", 'ip link set lo up && exec "$@"', "sh", *cmd]
+    return subprocess.run(cmd, capture_output=True, text=True, cwd=cwd, env=env, timeout=timeout)
 
 
 @pytest.mark.parametrize("verb", ["run", "status", "trail"])
@@ -60,14 +66,16 @@ def test_status_and_trail_on_an_empty_store_say_so(tmp_path):
         assert "no committed run in store" in r.stderr
 
 
-def test_run_then_status_then_trail_answer_from_the_store(tmp_path):
+def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
+    probe = subprocess.run(["unshare", "--net", "true"], capture_output=True, text=True)
+    assert probe.returncode == 0, f"this test needs `unshare --net` (root or user namespaces): {probe.stderr}"
     drive = tmp_path / "drive"
     shutil.copytree(SAMPLE, drive)
     store = tmp_path / "store"
     env = dict(os.environ)
     env.pop("PREFECT_API_URL", None)
     env["PREFECT_HOME"] = str(tmp_path / "prefect")  # a new embedded database, as for a new user
-    r = _cli("run", "--source", str(drive), "--store", str(store), cwd=tmp_path, env=env)
+    r = _cli("run", "--source", str(drive), "--store", str(store), cwd=tmp_path, env=env, offline=True)
     assert r.returncode == 0, r.stderr
     # Progress while it works (stderr), a summary at the end (stdout).
     assert "batch 1/" in r.stderr and "found 20 files (19 distinct documents)" in r.stderr
