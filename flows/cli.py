@@ -283,8 +283,13 @@ def cmd_trail(args: argparse.Namespace) -> int:
             print(f"  the same bytes sit at {len(present)} paths; {r['canonical_path']} stands for all of them")
     else:
         print("  removed from the source folder (no present path)")
+    limited = {s["name"]: s.get("formats") or [] for s in store.latest_run().manifest["definition"]["steps"]}
+    fmt = next((r.get("format") for rows in per_stage.values() for r in rows if r.get("format")), None)
     for n, (name, unit) in enumerate(stages):
         rows = per_stage[name]
+        if not rows and limited.get(name) and fmt not in limited[name]:
+            print(f"{name}: passed by (applies to {', '.join(limited[name])} documents only)")
+            continue
         if not rows:
             rest = [s for s, _ in stages[n:]]
             if all(not per_stage[s] for s in rest):

@@ -116,7 +116,7 @@ class FlowDefinition:
         data = self.model.model_dump(mode="json")
         data["steps"] = [
             {"step": s.ref, "name": s.name, "version": s.spec.version, "unit": s.spec.produces,
-             "scope": s.spec.scope,
+             "scope": s.spec.scope, "formats": list(s.spec.formats),
              "params": s.params.model_dump(mode="json"), "digest": s.digest}
             for s in self.steps
         ]
@@ -206,8 +206,11 @@ def _check_chain(steps: list[ResolvedStep]) -> list[str]:
                 f"steps[{i}] ({s.name}): takes {s.spec.consumes} but the step before it gives {unit}; "
                 "order the chain extract -> page steps -> split -> chunk steps"
             )
-        if s.spec.scope == "corpus" and s.spec.consumes != "chunks":
-            errors.append(f"steps[{i}] ({s.name}): a corpus-wide step must work on chunks")
+        if s.spec.scope == "corpus" and s.spec.consumes != s.spec.produces:
+            errors.append(f"steps[{i}] ({s.name}): a corpus-wide step must give the units it takes")
+        if s.spec.formats and s.spec.consumes != s.spec.produces:
+            errors.append(f"steps[{i}] ({s.name}): a step limited to some formats must give the units it takes, "
+                          "so other documents can pass it by")
         unit = s.spec.produces
     if unit != "chunks":
         errors.append("steps: the chain must end with chunks (include a split step) so there is something to hand off")

@@ -23,8 +23,9 @@ class HandoffResult:
     deletes: int
 
 
-def _chunk_stages(definition: FlowDefinition) -> list[str]:
-    return [s.name for s in definition.steps if s.spec.produces == "chunks"]
+def _chunk_stages(definition: FlowDefinition) -> list[tuple[str, bool]]:
+    """(stage, format-limited) for every stage that holds chunks, in chain order."""
+    return [(s.name, bool(s.spec.formats)) for s in definition.steps if s.spec.produces == "chunks"]
 
 
 def _row_digest(row: dict[str, Any]) -> str:
@@ -43,30 +44,28 @@ def _plain_hash(text: str) -> str:
 
 def build_handoff(definition: FlowDefinition, store: Store, run_id: str,
                   live: dict[str, tuple[int, str]]) -> HandoffResult:
-    stages = _chunk_stages(definition)
+    # A chunk is live when every chunk stage holds it as ok, except that a stage limited
+    # to some formats may have passed it by. Its columns come from the last stage holding it.
     docs = sorted(live)
-    ok_in_all: set[str] | None = None
+    live_ids: set[str] | None = None
+    not_ok: set[str] = set()
     hashes: dict[str, str] = {}
-    last_rows: list[dict[str, Any]] = []
-    for i, stage in enumerate(stages):
-        cols = ["chunk_id", "status"]
-        if "content_hash" in {f.name for f in schema.payload_fields(stage, "chunks")}:
-            cols.append("content_hash")
-        if i == len(stages) - 1:
-            table = store.current(stage, "chunks", docs, include_run=run_id)
-            rows = table.to_pylist()
-            last_rows = rows
-        else:
-            rows = store.current(stage, "chunks", docs, columns=cols, include_run=run_id).to_pylist()
+    latest: dict[str, dict[str, Any]] = {}
+    for stage, limited in _chunk_stages(definition):
+        rows = store.current(stage, "chunks", docs, include_run=run_id).to_pylist()
         ok = {r["chunk_id"] for r in rows if r["status"] == OK}
-        ok_in_all = ok if ok_in_all is None else (ok_in_all & ok)
-        if "content_hash" in cols:
-            hashes.update({r["chunk_id"]: r["content_hash"] for r in rows if r.get("content_hash")})
-    ok_in_all = ok_in_all or set()
+        not_ok |= {r["chunk_id"] for r in rows if r["status"] != OK}
+        if not limited:
+            live_ids = ok if live_ids is None else (live_ids & ok)
+        for r in rows:
+            latest[r["chunk_id"]] = r
+            if r.get("content_hash"):
+                hashes[r["chunk_id"]] = r["content_hash"]
+    keep = (live_ids or set()) - not_ok
 
     out = []
-    for r in last_rows:
-        if r["chunk_id"] not in ok_in_all or r["doc_id"] not in live:
+    for r in latest.values():
+        if r["chunk_id"] not in keep or r["doc_id"] not in live:
             continue
         counts = r.get("token_counts")
         if counts is None:

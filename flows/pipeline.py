@@ -27,7 +27,8 @@ from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.discover import scan
-from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, run_corpus_step
+from thresher.flows.corpus import run_corpus_step
+from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob
 from thresher.flows.handoff import build_handoff
 from thresher.flows.plan import make_plan
 from thresher.flows.store import Store, new_run_id

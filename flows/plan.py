@@ -37,6 +37,11 @@ def start_stages(definition: FlowDefinition, store: Store, doc_ids: list[str]) -
     """For documents the store knows, the first stage whose rows are out of date."""
     start = {d: len(definition.steps) for d in doc_ids}
     remaining = set(doc_ids)
+    first = definition.steps[0]
+    formats: dict[str, str] = {}
+    if any(s.spec.formats for s in definition.steps):
+        t = store.current(first.name, first.spec.produces, sorted(remaining), columns=["doc_id", "format"])
+        formats = dict(zip(t.column("doc_id").to_pylist(), t.column("format").to_pylist()))
     for i, step in enumerate(definition.steps):
         if not remaining:
             break
@@ -47,7 +52,8 @@ def start_stages(definition: FlowDefinition, store: Store, doc_ids: list[str]) -
                            rows.column("config_digest").to_pylist()):
             good[d] = good.get(d, True) and v == step.spec.version and c == step.digest
         for d in list(remaining):
-            if not good.get(d, False):
+            passed_by = bool(step.spec.formats) and d not in good and formats.get(d) not in step.spec.formats
+            if not good.get(d, passed_by):
                 start[d] = i
                 remaining.discard(d)
     for d in remaining:

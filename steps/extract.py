@@ -64,6 +64,10 @@ class ExtractParams(StepParams):
 
     max_file_mb: float = Field(200, gt=0, description="larger files fail without being parsed")
     max_pages: int = Field(2000, gt=0, description="PDFs with more pages fail without being parsed")
+    time_limit_seconds: float = Field(
+        120, gt=0,
+        description="a document whose extraction takes longer is stopped (its parser process is killed)",
+    )
     pdf_heading_ratio: float = Field(
         1.15,
         ge=1.0,
@@ -322,6 +326,14 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
     return pages
 
 
+def _source_limit(params: ExtractParams) -> int:
+    return int(params.max_file_mb * MB)
+
+
+def _time_limit(params: ExtractParams) -> float:
+    return params.time_limit_seconds
+
+
 EXTRACT = StepSpec(
     name="extract",
     version="1",
@@ -330,7 +342,8 @@ EXTRACT = StepSpec(
     scope="document",
     params=ExtractParams,
     run=extract,
-    source_limit=lambda params: int(params.max_file_mb * MB),
+    source_limit=_source_limit,
+    time_limit=_time_limit,
     summary=(
         "Reads a source file (PDF, HTML, Markdown, plain text, DOCX; format sniffed from "
         "content) into pages of heading, paragraph, table and code blocks."

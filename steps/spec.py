@@ -9,6 +9,10 @@ Calling conventions, by (consumes, scope):
                     run(pages: list[Page], params, ctx) -> list[Chunk]       (when produces="chunks")
   chunks, document  run(chunks: list[Chunk], params, ctx) -> list[Chunk]
   chunks, corpus    run(docs: list[DocChunks], params, ctx) -> list[Chunk]
+  pages,  corpus    run(docs: list[DocPages], params, ctx) -> list[DocPages]
+
+A step with `formats` set applies only to documents of those formats (as extraction
+detected them); other documents pass it by unchanged and it writes no rows for them.
 
 A document-scope step receives only the units that are ok upstream, in document
 order. It returns one unit per unit it decided about; a unit it cannot handle is
@@ -69,3 +73,7 @@ class StepSpec:
     # parameters. The flows layer does not read a larger file into memory at all; it
     # hands the step an empty Source carrying the file's size, and the step says why.
     source_limit: Callable[[StepParams], int | None] | None = None
+    # The longest one document may take in this step, given its parameters. The flows
+    # layer runs such a step in a child process and kills it at the limit.
+    time_limit: Callable[[StepParams], float | None] | None = None
+    formats: tuple[str, ...] = ()

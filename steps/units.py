@@ -154,6 +154,16 @@ class DocChunks:
     chunks: list[Chunk]
 
 
+@dataclass
+class DocPages:
+    """A document's pages as a corpus-wide page step sees them (see DocChunks)."""
+
+    doc_id: str
+    source_path: str
+    rank: int
+    pages: list[Page]
+
+
 def chunk_locator(index: int) -> str:
     return f"chunk/{index:05d}"
 

@@ -8,7 +8,7 @@ from __future__ import annotations
 import re
 from dataclasses import replace
 
-from thresher.steps.spec import StepContext, StepParams, StepSpec
+from thresher.steps.spec import NoParams, StepContext, StepParams, StepSpec
 from thresher.steps.units import Block, Page
 
 EMAIL = re.compile(r"[\w.+-]+@[\w-]+(?:\.[\w-]+)+")
@@ -35,3 +35,60 @@ def mask_emails(pages: list[Page], params: MaskParams, ctx: StepContext) -> list
 MASK_EMAILS = StepSpec(name="mask_emails", version="1", consumes="pages", produces="pages",
                        scope="document", params=MaskParams, run=mask_emails,
                        summary="replace e-mail addresses in page text")
+
+
+# --- Steps used by the flow-mechanics tests ---------------------------------------
+
+import os
+import time
+from collections import Counter
+
+from thresher.steps.extract import ExtractParams, extract
+from thresher.steps.units import DocPages
+
+
+class GuardedExtractParams(ExtractParams):
+    pass
+
+
+def stubborn_extract(source, params, ctx):
+    """The real extract, except that it hangs or dies on files that ask it to."""
+    if b"PLEASE HANG" in source.data:
+        time.sleep(3600)
+    if b"PLEASE CRASH" in source.data:
+        os._exit(70)  # like a parser dying in C code: no exception, the process is gone
+    return extract(source, params, ctx)
+
+
+STUBBORN_EXTRACT = StepSpec(name="extract", version="test", consumes="source", produces="pages",
+                            scope="document", params=GuardedExtractParams, run=stubborn_extract,
+                            time_limit=lambda p: p.time_limit_seconds)
+
+
+def tag_html(pages, params, ctx):
+    return [replace(p, parents=[p.locator], payload={"tagged": "yes"}) for p in pages]
+
+
+HTML_ONLY = StepSpec(name="html_only", version="1", consumes="pages", produces="pages", scope="document",
+                     params=NoParams, run=tag_html, formats=("html",))
+
+
+def drop_shared_blocks(docs, params, ctx):
+    """A corpus page step: remove blocks whose text appears in two or more documents."""
+    seen = Counter()
+    for d in docs:
+        for text in {b.text for p in d.pages for b in p.blocks}:
+            seen[text] += 1
+    out = []
+    for d in docs:
+        pages = []
+        for p in d.pages:
+            kept = [b for b in p.blocks if seen[b.text] < 2]
+            pages.append(replace(p, blocks=kept, parents=[p.locator],
+                                 payload={"removed": len(p.blocks) - len(kept)}))
+        out.append(DocPages(d.doc_id, d.source_path, d.rank, pages))
+    return out
+
+
+SHARED_BLOCKS = StepSpec(name="shared_blocks", version="1", consumes="pages", produces="pages",
+                         scope="corpus", params=NoParams, run=drop_shared_blocks)

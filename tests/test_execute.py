@@ -57,3 +57,30 @@ def test_a_step_that_raises_fails_that_document_with_its_traceback(tmp_path):
     # The unit names the pages it could not handle, so the trail stays connected.
     extract_ids = {r["unit_id"] for r in store.current("extract", "pages", include_run="r1").to_pylist()}
     assert set(rows[0]["parent_ids"]) == extract_ids
+
+
+def _guarded_definition(limit: float):
+    data = yaml.safe_load(default_config_text())
+    data["steps"][0] = {"step": "example_steps:STUBBORN_EXTRACT", "params": {"time_limit_seconds": limit}}
+    return build_definition(data, "test")
+
+
+def test_a_hung_parser_is_stopped_at_the_time_limit_and_the_batch_goes_on(tmp_path):
+    files = {"hangs.txt": "PLEASE HANG while reading this file, which a real parser might do.\n",
+             "fine.txt": "An ordinary note about the mobile library timetable for the spring term.\n",
+             "dies.txt": "PLEASE CRASH the way a parser in C code can take its process down.\n"}
+    docs = []
+    for i, (name, text) in enumerate(files.items()):
+        (tmp_path / name).write_text(text)
+        docs.append(DocJob(str(i) * 64, name, str(tmp_path / name), len(text), 0.0, 0, False))
+    store = Store(tmp_path / "store")
+    BatchRunner(_guarded_definition(1.5), store, "r1").run(BatchJob("r1", store.root, [0, 1, 2, 3], "b0", docs))
+    rows = {r["source_path"]: r for r in store.current("extract", "pages", include_run="r1").to_pylist()}
+    assert rows["hangs.txt"]["status"] == "failed"
+    assert rows["hangs.txt"]["reason"].startswith("time limit: extract was stopped after 1.5 s")
+    assert rows["hangs.txt"]["error_type"] == "TimeLimitExceeded"
+    assert rows["dies.txt"]["status"] == "failed"
+    assert rows["dies.txt"]["reason"] == "extract crashed: the parser process died (exit code 70)"
+    assert rows["fine.txt"]["status"] == "ok"  # the document after the hang got a fresh process
+    split = store.current("split", "chunks", include_run="r1").to_pylist()
+    assert [r["source_path"] for r in split] == ["fine.txt"]

@@ -200,3 +200,52 @@ def test_a_dropped_step_and_an_own_step_run_without_touching_flows(prefect_harne
     notes = [r["notes"] for r in store.current("mask_emails", "pages").to_pylist()
              if r["source_path"] == "contacts.txt"]
     assert dict(notes[0])["masked"] == "1"
+
+
+def _small_drive(root: Path) -> Path:
+    root.mkdir()
+    shared = "<p>Quillfern staff intranet: internal use only, please do not forward outside the cooperative.</p>"
+    for name, body in (("rota.html", "<h1>Rota</h1><p>The Saturday rota changes from March at every branch.</p>"),
+                       ("vans.html", "<h1>Vans</h1><p>The mobile library van is serviced on the first Monday.</p>")):
+        (root / name).write_text(f"<html><head><title>{name}</title></head><body>{body}{shared}</body></html>")
+    (root / "notes.md").write_text("# Notes\n\nThe book club meets in the reading room on Thursdays at six.\n")
+    return root
+
+
+def test_a_format_limited_step_passes_other_documents_by(prefect_harness, tmp_path):
+    data = yaml.safe_load(default_config_text())
+    data["steps"].insert(1, {"step": "example_steps:HTML_ONLY"})
+    drive = _small_drive(tmp_path / "drive")
+    _run(drive, tmp_path / "store", definition=build_definition(data, "test"))
+    store = Store(tmp_path / "store")
+    tagged = store.current("html_only", "pages").to_pylist()
+    assert sorted(r["source_path"] for r in tagged) == ["rota.html", "vans.html"]
+    # The Markdown file went from extract straight to clean, and its lineage says so.
+    extract_ids = {r["unit_id"]: r for r in store.current("extract", "pages").to_pylist()}
+    md_clean = [r for r in store.current("clean", "pages").to_pylist() if r["source_path"] == "notes.md"]
+    assert len(md_clean) == 1 and extract_ids[md_clean[0]["parent_ids"][0]]["source_path"] == "notes.md"
+    assert {r["source_path"] for r in store.handoff().to_pylist()} == {"notes.md", "rota.html", "vans.html"}
+    # Unchanged on the next run: nothing to redo for the passed-by document either.
+    again = _run(drive, tmp_path / "store", definition=build_definition(data, "test"))
+    assert again["documents"]["processed"] == 0 and again["changes"] == {"upsert": 0, "delete": 0}
+
+
+def test_a_corpus_page_step_rewrites_documents_when_the_corpus_changes(prefect_harness, tmp_path):
+    data = yaml.safe_load(default_config_text())
+    data["steps"].insert(1, {"step": "example_steps:SHARED_BLOCKS"})
+    definition = build_definition(data, "test")
+    drive = _small_drive(tmp_path / "drive")
+    (drive / "vans.html").rename(tmp_path / "vans.html")  # only one page carries the footer line
+    _run(drive, tmp_path / "store", definition=definition)
+    store = Store(tmp_path / "store")
+    footer = "internal use only"
+    assert any(footer in t for t in store.handoff().column("text").to_pylist())
+    # A second page with the same line arrives: the line now repeats, so it leaves both.
+    (tmp_path / "vans.html").rename(drive / "vans.html")
+    m = _run(drive, tmp_path / "store", definition=definition)
+    assert m["documents"]["processed"] == 1
+    texts = Store(tmp_path / "store").handoff().column("text").to_pylist()
+    assert texts and not any(footer in t for t in texts)
+    rota = [r for r in Store(tmp_path / "store").current("shared_blocks", "pages").to_pylist()
+            if r["source_path"] == "rota.html"]
+    assert dict(rota[0]["notes"])["removed"] == "1" and rota[0]["attempt"] == 2

@@ -1,0 +1,160 @@
+"""Running a step call in a child process that can be killed.
+
+A parser that hangs (or crashes in C code) must cost one document, not the run. A
+batch keeps one child process and sends it one document at a time; when a call
+passes its time limit the child is killed and a new one is started for the next
+document. Children come from a fork server (not a plain fork of this process, whose
+Prefect threads may hold locks) with the step modules preloaded, so a new child
+costs milliseconds, not an interpreter start.
+"""
+
+from __future__ import annotations
+
+import multiprocessing as mp
+import threading
+import time
+import traceback
+from multiprocessing.connection import Connection
+from typing import Any, Callable
+
+# Modules the fork server imports once, so children start warm.
+PRELOAD = ["thresher.steps.extract", "thresher.steps.extract_pdf", "thresher.steps.extract_html",
+           "thresher.steps.extract_docx", "thresher.steps.extract_markdown", "thresher.steps.extract_text"]
+
+# A child is replaced after this many calls, so a leak in a parser stays bounded.
+CALLS_PER_CHILD = 200
+
+_context_lock = threading.Lock()
+_context: Any = None
+
+
+class TimeLimitExceeded(Exception):
+    def __init__(self, seconds: float):
+        super().__init__(f"stopped after the time limit of {seconds:g} s")
+        self.seconds = seconds
+
+
+class ChildCrashed(Exception):
+    def __init__(self, exitcode: int | None):
+        super().__init__(f"the parser process died (exit code {exitcode})")
+        self.exitcode = exitcode
+
+
+class RemoteError(Exception):
+    """An exception raised in the child, with its original type name and traceback."""
+
+    def __init__(self, type_name: str, message: str, tb: str):
+        super().__init__(message)
+        self.type_name = type_name
+        self.remote_traceback = tb
+
+
+def isolation_available() -> bool:
+    """Daemonic processes (some pool and cluster workers) may not start children."""
+    return not mp.current_process().daemon
+
+
+def _get_context():
+    global _context
+    with _context_lock:
+        if _context is None:
+            ctx = mp.get_context("forkserver")
+            ctx.set_forkserver_preload(PRELOAD)
+            _context = ctx
+        return _context
+
+
+def _child_main(conn: Connection) -> None:
+    while True:
+        try:
+            msg = conn.recv()
+        except EOFError:
+            return
+        if msg is None:
+            return
+        fn, args = msg
+        try:
+            conn.send(("ok", fn(*args)))
+        except BaseException as exc:  # noqa: BLE001 - reported to the parent as data
+            conn.send(("error", type(exc).__name__, str(exc),
+                       "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))))
+
+
+class IsolatedCaller:
+    """One reusable child process; `call` runs fn(*args) there within a time limit."""
+
+    def __init__(self) -> None:
+        self._proc: Any = None
+        self._conn: Connection | None = None
+        self._calls = 0
+
+    def _start(self) -> None:
+        ctx = _get_context()
+        parent, child = ctx.Pipe(duplex=True)
+        proc = ctx.Process(target=_child_main, args=(child,), daemon=True, name="thresher-parser")
+        proc.start()
+        child.close()
+        self._proc, self._conn, self._calls = proc, parent, 0
+
+    def _stop(self, kill: bool) -> None:
+        if self._proc is None:
+            return
+        try:
+            if kill:
+                self._proc.kill()
+            else:
+                self._conn.send(None)
+            self._proc.join(timeout=5)
+            if self._proc.is_alive():
+                self._proc.kill()
+                self._proc.join(timeout=5)
+        except (OSError, ValueError, BrokenPipeError):
+            pass
+        finally:
+            if self._conn is not None:
+                self._conn.close()
+            self._proc, self._conn = None, None
+
+    def call(self, fn: Callable[..., Any], args: tuple, seconds: float) -> Any:
+        if self._proc is None or not self._proc.is_alive() or self._calls >= CALLS_PER_CHILD:
+            self._stop(kill=self._proc is not None and not self._proc.is_alive())
+            self._start()
+        self._calls += 1
+        assert self._conn is not None
+        self._conn.send((fn, args))
+        deadline = time.monotonic() + seconds
+        while True:
+            remaining = deadline - time.monotonic()
+            if remaining <= 0:
+                self._stop(kill=True)
+                raise TimeLimitExceeded(seconds)
+            try:
+                ready = self._conn.poll(min(remaining, 0.5))
+            except (EOFError, OSError):
+                ready = True
+            if ready:
+                try:
+                    reply = self._conn.recv()
+                except (EOFError, OSError):
+                    self._proc.join(timeout=5)  # the pipe closes a moment before the exit code is known
+                    code = self._proc.exitcode
+                    self._stop(kill=True)
+                    raise ChildCrashed(code) from None
+                break
+            if not self._proc.is_alive():
+                code = self._proc.exitcode
+                self._stop(kill=True)
+                raise ChildCrashed(code)
+        if reply[0] == "ok":
+            return reply[1]
+        _, type_name, message, tb = reply
+        raise RemoteError(type_name, message, tb)
+
+    def close(self) -> None:
+        self._stop(kill=False)
+
+    def __enter__(self) -> "IsolatedCaller":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
