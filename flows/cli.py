@@ -56,6 +56,42 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("document", metavar="DOC_ID|PATH", help="a doc_id (or a unique prefix of at least 6 characters) or a source path")
     _common(p)
     p.add_argument("--text", action="store_true", help="also print each unit's text")
+
+    p = sub.add_parser("failures", help="failed and dropped units, grouped by reason",
+                       description="Every failed or dropped unit of the live documents (the store's state after "
+                                   "the latest run), grouped by reason.")
+    _common(p)
+    p.add_argument("--status", choices=["failed", "dropped", "all"], default="all",
+                   help="which units to list (default: all)")
+
+    p = sub.add_parser("rerun", help="re-run one step for chosen units, then what depends on them",
+                       description=(
+                           "Re-execute one step for a document, a page, or every failed unit, from the previous "
+                           "stage's stored rows; then the later steps of those documents and the corpus-wide "
+                           "steps as far as they are affected. Old attempts stay for audit."))
+    _common(p)
+    which = p.add_mutually_exclusive_group(required=True)
+    which.add_argument("--doc", metavar="ID", help="the document's doc_id (or a unique prefix)")
+    which.add_argument("--path", metavar="P", help="the document's source path")
+    which.add_argument("--failed", action="store_true", help="every failed unit of the live documents")
+    p.add_argument("--page", metavar="N", type=_positive_int, help="only this page (1-based)")
+    p.add_argument("--step", metavar="NAME", help="the step to start from (default: the first one that failed)")
+    p.add_argument("--source", metavar="DIR", help="source folder (default: the one the latest run read)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines, only the summary")
+
+    p = sub.add_parser("export", help="write the live chunks as Parquet or JSONL",
+                       description="Write the hand-off's live chunks to a file, as Parquet or JSON Lines.")
+    _common(p, json_flag=False)
+    p.add_argument("--format", choices=["parquet", "jsonl"], required=True, help="file format")
+    p.add_argument("--out", metavar="PATH", required=True, help="file to write ('-' for standard output, jsonl only)")
+
+    p = sub.add_parser("schedule", help="serve the weekly deployment named in the flow definition",
+                       description=(
+                           "Register the flow definition's deployment with its cron schedule and time zone on "
+                           "the Prefect API (embedded, or PREFECT_API_URL) and serve its runs until stopped."))
+    _common(p, json_flag=False)
+    p.add_argument("--source", metavar="DIR", help="source folder (default: from the flow definition)")
+    p.add_argument("--workers", metavar="N", type=_positive_int, help="parallel tasks (default: from the flow definition)")
     return parser
 
 
@@ -196,41 +232,13 @@ def cmd_status(args: argparse.Namespace) -> int:
 
 # ----------------------------------------------------------------------------- trail
 
-def resolve_document(store, definition: FlowDefinition, ref: str) -> tuple[str, list[dict[str, Any]]]:
-    """A doc_id, unique doc_id prefix, or source path -> (doc_id, its catalog rows)."""
-    catalog = store.catalog().to_pylist()
-    by_doc: dict[str, list[dict[str, Any]]] = {}
-    for r in catalog:
-        by_doc.setdefault(r["doc_id"], []).append(r)
-    ref_l = ref.lower()
-    if len(ref_l) >= 6 and all(c in "0123456789abcdef" for c in ref_l):
-        hits = [d for d in by_doc if d.startswith(ref_l)]
-        if len(hits) == 1:
-            return hits[0], by_doc[hits[0]]
-        if len(hits) > 1:
-            raise UsageError(f"doc_id prefix {ref} matches {len(hits)} documents; give more characters")
-    candidates = [ref.replace(os.sep, "/")]
-    roots = [definition.model.source.root]
-    latest = store.latest_run()
-    if latest is not None:
-        roots.append(latest.manifest.get("source_root", ""))
-    p = Path(ref)
-    for root in roots:
-        if not root:
-            continue
-        try:
-            candidates.append(p.resolve().relative_to(Path(root).resolve()).as_posix())
-        except ValueError:
-            pass
-    for c in candidates:
-        rows = [r for r in catalog if r["source_path"] == c]
-        if rows:
-            row = max(rows, key=lambda r: r["present"])
-            return row["doc_id"], by_doc[row["doc_id"]]
-    suffix = [r for r in catalog if r["source_path"].endswith("/" + candidates[0])]
-    if len({r["doc_id"] for r in suffix}) == 1:
-        return suffix[0]["doc_id"], by_doc[suffix[0]["doc_id"]]
-    raise UsageError(f"no document {ref!r} in the store's catalog (give a doc_id or a path relative to the source folder)")
+def _resolve(store, definition: FlowDefinition, ref: str) -> tuple[str, list[dict[str, Any]]]:
+    from thresher.flows.lookup import NotFound, resolve_document, source_roots
+
+    try:
+        return resolve_document(store, ref, source_roots(store, definition.model.source.root))
+    except NotFound as exc:
+        raise UsageError(str(exc)) from None
 
 
 def _unit_detail(stage: str, row: dict[str, Any]) -> str:
@@ -262,7 +270,7 @@ def cmd_trail(args: argparse.Namespace) -> int:
 
     definition = _definition(args)
     store = _open_store(args, definition)
-    doc_id, cat_rows = resolve_document(store, definition, args.document)
+    doc_id, cat_rows = _resolve(store, definition, args.document)
     stages = stages_of(store.latest_run().manifest)
     per_stage = {}
     for name, unit in stages:
@@ -312,7 +320,125 @@ def cmd_trail(args: argparse.Namespace) -> int:
     return 0
 
 
-COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail}
+# ----------------------------------------------------------------------------- failures
+
+def cmd_failures(args: argparse.Namespace) -> int:
+    from thresher.flows.failures import failure_groups
+
+    definition = _definition(args)
+    store = _open_store(args, definition)
+    statuses = ("failed", "dropped") if args.status == "all" else (args.status,)
+    groups = failure_groups(store, statuses)
+    if args.json:
+        print(json.dumps([{"stage": g.stage, "status": g.status, "reason": g.kind, "count": len(g.units),
+                           "units": g.units} for g in groups], indent=2, default=str))
+        return 0
+    if not groups:
+        print("no failed or dropped units in the live documents")
+        return 0
+    total = sum(len(g.units) for g in groups)
+    print(f"{total} unit(s) in {len(groups)} group(s); `thresher trail PATH` shows a document's way, "
+          "`thresher rerun --failed` re-runs every failed unit")
+    for g in groups:
+        print(f"\n{g.status} at {g.stage}: {len(g.units)} unit(s) in {len(g.documents)} document(s)")
+        print(f"  reason: {g.units[0]['reason'] if len(g.units) == 1 else g.kind}")
+        for u in g.units[:8]:
+            print(f"    {u['source_path']}  {u['locator']}")
+        if len(g.units) > 8:
+            print(f"    ... and {len(g.units) - 8} more")
+    return 0
+
+
+# ----------------------------------------------------------------------------- rerun
+
+def cmd_rerun(args: argparse.Namespace) -> int:
+    definition = _definition(args)
+    store = _open_store(args, definition)
+    latest = store.latest_run().manifest
+    source = args.source or latest.get("source_root") or definition.model.source.root
+    if not Path(source).is_dir():
+        raise UsageError(f"source folder not found: {source}")
+    if args.step is not None and args.step not in [s.name for s in definition.steps]:
+        raise UsageError(f"no step {args.step!r} in the flow definition; steps are "
+                         f"{', '.join(s.name for s in definition.steps)}")
+    if args.failed:
+        if args.page is not None or args.step is not None:
+            raise UsageError("--failed re-runs every failed unit from where it failed; --page and --step go with --doc or --path")
+        from thresher.flows.failures import failure_groups
+
+        if not failure_groups(store, ("failed",)):
+            print("nothing failed in the live documents; nothing to re-run")
+            return 0
+        rerun: dict[str, Any] = {"failed": True}
+    else:
+        doc_id, rows = _resolve(store, definition, args.doc or args.path)
+        if not any(r["present"] for r in rows):
+            raise UsageError(f"{rows[0]['source_path']} is no longer in the source folder; nothing to re-run")
+        if args.page is not None:
+            pages = store.current(definition.steps[0].name, "pages", [doc_id], columns=["page", "page_count"]).to_pylist()
+            count = max((r["page_count"] or 0 for r in pages), default=0) if pages and "page_count" in pages[0] else 0
+            if not any(r["page"] for r in pages):
+                raise UsageError(f"{rows[0]['source_path']} has no pages (only PDFs do); leave out --page")
+            if count and args.page > count:
+                raise UsageError(f"page {args.page}: {rows[0]['source_path']} has {count} pages")
+        rerun = {"doc_id": doc_id, "page": args.page, "step": args.step}
+    from thresher.flows import pipeline
+    from thresher.flows.rerun import RerunError
+    from thresher.flows.store import StoreLocked
+
+    try:
+        manifest = pipeline.run(definition, source, _store_root(args, definition), quiet=args.quiet, rerun=rerun)
+    except (StoreLocked, RerunError) as exc:
+        raise UsageError(str(exc)) from None
+    if args.json:
+        print(json.dumps(manifest, indent=2, default=str))
+    else:
+        print("\n".join(run_summary_lines(manifest)))
+    return 0
+
+
+# ----------------------------------------------------------------------------- export
+
+def cmd_export(args: argparse.Namespace) -> int:
+    from thresher.flows.export import export_chunks
+
+    definition = _definition(args)
+    store = _open_store(args, definition)
+    table = store.handoff()
+    if table is None:
+        raise UsageError("the store has no hand-off yet; run `thresher run` first")
+    if args.out == "-" and args.format != "jsonl":
+        raise UsageError("only --format jsonl can be written to standard output")
+    try:
+        n = export_chunks(table, args.format, args.out)
+    except OSError as exc:
+        raise UsageError(f"cannot write {args.out}: {exc.strerror or exc}") from None
+    if args.out != "-":
+        print(f"wrote {n} chunks to {args.out} ({args.format})", file=sys.stderr)
+    return 0
+
+
+# ----------------------------------------------------------------------------- schedule
+
+def cmd_schedule(args: argparse.Namespace) -> int:
+    definition = _definition(args)
+    source = args.source or definition.model.source.root
+    if not Path(source).is_dir():
+        raise UsageError(f"source folder not found: {source}")
+    store_root = _store_root(args, definition)
+    from thresher.flows import schedule
+
+    sched = definition.model.schedule
+    api = os.environ.get("PREFECT_API_URL") or "the embedded Prefect server (set PREFECT_API_URL for your own)"
+    print(f"thresher: serving deployment {schedule.deployment_name(definition)} on {api}; "
+          f"cron '{sched.cron}' in {sched.timezone}; source {Path(source).resolve()}, "
+          f"store {Path(store_root).resolve()}. Stop with Ctrl-C.", file=sys.stderr, flush=True)
+    schedule.serve(definition, str(Path(source).resolve()), str(Path(store_root).resolve()), args.workers)
+    return 0
+
+
+COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail, "failures": cmd_failures,
+            "rerun": cmd_rerun, "export": cmd_export, "schedule": cmd_schedule}
 
 
 def main(argv: list[str] | None = None) -> int:

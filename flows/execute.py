@@ -37,6 +37,9 @@ class DocJob:
     mtime: float
     start: int  # index of the first step to run for this document
     known: bool  # the store may already hold rows of this document
+    # A re-run of chosen units: the first step keeps only these locators of its output
+    # and the rest of that stage stays as stored (None: the whole document).
+    only: list[str] | None = None
 
 
 @dataclass
@@ -246,15 +249,37 @@ class BatchRunner:
             t0 = time.perf_counter()
             out = _call_step(step, inputs, ctx, self._caller_for(step))
             ms = (time.perf_counter() - t0) * 1000.0
-            self._record(doc, step, prev, out, started, ms, rows, writes, result)
-            inputs = sorted((u for u in out if u.ok), key=_order_key)
+            scope = "document"
+            if doc.only is not None and i == indices[0]:
+                out, scope = self._keep_chosen(doc, i, out), "units"
+            self._record(doc, step, prev, out, started, ms, rows, writes, result, scope)
+            if scope == "units":
+                inputs = self._merged_with_stored(doc, i, out)
+            else:
+                inputs = sorted((u for u in out if u.ok), key=_order_key)
             if not inputs:
                 return
             prev = step.name
 
+    def _keep_chosen(self, doc: DocJob, index: int, out: list[Unit]) -> list[Unit]:
+        """A re-run of chosen units keeps only those; a document-wide failure is kept as it is."""
+        chosen = [u for u in out if u.locator in set(doc.only or [])]
+        return chosen or [u for u in out if u.locator == DOCUMENT_LOCATOR] or chosen
+
+    def _merged_with_stored(self, doc: DocJob, index: int, new: list[Unit]) -> list[Unit]:
+        """The stage's current ok units with the re-run ones in place of their old versions."""
+        loaded = load_units(self.store, self.definition, index + 1, [doc.doc_id], self.run_id)
+        current = {u.locator: u for u in (loaded[doc.doc_id].units if doc.doc_id in loaded else [])}
+        for u in new:
+            if u.ok:
+                current[u.locator] = u
+            else:
+                current.pop(u.locator, None)
+        return sorted(current.values(), key=_order_key)
+
     def _record(self, doc: DocJob, step: ResolvedStep, prev: str | None, out: list[Unit],
                 started: datetime, ms: float, rows: dict[str, list[dict[str, Any]]],
-                writes: dict[str, list[tuple[str, str]]], result: BatchResult) -> None:
+                writes: dict[str, list[tuple[str, str]]], result: BatchResult, scope: str = "document") -> None:
         """Turn one step's units for one document into rows, and count them."""
         kind = unit_kind(step)
         attempts = self.store.max_attempts(step.name, kind, [doc.doc_id]) if doc.known else {}
@@ -262,7 +287,7 @@ class BatchRunner:
         rctx = RowContext(self.run_id, doc.doc_id, doc.source_path, step.name, step.spec.version,
                           step.digest, kind, prev, started, round(ms, 3), attempts)
         rows[step.name].extend(_rows_for(step, rctx, out))
-        writes[step.name].append((doc.doc_id, "document"))
+        writes[step.name].append((doc.doc_id, scope))
         counts = result.counts.setdefault(step.name, {})
         for u in out:
             counts[u.status] = counts.get(u.status, 0) + 1

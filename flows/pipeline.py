@@ -1,13 +1,17 @@
-"""The Prefect flow: scan, plan, run the chain in batches, hand off, commit.
+"""The Prefect flows: scan, plan, run the chain in batches, hand off, commit.
 
-The flow is thin: it decides what runs where and in which order. The work itself
-is in execute.py (steps over documents), plan.py, handoff.py and store.py.
+The flows are thin: they decide what runs where and in which order. The work itself
+is in execute.py and corpus.py (steps over documents), plan.py and rerun.py (what to
+do), handoff.py and store.py.
 """
 
 from __future__ import annotations
 
+import json
+import os
 import sys
 import time
+from collections import Counter, defaultdict
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
 from functools import lru_cache
@@ -17,27 +21,35 @@ from typing import Any, Callable
 
 from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
 
-import json
-
 from prefect import flow, get_run_logger, task
-from prefect.artifacts import create_table_artifact
+from prefect.artifacts import create_markdown_artifact, create_table_artifact
 from prefect.cache_policies import NO_CACHE
 from prefect.futures import as_completed
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from thresher.flows.config import FlowDefinition, build_definition
-from thresher.flows.discover import scan
 from thresher.flows.corpus import run_corpus_step
+from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob
 from thresher.flows.handoff import build_handoff
-from thresher.flows.plan import make_plan
+from thresher.flows.plan import Plan, make_plan
+from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
-from thresher.flows.summary import stage_counts
+from thresher.flows.summary import STATUS_ORDER, stage_counts
 
 # A batch holds at most this many bytes of source files besides its document count,
 # so one huge PDF does not share a task with many others (common practice: size
 # batches by work, not by count alone).
 BATCH_BYTES = 64 << 20
+
+# Testing aid: THRESHER_FAULT=<point> makes the process die at that point, as a
+# killed run would, so tests can prove the store survives it.
+FAULT_POINTS = ("after-first-batch", "after-corpus", "before-commit", "after-commit")
+
+
+def _fault(point: str) -> None:
+    if os.environ.get("THRESHER_FAULT") == point:
+        os._exit(75)
 
 
 @lru_cache(maxsize=8)
@@ -82,13 +94,21 @@ def make_batches(jobs: list[DocJob], batch_size: int, batch_bytes: int = BATCH_B
 @task(name="process-batch", cache_policy=NO_CACHE)
 def process_batch(job: BatchJob, data_json: str, origin: str) -> BatchResult:
     definition = _definition(data_json, origin)
-    return BatchRunner(definition, Store(job.store_root), job.run_id).run(job)
+    result = BatchRunner(definition, Store(job.store_root), job.run_id).run(job)
+    logger = get_run_logger()
+    for path, stage, reason in result.failures:
+        logger.info("%s: %s failed: %s", path, stage, reason)
+    logger.info("batch %s: %d documents, %s", job.part, result.documents,
+                "; ".join(f"{s} {dict(c)}" for s, c in result.counts.items()))
+    return result
 
 
 @task(name="corpus-step", cache_policy=NO_CACHE)
 def corpus_step(run_id: str, store_root: str, data_json: str, origin: str, index: int,
                 live: dict[str, tuple[int, str]], rewrite: set[str]):
-    return run_corpus_step(_definition(data_json, origin), Store(store_root), run_id, index, live, rewrite)
+    result = run_corpus_step(_definition(data_json, origin), Store(store_root), run_id, index, live, rewrite)
+    get_run_logger().info("%s: %s over the corpus, %d rows written", result.stage, result.counts, result.rows_written)
+    return result
 
 
 def _segments(definition: FlowDefinition) -> list[tuple[str, list[int]]]:
@@ -121,9 +141,118 @@ def _task_runner(kind: str, workers: int):
     return ThreadPoolTaskRunner(max_workers=1 if kind == "sequential" else workers)
 
 
+@dataclass
+class _Progress:
+    counts: dict[str, dict[str, int]] = field(default_factory=dict)
+    failures: list[tuple[str, str, str]] = field(default_factory=list)
+    step_seconds: float = 0.0
+
+    def add(self, stage: str, by_status: dict[str, int]) -> None:
+        bucket = self.counts.setdefault(stage, {})
+        for status, n in by_status.items():
+            bucket[status] = bucket.get(status, 0) + n
+
+
+def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: str, data_json: str,
+               progress: Callable[[str], None] | None, timings: dict[str, float]) -> _Progress:
+    """Every segment of the chain in order, for the documents the plan names."""
+    model = definition.model
+    names = [s.name for s in definition.steps]
+    acc = _Progress()
+    processed: set[str] = set()
+    affected: set[str] = set()  # documents whose corpus-step rows changed
+    jobs_by_doc = {j.doc_id: j for j in plan.jobs}
+    first_batch_done = False
+    for kind, indices in _segments(definition):
+        t0 = time.perf_counter()
+        label = "+".join(names[i] for i in indices)
+        if kind == "corpus":
+            index = indices[0]
+            rewrite = set(processed) | {j.doc_id for j in plan.jobs if j.start <= index}
+            res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
+                                     plan.live, rewrite).result()
+            affected |= res.affected_docs
+            acc.add(res.stage, res.counts)
+            _emit(progress, f"{label}: {sum(res.counts.values())} units compared, "
+                            f"{res.rows_written} decisions written ({res.seconds:.1f} s)")
+            _fault("after-corpus")
+        else:
+            first, last = indices[0], indices[-1]
+            # Documents whose chain starts at or before this segment continue here; a
+            # re-run's unit choice applies only in the segment where it starts.
+            seg_jobs = []
+            for j in plan.jobs:
+                if j.start <= last:
+                    only = j.only if first <= j.start <= last else None
+                    seg_jobs.append(DocJob(j.doc_id, j.source_path, j.abs_path, j.size, j.mtime, j.start,
+                                           j.known, only))
+            for d in sorted(affected - {j.doc_id for j in seg_jobs}):
+                src = jobs_by_doc.get(d)
+                seg_jobs.append(DocJob(d, plan.live[d][1], src.abs_path if src else "", src.size if src else 0,
+                                       src.mtime if src else 0.0, first, True))
+            batches = make_batches(seg_jobs, model.runner.batch_size)
+            if not batches:
+                _emit(progress, f"{label}: nothing to do")
+                continue
+            futures = []
+            for n, batch in enumerate(batches):
+                job = BatchJob(run_id, store_root, indices, f"s{first:02d}-b{n:05d}", batch)
+                futures.append(process_batch.with_options(
+                    retries=model.runner.retries, retry_delay_seconds=model.runner.retry_delay_seconds,
+                ).submit(job, data_json, definition.origin))
+            done = 0
+            for fut in as_completed(futures):
+                res: BatchResult = fut.result()
+                done += 1
+                acc.step_seconds += res.step_seconds
+                acc.failures.extend(res.failures)
+                for stage, by_status in res.counts.items():
+                    acc.add(stage, by_status)
+                _emit(progress, f"{label}: batch {done}/{len(batches)} done, {res.documents} documents "
+                                f"({res.seconds:.1f} s)")
+                if not first_batch_done:
+                    first_batch_done = True
+                    _fault("after-first-batch")
+            processed |= {j.doc_id for j in seg_jobs}
+        timings[label] = time.perf_counter() - t0
+    return acc
+
+
+def _per_document(store: Store, definition: FlowDefinition, live: dict[str, tuple[int, str]],
+                  handoff_rows: list[dict[str, Any]], run_id: str) -> list[dict[str, Any]]:
+    """One row per live document for the run's summary artifact."""
+    by_doc: dict[str, Counter] = defaultdict(Counter)
+    pages: Counter = Counter()
+    first = definition.steps[0]
+    for step in definition.steps:
+        t = store.current(step.name, step.spec.produces, sorted(live), columns=["doc_id", "status"],
+                          include_run=run_id)
+        for d, s in zip(t.column("doc_id").to_pylist(), t.column("status").to_pylist()):
+            by_doc[d][s] += 1
+            if step is first:
+                pages[d] += 1
+    chunks: Counter = Counter()
+    tokens: Counter = Counter()
+    for r in handoff_rows:
+        chunks[r["doc_id"]] += 1
+        tokens[r["doc_id"]] += r["token_count"] or 0
+    rows = []
+    for d, (_, path) in sorted(live.items(), key=lambda kv: kv[1][1]):
+        c = by_doc[d]
+        rows.append({"document": path, "pages": pages[d], "chunks": chunks[d], "tokens": tokens[d],
+                     "failed units": c["failed"], "dropped units": c["dropped"],
+                     "status": "failed" if c["failed"] else ("ok" if chunks[d] else "no chunks")})
+    return rows
+
+
 def execute_run(definition: FlowDefinition, source_root: str, store_root: str, run_id: str,
-                progress: Callable[[str], None] | None, force: bool = False) -> RunOutcome:
-    """Body of the flow; runs inside a Prefect flow run so tasks are tracked."""
+                progress: Callable[[str], None] | None, force: bool = False,
+                rerun: dict[str, Any] | None = None) -> RunOutcome:
+    """Body of the flows; runs inside a Prefect flow run so tasks are tracked.
+
+    `rerun` None: a run over the source folder. Otherwise what to re-run:
+    {"failed": True} or {"doc_id": ..., "page": N or None, "step": NAME or None}.
+    """
     t_start = time.perf_counter()
     started_at = datetime.now(timezone.utc)
     logger = get_run_logger()
@@ -131,82 +260,45 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
     data_json = json.dumps(model.model_dump(mode="json"), sort_keys=True)
     store = Store(store_root)
     timings: dict[str, float] = {}
-    store.acquire_lock(run_id)
+    kind = "run" if rerun is None else "rerun"
+    # The caller normally holds the lock already (see run()); take it if not.
+    owns_lock = not store.holds_lock(run_id)
+    if owns_lock:
+        store.acquire_lock(run_id)
     try:
         store.recover()
         swept = store.sweep_uncommitted()
         if swept:
             _emit(progress, f"cleaned up {len(swept)} folder(s) left by an interrupted run")
-
-        t0 = time.perf_counter()
-        files, problems = scan(source_root, list(model.source.include), list(model.source.exclude))
-        timings["scan"] = time.perf_counter() - t0
         sequence = store.next_sequence()
-        plan = make_plan(definition, store, files, run_id, sequence, force=force)
-        _emit(progress, f"found {len(files)} files ({len(plan.live)} distinct documents): "
-                        f"{len(plan.jobs)} to process, {len(plan.skipped)} unchanged, {len(plan.deleted)} removed")
-        for p in problems:
-            _emit(progress, f"  cannot read {p.source_path}: {p.reason}")
-        logger.info("run %s: %d files, %d to process", run_id, len(files), len(plan.jobs))
+        problems: list = []
+        files: list = []
+        t0 = time.perf_counter()
+        if rerun is None:
+            files, problems = scan(source_root, list(model.source.include), list(model.source.exclude))
+            plan = make_plan(definition, store, files, run_id, sequence, force=force)
+            _emit(progress, f"found {len(files)} files ({len(plan.live)} distinct documents): "
+                            f"{len(plan.jobs)} to process, {len(plan.skipped)} unchanged, {len(plan.deleted)} removed")
+            for p in problems:
+                _emit(progress, f"  cannot read {p.source_path}: {p.reason}")
+        else:
+            plan = _rerun_plan(definition, store, rerun, source_root, sequence)
+            targets_text = rerun.get("_described", [])
+            _emit(progress, f"re-running {len(plan.jobs)} document(s):")
+            for line in targets_text:
+                _emit(progress, f"  {line}")
+        timings["plan"] = time.perf_counter() - t0
+        logger.info("%s %s: %d documents to process", kind, run_id, len(plan.jobs))
 
-        step_names = [s.name for s in definition.steps]
-        counts: dict[str, dict[str, int]] = {}
-        failures: list[tuple[str, str, str]] = []
-        step_seconds = 0.0
-        processed: set[str] = set()
-        affected: set[str] = set()  # documents whose corpus-step rows changed
-        jobs_by_doc = {j.doc_id: j for j in plan.jobs}
-        for kind, indices in _segments(definition):
-            t0 = time.perf_counter()
-            label = "+".join(step_names[i] for i in indices)
-            if kind == "corpus":
-                index = indices[0]
-                rewrite = {d for d in processed} | {j.doc_id for j in plan.jobs if j.start <= index}
-                res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
-                                         plan.live, rewrite).result()
-                affected |= res.affected_docs
-                counts.setdefault(res.stage, {})
-                for status, n in res.counts.items():
-                    counts[res.stage][status] = counts[res.stage].get(status, 0) + n
-                _emit(progress, f"{label}: {sum(res.counts.values())} chunks compared, "
-                                f"{res.rows_written} decisions written ({res.seconds:.1f} s)")
-            else:
-                first, last = indices[0], indices[-1]
-                # Documents whose chain starts at or before this segment continue here.
-                seg_jobs = [j for j in plan.jobs if j.start <= last]
-                for d in sorted(affected - {j.doc_id for j in seg_jobs}):
-                    src = jobs_by_doc.get(d)
-                    path = plan.live[d][1]
-                    seg_jobs.append(DocJob(d, path, src.abs_path if src else "", src.size if src else 0,
-                                           src.mtime if src else 0.0, first, True))
-                batches = make_batches(seg_jobs, model.runner.batch_size)
-                if not batches:
-                    _emit(progress, f"{label}: nothing to do")
-                    continue
-                futures = []
-                for n, batch in enumerate(batches):
-                    job = BatchJob(run_id, store_root, indices, f"s{first:02d}-b{n:05d}", batch)
-                    futures.append(process_batch.with_options(
-                        retries=model.runner.retries, retry_delay_seconds=model.runner.retry_delay_seconds,
-                    ).submit(job, data_json, definition.origin))
-                done = 0
-                for fut in as_completed(futures):
-                    res: BatchResult = fut.result()
-                    done += 1
-                    step_seconds += res.step_seconds
-                    failures.extend(res.failures)
-                    for stage, by_status in res.counts.items():
-                        bucket = counts.setdefault(stage, {})
-                        for status, n in by_status.items():
-                            bucket[status] = bucket.get(status, 0) + n
-                    _emit(progress, f"{label}: batch {done}/{len(batches)} done, {res.documents} documents "
-                                    f"({res.seconds:.1f} s)")
-                processed |= {j.doc_id for j in seg_jobs}
-            timings[label] = time.perf_counter() - t0
+        acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings)
 
         t0 = time.perf_counter()
         handoff = build_handoff(definition, store, run_id, plan.live)
-        store.write_table(f"runs/{run_id}/staged/catalog.parquet", plan.catalog, run_id=run_id)
+        publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
+                   "staged/changes.parquet": f"handoff/changes/{run_id}.parquet"}
+        if rerun is None:
+            store.write_table(f"runs/{run_id}/staged/catalog.parquet", plan.catalog, run_id=run_id)
+            publish["staged/catalog.parquet"] = "catalog.parquet"
         store.write_table(f"runs/{run_id}/staged/chunks.parquet", handoff.chunks, run_id=run_id)
         store.write_table(f"runs/{run_id}/staged/changes.parquet", handoff.changes, run_id=run_id)
         timings["handoff"] = time.perf_counter() - t0
@@ -214,13 +306,18 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         live_docs = sorted(plan.live)
         stages = [(s.name, s.spec.produces) for s in definition.steps]
         current = stage_counts(store, stages, live_docs, include_run=run_id)
-        tokens = sum(handoff.chunks.column("token_count").to_pylist() or [0]) if handoff.chunks.num_rows else 0
-        extract_name = definition.steps[0].name
-        pages = next((c.total for c in current if c.stage == extract_name), 0)
+        handoff_rows = handoff.chunks.select(["doc_id", "token_count"]).to_pylist()
+        tokens = sum(r["token_count"] or 0 for r in handoff_rows)
+        pages = next((c.total for c in current if c.stage == definition.steps[0].name), 0)
+        per_doc = _per_document(store, definition, plan.live, handoff_rows, run_id)
+        from prefect.runtime import flow_run as _flow_run
+
         manifest = {
             "run_id": run_id,
             "sequence": sequence,
-            "kind": "run",
+            "kind": kind,
+            "prefect_flow_run_id": str(_flow_run.id) if _flow_run.id else None,
+            "rerun": {k: v for k, v in (rerun or {}).items()} or None,
             "started_at": started_at.isoformat(),
             "finished_at": datetime.now(timezone.utc).isoformat(),
             "seconds": round(time.perf_counter() - t_start, 3),
@@ -234,56 +331,88 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
                           "unchanged": len(plan.skipped), "removed": len(plan.deleted),
                           "copies": {d: p for d, p in plan.copies.items()}},
             "scan_problems": [asdict(p) for p in problems],
-            "written": counts,
+            "written": acc.counts,
             "current": {c.stage: c.by_status for c in current},
             "pages": pages,
             "chunks": handoff.chunks.num_rows,
             "tokens": tokens,
             "changes": {"upsert": handoff.upserts, "delete": handoff.deletes},
-            "failures": len(failures),
+            "failures": len(acc.failures),
             # The first ones, for the summary; every one is in the stage tables.
-            "failed_units": [{"source_path": p, "stage": s, "reason": r} for p, s, r in sorted(failures)[:50]],
+            "failed_units": [{"source_path": p, "stage": s, "reason": r} for p, s, r in sorted(acc.failures)[:50]],
             "timings": {k: round(v, 3) for k, v in timings.items()},
-            "step_seconds": round(step_seconds, 3),
+            "step_seconds": round(acc.step_seconds, 3),
             "swept": swept,
-            "publish": {
-                "staged/catalog.parquet": "catalog.parquet",
-                "staged/chunks.parquet": "handoff/chunks.parquet",
-                "staged/changes.parquet": f"handoff/changes/{run_id}.parquet",
-            },
+            "publish": publish,
         }
-        store.commit(run_id, manifest)
+        _fault("before-commit")
+        store.commit(run_id, manifest, before_publish=lambda: _fault("after-commit"))
     finally:
-        store.release_lock(run_id)
+        if owns_lock:
+            store.release_lock(run_id)
 
     try:
-        create_table_artifact(
-            key="thresher-run-summary",
-            table=[{"stage": c.stage, **{s: c.by_status.get(s, 0) for s in ("ok", "failed", "dropped", "skipped")}}
-                   for c in current],
-            description=f"thresher run {run_id}: {manifest['chunks']} chunks, {tokens} tokens",
-        )
+        create_table_artifact(key="thresher-documents", table=per_doc,
+                              description=f"thresher {kind} {run_id}: one row per live document")
+        lines = [f"# thresher {kind} {run_id}", "",
+                 f"{manifest['chunks']} chunks, {tokens:,} tokens; {handoff.upserts} to upsert, "
+                 f"{handoff.deletes} to delete.", "", "| stage | " + " | ".join(STATUS_ORDER) + " |",
+                 "|---|" + "---|" * len(STATUS_ORDER)]
+        lines += [f"| {c.stage} | " + " | ".join(str(c.by_status.get(s, 0)) for s in STATUS_ORDER) + " |"
+                  for c in current]
+        create_markdown_artifact(key="thresher-run-summary", markdown="\n".join(lines),
+                                 description=f"thresher {kind} {run_id}")
     except Exception as exc:  # noqa: BLE001 - the run is committed; a missing artifact is not fatal
-        logger.warning("could not publish the summary artifact: %s", exc)
+        logger.warning("could not publish the summary artifacts: %s", exc)
     return RunOutcome(run_id, store.root, manifest, time.perf_counter() - t_start)
+
+
+def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any], source_root: str,
+                sequence: int) -> Plan:
+    from thresher.flows.plan import live_documents
+
+    _, live, _ = live_documents(store.catalog().to_pylist(), {r.run_id: r.sequence for r in store.runs()}, sequence)
+    if rerun.get("failed"):
+        targets = targets_for_failed(definition, store, live)
+    else:
+        doc_id = rerun["doc_id"]
+        path = live[doc_id][1] if doc_id in live else doc_id
+        targets = [target_for_document(definition, store, doc_id, path, rerun.get("page"), rerun.get("step"))]
+    rerun["_described"] = describe(targets)
+    return make_rerun_plan(definition, store, targets, source_root, sequence)
 
 
 @flow(name="thresher-run", log_prints=False, persist_result=False)
 def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store_root: str,
-           run_id: str | None = None, force: bool = False, quiet: bool = False) -> dict[str, Any]:
-    """One run of the chain over the source root, as the flow definition says."""
+           run_id: str | None = None, force: bool = False, quiet: bool = False,
+           rerun: dict[str, Any] | None = None) -> dict[str, Any]:
+    """One run of the chain over the source root (or a re-run of chosen units)."""
     definition = _definition(json.dumps(definition_data, sort_keys=True), origin)
     outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(),
-                          None if quiet else _default_progress, force=force)
+                          None if quiet else _default_progress, force=force, rerun=rerun)
     return outcome.manifest
 
 
-def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
-        force: bool = False, quiet: bool = False) -> dict[str, Any]:
-    """Build the Prefect flow from the definition and run it (embedded unless PREFECT_API_URL is set)."""
+def build_flow(definition: FlowDefinition, workers: int | None = None, name: str | None = None):
+    """The Prefect flow for this definition: its name and task runner come from it."""
     model = definition.model
     n = workers or model.runner.workers
-    kind = model.runner.kind
-    flow_obj = ingest.with_options(name=model.name, task_runner=_task_runner(kind, n))
-    return flow_obj(model.model_dump(mode="json"), definition.origin, source_root, store_root,
-                    force=force, quiet=quiet)
+    return ingest.with_options(name=name or model.name, task_runner=_task_runner(model.runner.kind, n))
+
+
+def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
+        force: bool = False, quiet: bool = False, rerun: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Run the flow (embedded Prefect unless PREFECT_API_URL is set).
+
+    The store's lock is taken before Prefect starts, so a second run on the same
+    store is refused at once with the holder's name, not after a server start.
+    """
+    run_id = new_run_id()
+    store = Store(store_root)
+    store.acquire_lock(run_id)
+    try:
+        flow_obj = build_flow(definition, workers, name=None if rerun is None else f"{definition.model.name}-rerun")
+        return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
+                        run_id=run_id, force=force, quiet=quiet, rerun=rerun)
+    finally:
+        store.release_lock(run_id)

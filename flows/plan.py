@@ -61,6 +61,28 @@ def start_stages(definition: FlowDefinition, store: Store, doc_ids: list[str]) -
     return start
 
 
+def live_documents(catalog_rows: list[dict], seq_of: dict[str, int], sequence: int
+                   ) -> tuple[dict[str, str], dict[str, tuple[int, str]], dict[str, list[str]]]:
+    """From catalog rows: canonical path per live document, ranks, and copies.
+
+    A document's rank orders it for deterministic choices (the canonical chunk of a
+    duplicate cluster): first the run that first saw it, then its canonical path.
+    """
+    present_paths: dict[str, list[str]] = {}
+    for r in catalog_rows:
+        if r["present"]:
+            present_paths.setdefault(r["doc_id"], []).append(r["source_path"])
+    first_seq: dict[str, int] = {}
+    for r in catalog_rows:
+        s = seq_of.get(r["first_run"], sequence)
+        first_seq[r["doc_id"]] = min(first_seq.get(r["doc_id"], s), s)
+    canonical = {d: min(paths) for d, paths in present_paths.items()}
+    order = sorted(canonical, key=lambda d: (first_seq[d], canonical[d]))
+    live = {d: (rank, canonical[d]) for rank, d in enumerate(order)}
+    copies = {d: sorted(p for p in paths if p != canonical[d]) for d, paths in present_paths.items() if len(paths) > 1}
+    return canonical, live, copies
+
+
 def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile], run_id: str,
               sequence: int, force: bool = False) -> Plan:
     old = store.catalog().to_pylist()
@@ -91,19 +113,7 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
             gone["present"] = False
             rows.append(gone)
 
-    present_paths: dict[str, list[str]] = {}
-    for r in rows:
-        if r["present"]:
-            present_paths.setdefault(r["doc_id"], []).append(r["source_path"])
-    first_seq: dict[str, int] = {}
-    for r in rows:
-        s = seq_of.get(r["first_run"], sequence)
-        first_seq[r["doc_id"]] = min(first_seq.get(r["doc_id"], s), s)
-
-    canonical = {d: min(paths) for d, paths in present_paths.items()}
-    order = sorted(canonical, key=lambda d: (first_seq[d], canonical[d]))
-    live = {d: (rank, canonical[d]) for rank, d in enumerate(order)}
-    copies = {d: sorted(p for p in paths if p != canonical[d]) for d, paths in present_paths.items() if len(paths) > 1}
+    canonical, live, copies = live_documents(rows, seq_of, sequence)
 
     file_at = {f.source_path: f for f in files}
     to_do = [d for d in canonical if force or chain not in processed_with.get(d, set())]

@@ -16,8 +16,11 @@ PREFECT_DEFAULTS = {
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
     # The temporary server needs 9-23 s to start on a 2-core machine; 20 s is too tight.
     "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",
-    # Keep the console for thresher's own progress lines.
-    "PREFECT_LOGGING_LEVEL": "WARNING",
+    # Run logs (per-document events, at INFO) go to the Prefect API, where a team's
+    # server shows them; the console shows only warnings, keeping it for thresher's
+    # own progress lines.
+    "PREFECT_LOGGING_LEVEL": "INFO",
+    "PREFECT_LOGGING_HANDLERS_CONSOLE_LEVEL": "WARNING",
     "PREFECT_SERVER_LOGGING_LEVEL": "CRITICAL",
     "PREFECT_LOGGING_TO_API_WHEN_MISSING_FLOW": "ignore",
     # Batch the embedded server's writes so it does not eat a core on small machines.

@@ -182,6 +182,12 @@ class Store:
             return True
         return True
 
+    def holds_lock(self, run_id: str) -> bool:
+        if not self._is_local():
+            return False
+        holder = self._lock_holder(Path(self.base) / ".lock")
+        return bool(holder) and holder.get("run_id") == run_id and holder.get("pid") == os.getpid()
+
     def release_lock(self, run_id: str) -> None:
         lock = Path(self.base) / ".lock"
         holder = self._lock_holder(lock)
@@ -230,10 +236,12 @@ class Store:
             self.delete_dir(rel)
         return removed
 
-    def commit(self, run_id: str, manifest: dict[str, Any]) -> None:
+    def commit(self, run_id: str, manifest: dict[str, Any], before_publish=None) -> None:
         """Write the manifest (the commit point), then publish staged files."""
         self.write_json(f"runs/{run_id}/manifest.json", manifest)
         self._runs_cache = None
+        if before_publish is not None:
+            before_publish()
         self.publish(manifest)
 
     def publish(self, manifest: dict[str, Any]) -> None:

@@ -249,3 +249,36 @@ def test_a_corpus_page_step_rewrites_documents_when_the_corpus_changes(prefect_h
     rota = [r for r in Store(tmp_path / "store").current("shared_blocks", "pages").to_pylist()
             if r["source_path"] == "rota.html"]
     assert dict(rota[0]["notes"])["removed"] == "1" and rota[0]["attempt"] == 2
+
+
+def test_prefect_receives_the_run_logs_and_a_per_document_artifact(first_run):
+    import asyncio
+    import time as _time
+
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterKey, FlowRunFilter, FlowRunFilterId, LogFilter, LogFilterFlowRunId
+
+    flow_run_id = first_run["manifest"]["prefect_flow_run_id"]
+    assert flow_run_id
+
+    async def fetch():
+        async with get_client() as client:
+            logs = await client.read_logs(log_filter=LogFilter(flow_run_id=LogFilterFlowRunId(any_=[flow_run_id])))
+            arts = await client.read_artifacts(
+                artifact_filter=ArtifactFilter(key=ArtifactFilterKey(any_=["thresher-documents"])),
+                flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[flow_run_id])))
+            return logs, arts
+
+    deadline = _time.monotonic() + 30
+    while True:  # the API log handler flushes in the background
+        logs, arts = asyncio.run(fetch())
+        messages = [entry.message for entry in logs]
+        if any("password protected" in msg for msg in messages) or _time.monotonic() > deadline:
+            break
+        _time.sleep(1)
+    assert any("hr/salary-review-2026-protected.pdf: extract failed: password protected" in msg for msg in messages)
+    assert arts, "no per-document artifact"
+    table = arts[0].data if isinstance(arts[0].data, list) else __import__("json").loads(arts[0].data)
+    by_doc = {row["document"]: row for row in table}
+    assert by_doc["hr/salary-review-2026-protected.pdf"]["status"] == "failed"
+    assert by_doc["policies/lending-policy-2025.pdf"]["chunks"] > 0

@@ -1,0 +1,58 @@
+"""Finding a document in the store from what a user types: a doc_id, a prefix, a path."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Any
+
+from thresher.flows.store import Store
+
+
+class NotFound(LookupError):
+    """No document (or more than one) matches; the message says which and why."""
+
+
+def resolve_document(store: Store, ref: str, source_roots: list[str]) -> tuple[str, list[dict[str, Any]]]:
+    """A doc_id, a unique doc_id prefix (6+ hex characters) or a source path -> (doc_id, catalog rows).
+
+    A path may be relative to the source folder, or a path to the file itself under
+    one of `source_roots`; a unique path suffix also matches.
+    """
+    catalog = store.catalog().to_pylist()
+    by_doc: dict[str, list[dict[str, Any]]] = {}
+    for r in catalog:
+        by_doc.setdefault(r["doc_id"], []).append(r)
+    ref_l = ref.lower()
+    if len(ref_l) >= 6 and all(c in "0123456789abcdef" for c in ref_l):
+        hits = [d for d in by_doc if d.startswith(ref_l)]
+        if len(hits) == 1:
+            return hits[0], by_doc[hits[0]]
+        if len(hits) > 1:
+            raise NotFound(f"doc_id prefix {ref} matches {len(hits)} documents; give more characters")
+    candidates = [ref.replace(os.sep, "/")]
+    p = Path(ref)
+    for root in source_roots:
+        if not root:
+            continue
+        try:
+            candidates.append(p.resolve().relative_to(Path(root).resolve()).as_posix())
+        except ValueError:
+            pass
+    for c in candidates:
+        rows = [r for r in catalog if r["source_path"] == c]
+        if rows:
+            row = max(rows, key=lambda r: r["present"])
+            return row["doc_id"], by_doc[row["doc_id"]]
+    suffix = [r for r in catalog if r["source_path"].endswith("/" + candidates[0])]
+    if len({r["doc_id"] for r in suffix}) == 1:
+        return suffix[0]["doc_id"], by_doc[suffix[0]["doc_id"]]
+    raise NotFound(f"no document {ref!r} in the store's catalog (give a doc_id or a path relative to the source folder)")
+
+
+def source_roots(store: Store, configured: str) -> list[str]:
+    roots = [configured]
+    latest = store.latest_run()
+    if latest is not None and latest.manifest.get("source_root"):
+        roots.append(latest.manifest["source_root"])
+    return roots
