@@ -8,7 +8,7 @@ from __future__ import annotations
 import importlib
 import sys
 
-BENCHES = ["orchestration"]
+BENCHES = ["orchestration", "incremental", "chunking"]
 
 
 def main(argv: list[str]) -> int:

@@ -1,0 +1,53 @@
+"""Weekly runs: a full run, a run with no changes, and a run with 1% of files changed.
+
+All three run in one process against the same Prefect server (started before the
+first timing by an empty flow), so the ratios compare the work, not server start-up.
+"""
+
+from __future__ import annotations
+
+import tempfile
+import time
+from pathlib import Path
+
+from bench.drive import change_files, make_drive
+
+DOCUMENTS = 300
+
+
+def main() -> None:
+    from thresher.flows import runtime  # noqa: F401
+
+    from prefect import flow
+
+    from thresher.flows import pipeline
+    from thresher.flows.config import load_definition
+
+    @flow
+    def warm_up() -> int:
+        return 0
+
+    warm_up()
+    definition = load_definition()
+    with tempfile.TemporaryDirectory() as tmp:
+        drive = make_drive(Path(tmp) / "drive", DOCUMENTS)
+        store = Path(tmp) / "store"
+        n_files = sum(1 for p in drive.rglob("*") if p.is_file())
+
+        def timed() -> tuple[float, dict]:
+            t = time.perf_counter()
+            m = pipeline.run(definition, str(drive), str(store), quiet=True)
+            return time.perf_counter() - t, m
+
+        full, m_full = timed()
+        same, m_same = timed()
+        changed = change_files(drive, 0.01)
+        one, m_one = timed()
+    print(f"drive: {n_files} files ({m_full['documents']['distinct']} distinct documents), "
+          f"{m_full['pages']} pages, {m_full['chunks']} chunks")
+    print(f"full run             {full:7.2f} s   1.00")
+    print(f"no changes           {same:7.2f} s   {same / full:.3f} of full  "
+          f"({m_same['documents']['processed']} processed, {m_same['changes']['upsert']} upserts)")
+    print(f"1% changed ({len(changed)} files) {one:7.2f} s   {one / full:.3f} of full  "
+          f"({m_one['documents']['processed']} processed, {m_one['changes']['upsert']} upserts, "
+          f"{m_one['changes']['delete']} deletes)")
