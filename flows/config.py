@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from thresher.flows.registry import BUILTIN_STEPS
 from thresher.steps.spec import StepParams, StepSpec
@@ -38,11 +38,27 @@ class SourceSection(_Strict):
 
 
 class RunnerSection(_Strict):
-    kind: Literal["sequential", "threads", "processes"] = "threads"
+    kind: Literal["sequential", "threads", "processes", "dask"] = "threads"
     workers: int = Field(default=2, ge=1, le=256)
+    # For kind "dask": the scheduler of an existing cluster ("tcp://host:8786"); without
+    # one, a local Dask cluster of `workers` processes is started for the run.
+    address: str | None = None
     batch_size: int = Field(default=8, ge=1, le=10_000)
     retries: int = Field(default=2, ge=0, le=20)
     retry_delay_seconds: float = Field(default=2.0, ge=0)
+
+    @field_validator("address")
+    @classmethod
+    def _scheduler_address(cls, v: str | None) -> str | None:
+        if v is not None and "://" not in v:
+            raise ValueError("a Dask scheduler address looks like tcp://host:8786")
+        return v
+
+    @model_validator(mode="after")
+    def _address_needs_dask(self) -> "RunnerSection":
+        if self.address is not None and self.kind != "dask":
+            raise ValueError(f"address is the Dask scheduler's; it needs kind: dask (kind is {self.kind})")
+        return self
 
 
 class ScheduleSection(_Strict):

@@ -179,6 +179,7 @@ class BatchRunner:
         self.store = store
         self.run_id = run_id
         self._caller: IsolatedCaller | None = None
+        self._attempts: dict[str, dict[str, int]] = {}  # stage -> unit_id -> highest stored attempt
 
     def _caller_for(self, step: ResolvedStep) -> IsolatedCaller | None:
         if step.spec.time_limit is None or step.spec.time_limit(step.params) is None:
@@ -198,6 +199,11 @@ class BatchRunner:
         by_start: dict[int, list[DocJob]] = defaultdict(list)
         for doc in job.docs:
             by_start[max(doc.start, job.segment[0])].append(doc)
+        known = [d.doc_id for d in job.docs if d.known]
+        if known:  # one read per stage for the batch, not one per document
+            for i in job.segment:
+                step = self.definition.steps[i]
+                self._attempts[step.name] = self.store.max_attempts(step.name, unit_kind(step), known)
         stored: dict[str, Loaded] = {}
         for start, docs in by_start.items():
             if start > 0:
@@ -247,8 +253,13 @@ class BatchRunner:
             ctx = StepContext(doc_id=doc.doc_id, source_path=doc.source_path, encoding=get_encoding)
             started = now_utc()
             t0 = time.perf_counter()
-            out = _call_step(step, inputs, ctx, self._caller_for(step))
+            caller = self._caller_for(step)
+            out = _call_step(step, inputs, ctx, caller)
             ms = (time.perf_counter() - t0) * 1000.0
+            if caller is None and step.spec.time_limit is not None and step.spec.time_limit(step.params):
+                for u in out:  # say so rather than pretend the guard was there
+                    u.warnings.append("time limit not enforced: this worker process may not start child "
+                                      "processes (a daemonic pool or cluster worker)")
             scope = "document"
             if doc.only is not None and i == indices[0]:
                 out, scope = self._keep_chosen(doc, i, out), "units"
@@ -282,7 +293,7 @@ class BatchRunner:
                 writes: dict[str, list[tuple[str, str]]], result: BatchResult, scope: str = "document") -> None:
         """Turn one step's units for one document into rows, and count them."""
         kind = unit_kind(step)
-        attempts = self.store.max_attempts(step.name, kind, [doc.doc_id]) if doc.known else {}
+        attempts = self._attempts.get(step.name, {}) if doc.known else {}
         result.step_seconds += ms / 1000.0
         rctx = RowContext(self.run_id, doc.doc_id, doc.source_path, step.name, step.spec.version,
                           step.digest, kind, prev, started, round(ms, 3), attempts)

@@ -12,6 +12,7 @@ import os
 import sys
 import time
 from collections import Counter, defaultdict
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
 from functools import lru_cache
@@ -135,10 +136,52 @@ def _versions() -> dict[str, str]:
     return out
 
 
-def _task_runner(kind: str, workers: int):
+def _task_runner(kind: str, workers: int, address: str | None = None):
     if kind == "processes":
         return ProcessPoolTaskRunner(max_workers=workers)
+    if kind == "dask":
+        from prefect_dask import DaskTaskRunner
+
+        if address:
+            return DaskTaskRunner(address=address)
+        import dask
+
+        # Non-daemonic workers may start child processes, which the per-document time
+        # limit needs (a daemonic process may not have children).
+        dask.config.set({"distributed.worker.daemon": False})
+        return DaskTaskRunner(cluster_class="distributed.LocalCluster",
+                              cluster_kwargs={"n_workers": workers, "threads_per_worker": 1, "processes": True,
+                                              "dashboard_address": None, "host": "127.0.0.1"})
     return ThreadPoolTaskRunner(max_workers=1 if kind == "sequential" else workers)
+
+
+@contextmanager
+def shared_api(kind: str):
+    """One Prefect API for every worker of a run.
+
+    Without PREFECT_API_URL each process of a process pool or Dask cluster would start
+    its own temporary server (several servers, no speed-up). For those runners one
+    temporary server is started here and its address handed to every worker.
+    """
+    if kind not in ("processes", "dask") or os.environ.get("PREFECT_API_URL"):
+        yield None
+        return
+    from prefect.server.api.server import SubprocessASGIServer
+    from prefect.settings import PREFECT_API_URL, temporary_settings
+
+    server = SubprocessASGIServer()
+    server.start(timeout=int(os.environ.get("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "90")))
+    os.environ["PREFECT_API_URL"] = server.api_url
+    try:
+        with temporary_settings({PREFECT_API_URL: server.api_url}):
+            yield server.api_url
+            # Send the run's queued logs while the server is still there to take them.
+            from prefect.logging.handlers import APILogWorker
+
+            APILogWorker.drain_all(timeout=10)
+    finally:
+        os.environ.pop("PREFECT_API_URL", None)
+        server.stop()
 
 
 @dataclass
@@ -397,7 +440,8 @@ def build_flow(definition: FlowDefinition, workers: int | None = None, name: str
     """The Prefect flow for this definition: its name and task runner come from it."""
     model = definition.model
     n = workers or model.runner.workers
-    return ingest.with_options(name=name or model.name, task_runner=_task_runner(model.runner.kind, n))
+    return ingest.with_options(name=name or model.name,
+                               task_runner=_task_runner(model.runner.kind, n, model.runner.address))
 
 
 def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
@@ -411,8 +455,10 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     store = Store(store_root)
     store.acquire_lock(run_id)
     try:
-        flow_obj = build_flow(definition, workers, name=None if rerun is None else f"{definition.model.name}-rerun")
-        return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
-                        run_id=run_id, force=force, quiet=quiet, rerun=rerun)
+        with shared_api(definition.model.runner.kind):
+            flow_obj = build_flow(definition, workers,
+                                  name=None if rerun is None else f"{definition.model.name}-rerun")
+            return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
+                            run_id=run_id, force=force, quiet=quiet, rerun=rerun)
     finally:
         store.release_lock(run_id)

@@ -73,6 +73,9 @@ class Store:
         self.root = str(root)
         self.fs, self.base = _filesystem(self.root)
         self._runs_cache: list[RunInfo] | None = None
+        # A committed run's files never change: their listings and ledgers are cached.
+        self._files_cache: dict[tuple[str, str], list[str]] = {}
+        self._ledger_cache: dict[tuple[str, str], list[str]] = {}
 
     # ----------------------------------------------------------------- paths and files
 
@@ -87,8 +90,18 @@ class Store:
         return self.fs.get_file_info(sel)
 
     def _atomic_write(self, rel: str, write) -> None:
+        """Write a file so that readers see all of it or none of it.
+
+        Local and shared file systems: a temporary name in the same folder, then a
+        rename (atomic on POSIX). Object stores: straight to the final key, since an
+        object appears only when its upload completes (a rename there is a copy).
+        """
         final = self.path(rel)
         parent = final.rsplit("/", 1)[0]
+        if not self._is_local():
+            with self.fs.open_output_stream(final) as out:
+                write(out)
+            return
         self.fs.create_dir(parent, recursive=True)
         tmp = f"{parent}/.tmp-{uuid.uuid4().hex}-{final.rsplit('/', 1)[1]}"
         try:
@@ -133,47 +146,32 @@ class Store:
 
     # ----------------------------------------------------------------- the lock
 
+    LOCK = ".lock"
+    # An object-store lock is advisory and expires, since a killed run cannot remove it
+    # and there is no exclusive create to rely on.
+    OBJECT_LOCK_HOURS = 12
+
     def _is_local(self) -> bool:
         return isinstance(self.fs, pafs.LocalFileSystem)
 
-    def acquire_lock(self, run_id: str, wait_seconds: float = 0.0) -> None:
-        """Take the store's write lock, or raise StoreLocked saying who holds it."""
-        if not self._is_local():
-            raise StoreError("writing to a non-local store is not supported yet")
-        Path(self.base).mkdir(parents=True, exist_ok=True)
-        lock = Path(self.base) / ".lock"
-        info = {"run_id": run_id, "pid": os.getpid(), "host": socket.gethostname(),
-                "since": datetime.now(timezone.utc).isoformat(timespec="seconds")}
-        deadline = time.monotonic() + wait_seconds
-        while True:
-            try:
-                fd = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-            except FileExistsError:
-                holder = self._lock_holder(lock)
-                if holder is not None and not self._holder_alive(holder):
-                    lock.unlink(missing_ok=True)  # left by a killed run
-                    continue
-                if time.monotonic() < deadline:
-                    time.sleep(0.5)
-                    continue
-                who = (f"run {holder.get('run_id')} (pid {holder.get('pid')} on {holder.get('host')}, "
-                       f"since {holder.get('since')})") if holder else "another run"
-                raise StoreLocked(f"store {self.root} is in use by {who}; wait for it to finish") from None
-            with os.fdopen(fd, "w") as f:
-                json.dump(info, f)
-            return
+    def _lock_info(self, run_id: str) -> dict:
+        now = datetime.now(timezone.utc)
+        return {"run_id": run_id, "pid": os.getpid(), "host": socket.gethostname(),
+                "since": now.isoformat(timespec="seconds"),
+                "expires": (now.timestamp() + self.OBJECT_LOCK_HOURS * 3600)}
 
-    @staticmethod
-    def _lock_holder(lock: Path) -> dict | None:
+    def lock_holder(self) -> dict | None:
         try:
-            return json.loads(lock.read_text())
+            with self.fs.open_input_stream(self.path(self.LOCK)) as f:
+                return json.loads(f.read())
         except (OSError, ValueError):
             return None
 
     @staticmethod
     def _holder_alive(holder: dict) -> bool:
         if holder.get("host") != socket.gethostname():
-            return True  # cannot tell; assume alive
+            expires = holder.get("expires")
+            return expires is None or float(expires) > time.time()
         try:
             os.kill(int(holder.get("pid", -1)), 0)
         except ProcessLookupError:
@@ -182,17 +180,62 @@ class Store:
             return True
         return True
 
+    def _refuse(self, holder: dict | None) -> StoreLocked:
+        who = (f"run {holder.get('run_id')} (pid {holder.get('pid')} on {holder.get('host')}, "
+               f"since {holder.get('since')})") if holder else "another run"
+        return StoreLocked(f"store {self.root} is in use by {who}; wait for it to finish")
+
+    def acquire_lock(self, run_id: str, wait_seconds: float = 0.0) -> None:
+        """Take the store's write lock, or raise StoreLocked saying who holds it.
+
+        On a local or shared file system the lock file is created exclusively
+        (O_EXCL). On object storage the lock is advisory: thresher writes it, reads
+        it back after a pause and gives way if another run's lock replaced it.
+        """
+        deadline = time.monotonic() + wait_seconds
+        while True:
+            holder = self.lock_holder()
+            if holder is not None and not self._holder_alive(holder):
+                self._remove_lock()  # left by a killed run
+                holder = None
+            if holder is None and self._create_lock(run_id):
+                return
+            if time.monotonic() < deadline:
+                time.sleep(0.5)
+                continue
+            raise self._refuse(self.lock_holder()) from None
+
+    def _create_lock(self, run_id: str) -> bool:
+        data = json.dumps(self._lock_info(run_id))
+        if self._is_local():
+            Path(self.base).mkdir(parents=True, exist_ok=True)
+            try:
+                fd = os.open(Path(self.base) / self.LOCK, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                return False
+            with os.fdopen(fd, "w") as f:
+                f.write(data)
+            return True
+        with self.fs.open_output_stream(self.path(self.LOCK)) as out:
+            out.write(data.encode())
+        time.sleep(1.0)  # let a concurrent writer's lock land, then see whose survived
+        holder = self.lock_holder()
+        return bool(holder) and holder.get("run_id") == run_id
+
+    def _remove_lock(self) -> None:
+        try:
+            self.fs.delete_file(self.path(self.LOCK))
+        except OSError:
+            pass
+
     def holds_lock(self, run_id: str) -> bool:
-        if not self._is_local():
-            return False
-        holder = self._lock_holder(Path(self.base) / ".lock")
+        holder = self.lock_holder()
         return bool(holder) and holder.get("run_id") == run_id and holder.get("pid") == os.getpid()
 
     def release_lock(self, run_id: str) -> None:
-        lock = Path(self.base) / ".lock"
-        holder = self._lock_holder(lock)
+        holder = self.lock_holder()
         if holder and holder.get("run_id") == run_id:
-            lock.unlink(missing_ok=True)
+            self._remove_lock()
 
     # ----------------------------------------------------------------- runs
 
@@ -297,13 +340,22 @@ class Store:
             seq[include_run] = max(seq.values(), default=0) + 1
         return seq
 
+    def _committed(self, run_id: str) -> bool:
+        return any(r.run_id == run_id for r in self.runs())
+
     def _stage_files(self, stage: str, run_ids: Iterable[str]) -> list[str]:
         files = []
         for run_id in sorted(run_ids):
-            for info in self._list(f"stages/{stage}/{run_id}"):
-                if info.type == pafs.FileType.File and info.base_name.endswith(".parquet") \
-                        and not info.base_name.startswith(".tmp-"):
-                    files.append(info.path)
+            key = (stage, run_id)
+            if key in self._files_cache:
+                files.extend(self._files_cache[key])
+                continue
+            found = [info.path for info in self._list(f"stages/{stage}/{run_id}")
+                     if info.type == pafs.FileType.File and info.base_name.endswith(".parquet")
+                     and not info.base_name.startswith(".tmp-")]
+            if self._committed(run_id):
+                self._files_cache[key] = found
+            files.extend(found)
         return files
 
     def stage_rows(self, stage: str, unit: str, doc_ids: Iterable[str] | None = None,
@@ -327,13 +379,19 @@ class Store:
         docs: list[str] = []
         seqs: list[int] = []
         for run_id in seq:
-            for info in self._list(f"runs/{run_id}/writes/{stage}"):
-                if info.base_name.endswith(".parquet") and not info.base_name.startswith(".tmp-"):
-                    t = pq.read_table(info.path, filesystem=self.fs, columns=["doc_id", "scope"])
-                    mask = pa.compute.equal(t.column("scope"), "document")
-                    found = t.filter(mask).column("doc_id").to_pylist()
-                    docs.extend(found)
-                    seqs.extend([seq[run_id]] * len(found))
+            key = (stage, run_id)
+            found = self._ledger_cache.get(key)
+            if found is None:
+                found = []
+                for info in self._list(f"runs/{run_id}/writes/{stage}"):
+                    if info.base_name.endswith(".parquet") and not info.base_name.startswith(".tmp-"):
+                        t = pq.read_table(info.path, filesystem=self.fs, columns=["doc_id", "scope"])
+                        mask = pa.compute.equal(t.column("scope"), "document")
+                        found.extend(t.filter(mask).column("doc_id").to_pylist())
+                if self._committed(run_id):
+                    self._ledger_cache[key] = found
+            docs.extend(found)
+            seqs.extend([seq[run_id]] * len(found))
         return pd.DataFrame({"doc_id": docs, "seq": seqs})
 
     def current(self, stage: str, unit: str, doc_ids: Iterable[str] | None = None,

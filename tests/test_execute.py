@@ -9,8 +9,18 @@ from thresher.flows.execute import BatchJob, BatchRunner, DocJob
 from thresher.flows.store import Store
 
 
+def _document_steps(data: dict) -> dict:
+    """The default chain without its corpus-wide steps, so one batch runs it through split."""
+    data["steps"] = [s for s in data["steps"] if s["step"] not in ("boilerplate", "dedup", "tokens")]
+    return data
+
+
+def _segment(definition) -> list[int]:
+    return list(range(len(definition.steps)))
+
+
 def _definition(max_file_mb: float = 200):
-    data = yaml.safe_load(default_config_text())
+    data = _document_steps(yaml.safe_load(default_config_text()))
     data["steps"][0]["params"]["max_file_mb"] = max_file_mb
     return build_definition(data, "test")
 
@@ -18,7 +28,7 @@ def _definition(max_file_mb: float = 200):
 def _run(tmp_path, definition, doc: DocJob):
     store = Store(tmp_path / "store")
     runner = BatchRunner(definition, store, "r1")
-    result = runner.run(BatchJob("r1", str(tmp_path / "store"), [0, 1, 2, 3], "b0", [doc]))
+    result = runner.run(BatchJob("r1", str(tmp_path / "store"), _segment(definition), "b0", [doc]))
     rows = store.current("extract", "pages", include_run="r1").to_pylist()
     return result, rows
 
@@ -41,7 +51,7 @@ def test_a_file_over_the_size_limit_is_not_read_at_all(tmp_path):
 
 def test_a_step_that_raises_fails_that_document_with_its_traceback(tmp_path):
     (tmp_path / "ok.md").write_text("# Heading\n\nSome text about the reading room.\n")
-    data = yaml.safe_load(default_config_text())
+    data = _document_steps(yaml.safe_load(default_config_text()))
     data["steps"].insert(1, {"step": "example_steps:MASK_EMAILS"})
     definition = build_definition(data, "test")
     step = definition.steps[1]
@@ -49,7 +59,7 @@ def test_a_step_that_raises_fails_that_document_with_its_traceback(tmp_path):
     object.__setattr__(step, "spec", broken)
     store = Store(tmp_path / "store")
     doc = DocJob("c" * 64, "ok.md", str(tmp_path / "ok.md"), 40, 0.0, 0, False)
-    BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, [0, 1, 2, 3, 4], "b0", [doc]))
+    BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, _segment(definition), "b0", [doc]))
     rows = store.current("mask_emails", "pages", include_run="r1").to_pylist()
     assert len(rows) == 1 and rows[0]["locator"] == "document"
     assert rows[0]["reason"] == "mask_emails failed: ZeroDivisionError: division by zero"
@@ -60,7 +70,7 @@ def test_a_step_that_raises_fails_that_document_with_its_traceback(tmp_path):
 
 
 def _guarded_definition(limit: float):
-    data = yaml.safe_load(default_config_text())
+    data = _document_steps(yaml.safe_load(default_config_text()))
     data["steps"][0] = {"step": "example_steps:STUBBORN_EXTRACT", "params": {"time_limit_seconds": limit}}
     return build_definition(data, "test")
 
@@ -74,7 +84,8 @@ def test_a_hung_parser_is_stopped_at_the_time_limit_and_the_batch_goes_on(tmp_pa
         (tmp_path / name).write_text(text)
         docs.append(DocJob(str(i) * 64, name, str(tmp_path / name), len(text), 0.0, 0, False))
     store = Store(tmp_path / "store")
-    BatchRunner(_guarded_definition(1.5), store, "r1").run(BatchJob("r1", store.root, [0, 1, 2, 3], "b0", docs))
+    definition = _guarded_definition(1.5)
+    BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, _segment(definition), "b0", docs))
     rows = {r["source_path"]: r for r in store.current("extract", "pages", include_run="r1").to_pylist()}
     assert rows["hangs.txt"]["status"] == "failed"
     assert rows["hangs.txt"]["reason"].startswith("time limit: extract was stopped after 1.5 s")

@@ -91,7 +91,7 @@ def test_every_chunk_walks_back_to_a_page_and_a_file(first_run):
                 assert pid in by_id, f"parent {pid} of {r['step']} unit {r['unit_id']} is missing"
                 assert by_id[pid]["doc_id"] == chunk["doc_id"]
                 frontier.append(by_id[pid])
-        assert set(chain) == set(STAGES), chain
+        assert set(STAGES) <= set(chain), chain  # format-limited stages may add to it
         assert (first_run["drive"] / catalog[chunk["doc_id"]]["source_path"]).is_file()
 
 
@@ -177,7 +177,7 @@ def test_a_parameter_change_reruns_from_that_step_only(prefect_harness, sample_d
     store_dir = tmp_path / "store"
     _run(sample_drive, store_dir)
     data = yaml.safe_load(default_config_text())
-    data["steps"][3]["params"]["max_tokens"] = 120
+    next(s for s in data["steps"] if s["step"] == "split")["params"]["max_tokens"] = 120
     changed = build_definition(data, "test")
     m = _run(sample_drive, store_dir, definition=changed)
     assert m["written"].get("extract") is None and m["written"].get("clean") is None
@@ -189,7 +189,7 @@ def test_a_parameter_change_reruns_from_that_step_only(prefect_harness, sample_d
 def test_a_dropped_step_and_an_own_step_run_without_touching_flows(prefect_harness, sample_drive, tmp_path):
     data = yaml.safe_load(default_config_text())
     data["steps"] = [s for s in data["steps"] if s["step"] != "language"]
-    data["steps"].insert(1, {"step": "example_steps:MASK_EMAILS"})
+    data["steps"].insert(1, {"step": "example_steps:MASK_EMAILS"})  # right after extract
     (sample_drive / "contacts.txt").write_text(
         "Questions about the rota go to rota.desk@quillfern.example or to the duty manager at the branch.\n")
     m = _run(sample_drive, tmp_path / "store", definition=build_definition(data, "test"))

@@ -89,7 +89,7 @@ def test_rerun_targets_name_the_failed_step_or_the_whole_document(prefect_harnes
     t = target_for_document(definition, store, protected, "hr/...", page=1, step_name=None)
     assert t.locators is None and "whole document" in t.why
     t = target_for_document(definition, store, cat["README.txt"], "README.txt", page=None, step_name="split")
-    assert (t.step, t.locators) == (3, None)
+    assert (definition.steps[t.step].name, t.locators) == ("split", None)
     # A file edited since it was catalogued cannot be re-run from its old bytes.
     (sample_drive / "README.txt").write_text("changed\n")
     with pytest.raises(RerunError, match="changed since it was catalogued"):
