@@ -1,26 +1,46 @@
-"""The hand-off table (one row per live chunk) and the change set since the last one."""
+"""The hand-off table (one row per live chunk) and the change set since the last one.
+
+Built in groups of documents, so memory holds one group's chunks at a time, not the
+drive's: each group's chunk stages are read with a doc_id filter, its live chunks
+appended to the staged hand-off file, and a digest per chunk kept (a small Arrow
+table) to compare with the previous hand-off's digests for the change set.
+"""
 
 from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import dataclass
+from collections import Counter
+from dataclasses import dataclass, field
 from typing import Any
 
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from thresher.flows import schema
 from thresher.flows.config import FlowDefinition
 from thresher.flows.store import Store
 from thresher.steps.units import OK
 
+# Documents per group: a few thousand chunks in memory at a time on a typical drive.
+GROUP_DOCS = 500
+
+DIGESTS = pa.schema([
+    pa.field("chunk_id", pa.string(), nullable=False),
+    pa.field("digest", pa.string(), nullable=False),
+    pa.field("doc_id", pa.string()),
+    pa.field("source_path", pa.string()),
+    pa.field("content_hash", pa.string()),
+])
+
 
 @dataclass
 class HandoffResult:
-    chunks: pa.Table
-    changes: pa.Table
+    chunks: int
+    tokens: int
     upserts: int
     deletes: int
+    per_doc: dict[str, tuple[int, int]] = field(default_factory=dict)  # doc_id -> (chunks, tokens)
 
 
 def _chunk_stages(definition: FlowDefinition) -> list[tuple[str, bool]]:
@@ -29,11 +49,13 @@ def _chunk_stages(definition: FlowDefinition) -> list[tuple[str, bool]]:
 
 
 def _row_digest(row: dict[str, Any]) -> str:
+    """What an index holds of a chunk: every hand-off column but the producing run."""
     body = {k: v for k, v in row.items() if k != "run_id"}
-    if isinstance(body.get("token_counts"), list):
-        body["token_counts"] = sorted(map(tuple, body["token_counts"]))
-    elif isinstance(body.get("token_counts"), dict):
-        body["token_counts"] = sorted(body["token_counts"].items())
+    counts = body.get("token_counts")
+    if isinstance(counts, dict):
+        body["token_counts"] = sorted(counts.items())
+    elif isinstance(counts, list):
+        body["token_counts"] = sorted(map(tuple, counts))
     return hashlib.sha256(json.dumps(body, sort_keys=True, default=str).encode()).hexdigest()
 
 
@@ -42,11 +64,13 @@ def _plain_hash(text: str) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
-def build_handoff(definition: FlowDefinition, store: Store, run_id: str,
-                  live: dict[str, tuple[int, str]]) -> HandoffResult:
-    # A chunk is live when every chunk stage holds it as ok, except that a stage limited
-    # to some formats may have passed it by. Its columns come from the last stage holding it.
-    docs = sorted(live)
+def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: list[str],
+                live: dict[str, tuple[int, str]]) -> list[dict[str, Any]]:
+    """Hand-off rows of one group of documents, in (path, chunk index) order.
+
+    A chunk is live when every chunk stage holds it as ok, except that a stage limited
+    to some formats may have passed it by. Its columns come from the last stage holding it.
+    """
     live_ids: set[str] | None = None
     not_ok: set[str] = set()
     hashes: dict[str, str] = {}
@@ -62,7 +86,6 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str,
             if r.get("content_hash"):
                 hashes[r["chunk_id"]] = r["content_hash"]
     keep = (live_ids or set()) - not_ok
-
     out = []
     for r in latest.values():
         if r["chunk_id"] not in keep or r["doc_id"] not in live:
@@ -83,21 +106,68 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str,
             "run_id": r["run_id"],
         })
     out.sort(key=lambda r: (r["source_path"], r["chunk_index"] or 0, r["chunk_id"]))
-    chunks = pa.Table.from_pylist(out, schema=schema.HANDOFF)
+    return out
 
-    previous = store.handoff()
-    before = {} if previous is None else {r["chunk_id"]: r for r in previous.to_pylist()}
-    after = {r["chunk_id"]: r for r in out}
-    changes = []
-    for cid, r in after.items():
-        old = before.get(cid)
-        if old is None or _row_digest(old) != _row_digest(r):
-            changes.append({"chunk_id": cid, "action": "upsert", "doc_id": r["doc_id"], "source_path": r["source_path"],
-                            "content_hash": r["content_hash"], "run_id": run_id})
-    for cid, r in before.items():
-        if cid not in after:
-            changes.append({"chunk_id": cid, "action": "delete", "doc_id": r["doc_id"], "source_path": r["source_path"],
-                            "content_hash": r["content_hash"], "run_id": run_id})
-    changes.sort(key=lambda c: (c["action"], c["source_path"] or "", c["chunk_id"]))
-    n_up = sum(1 for c in changes if c["action"] == "upsert")
-    return HandoffResult(chunks, pa.Table.from_pylist(changes, schema=schema.CHANGES), n_up, len(changes) - n_up)
+
+def previous_digests(store: Store) -> pa.Table:
+    """Digests of the hand-off now published (computed from it if it has none stored)."""
+    rel = store.published("handoff/digests.parquet")
+    if rel is not None:
+        return store.read_table(rel)
+    previous = store.published("handoff/chunks.parquet")
+    if previous is None:
+        return DIGESTS.empty_table()
+    rows = [{"chunk_id": r["chunk_id"], "digest": _row_digest(r), "doc_id": r["doc_id"],
+             "source_path": r["source_path"], "content_hash": r["content_hash"]}
+            for r in store.read_table(previous).to_pylist()]
+    return pa.Table.from_pylist(rows, schema=DIGESTS)
+
+
+def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str]],
+                  chunks_rel: str, digests_rel: str, changes_rel: str) -> HandoffResult:
+    """Write the hand-off, its digests and the change set to the given (staged) paths."""
+    order = sorted(live, key=lambda d: live[d][1])
+    digest_parts: list[pa.Table] = []
+    per_doc: dict[str, tuple[int, int]] = {}
+    total_chunks = total_tokens = 0
+    with store.parquet_writer(chunks_rel, schema.HANDOFF, run_id=run_id) as writer:
+        for start in range(0, len(order), GROUP_DOCS):
+            rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live)
+            if not rows:
+                continue
+            writer.write_table(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
+            digest_parts.append(pa.Table.from_pylist(
+                [{"chunk_id": r["chunk_id"], "digest": _row_digest(r), "doc_id": r["doc_id"],
+                  "source_path": r["source_path"], "content_hash": r["content_hash"]} for r in rows],
+                schema=DIGESTS))
+            counts: Counter = Counter()
+            tokens: Counter = Counter()
+            for r in rows:
+                counts[r["doc_id"]] += 1
+                tokens[r["doc_id"]] += r["token_count"] or 0
+            per_doc.update({d: (counts[d], tokens[d]) for d in counts})
+            total_chunks += len(rows)
+            total_tokens += sum(tokens.values())
+    new = pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
+    store.write_table(digests_rel, new, run_id=run_id)
+
+    old = previous_digests(store)
+    # Upsert: new chunk ids, or any column an index holds changed. Delete: ids gone.
+    joined = new.join(old.select(["chunk_id", "digest"]).rename_columns(["chunk_id", "old_digest"]),
+                      keys="chunk_id", join_type="left outer")
+    changed = pc.or_kleene(pc.is_null(joined.column("old_digest")),
+                           pc.not_equal(joined.column("digest"), joined.column("old_digest")))
+    upserts = joined.filter(pc.fill_null(changed, True))
+    gone = old.join(new.select(["chunk_id"]), keys="chunk_id", join_type="left anti")
+
+    def _changes(t: pa.Table, action: str) -> pa.Table:
+        n = t.num_rows
+        return pa.table({"chunk_id": t.column("chunk_id"), "action": pa.array([action] * n, pa.string()),
+                         "doc_id": t.column("doc_id"), "source_path": t.column("source_path"),
+                         "content_hash": t.column("content_hash"), "run_id": pa.array([run_id] * n, pa.string())},
+                        schema=schema.CHANGES)
+
+    changes = pa.concat_tables([_changes(upserts, "upsert"), _changes(gone, "delete")])
+    changes = changes.sort_by([("action", "ascending"), ("source_path", "ascending"), ("chunk_id", "ascending")])
+    store.write_table(changes_rel, changes, run_id=run_id)
+    return HandoffResult(total_chunks, total_tokens, upserts.num_rows, gone.num_rows, per_doc)

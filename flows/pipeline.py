@@ -262,7 +262,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
 
 
 def _per_document(store: Store, definition: FlowDefinition, live: dict[str, tuple[int, str]],
-                  handoff_rows: list[dict[str, Any]], run_id: str) -> list[dict[str, Any]]:
+                  handoff_docs: dict[str, tuple[int, int]], run_id: str) -> list[dict[str, Any]]:
     """One row per live document for the run's summary artifact."""
     by_doc: dict[str, Counter] = defaultdict(Counter)
     pages: Counter = Counter()
@@ -274,17 +274,14 @@ def _per_document(store: Store, definition: FlowDefinition, live: dict[str, tupl
             by_doc[d][s] += 1
             if step is first:
                 pages[d] += 1
-    chunks: Counter = Counter()
-    tokens: Counter = Counter()
-    for r in handoff_rows:
-        chunks[r["doc_id"]] += 1
-        tokens[r["doc_id"]] += r["token_count"] or 0
+    chunks = {d: n for d, (n, _) in handoff_docs.items()}
+    tokens = {d: t for d, (_, t) in handoff_docs.items()}
     rows = []
     for d, (_, path) in sorted(live.items(), key=lambda kv: kv[1][1]):
         c = by_doc[d]
-        rows.append({"document": path, "pages": pages[d], "chunks": chunks[d], "tokens": tokens[d],
+        rows.append({"document": path, "pages": pages[d], "chunks": chunks.get(d, 0), "tokens": tokens.get(d, 0),
                      "failed units": c["failed"], "dropped units": c["dropped"],
-                     "status": "failed" if c["failed"] else ("ok" if chunks[d] else "no chunks")})
+                     "status": "failed" if c["failed"] else ("ok" if chunks.get(d) else "no chunks")})
     return rows
 
 
@@ -336,23 +333,23 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings)
 
         t0 = time.perf_counter()
-        handoff = build_handoff(definition, store, run_id, plan.live)
+        staged = f"runs/{run_id}/staged"
+        handoff = build_handoff(definition, store, run_id, plan.live, f"{staged}/chunks.parquet",
+                                f"{staged}/digests.parquet", f"{staged}/changes.parquet")
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
+                   "staged/digests.parquet": "handoff/digests.parquet",
                    "staged/changes.parquet": f"handoff/changes/{run_id}.parquet"}
         if rerun is None:
-            store.write_table(f"runs/{run_id}/staged/catalog.parquet", plan.catalog, run_id=run_id)
+            store.write_table(f"{staged}/catalog.parquet", plan.catalog, run_id=run_id)
             publish["staged/catalog.parquet"] = "catalog.parquet"
-        store.write_table(f"runs/{run_id}/staged/chunks.parquet", handoff.chunks, run_id=run_id)
-        store.write_table(f"runs/{run_id}/staged/changes.parquet", handoff.changes, run_id=run_id)
         timings["handoff"] = time.perf_counter() - t0
 
         live_docs = sorted(plan.live)
         stages = [(s.name, s.spec.produces) for s in definition.steps]
         current = stage_counts(store, stages, live_docs, include_run=run_id)
-        handoff_rows = handoff.chunks.select(["doc_id", "token_count"]).to_pylist()
-        tokens = sum(r["token_count"] or 0 for r in handoff_rows)
+        tokens = handoff.tokens
         pages = next((c.total for c in current if c.stage == definition.steps[0].name), 0)
-        per_doc = _per_document(store, definition, plan.live, handoff_rows, run_id)
+        per_doc = _per_document(store, definition, plan.live, handoff.per_doc, run_id)
         from prefect.runtime import flow_run as _flow_run
 
         manifest = {
@@ -377,7 +374,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "written": acc.counts,
             "current": {c.stage: c.by_status for c in current},
             "pages": pages,
-            "chunks": handoff.chunks.num_rows,
+            "chunks": handoff.chunks,
             "tokens": tokens,
             "changes": {"upsert": handoff.upserts, "delete": handoff.deletes},
             "failures": len(acc.failures),

@@ -81,7 +81,8 @@ def page_row(ctx: RowContext, page: Page) -> dict[str, Any]:
     row.update(
         page=page.page,
         text=page.text,
-        blocks=[{"kind": b.kind, "level": b.level, "text": b.text} for b in page.blocks],
+        blocks=[{"kind": b.kind, "level": b.level, "text": b.text, "language": b.language,
+                 "language_prob": b.language_prob} for b in page.blocks],
         title=page.title,
         format=page.format,
         language=page.language,
@@ -153,7 +154,9 @@ def row_to_page(stage: str, row: dict[str, Any]) -> Page:
     return Page(
         locator=row["locator"],
         page=row.get("page"),
-        blocks=[Block(kind=b["kind"], text=b["text"], level=int(b["level"] or 0)) for b in row.get("blocks") or []],
+        blocks=[Block(kind=b["kind"], text=b["text"], level=int(b["level"] or 0),
+                      language=b.get("language"), language_prob=b.get("language_prob"))
+                for b in row.get("blocks") or []],
         title=row.get("title") or "",
         format=row.get("format") or "",
         language=row.get("language"),

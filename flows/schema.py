@@ -39,6 +39,9 @@ BLOCK = pa.struct(
         pa.field("kind", pa.string()),
         pa.field("level", pa.int8()),
         pa.field("text", pa.string()),
+        # Set by the language step (null before it, and for blocks it did not judge).
+        pa.field("language", pa.string()),
+        pa.field("language_prob", pa.float64()),
     ]
 )
 
@@ -71,6 +74,16 @@ CHUNK_COLUMNS = [
 
 NOTES = pa.field("notes", pa.map_(pa.string(), pa.string()))
 
+# What a step took out of a unit's text and why (extract: running headers, footers,
+# page numbers; boilerplate: blocks that repeat across a site's pages).
+REMOVAL = pa.struct(
+    [
+        pa.field("kind", pa.string()),
+        pa.field("text", pa.string()),
+        pa.field("reason", pa.string()),
+    ]
+)
+
 STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
     "extract": [
         pa.field("method", pa.string()),
@@ -79,22 +92,42 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
         pa.field("word_count", pa.int32()),
         pa.field("unprintable_share", pa.float64()),
         pa.field("table_share", pa.float64()),
+        pa.field("table_count", pa.int32()),
+        pa.field("columns", pa.int32()),
+        pa.field("removed", pa.list_(REMOVAL)),
         pa.field("encoding", pa.string()),
+        pa.field("byte_size", pa.int64()),
+        pa.field("modified_at", TS),
+    ],
+    "boilerplate": [
+        pa.field("site", pa.string()),
+        pa.field("site_pages", pa.int32()),
+        pa.field("removed", pa.list_(REMOVAL)),
     ],
     "clean": [
         pa.field("fixes", pa.map_(pa.string(), pa.int32())),
         pa.field("chars_removed", pa.int32()),
         pa.field("removed_share", pa.float64()),
+        pa.field("heavy_removal", pa.bool_()),
+        pa.field("removed", pa.list_(REMOVAL)),
     ],
     "language": [
         pa.field("doc_language", pa.string()),
         pa.field("doc_mixed", pa.bool_()),
+        pa.field("doc_languages", pa.map_(pa.string(), pa.float64())),
     ],
-    "split": [],
+    "split": [
+        pa.field("merged_sections", pa.int32()),
+        pa.field("overlap_chars", pa.int32()),
+    ],
     "dedup": [
-        pa.field("content_hash", pa.string()),
-        pa.field("duplicate_of", pa.string()),
-        pa.field("similarity", pa.float64()),
+        pa.field("content_hash", pa.string()),  # SHA-256 of the normalised text
+        pa.field("document_hash", pa.string()),  # SHA-256 of the document's normalised text
+        pa.field("duplicate_of", pa.string()),  # chunk_id of the canonical chunk
+        pa.field("duplicate_kind", pa.string()),  # exact | near | document
+        pa.field("similarity", pa.float64()),  # 1.0 for copies, else the MinHash estimate
+        pa.field("signature", pa.list_(pa.uint32())),  # MinHash minima, kept for later runs
+        pa.field("band_keys", pa.list_(pa.uint64())),  # one LSH key per band
     ],
     "tokens": [
         pa.field("token_counts", pa.map_(pa.string(), pa.int32())),

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import json
 import os
+from contextlib import contextmanager
 import secrets
 import socket
 import time
@@ -113,6 +114,33 @@ class Store:
                 self.fs.delete_file(tmp)
             except OSError:
                 pass
+            raise
+
+    @contextmanager
+    def parquet_writer(self, rel: str, sch: pa.Schema, run_id: str | None = None):
+        """A Parquet writer for a file written in pieces, with the same atomicity as _atomic_write."""
+        if run_id is not None:
+            meta = dict(sch.metadata or {})
+            meta[RUN_META_KEY] = run_id.encode()
+            sch = sch.with_metadata(meta)
+        final = self.path(rel)
+        parent = final.rsplit("/", 1)[0]
+        if self._is_local():
+            self.fs.create_dir(parent, recursive=True)
+            target = f"{parent}/.tmp-{uuid.uuid4().hex}-{final.rsplit('/', 1)[1]}"
+        else:
+            target = final
+        try:
+            with self.fs.open_output_stream(target) as out, pq.ParquetWriter(out, sch, compression=COMPRESSION) as w:
+                yield w
+            if target != final:
+                self.fs.move(target, final)
+        except BaseException:
+            if target != final:
+                try:
+                    self.fs.delete_file(target)
+                except OSError:
+                    pass
             raise
 
     def write_table(self, rel: str, table: pa.Table, run_id: str | None = None) -> None:

@@ -35,11 +35,18 @@ DOCUMENT_LOCATOR = "document"
 
 @dataclass
 class Block:
-    """One structural piece of a page: a heading, a paragraph, a table or code."""
+    """One structural piece of a page: a heading, a paragraph, a table or code.
+
+    `language`/`language_prob` are set by the language step: the block's own detected
+    language ("unknown" when unsure) and its probability, or None when the block was
+    not judged (too short, or code). The split step derives a chunk's language from them.
+    """
 
     kind: str
     text: str
     level: int = 0
+    language: str | None = None
+    language_prob: float | None = None
 
 
 @dataclass

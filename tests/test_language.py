@@ -37,7 +37,10 @@ def test_detects_english_german_french(text, code):
     assert out.language == code
     assert out.language_prob >= 0.80
     assert out.status == OK
-    assert out.payload == {"doc_language": code, "doc_mixed": False}
+    assert out.payload == {"doc_language": code, "doc_mixed": False, "doc_languages": {code: 1.0}}
+    # One judged block: the page takes its answer.
+    assert out.blocks[0].language == out.language
+    assert out.blocks[0].language_prob == pytest.approx(out.language_prob)
 
 
 def test_short_text_is_unknown():
@@ -88,13 +91,18 @@ def test_document_language_is_character_weighted():
     out = detect_language(pages, LanguageParams())
     assert [p.language for p in out] == ["en", "de", "unknown"]
     # German holds ~3/4 of the detected characters, English ~1/4 (>= 20%): mixed.
-    assert all(p.payload == {"doc_language": "de", "doc_mixed": True} for p in out)
+    shares = {"de": len(long_german) / (len(long_german) + len(ENGLISH)),
+              "en": len(ENGLISH) / (len(long_german) + len(ENGLISH))}
+    for p in out:
+        assert (p.payload["doc_language"], p.payload["doc_mixed"]) == ("de", True)
+        assert p.payload["doc_languages"] == pytest.approx(shares)
 
 
 def test_small_second_language_does_not_make_a_document_mixed():
     pages = [page(1, " ".join([ENGLISH] * 5)), page(2, FRENCH)]
     out = detect_language(pages, LanguageParams())
-    assert out[0].payload == {"doc_language": "en", "doc_mixed": False}
+    assert (out[0].payload["doc_language"], out[0].payload["doc_mixed"]) == ("en", False)
+    assert out[0].payload["doc_languages"]["fr"] < 0.20
 
 
 def test_keep_drops_other_languages_and_keeps_unknown():
@@ -115,8 +123,29 @@ def test_blocks_copied_and_lineage():
     src = Page(locator="page/2", page=2, blocks=[Block(HEADING, "Hours", 1),
                                                  Block(PARAGRAPH, ENGLISH)])
     [out] = detect_language([src], LanguageParams())
-    assert out.blocks == src.blocks and out.blocks[0] is not src.blocks[0]
+    assert [(b.kind, b.text, b.level) for b in out.blocks] == [
+        (b.kind, b.text, b.level) for b in src.blocks]
+    assert out.blocks[0] is not src.blocks[0] and src.blocks[1].language is None
     assert out.parents == ["page/2"] and out.locator == "page/2"
+
+
+def test_each_long_block_gets_its_own_language():
+    src = Page(locator="page/1", page=1, blocks=[
+        Block(HEADING, "Opening hours", 1), Block(PARAGRAPH, ENGLISH), Block(PARAGRAPH, GERMAN),
+        Block(CODE, "renew(loan_id)  # twice at most, then return"), Block(PARAGRAPH, FRENCH)])
+    [out] = detect_language([src], LanguageParams())
+    assert [b.language for b in out.blocks] == [None, "en", "de", None, "fr"]
+    assert all(b.language_prob >= 0.8 for b in out.blocks if b.language)
+    assert out.blocks[0].language_prob is None  # a short heading is not judged
+    # Each block's answer is what the text on its own gives.
+    assert out.blocks[2].language_prob == detect_text(GERMAN, LanguageParams())[1]
+
+
+def test_an_unsure_block_is_unknown_with_its_probability():
+    mixed = ENGLISH[:80] + " " + GERMAN[:80]
+    src = Page(locator="page/1", page=1, blocks=[Block(PARAGRAPH, mixed), Block(PARAGRAPH, ENGLISH)])
+    [out] = detect_language([src], LanguageParams(min_probability=1.0))
+    assert out.blocks[0].language == "unknown" and 0 < out.blocks[0].language_prob < 1.0
 
 
 def test_params_are_checked():
@@ -139,3 +168,34 @@ def test_same_result_in_a_fresh_process():
     done = subprocess.run([sys.executable, "-c", code, mixed], capture_output=True,
                           text=True, check=True)
     assert done.stdout.strip() == repr(detect_text(mixed, params))
+
+
+def test_page_of_judged_blocks_takes_their_weighted_language():
+    long_english = " ".join([ENGLISH] * 3)
+    src = Page(locator="page/1", page=1, blocks=[Block(PARAGRAPH, long_english), Block(PARAGRAPH, GERMAN)])
+    [out] = detect_language([src], LanguageParams(min_probability=0.5))
+    en, de = out.blocks
+    assert (en.language, de.language) == ("en", "de")
+    share = len(long_english) / (len(long_english) + len(GERMAN))
+    assert out.language == "en" and out.language_prob == pytest.approx(en.language_prob * share)
+    # Below min_probability the page is unknown, with the weighted probability kept.
+    [strict] = detect_language([src], LanguageParams())
+    assert strict.language == "unknown" and strict.language_prob == pytest.approx(out.language_prob)
+
+
+def test_page_of_short_blocks_is_judged_on_its_whole_text():
+    lines = [s.strip() + "." for s in ENGLISH.split(".") if s.strip()]
+    words = [w for line in lines for w in line.split()]
+    short = [" ".join(words[i:i + 4]) for i in range(0, len(words), 4)]  # each under 40 characters
+    src = Page(locator="page/1", page=1, blocks=[Block(PARAGRAPH, t) for t in short])
+    [out] = detect_language([src], LanguageParams())
+    assert all(b.language is None for b in out.blocks)
+    assert out.language == "en" and out.language_prob >= 0.8
+
+
+def test_blocks_can_be_left_unjudged():
+    src = Page(locator="page/1", page=1, blocks=[Block(PARAGRAPH, ENGLISH), Block(PARAGRAPH, GERMAN)])
+    [out] = detect_language([src], LanguageParams(detect_blocks=False))
+    assert all(b.language is None and b.language_prob is None for b in out.blocks)
+    # The page is judged on its whole text instead.
+    assert (out.language, out.language_prob) == detect_text(ENGLISH + "\n" + GERMAN, LanguageParams())

@@ -7,9 +7,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+import tiktoken
+
 from thresher.flows.encodings import get_encoding
 from thresher.steps.spec import StepContext
-from thresher.steps.split import SPLIT, SplitParams, split
+from thresher.steps.split import SPLIT, SplitParams, _sentence_spans, split
 from thresher.steps.units import (
     BLOCK_SEP,
     CODE,
@@ -23,6 +25,8 @@ from thresher.steps.units import (
 
 CTX = StepContext(doc_id="d1", source_path="handbook.pdf", encoding=get_encoding)
 ENC = get_encoding("cl100k_base")
+# Small sections merge by default; tests of the section structure itself turn it off.
+NOMERGE = {"merge_below_tokens": 0}
 
 
 def count(text):
@@ -60,10 +64,19 @@ def span_text(pages, chunk):
     return BLOCK_SEP.join(parts)
 
 
-def check_invariants(pages, chunks, params):
+def global_span(pages, chunk):
+    starts = [sum(len(p.text) + len(BLOCK_SEP) for p in pages[:i]) for i in range(len(pages))]
+    numbers = [p.page for p in pages]
+    return (starts[numbers.index(chunk.page_start)] + chunk.char_start,
+            starts[numbers.index(chunk.page_end)] + chunk.char_end)
+
+
+def check_invariants(pages, chunks, params, enc=ENC):
+    doc = BLOCK_SEP.join(p.text for p in pages)
     for i, chunk in enumerate(chunks):
         assert chunk.index == i and chunk.locator == f"chunk/{i:05d}"
-        assert chunk.token_count == count(chunk.text) <= params.max_tokens
+        # The budget holds in the configured encoding.
+        assert chunk.token_count == len(enc.encode_ordinary(chunk.text)) <= params.max_tokens
         assert chunk.encoding == params.encoding
         prefix = chunk.prefix_chars
         assert chunk.text[prefix:] == span_text(pages, chunk)
@@ -73,6 +86,52 @@ def check_invariants(pages, chunks, params):
         touched = [p.locator for p in pages
                    if chunk.page_start <= p.page <= chunk.page_end]
         assert chunk.parents == touched
+    # Joining the chunks, minus overlaps and repeated headers, with the whitespace
+    # between them, gives back the document text exactly.
+    rebuilt, first, last_end = "", None, None
+    for chunk in chunks:
+        start, end = global_span(pages, chunk)
+        body = chunk.text[chunk.prefix_chars:]
+        shared = chunk.payload["overlap_chars"]
+        if last_end is None:
+            assert shared == 0
+            first, rebuilt = start, body
+        elif shared:
+            assert start + shared == last_end and rebuilt.endswith(body[:shared])
+            assert len(enc.encode_ordinary(body[:shared])) <= params.overlap_tokens
+            rebuilt += body[shared:]
+        else:
+            gap = doc[last_end:start]
+            assert start >= last_end and gap.strip() == "", repr(gap)
+            rebuilt += gap + body
+        last_end = end
+    if chunks:
+        assert rebuilt == doc[first:last_end]
+        assert doc[:first].strip() == "" and doc[last_end:].strip() == ""
+    else:
+        assert doc.strip() == ""
+    check_heading_paths(pages, chunks)
+
+
+def check_heading_paths(pages, chunks):
+    """A chunk's heading_path is a prefix of the headings open at each text block it
+    covers (merged sections share their parent's path)."""
+    placed, stack, pos = [], [], 0
+    for p in pages:
+        for b in p.blocks:
+            if b.kind == HEADING:
+                level = min(max(b.level, 1), 6)
+                while stack and stack[-1][0] >= level:
+                    stack.pop()
+                stack.append((level, " ".join(b.text.split())))
+            placed.append((pos, pos + len(b.text), b.kind, [t for _, t in stack]))
+            pos += len(b.text) + len(BLOCK_SEP)
+    for chunk in chunks:
+        start, end = global_span(pages, chunk)
+        path = chunk.heading_path
+        for s, e, kind, open_headings in placed:
+            if s < end and e > start and kind != HEADING:
+                assert open_headings[:len(path)] == path, (path, open_headings)
 
 
 def test_small_section_is_one_chunk_that_starts_with_its_heading():
@@ -96,7 +155,7 @@ def test_heading_path_follows_nested_headings():
                   H("Fees", 2), P("No fees for members."),
                   H("Returns", 4), P("Drop box at the door."),
                   H("Appendix", 1), P("Contact list."))]
-    chunks = split(pages, SplitParams(), CTX)
+    chunks = split(pages, SplitParams(**NOMERGE), CTX)
     assert [c.heading_path for c in chunks] == [
         [],
         ["Guide"],
@@ -107,13 +166,13 @@ def test_heading_path_follows_nested_headings():
         ["Appendix"],
     ]
     assert chunks[3].text == "Renewals\n\nRenew twice."
-    check_invariants(pages, chunks, SplitParams())
+    check_invariants(pages, chunks, SplitParams(**NOMERGE))
 
 
 def test_title_heading_joins_its_first_subsection():
     pages = [page(1, H("Members' handbook", 1), H("Joining", 2), P("Fill in the form."),
                   H("Leaving", 2), P("Tell the desk."))]
-    chunks = split(pages, SplitParams(), CTX)
+    chunks = split(pages, SplitParams(**NOMERGE), CTX)
     assert [c.text for c in chunks] == ["Members' handbook\n\nJoining\n\nFill in the form.",
                                         "Leaving\n\nTell the desk."]
     assert chunks[0].heading_path == ["Members' handbook", "Joining"]
@@ -183,7 +242,7 @@ def test_long_table_splits_by_rows_and_repeats_the_header():
 def test_chunk_across_a_page_break_has_exact_spans():
     pages = [page(1, H("Events", 2), P("The autumn fair starts at noon.")),
              page(2, P("Stalls close at five."), H("Workshops", 2), P("Bookbinding on Fridays."))]
-    chunks = split(pages, SplitParams(), CTX)
+    chunks = split(pages, SplitParams(**NOMERGE), CTX)
     first = chunks[0]
     assert (first.page_start, first.page_end) == (1, 2)
     assert first.text == (pages[0].text[first.char_start:] + "\n\n"
@@ -192,7 +251,7 @@ def test_chunk_across_a_page_break_has_exact_spans():
     assert first.parents == ["page/1", "page/2"]
     assert chunks[1].heading_path == ["Workshops"]
     assert chunks[1].text == pages[1].text[chunks[1].char_start:chunks[1].char_end]
-    check_invariants(pages, chunks, SplitParams())
+    check_invariants(pages, chunks, SplitParams(**NOMERGE))
 
 
 def test_chunk_spanning_three_pages_includes_the_middle_page():
@@ -239,15 +298,41 @@ def test_code_splits_at_lines_and_keeps_indentation():
 def test_overlap_repeats_the_end_of_the_previous_chunk():
     params = SplitParams(max_tokens=60, overlap_tokens=12)
     pages = [page(1, P(sentences(25)))]
+    text = pages[0].text
+    chunks = split(pages, params, CTX)
+    assert len(chunks) > 3
+    assert chunks[0].payload["overlap_chars"] == 0
+    for before, after in zip(chunks, chunks[1:]):
+        shared = text[after.char_start:before.char_end]
+        assert after.payload["overlap_chars"] == len(shared) > 0
+        assert before.text.endswith(shared) and after.text.startswith(shared)
+        # Exact: within the limit, at a word start, and one more word would exceed it.
+        assert count(shared) <= 12
+        assert text[after.char_start - 1] == " " and not shared[0].isspace()
+        previous_word = text.rfind(" ", 0, after.char_start - 1) + 1
+        assert previous_word <= before.char_start or count(text[previous_word:before.char_end]) > 12
+    check_invariants(pages, chunks, params)
+
+
+def test_overlap_never_reaches_into_the_previous_section():
+    params = SplitParams(max_tokens=60, overlap_tokens=20, merge_below_tokens=0)
+    pages = [page(1, H("Loans", 2), P(sentences(12)), H("Fees", 2), P(sentences(12, "fees")))]
+    chunks = split(pages, params, CTX)
+    fees = [c for c in chunks if c.heading_path == ["Fees"]]
+    assert fees[0].text.startswith("Fees") and fees[0].payload["overlap_chars"] == 0
+    assert all(c.payload["overlap_chars"] > 0 for c in fees[1:])
+    check_invariants(pages, chunks, params)
+
+
+def test_overlap_falls_back_to_token_boundaries_without_spaces():
+    text = "お誕生日おめでとう" * 40
+    params = SplitParams(max_tokens=30, overlap_tokens=6)
+    pages = [page(1, P(text))]
     chunks = split(pages, params, CTX)
     assert len(chunks) > 3
     for before, after in zip(chunks, chunks[1:]):
-        assert after.char_start < before.char_end  # spans overlap
-        shared = pages[0].text[after.char_start:before.char_end]
-        assert before.text.endswith(shared) and after.text.startswith(shared)
-        assert 0 < count(shared) <= 12 + 1
-        assert not shared[0].isspace() and (after.char_start == 0
-                                            or pages[0].text[after.char_start - 1] == " ")
+        shared = text[after.char_start:before.char_end]
+        assert shared and count(shared) <= 6
     check_invariants(pages, chunks, params)
 
 
@@ -309,10 +394,10 @@ _pages = st.lists(st.lists(_block, min_size=0, max_size=6), min_size=1, max_size
 
 
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(_pages, st.integers(4, 200), st.integers(0, 20))
-def test_invariants_hold_for_random_documents(page_blocks, max_tokens, overlap):
+@given(_pages, st.integers(4, 200), st.integers(0, 20), st.sampled_from([0, 10, 100, 10_000]))
+def test_invariants_hold_for_random_documents(page_blocks, max_tokens, overlap, merge):
     overlap = min(overlap, max_tokens - 1)
-    params = SplitParams(max_tokens=max_tokens, overlap_tokens=overlap)
+    params = SplitParams(max_tokens=max_tokens, overlap_tokens=overlap, merge_below_tokens=merge)
     pages = [page(n + 1, *blocks) for n, blocks in enumerate(page_blocks)]
     chunks = split(pages, params, CTX)
     assert all(c.ok for c in chunks)  # every character fits in 4 tokens
@@ -333,3 +418,164 @@ def test_invariants_hold_for_random_documents(page_blocks, max_tokens, overlap):
                 covered[k] = True
         assert all(covered[k] or doc[k].isspace() for k in range(len(doc)))
     assert split(pages, params, CTX) == chunks
+
+
+# -- merging small sections ----------------------------------------------------------
+
+
+def test_small_sibling_sections_merge_under_their_parent():
+    pages = [page(1, H("Guide", 1), P("About the guide."),
+                  H("Loans", 2), P("How loans work."),
+                  H("Fees", 2), P("No fees for members."))]
+    [chunk] = split(pages, SplitParams(), CTX)
+    assert chunk.text == pages[0].text
+    assert chunk.heading_path == ["Guide"]
+    assert chunk.payload["merged_sections"] == 3
+    check_invariants(pages, [chunk], SplitParams())
+
+
+def test_merging_stays_under_the_first_sections_parent():
+    params = SplitParams(max_tokens=120)
+    pages = [page(1, H("Loans", 1), P(sentences(20)),            # too long: never merges
+                  H("Renewals", 2), P("Renew twice online."),
+                  H("Reservations", 2), P("Reserve up to five books."),
+                  H("Fees", 1), P("No fees for members."),
+                  H("Late returns", 2), P("Ten cents a day."))]
+    chunks = split(pages, params, CTX)
+    paths = [(c.heading_path, c.payload["merged_sections"]) for c in chunks]
+    assert paths[-2:] == [(["Loans"], 2), (["Fees"], 2)]
+    assert chunks[-2].text == "Renewals\n\nRenew twice online.\n\nReservations\n\nReserve up to five books."
+    assert chunks[-1].text == "Fees\n\nNo fees for members.\n\nLate returns\n\nTen cents a day."
+    assert all(n == 1 for _, n in paths[:-2])
+    check_invariants(pages, chunks, params)
+
+
+def test_a_subsection_does_not_merge_with_its_aunt():
+    # Renewals sits under Loans; Fees is Loans' sibling, not Renewals'.
+    params = SplitParams(max_tokens=120)
+    pages = [page(1, H("Loans", 1), P(sentences(20)), H("Renewals", 2), P("Renew twice."),
+                  H("Fees", 1), P("None."))]
+    chunks = split(pages, params, CTX)
+    assert [c.heading_path for c in chunks][-2:] == [["Loans", "Renewals"], ["Fees"]]
+
+
+def test_merging_needs_a_small_section_and_respects_the_budget():
+    body = sentences(3)  # about 35 tokens
+    pages = [page(1, *[b for n in range(6) for b in (H(f"Rule {n}", 2), P(body))])]
+    # No section is under 10 tokens: nothing merges.
+    chunks = split(pages, SplitParams(merge_below_tokens=10), CTX)
+    assert len(chunks) == 6
+    # Every section is small: they merge while the budget allows, and never beyond it.
+    params = SplitParams(max_tokens=100, merge_below_tokens=50)
+    chunks = split(pages, params, CTX)
+    assert [c.payload["merged_sections"] for c in chunks] == [2, 2, 2]
+    assert all(c.heading_path == [] for c in chunks)  # rules are siblings at the top
+    check_invariants(pages, chunks, params)
+
+
+def test_a_section_that_needs_several_chunks_does_not_merge():
+    params = SplitParams(max_tokens=60)
+    pages = [page(1, H("Intro", 1), P("Short."), H("Rules", 1), P(sentences(10)))]
+    chunks = split(pages, params, CTX)
+    assert chunks[0].text == "Intro\n\nShort." and chunks[0].payload["merged_sections"] == 1
+    assert all(c.heading_path == ["Rules"] for c in chunks[1:])
+
+
+# -- sentences -----------------------------------------------------------------------
+
+
+def test_abbreviations_do_not_end_sentences():
+    text = ("Bring proof of address, e.g. a utility bill. Dr. Weller signs the form. "
+            "Bücher z. B. Romane bleiben drei Wochen. Die Gebühr beträgt ca. 2 Euro. "
+            "Maps, atlases etc. are reference only. Ask at the desk! Is it open? Yes.")
+    spans = [text[s:e] for s, e in _sentence_spans(text)]
+    assert spans == [
+        "Bring proof of address, e.g. a utility bill.",
+        "Dr. Weller signs the form.",
+        "Bücher z. B. Romane bleiben drei Wochen.",
+        "Die Gebühr beträgt ca. 2 Euro.",
+        "Maps, atlases etc. are reference only.",
+        "Ask at the desk!",
+        "Is it open?",
+        "Yes.",
+    ]
+
+
+def test_long_paragraph_is_cut_between_sentences_not_after_abbreviations():
+    sentence = "Members, e.g. Dr. Weller and Prof. Amsel, renew z. B. online or at the desk. "
+    params = SplitParams(max_tokens=40)
+    pages = [page(1, P((sentence * 12).strip()))]
+    chunks = split(pages, params, CTX)
+    assert len(chunks) > 3
+    assert all(c.text.endswith("at the desk.") for c in chunks)
+    check_invariants(pages, chunks, params)
+
+
+# -- chunk language ------------------------------------------------------------------
+
+
+def lang_block(text, language, prob):
+    return Block(PARAGRAPH, text, 0, language, prob)
+
+
+def test_chunk_language_is_the_character_weighted_block_language():
+    english, german = "Members renew online. " * 6, "Mitglieder verlängern online. " * 2
+    pages = [page(1, lang_block(english.strip(), "en", 0.9), lang_block(german.strip(), "de", 1.0),
+                  language="de")]
+    [chunk] = split(pages, SplitParams(), CTX)
+    n_en, n_de = len(english.strip()), len(german.strip())
+    assert chunk.language == "en"  # more characters, though the page says German
+    assert chunk.language_prob == pytest.approx(0.9 * n_en / (n_en + n_de))
+
+
+def test_chunk_language_per_chunk_when_a_page_switches_language():
+    params = SplitParams(max_tokens=60, **NOMERGE)
+    pages = [page(1, H("Hours", 2), lang_block(sentences(6), "en", 0.99),
+                  H("Öffnungszeiten", 2), lang_block(sentences(6, "die Regeln"), "de", 0.97))]
+    chunks = split(pages, params, CTX)
+    assert len(chunks) > 2
+    assert {c.language for c in chunks if c.heading_path == ["Hours"]} == {"en"}
+    assert {c.language for c in chunks if c.heading_path == ["Öffnungszeiten"]} == {"de"}
+
+
+def test_chunk_without_judged_blocks_takes_its_pages_language():
+    pages = [page(1, H("Fees", 2), P("None."))]  # short blocks: not judged
+    [chunk] = split(pages, SplitParams(), CTX)
+    assert (chunk.language, chunk.language_prob) == ("en", 0.99)
+    unknown = [Page(locator="page/1", page=1, blocks=[P("None.")], language="unknown")]
+    assert split(unknown, SplitParams(), CTX)[0].language == "unknown"
+    # No language step in the chain: no language at all.
+    bare = [Page(locator="file", page=None, blocks=[P("None.")])]
+    assert split(bare, SplitParams(), CTX)[0].language is None
+
+
+def test_unknown_blocks_do_not_vote():
+    unsure = ("x " * 30).strip()
+    pages = [page(1, lang_block(unsure, "unknown", 0.5), lang_block("Renew online today.", "fr", 0.95),
+                  language="en")]
+    [chunk] = split(pages, SplitParams(), CTX)
+    # French is the only language named; the unsure block weighs against its probability.
+    n_fr = len("Renew online today.")
+    assert chunk.language == "fr"
+    assert chunk.language_prob == pytest.approx(0.95 * n_fr / (n_fr + len(unsure)))
+
+
+# -- another encoding ----------------------------------------------------------------
+
+# One token per UTF-8 byte: a real tiktoken Encoding that needs no file, so the budget
+# can be checked in an encoding other than cl100k_base.
+BYTES = tiktoken.Encoding(name="bytes_only", pat_str=r"(?s:.+)",
+                          mergeable_ranks={bytes([b]): b for b in range(256)}, special_tokens={})
+BYTES_CTX = StepContext(encoding=lambda name: BYTES if name == "bytes_only" else get_encoding(name))
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(_pages, st.integers(8, 300), st.integers(0, 30), st.sampled_from([0, 40, 1000]))
+def test_invariants_hold_in_a_byte_encoding(page_blocks, max_tokens, overlap, merge):
+    overlap = min(overlap, max_tokens - 1)
+    params = SplitParams(max_tokens=max_tokens, overlap_tokens=overlap, encoding="bytes_only",
+                         merge_below_tokens=merge)
+    pages = [page(n + 1, *blocks) for n, blocks in enumerate(page_blocks)]
+    chunks = split(pages, params, BYTES_CTX)
+    assert all(c.ok and len(c.text.encode("utf-8")) <= max_tokens for c in chunks)
+    check_invariants(pages, chunks, params, enc=BYTES)

@@ -1,0 +1,149 @@
+"""What clean + split + tokens cost next to tokenising the same text with tiktoken alone.
+
+Corpus: plain text that Debian ships -- /usr/share/common-licenses and the packages'
+/usr/share/doc/*/copyright files, in path order, until CORPUS_BYTES of UTF-8 -- one
+document per file, read into blocks the way thresher reads a plain-text file
+(steps.extract_text.text_blocks; not timed).
+
+Measured in one run, on the same texts, ROUNDS times in turn (the fastest round of each
+counts, so a busy machine disturbs the ratio less):
+  1. clean, split (default parameters: 400 tokens, cl100k_base, small sections merged)
+     and tokens (cl100k_base), each timed per document and summed;
+  2. tiktoken's `encode_ordinary_batch` over the documents' raw texts (its default
+     thread pool), and plain `encode_ordinary` one document after the other;
+  3. once, the language step on the first LANGUAGE_BYTES, with and without per-block
+     detection, for scale (not in the ratio).
+
+Prints chunks per second and tokens per second of clean+split+tokens, and the ratio
+of its time to encode_ordinary_batch's.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+CORPUS_BYTES = 5_000_000
+LANGUAGE_BYTES = 300_000
+ROUNDS = 3
+SOURCES = [Path("/usr/share/common-licenses"), Path("/usr/share/doc")]
+
+
+def corpus_files() -> list[Path]:
+    files = sorted(p for p in SOURCES[0].iterdir() if p.is_file() and not p.is_symlink())
+    files += sorted(SOURCES[1].glob("*/copyright"))
+    return files
+
+
+def load_corpus(limit: int = CORPUS_BYTES) -> list[tuple[str, str]]:
+    """(name, text) per document, until `limit` bytes of UTF-8."""
+    docs, size, seen = [], 0, set()
+    for path in corpus_files():
+        try:
+            data = path.read_bytes()
+        except OSError:
+            continue
+        if data in seen:  # many packages ship the same copyright text
+            continue
+        seen.add(data)
+        text = data.decode("utf-8", errors="replace")
+        docs.append((str(path), text))
+        size += len(text.encode("utf-8"))
+        if size >= limit:
+            break
+    return docs
+
+
+def main() -> None:
+    from thresher.flows.encodings import get_encoding
+    from thresher.steps.clean import CleanParams, clean
+    from thresher.steps.extract_text import text_blocks
+    from thresher.steps.language import LanguageParams, detect_language
+    from thresher.steps.spec import StepContext
+    from thresher.steps.split import SplitParams, split
+    from thresher.steps.tokens import TokensParams, count_tokens
+    from thresher.steps.units import Page
+
+    docs = load_corpus()
+    if not docs:
+        print("no corpus: /usr/share/common-licenses and /usr/share/doc/*/copyright are empty")
+        return
+    mb = sum(len(t.encode("utf-8")) for _, t in docs) / 1e6
+    enc = get_encoding("cl100k_base")
+    enc.encode_ordinary("warm up")
+    ctx = StepContext(encoding=get_encoding)
+    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")]
+             for _, text in docs]
+
+    clean_p, split_p, tokens_p = CleanParams(), SplitParams(), TokensParams()
+    texts = [text for _, text in docs]
+    best = {"clean": 1e9, "split": 1e9, "tokens": 1e9, "pipeline": 1e9, "batch": 1e9,
+            "single": 1e9}
+    for _ in range(ROUNDS):
+        t_clean = t_split = t_tokens = 0.0
+        n_chunks = n_tokens = 0
+        for doc_pages in pages:
+            t0 = time.perf_counter()
+            cleaned = [p for p in clean(doc_pages, clean_p) if p.ok]
+            t1 = time.perf_counter()
+            chunks = split(cleaned, split_p, ctx) if cleaned else []
+            t2 = time.perf_counter()
+            counted = count_tokens(chunks, tokens_p, ctx)
+            t3 = time.perf_counter()
+            t_clean += t1 - t0
+            t_split += t2 - t1
+            t_tokens += t3 - t2
+            n_chunks += len(counted)
+            n_tokens += sum(c.token_count for c in counted)
+        t0 = time.perf_counter()
+        batch = enc.encode_ordinary_batch(texts)
+        t_batch = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        for text in texts:
+            enc.encode_ordinary(text)
+        t_single = time.perf_counter() - t0
+        for key, value in (("clean", t_clean), ("split", t_split), ("tokens", t_tokens),
+                           ("pipeline", t_clean + t_split + t_tokens), ("batch", t_batch),
+                           ("single", t_single)):
+            best[key] = min(best[key], value)
+    raw_tokens = sum(len(ids) for ids in batch)
+    pipeline, t_clean, t_split, t_tokens = best["pipeline"], best["clean"], best["split"], best["tokens"]
+    t_batch, t_single = best["batch"], best["single"]
+
+    sample, size = [], 0
+    for doc_pages in pages:
+        cleaned = [p for p in clean(doc_pages, clean_p) if p.ok]
+        sample.append(cleaned)
+        size += sum(len(p.text.encode("utf-8")) for p in cleaned)
+        if size >= LANGUAGE_BYTES:
+            break
+    detect_language(sample[0], LanguageParams())  # loads the profiles
+    t0 = time.perf_counter()
+    for cleaned in sample:
+        detect_language(cleaned, LanguageParams())
+    t_lang = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    for cleaned in sample:
+        detect_language(cleaned, LanguageParams(detect_blocks=False))
+    t_pages = time.perf_counter() - t0
+
+    print(f"corpus: {len(docs)} documents, {mb:.1f} MB of UTF-8 "
+          f"(common-licenses and /usr/share/doc/*/copyright), {raw_tokens:,} cl100k_base tokens raw")
+    print(f"fastest of {ROUNDS} rounds each")
+    print(f"clean+split+tokens: {pipeline:.2f} s  (clean {t_clean:.2f} s, split {t_split:.2f} s, "
+          f"tokens {t_tokens:.2f} s)")
+    print(f"  {n_chunks:,} chunks, {n_tokens:,} tokens in chunks")
+    print(f"  {n_chunks / pipeline:,.0f} chunks/s, {n_tokens / pipeline:,.0f} tokens/s, "
+          f"{mb / pipeline:.2f} MB/s")
+    print(f"tiktoken encode_ordinary_batch: {t_batch:.2f} s, {raw_tokens / t_batch:,.0f} tokens/s; "
+          f"encode_ordinary one by one: {t_single:.2f} s, {raw_tokens / t_single:,.0f} tokens/s")
+    print(f"ratio clean+split+tokens / encode_ordinary_batch: {pipeline / t_batch:.1f}x "
+          f"(split alone {t_split / t_batch:.1f}x, clean alone {t_clean / t_batch:.1f}x); "
+          f"/ encode_ordinary: {pipeline / t_single:.1f}x")
+    print(f"language step (for scale, {size / 1e6:.2f} MB): blocks and pages {t_lang:.2f} s, "
+          f"{size / 1e6 / t_lang:.2f} MB/s; pages only (detect_blocks: false) {t_pages:.2f} s, "
+          f"{size / 1e6 / t_pages:.2f} MB/s")
+
+
+if __name__ == "__main__":
+    main()
