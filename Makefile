@@ -7,9 +7,11 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.thresher-installed
 
-# Debian packages the tests read as outside references (PDFs and HTML manuals that
-# Debian ships, and poppler's pdftotext/pdfinfo as the reference PDF extractor).
-DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev
+# Debian packages the tests read as outside references: PDFs and HTML manuals that
+# Debian ships, poppler's pdftotext/pdfinfo (the reference PDF extractor), the Unicode
+# Character Database (NormalizationTest.txt) and translated manual pages.
+DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
+                        unicode-data manpages manpages-de manpages-fr manpages-es
 
 .PHONY: demo test bench sample clean-store help system-deps
 
