@@ -201,7 +201,7 @@ HANDOFF_DOC = {
     "char_start": "Offset of the chunk's first character in the cleaned text of page_start (of the whole file when there are no pages).",
     "char_end": "Exclusive offset of the chunk's end in the cleaned text of page_end.",
     "prefix_chars": "Leading characters of text that are not in the span (a split table repeats its header row); text[prefix_chars:] is the exact span.",
-    "language": "ISO 639-1 code of the language detected on the page the chunk starts on, or 'unknown'.",
+    "language": "Language holding most of the chunk's characters among its blocks (langdetect per block), else its pages'; 'unknown' when undetermined.",
     "text": "The chunk's cleaned text.",
     "token_count": "Tokens in the chunk in the primary encoding.",
     "encoding": "Name of the primary tiktoken encoding.",
