@@ -197,7 +197,7 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
 # ----------------------------------------------------------------------------- status
 
 def cmd_status(args: argparse.Namespace) -> int:
-    from thresher.flows.summary import format_stage_counts, live_doc_ids, stage_counts, stages_of
+    from thresher.flows.summary import format_stage_counts, live_doc_ids, stage_counts, stages_of, token_totals
 
     definition = _definition(args)
     store = _open_store(args, definition)
@@ -206,6 +206,7 @@ def cmd_status(args: argparse.Namespace) -> int:
     docs = live_doc_ids(store)
     counts = stage_counts(store, stages_of(latest), docs)
     recent = runs[-args.runs:][::-1]
+    tokens = token_totals(store)
     if args.json:
         print(json.dumps({
             "store": store.root,
@@ -215,6 +216,9 @@ def cmd_status(args: argparse.Namespace) -> int:
                       "failures": r.manifest.get("failures")} for r in recent],
             "live_documents": len(docs),
             "stages": {c.stage: c.by_status for c in counts},
+            "tokens": None if tokens is None else {
+                "encoding": tokens.encoding, "total": tokens.total, "chunks": tokens.chunks,
+                "documents": tokens.documents, "by_language": tokens.by_language, "by_folder": tokens.by_folder},
         }, indent=2, default=str))
         return 0
     print(f"store {store.root}: {len(runs)} committed run(s), {len(docs)} live documents")
@@ -227,6 +231,17 @@ def cmd_status(args: argparse.Namespace) -> int:
               f"{m.get('chunks', 0)} chunks, {m.get('tokens', 0):,} tokens, {m.get('failures', 0)} failed units")
     print("current view by stage:")
     print("\n".join(format_stage_counts(counts)))
+    if tokens is not None and tokens.chunks:
+        print(f"hand-off: {tokens.chunks} chunks from {tokens.documents} documents, {tokens.total:,} tokens "
+              f"({tokens.encoding})")
+
+        def share(parts: dict[str, int], limit: int = 8) -> str:
+            items = list(parts.items())
+            text = ", ".join(f"{k} {v:,}" for k, v in items[:limit])
+            return text + (f", {len(items) - limit} more" if len(items) > limit else "")
+
+        print(f"  by language: {share(tokens.by_language)}")
+        print(f"  by folder:   {share(tokens.by_folder)}")
     return 0
 
 

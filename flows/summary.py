@@ -41,6 +41,34 @@ def stage_counts(store: Store, stages: list[tuple[str, str]], doc_ids: list[str]
     return out
 
 
+@dataclass
+class TokenTotals:
+    encoding: str
+    total: int
+    chunks: int
+    documents: int
+    by_language: dict[str, int]
+    by_folder: dict[str, int]  # top-level folder of the source path ("." for the root)
+
+
+def token_totals(store: Store) -> TokenTotals | None:
+    """Tokens in the hand-off, in its primary encoding, by language and by folder."""
+    table = store.handoff()
+    if table is None:
+        return None
+    cols = table.select(["doc_id", "source_path", "language", "token_count", "encoding"]).to_pylist()
+    by_lang: Counter = Counter()
+    by_folder: Counter = Counter()
+    for r in cols:
+        n = r["token_count"] or 0
+        by_lang[r["language"] or "unknown"] += n
+        folder = r["source_path"].split("/", 1)[0] if "/" in r["source_path"] else "."
+        by_folder[folder] += n
+    encoding = cols[0]["encoding"] if cols else ""
+    return TokenTotals(encoding or "", sum(by_lang.values()), len(cols), len({r["doc_id"] for r in cols}),
+                       dict(by_lang.most_common()), dict(by_folder.most_common()))
+
+
 def format_stage_counts(counts: list[StageCounts]) -> list[str]:
     lines = []
     for c in counts:

@@ -9,6 +9,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pyarrow.parquet as pq
 import pytest
 
 from conftest import REPO, SAMPLE
@@ -89,8 +90,14 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     assert s.returncode == 0
     assert "1 committed run(s), 19 live documents" in s.stdout
     assert "current view by stage:" in s.stdout
+    lang_line = next(line for line in s.stdout.splitlines() if line.strip().startswith("by language:"))
+    assert "en " in lang_line and "de " in lang_line and "fr " in lang_line
+    assert "by folder:" in s.stdout and "policies" in s.stdout
     js = json.loads(_cli("status", "--store", str(store), "--json", cwd=tmp_path).stdout)
     assert js["stages"]["extract"]["failed"] >= 5
+    handoff = pq.read_table(store / "handoff" / "chunks.parquet")
+    assert js["tokens"]["total"] == sum(handoff.column("token_count").to_pylist())
+    assert sum(js["tokens"]["by_folder"].values()) == js["tokens"]["total"]
 
     t = _cli("trail", str(drive / "board" / "2025-11-18-board-minutes.md"), "--store", str(store), cwd=tmp_path)
     assert t.returncode == 0, t.stderr
