@@ -169,8 +169,14 @@ def shared_api(kind: str):
     from prefect.server.api.server import SubprocessASGIServer
     from prefect.settings import PREFECT_API_URL, temporary_settings
 
-    server = SubprocessASGIServer()
-    server.start(timeout=int(os.environ.get("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "90")))
+    # Prefect keeps one temporary server per process; if this process started one
+    # already (an earlier flow, a test harness), its address is handed on and it is
+    # left running. Otherwise a server is started for this run on a port of its own.
+    running = [s for s in SubprocessASGIServer._instances.values() if getattr(s, "running", False)]
+    server = running[0] if running else SubprocessASGIServer(port=_free_port())
+    owned = not running
+    if owned:
+        server.start(timeout=int(os.environ.get("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "90")))
     os.environ["PREFECT_API_URL"] = server.api_url
     try:
         with temporary_settings({PREFECT_API_URL: server.api_url}):
@@ -181,7 +187,16 @@ def shared_api(kind: str):
             APILogWorker.drain_all(timeout=10)
     finally:
         os.environ.pop("PREFECT_API_URL", None)
-        server.stop()
+        if owned:
+            server.stop()
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
 
 
 @dataclass
