@@ -9,9 +9,11 @@ STAMP  := $(VENV)/.thresher-installed
 
 # Debian packages the tests read as outside references: PDFs and HTML manuals that
 # Debian ships, poppler's pdftotext/pdfinfo (the reference PDF extractor), the Unicode
-# Character Database (NormalizationTest.txt) and translated manual pages.
+# Character Database (NormalizationTest.txt), translated manual pages, and Chromium
+# (headless) to render the review page.
 DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
-                        unicode-data manpages manpages-de manpages-fr manpages-es
+                        unicode-data manpages manpages-de manpages-fr manpages-es \
+                        chromium
 
 .PHONY: demo test bench sample clean-store help system-deps
 

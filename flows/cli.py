@@ -79,6 +79,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--source", metavar="DIR", help="source folder (default: the one the latest run read)")
     p.add_argument("--quiet", action="store_true", help="no progress lines, only the summary")
 
+    p = sub.add_parser("report", help="write the review page (one static HTML file)",
+                       description="Write the review page of a run as one self-contained HTML file: summary, "
+                                   "charts, problems by reason, documents, and each page's text before and after.")
+    _common(p, json_flag=False)
+    p.add_argument("--out", metavar="FILE", default="report.html", help="file to write (default: report.html)")
+    p.add_argument("--run", metavar="RUN_ID", help="a committed run to show (default: the latest)")
+
     p = sub.add_parser("export", help="write the live chunks as Parquet or JSONL",
                        description="Write the hand-off's live chunks to a file, as Parquet or JSON Lines.")
     _common(p, json_flag=False)
@@ -433,6 +440,23 @@ def cmd_export(args: argparse.Namespace) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------- report
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from thresher.flows.report import ReportError, write_report
+
+    definition = _definition(args)
+    store = _open_store(args, definition)
+    try:
+        path = write_report(store, args.out, run_id=args.run)
+    except ReportError as exc:
+        raise UsageError(str(exc)) from None
+    except OSError as exc:
+        raise UsageError(f"cannot write {args.out}: {exc.strerror or exc}") from None
+    print(f"wrote the review page to {path}", file=sys.stderr)
+    return 0
+
+
 # ----------------------------------------------------------------------------- schedule
 
 def cmd_schedule(args: argparse.Namespace) -> int:
@@ -453,7 +477,7 @@ def cmd_schedule(args: argparse.Namespace) -> int:
 
 
 COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail, "failures": cmd_failures,
-            "rerun": cmd_rerun, "export": cmd_export, "schedule": cmd_schedule}
+            "rerun": cmd_rerun, "report": cmd_report, "export": cmd_export, "schedule": cmd_schedule}
 
 
 def main(argv: list[str] | None = None) -> int:

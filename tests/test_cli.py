@@ -107,5 +107,16 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     bad = _cli("trail", "hr/salary-review-2026-protected.pdf", "--store", str(store), cwd=tmp_path)
     assert bad.returncode == 0 and "reason: password protected" in bad.stdout
 
+    rep = _cli("report", "--store", str(store), "--out", str(tmp_path / "review.html"), cwd=tmp_path)
+    assert rep.returncode == 0, rep.stderr
+    page = (tmp_path / "review.html").read_text(encoding="utf-8")
+    assert "Run summary" in page and "hr/salary-review-2026-protected.pdf" in page and "<script" not in page
+
     missing = _cli("trail", "nowhere/nothing.pdf", "--store", str(store), cwd=tmp_path)
     assert missing.returncode == 2 and "no document 'nowhere/nothing.pdf'" in missing.stderr
+
+
+def test_report_verb_writes_the_page_or_says_why_not(tmp_path):
+    r = _cli("report", "--store", str(tmp_path / "empty"), "--out", str(tmp_path / "r.html"), cwd=tmp_path)
+    assert r.returncode == 2 and "no committed run in store" in r.stderr
+    assert not (tmp_path / "r.html").exists()

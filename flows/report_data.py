@@ -1,0 +1,438 @@
+"""What the review page shows, gathered from the store (no HTML here).
+
+Everything is read generically: the stages come from the run's manifest in chain
+order, a stage's own columns from its table's schema, so a stage added to or dropped
+from the flow definition, or a new payload column, shows up without a change here.
+Page units are matched across page stages by locator, chunks across chunk stages by
+chunk_id.
+"""
+
+from __future__ import annotations
+
+import json
+from collections import Counter
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any
+
+from thresher.flows import schema
+from thresher.flows.store import RunInfo, Store
+
+# Worst first: a document's status is its worst unit's.
+SEVERITY = ("failed", "dropped", "skipped", "ok")
+COMMON_NAMES = frozenset(f.name for f in schema.COMMON)
+PAGE_NAMES = frozenset(f.name for f in schema.PAGE_COLUMNS)
+CHUNK_NAMES = frozenset(f.name for f in schema.CHUNK_COLUMNS)
+# A list of numbers longer than this (MinHash signatures, band keys) is summarised.
+MAX_LISTED_NUMBERS = 8
+MAX_FACT_CHARS = 240
+
+
+class ReportError(RuntimeError):
+    """The report cannot be made as asked; the message is one line saying why."""
+
+
+def worst(statuses) -> str | None:
+    seen = set(statuses)
+    for s in SEVERITY:
+        if s in seen:
+            return s
+    return next(iter(sorted(seen)), None)
+
+
+@dataclass
+class StageInfo:
+    name: str
+    unit: str  # "pages" | "chunks"
+    version: str = ""
+    scope: str = ""
+    formats: list[str] = field(default_factory=list)
+    params: dict[str, Any] = field(default_factory=dict)
+    counts: dict[str, int] = field(default_factory=dict)  # current view of live documents
+
+    @property
+    def total(self) -> int:
+        return sum(self.counts.values())
+
+
+@dataclass
+class UnitAtStage:
+    """One unit (page or chunk) as one stage left it."""
+
+    stage: str
+    status: str
+    reason: str = ""
+    error_type: str = ""
+    traceback: str = ""
+    warnings: list[str] = field(default_factory=list)
+    facts: list[tuple[str, str]] = field(default_factory=list)  # the stage's own columns, formatted
+    text: str | None = None
+    run_id: str = ""
+    attempt: int = 1
+
+
+@dataclass
+class PageView:
+    locator: str
+    page: int | None
+    stages: list[UnitAtStage]
+    language: str | None = None
+    language_prob: float | None = None
+
+    @property
+    def label(self) -> str:
+        if self.page is not None:
+            return f"page {self.page}"
+        return {"file": "whole file", "document": "whole document"}.get(self.locator, self.locator)
+
+    @property
+    def status(self) -> str:
+        return worst(u.status for u in self.stages) or "ok"
+
+    def texts(self) -> tuple[UnitAtStage | None, UnitAtStage | None, list[str]]:
+        """(first stage with text, last stage with text, stages that changed the text)."""
+        with_text = [u for u in self.stages if u.text is not None and (u.status == "ok" or u.text)]
+        if not with_text:
+            return None, None, []
+        changed = [b.stage for a, b in zip(with_text, with_text[1:]) if a.text != b.text]
+        return with_text[0], with_text[-1], changed
+
+
+@dataclass
+class ChunkView:
+    chunk_id: str
+    index: int
+    heading_path: list[str]
+    page_start: int | None
+    page_end: int | None
+    tokens: int | None
+    language: str | None
+    text: str
+    stages: list[UnitAtStage]
+    live: bool = False
+    duplicate_of: str | None = None
+    similarity: float | None = None
+    duplicate_kind: str | None = None
+
+    @property
+    def status(self) -> str:
+        return worst(u.status for u in self.stages) or "ok"
+
+    @property
+    def reason(self) -> str:
+        for want in SEVERITY[:-1]:
+            for u in self.stages:
+                if u.status == want and u.reason:
+                    return f"{u.stage}: {u.reason}"
+        return ""
+
+    @property
+    def pages(self) -> str:
+        if self.page_start is None:
+            return ""
+        if self.page_end in (None, self.page_start):
+            return f"p. {self.page_start}"
+        return f"pp. {self.page_start}-{self.page_end}"
+
+
+@dataclass
+class DocumentView:
+    doc_id: str
+    path: str
+    other_paths: list[str]
+    size: int | None
+    first_run: str | None
+    last_run: str | None
+    format: str = ""
+    title: str = ""
+    language: str | None = None
+    pages: list[PageView] = field(default_factory=list)
+    chunks: list[ChunkView] = field(default_factory=list)
+    by_stage: dict[str, dict[str, int]] = field(default_factory=dict)
+    passed_by: list[str] = field(default_factory=list)  # format-limited stages that did not apply
+    status: str = "ok"
+    first_problem: str = ""  # "stage: reason" of the first failed (else dropped) unit
+    anchor: str = ""
+
+    @property
+    def page_count(self) -> int:
+        return sum(1 for p in self.pages if p.locator != "document")
+
+    @property
+    def live_chunks(self) -> list[ChunkView]:
+        return [c for c in self.chunks if c.live]
+
+    @property
+    def tokens(self) -> int:
+        return sum(c.tokens or 0 for c in self.live_chunks)
+
+
+@dataclass
+class ReportData:
+    run: RunInfo
+    is_latest: bool
+    stages: list[StageInfo]
+    documents: list[DocumentView]
+    generated_at: datetime
+    store_root: str
+    budget_tokens: int | None = None  # a chunk stage's max_tokens parameter, if any
+
+    @property
+    def manifest(self) -> dict[str, Any]:
+        return self.run.manifest
+
+    @property
+    def live_chunks(self) -> list[ChunkView]:
+        return [c for d in self.documents for c in d.live_chunks]
+
+    def chunk_owner(self) -> dict[str, tuple[DocumentView, ChunkView]]:
+        return {c.chunk_id: (d, c) for d in self.documents for c in d.chunks}
+
+
+# --------------------------------------------------------------------------- formatting facts
+
+def format_value(value: Any) -> str | None:
+    """A stage's own column value as short text, or None when there is nothing to say."""
+    # Zero, false and empty say nothing a reviewer needs (as in `thresher trail`).
+    if value is None or value is False or value == "" or value == [] or value == {}:
+        return None
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and value == 0:
+        return None
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, float):
+        return f"{value:.3g}"
+    if isinstance(value, datetime):
+        return value.isoformat(timespec="seconds")
+    if isinstance(value, bytes):
+        return f"{len(value)} bytes"
+    if isinstance(value, dict):
+        value = list(value.items())
+    if isinstance(value, list):
+        if all(isinstance(v, tuple) and len(v) == 2 for v in value):  # a map column
+            text = ", ".join(f"{k} {format_value(v) or '-'}" for k, v in value)
+        elif all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+            if len(value) > MAX_LISTED_NUMBERS:
+                return f"{len(value)} values"
+            text = ", ".join(format_value(v) or "0" for v in value)
+        else:
+            text = "; ".join(format_value(v) or "-" for v in value)
+    elif isinstance(value, (int, str)):
+        text = str(value)
+    else:
+        text = json.dumps(value, default=str, sort_keys=True)
+    return text if len(text) <= MAX_FACT_CHARS else text[: MAX_FACT_CHARS - 1] + "…"
+
+
+def own_columns(names: list[str], unit: str) -> list[str]:
+    """A stage table's columns that are neither common nor the unit's own."""
+    unit_names = PAGE_NAMES if unit == "pages" else CHUNK_NAMES
+    return [n for n in names if n not in COMMON_NAMES and n not in unit_names]
+
+
+def _unit_at(stage: str, row: dict[str, Any], own: list[str]) -> UnitAtStage:
+    facts = []
+    for name in own:
+        text = format_value(row.get(name))
+        if text is not None:
+            facts.append((name, text))
+    return UnitAtStage(
+        stage=stage, status=row.get("status") or "ok", reason=row.get("reason") or "",
+        error_type=row.get("error_type") or "", traceback=row.get("traceback") or "",
+        warnings=list(row.get("warnings") or []), facts=facts, text=row.get("text"),
+        run_id=row.get("run_id") or "", attempt=row.get("attempt") or 1,
+    )
+
+
+# --------------------------------------------------------------------------- reading the store
+
+class _StoreAsOf(Store):
+    """The store as it was when a given run committed: later runs are invisible."""
+
+    def __init__(self, root: str, sequence: int):
+        super().__init__(root)
+        self._as_of = sequence
+
+    def runs(self, refresh: bool = False) -> list[RunInfo]:
+        return [r for r in super().runs(refresh) if r.sequence <= self._as_of]
+
+
+def _pick_run(store: Store, run_id: str | None) -> tuple[RunInfo, bool]:
+    runs = store.runs(refresh=True)
+    if not runs:
+        raise ReportError(f"no committed run in store {store.root}; run `thresher run` first")
+    if run_id is None:
+        return runs[-1], True
+    for r in runs:
+        if r.run_id == run_id:
+            return r, r is runs[-1]
+    raise ReportError(f"no committed run {run_id!r} in store {store.root} "
+                      f"(latest is {runs[-1].run_id})")
+
+
+def _live_catalog(store: Store, run: RunInfo, is_latest: bool) -> dict[str, list[dict[str, Any]]]:
+    """doc_id -> its catalog rows (every path holding those bytes) live at `run`.
+
+    The catalog is rewritten by every run, so for an older run a path counts as live
+    when it was first seen at or before that run and was still seen at or after it.
+    """
+    seq = {r.run_id: r.sequence for r in store.runs()}
+    by_doc: dict[str, list[dict[str, Any]]] = {}
+    for row in store.catalog().to_pylist():
+        if is_latest:
+            live = bool(row.get("present"))
+        else:
+            first = seq.get(row.get("first_run") or "", 10**9)
+            last = seq.get(row.get("last_run") or "", 0)
+            live = first <= run.sequence and (last >= run.sequence or bool(row.get("present")))
+        if live:
+            by_doc.setdefault(row["doc_id"], []).append(row)
+    for rows in by_doc.values():
+        rows.sort(key=lambda r: r["source_path"])
+    return by_doc
+
+
+def _stage_infos(manifest: dict[str, Any]) -> list[StageInfo]:
+    out = []
+    for s in manifest.get("definition", {}).get("steps", []):
+        out.append(StageInfo(name=s["name"], unit=s.get("unit", "pages"), version=str(s.get("version", "")),
+                             scope=s.get("scope", ""), formats=list(s.get("formats") or []),
+                             params=dict(s.get("params") or {})))
+    return out
+
+
+def _canonical_path(rows: list[dict[str, Any]]) -> str:
+    canon = {r.get("canonical_path") for r in rows} - {None, ""}
+    paths = [r["source_path"] for r in rows]
+    for c in sorted(canon):
+        if c in paths:
+            return c
+    return paths[0]
+
+
+def gather(store: Store, run_id: str | None = None) -> ReportData:
+    """Everything the review page shows, for `run_id` (default: the latest committed run)."""
+    run, is_latest = _pick_run(store, run_id)
+    view = store if is_latest else _StoreAsOf(store.root, run.sequence)
+    catalog = _live_catalog(view, run, is_latest)
+    doc_ids = sorted(catalog)
+    stages = _stage_infos(run.manifest)
+
+    docs: dict[str, DocumentView] = {}
+    for d in doc_ids:
+        rows = catalog[d]
+        path = _canonical_path(rows)
+        first = rows[0]
+        docs[d] = DocumentView(
+            doc_id=d, path=path, other_paths=[r["source_path"] for r in rows if r["source_path"] != path],
+            size=first.get("size"), first_run=first.get("first_run"), last_run=first.get("last_run"),
+            anchor=f"d-{d}",
+        )
+
+    pages: dict[tuple[str, str], PageView] = {}
+    chunks: dict[str, ChunkView] = {}
+    chunk_ok: dict[str, list[bool]] = {}  # per chunk: ok at each stage that is not format-limited
+    for st in stages:
+        table = view.current(st.name, st.unit, doc_ids) if doc_ids else None
+        rows = table.to_pylist() if table is not None else []
+        own = own_columns(table.schema.names, st.unit) if table is not None else []
+        st.counts = dict(Counter(r["status"] for r in rows))
+        held_by = set()
+        for row in rows:
+            doc = docs.get(row["doc_id"])
+            if doc is None:
+                continue
+            held_by.add(row["doc_id"])
+            counts = doc.by_stage.setdefault(st.name, {})
+            counts[row["status"]] = counts.get(row["status"], 0) + 1
+            unit = _unit_at(st.name, row, own)
+            if row.get("format") and not doc.format:
+                doc.format = row["format"]
+            if row.get("title") and not doc.title:
+                doc.title = row["title"]
+            if st.unit == "pages":
+                key = (row["doc_id"], row["locator"])
+                pv = pages.get(key)
+                if pv is None:
+                    pv = pages[key] = PageView(row["locator"], row.get("page"), [])
+                    doc.pages.append(pv)
+                pv.stages.append(unit)
+                if row.get("language"):
+                    pv.language, pv.language_prob = row["language"], row.get("language_prob")
+                for col in ("doc_language",):  # a document-level language, where a stage gives one
+                    if row.get(col):
+                        doc.language = row[col]
+            else:
+                cid = row.get("chunk_id") or row["unit_id"]
+                cv = chunks.get(cid)
+                if cv is None:
+                    cv = chunks[cid] = ChunkView(
+                        chunk_id=cid, index=row.get("chunk_index") or 0,
+                        heading_path=list(row.get("heading_path") or []),
+                        page_start=row.get("page_start"), page_end=row.get("page_end"),
+                        tokens=row.get("token_count"), language=row.get("language"),
+                        text=row.get("text") or "", stages=[])
+                    doc.chunks.append(cv)
+                cv.stages.append(unit)
+                # Later stages refine what earlier ones said (the token stage's count wins).
+                if row.get("token_count") is not None:
+                    cv.tokens = row["token_count"]
+                if row.get("language"):
+                    cv.language = row["language"]
+                if row.get("text"):
+                    cv.text = row["text"]
+                if "duplicate_of" in row and row.get("duplicate_of"):
+                    cv.duplicate_of = row["duplicate_of"]
+                    cv.similarity = row.get("similarity")
+                    cv.duplicate_kind = row.get("duplicate_kind")
+                if not st.formats:
+                    chunk_ok.setdefault(cid, []).append(row["status"] == "ok")
+        if st.formats:
+            for d, doc in docs.items():
+                if d not in held_by and doc.format and doc.format not in st.formats:
+                    doc.passed_by.append(st.name)
+
+    # A chunk is live when every chunk stage that holds it has it ok (as the hand-off says).
+    chunk_stages = [s for s in stages if s.unit == "chunks" and not s.formats]
+    for cid, cv in chunks.items():
+        oks = chunk_ok.get(cid, [])
+        cv.live = bool(chunk_stages) and len(oks) == len(chunk_stages) and all(oks) \
+            and all(u.status == "ok" for u in cv.stages)
+
+    order = {s.name: i for i, s in enumerate(stages)}
+    for doc in docs.values():
+        doc.pages.sort(key=lambda p: (p.page is None, p.page or 0, p.locator))
+        doc.chunks.sort(key=lambda c: (c.index, c.chunk_id))
+        units = [u for p in doc.pages for u in p.stages] + [u for c in doc.chunks for u in c.stages]
+        doc.status = worst(u.status for u in units) or "none"
+        doc.first_problem = _first_problem(doc, order)
+        if doc.language is None:
+            langs = Counter(p.language for p in doc.pages if p.language)
+            if langs:
+                doc.language = langs.most_common(1)[0][0]
+
+    budget = None
+    for s in stages:
+        if s.unit == "chunks" and isinstance(s.params.get("max_tokens"), int):
+            budget = s.params["max_tokens"]
+            break
+    status_rank = {s: i for i, s in enumerate(SEVERITY)}
+    ordered = sorted(docs.values(), key=lambda d: (status_rank.get(d.status, len(SEVERITY)), d.path))
+    return ReportData(run=run, is_latest=is_latest, stages=stages, documents=ordered,
+                      generated_at=datetime.now().astimezone(), store_root=store.root, budget_tokens=budget)
+
+
+def _first_problem(doc: DocumentView, order: dict[str, int]) -> str:
+    """The first failed unit's reason in chain order, else the first dropped or skipped one."""
+    found: list[tuple[int, int, int, str]] = []
+    rank = {s: i for i, s in enumerate(SEVERITY)}
+    for pos, p in enumerate(doc.pages):
+        for u in p.stages:
+            if u.status != "ok":
+                found.append((rank.get(u.status, 9), order.get(u.stage, 99), pos, f"{u.stage}: {u.reason or u.status}"))
+    for pos, c in enumerate(doc.chunks):
+        for u in c.stages:
+            if u.status != "ok":
+                found.append((rank.get(u.status, 9), order.get(u.stage, 99), 10**6 + pos,
+                              f"{u.stage}: {u.reason or u.status}"))
+    return min(found)[3] if found else ""
