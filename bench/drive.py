@@ -63,6 +63,23 @@ def make_drive(root: Path, documents: int, seed: int = 7, large_share: float = 0
     return root
 
 
+def add_large_pdfs(root: Path, count: int, copies: int = 10) -> list[Path]:
+    """Book-length PDFs: the demo handbook's pages repeated `copies` times (7 pages each)."""
+    import pypdfium2 as pdfium
+
+    src = pdfium.PdfDocument(str(SAMPLE / "operations" / "branch-operations-handbook.pdf"))
+    out = []
+    for i in range(count):
+        dst = pdfium.PdfDocument.new()
+        for _ in range(copies + i):  # different lengths, so each is its own document
+            dst.import_pages(src)
+        path = root / "books" / f"handbook-compilation-{i:02d}.pdf"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        dst.save(str(path))
+        out.append(path)
+    return out
+
+
 def change_files(root: Path, share: float, seed: int = 11) -> list[Path]:
     """Edit a share of the generated notes (appending a paragraph), as a week would."""
     rng = random.Random(seed)

@@ -1,0 +1,119 @@
+"""One worker against N processes and a local Dask cluster of N workers, on a drive of a
+few large PDFs and many small files.
+
+Each configuration runs as its own `thresher run` process against one Prefect server
+started here first (so no configuration pays for a server start), and is measured
+the same way: wall time, peak memory of its whole process tree (polled with psutil),
+and the time spent inside the steps as the run's manifest reports it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+from bench.drive import add_large_pdfs, make_drive
+
+SMALL_DOCUMENTS = 400
+LARGE_PDFS = 4
+
+
+def _tree_rss(pid: int) -> int:
+    import psutil
+
+    try:
+        proc = psutil.Process(pid)
+        procs = [proc] + proc.children(recursive=True)
+    except psutil.NoSuchProcess:
+        return 0
+    total = 0
+    for p in procs:
+        try:
+            total += p.memory_info().rss
+        except psutil.NoSuchProcess:
+            pass
+    return total
+
+
+def _measure(cmd: list[str], env: dict) -> tuple[float, int, dict]:
+    peak = 0
+    t = time.perf_counter()
+    proc = subprocess.Popen(cmd, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    done = threading.Event()
+
+    def poll() -> None:
+        nonlocal peak
+        while not done.is_set():
+            peak = max(peak, _tree_rss(proc.pid))
+            time.sleep(0.1)
+
+    watcher = threading.Thread(target=poll, daemon=True)
+    watcher.start()
+    out, err = proc.communicate()
+    wall = time.perf_counter() - t
+    done.set()
+    watcher.join()
+    if proc.returncode != 0:
+        raise RuntimeError(f"{' '.join(cmd)} failed: {err[-2000:]}")
+    return wall, peak, json.loads(out)
+
+
+def main() -> None:
+    from thresher.flows import runtime  # noqa: F401
+    from prefect.server.api.server import SubprocessASGIServer
+
+    from thresher.flows.pipeline import _free_port
+
+    workers = os.cpu_count() or 2
+    server = SubprocessASGIServer(port=_free_port())
+    server.start(timeout=120)
+    env = dict(os.environ)
+    env["PREFECT_API_URL"] = server.api_url
+    thresher = str(Path(sys.executable).with_name("thresher"))
+    try:
+        with tempfile.TemporaryDirectory() as tmp:
+            drive = make_drive(Path(tmp) / "drive", SMALL_DOCUMENTS)
+            add_large_pdfs(drive, LARGE_PDFS)
+            configs = {
+                "1 worker (sequential)": {"kind": "sequential", "workers": 1},
+                f"{workers} processes": {"kind": "processes", "workers": workers},
+                f"Dask, {workers} local workers": {"kind": "dask", "workers": workers},
+            }
+            results = {}
+            for label, runner in configs.items():
+                flow = Path(tmp) / f"{runner['kind']}.yaml"
+                flow.write_text(json.dumps({"runner": {**runner, "batch_size": 8},
+                                            "steps": _default_steps()}))
+                store = Path(tmp) / f"store-{runner['kind']}"
+                results[label] = _measure([thresher, "run", "--config", str(flow), "--source", str(drive),
+                                           "--store", str(store), "--quiet", "--json"], env)
+    finally:
+        server.stop()
+    base = next(iter(results.values()))[0]
+    first = next(iter(results.values()))[2]
+    print(f"drive: {first['documents']['files']} files, {first['pages']} pages, {first['chunks']} chunks; "
+          f"{workers} cores")
+    print(f"{'configuration':<28} {'wall s':>7} {'speed-up':>8} {'peak MB':>8} {'outside steps':>13}")
+    for label, (wall, peak, m) in results.items():
+        n = 1 if label.startswith("1 worker") else workers
+        # Step time is summed over workers; spread over n of them it is the steps' share of wall time.
+        outside = max(0.0, 1 - m["step_seconds"] / n / wall)
+        print(f"{label:<28} {wall:7.2f} {base / wall:8.2f} {peak / 2**20:8.0f} {outside:13.0%}")
+
+
+def _default_steps() -> list:
+    import yaml
+
+    from thresher.flows.config import default_config_text
+
+    return yaml.safe_load(default_config_text())["steps"]
+
+
+if __name__ == "__main__":
+    main()
