@@ -2,23 +2,43 @@
 
 A corpus step runs once per run over every live document and writes rows only where
 its decision is new or changed, so an unchanged week writes next to nothing.
+
+Two calling conventions (steps/spec.py and steps/incremental.py):
+
+- plain: the step gets the full units of every live document and returns units;
+  rows are written for documents whose input changed this run, and for other
+  documents only where a unit's decision differs from its current row.
+- incremental (IncrementalCorpusSpec): the step sketches only the documents whose
+  input changed this run, loaded DOCS_PER_BATCH documents at a time; for the other
+  live documents it gets back its own stored rows, only the columns it keeps (read
+  as Arrow, no text). Its decisions become rows: a changed document is rewritten
+  whole from its input chunks plus the sketch and the decision; a stored chunk whose
+  decision changed gets its stored row with the new decision, as a new attempt.
 """
 
 from __future__ import annotations
 
 import time
-from collections import defaultdict
-from dataclasses import dataclass
+from collections import Counter, defaultdict
+from dataclasses import dataclass, replace
 from typing import Any
 
+import pyarrow as pa
+import pyarrow.compute as pc
+
 from thresher.flows import schema
-from thresher.flows.config import FlowDefinition
+from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
 from thresher.flows.execute import Unit, applies_to, now_utc, unit_kind, load_units
 from thresher.flows.rows import RowContext, rows_to_table, to_row
 from thresher.flows.store import Store
+from thresher.steps.incremental import IncrementalCorpusSpec
 from thresher.steps.spec import StepContext
-from thresher.steps.units import DocChunks, DocPages
+from thresher.steps.units import OK, DocChunks, DocPages
+
+# Documents whose chunks (with text) are held in memory at once by an incremental
+# corpus step, when sketching and again when writing their rows.
+DOCS_PER_BATCH = 1000
 
 
 @dataclass
@@ -54,6 +74,8 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     """
     t0 = time.perf_counter()
     step = definition.steps[index]
+    if isinstance(step.spec, IncrementalCorpusSpec):
+        return _run_incremental(definition, store, run_id, index, live_docs, rewrite_docs)
     kind = unit_kind(step)
     loaded = load_units(store, definition, index, sorted(live_docs), run_id)
     loaded = {d: v for d, v in loaded.items() if d in live_docs and v.units and applies_to(step, v.units)}
@@ -104,3 +126,176 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     if all_rows:
         store.write_stage_part(step.name, run_id, "corpus", rows_to_table(step.name, kind, all_rows), writes)
     return CorpusResult(step.name, affected, counts, len(all_rows), time.perf_counter() - t0)
+
+
+# ----------------------------------------------------------------------------- incremental
+
+
+def _batches(items: list[str], size: int) -> list[list[str]]:
+    return [items[i:i + size] for i in range(0, len(items), size)]
+
+
+def _load_docs(store: Store, definition: FlowDefinition, index: int, doc_ids: list[str],
+               live_docs: dict[str, tuple[int, str]], run_id: str) -> tuple[list[DocChunks], dict[str, str]]:
+    """These documents' ok chunks from the stage before, and which stage each came from."""
+    step = definition.steps[index]
+    loaded = load_units(store, definition, index, doc_ids, run_id)
+    docs, stages = [], {}
+    for d in doc_ids:
+        got = loaded.get(d)
+        if got is None or not got.units or not applies_to(step, got.units):
+            continue
+        docs.append(DocChunks(d, live_docs[d][1], live_docs[d][0], list(got.units)))
+        stages[d] = got.stage
+    return docs, stages
+
+
+def _check_sketch(step: ResolvedStep, table: pa.Table, docs: list[DocChunks]) -> pa.Table:
+    spec = step.spec
+    need = ["doc_id", "chunk_id", "chunk_index", *spec.sketch_columns]
+    missing = [c for c in need if c not in table.column_names]
+    if missing:
+        raise ValueError(f"step {step.name}: sketch lacks columns {missing}")
+    expected = sum(1 for d in docs for c in d.chunks if c.ok)
+    if table.num_rows != expected:
+        raise ValueError(f"step {step.name}: sketch gave {table.num_rows} rows for {expected} ok chunks")
+    sch = schema.stage_schema(step.name, "chunks")
+    return table.select(need).cast(pa.schema([sch.field(c) for c in need]))
+
+
+def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str]], fresh: bool) -> pa.Table:
+    """Add each row's document rank and current path, and whether it is fresh."""
+    ids = table.column("doc_id").to_pylist()
+    return table.append_column("rank", pa.array([live_docs[d][0] for d in ids], pa.int64())) \
+        .append_column("source_path", pa.array([live_docs[d][1] for d in ids], pa.string())) \
+        .append_column("fresh", pa.array([fresh] * len(ids), pa.bool_()))
+
+
+def _rows_by_doc(table: pa.Table) -> dict[str, list[int]]:
+    out: dict[str, list[int]] = defaultdict(list)
+    for i, d in enumerate(table.column("doc_id").to_pylist()):
+        out[d].append(i)
+    return out
+
+
+def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, index: int,
+                     live_docs: dict[str, tuple[int, str]], rewrite_docs: set[str]) -> CorpusResult:
+    t0 = time.perf_counter()
+    step = definition.steps[index]
+    spec: IncrementalCorpusSpec = step.spec  # type: ignore[assignment]
+    kind = "chunks"
+    ctx = StepContext(encoding=get_encoding)
+    started = now_utc()
+    rewritten = sorted(set(rewrite_docs) & set(live_docs))
+    unchanged = sorted(set(live_docs) - set(rewrite_docs))
+
+    # Stored rows of unchanged documents: only the columns the step keeps, no text.
+    kept = store.current(step.name, kind, unchanged, columns=list(spec.kept_columns), include_run=run_id) \
+        if unchanged else schema.stage_schema(step.name, kind).empty_table().select(list(spec.kept_columns))
+    held = set(pc.unique(kept.column("doc_id")).to_pylist()) if kept.num_rows else set()
+    # An unchanged document this stage holds nothing of may still have chunks upstream.
+    fresh_ids = rewritten + [d for d in unchanged if d not in held]
+
+    sketches: list[pa.Table] = []
+    for batch in _batches(fresh_ids, DOCS_PER_BATCH):
+        docs, _ = _load_docs(store, definition, index, batch, live_docs, run_id)
+        if docs:
+            sketches.append(_check_sketch(step, spec.sketch(docs, step.params, ctx), docs))
+    parts = [_with_place(t, live_docs, True) for t in sketches]
+    if kept.num_rows:
+        parts.append(_with_place(kept, live_docs, False))
+    if not parts and not rewritten:
+        return CorpusResult(step.name, set(), {}, 0, time.perf_counter() - t0)
+    table = pa.concat_tables(parts, promote_options="default") if parts else None
+    decisions = spec.decide(table, step.params, ctx) if table is not None and table.num_rows else None
+    if decisions is not None:
+        missing = [c for c in ("doc_id", "chunk_id", "status", "reason", *spec.decision_columns)
+                   if c not in decisions.column_names]
+        if missing:
+            raise ValueError(f"step {step.name}: decisions lack columns {missing}")
+    ms = round((time.perf_counter() - t0) * 1000.0, 3)
+
+    dec_rows = _rows_by_doc(decisions) if decisions is not None else {}
+    fresh_sketch = pa.concat_tables(sketches) if sketches else None
+    sketch_rows = _rows_by_doc(fresh_sketch) if fresh_sketch is not None else {}
+    affected: set[str] = set()
+    counts: Counter[str] = Counter()
+    written = 0
+    part = 0
+
+    # Documents whose input changed: rewritten whole, from their input chunks.
+    fresh_set = set(fresh_ids)
+    rewritten_set = set(rewritten)
+    for batch in _batches(fresh_ids, DOCS_PER_BATCH):
+        with_sketch = [d for d in batch if d in sketch_rows]
+        docs, stages = _load_docs(store, definition, index, with_sketch, live_docs, run_id) if with_sketch else ([], {})
+        attempts = store.max_attempts(step.name, kind, [d.doc_id for d in docs]) if docs else {}
+        rows: list[dict[str, Any]] = []
+        for doc in docs:
+            sk = {r["chunk_id"]: r for r in fresh_sketch.take(pa.array(sketch_rows[doc.doc_id])).to_pylist()}
+            dec = {r["chunk_id"]: r for r in decisions.take(pa.array(dec_rows.get(doc.doc_id, []), pa.int64()))
+                   .to_pylist()}
+            missing = [c.chunk_id for c in doc.chunks if c.chunk_id not in dec or c.chunk_id not in sk]
+            if missing:
+                raise ValueError(f"step {step.name}: no sketch or decision for {len(missing)} chunk(s) of "
+                                 f"{doc.source_path}")
+            units: list[Unit] = []
+            for chunk in doc.chunks:
+                d = dec[chunk.chunk_id]
+                payload = {c: sk[chunk.chunk_id][c] for c in spec.sketch_columns}
+                payload.update({c: d[c] for c in spec.decision_columns})
+                unit = replace(chunk, parents=[chunk.locator], warnings=[], payload=payload,
+                               heading_path=list(chunk.heading_path), status=OK, reason="")
+                if d["status"] != OK:
+                    unit.status, unit.reason = d["status"], d["reason"] or ""
+                units.append(unit)
+                counts[unit.status] += 1
+            rctx = RowContext(run_id, doc.doc_id, doc.source_path, step.name, spec.version, step.digest, kind,
+                              stages[doc.doc_id], started, ms, attempts)
+            rows.extend(to_row(rctx, u) for u in units)
+            affected.add(doc.doc_id)
+        # A rewritten document with no chunks now still retires its older rows.
+        writes = sorted({(d, "document") for d in batch if d in rewritten_set} |
+                        {(d.doc_id, "document") for d in docs})
+        if writes:
+            store.write_stage_part(step.name, run_id, f"corpus-{part:05d}", rows_to_table(step.name, kind, rows), writes)
+            part += 1
+            written += len(rows)
+
+    # Stored chunks of unchanged documents whose decision changed: their row, decided anew.
+    revised_docs = sorted(d for d in dec_rows if d not in fresh_set)
+    revised: dict[tuple[str, str], dict[str, Any]] = {}
+    for d in revised_docs:
+        for r in decisions.take(pa.array(dec_rows[d])).to_pylist():
+            revised[(d, r["chunk_id"])] = r
+    if revised_docs:
+        current = store.current(step.name, kind, revised_docs, include_run=run_id).to_pylist()
+        attempts = store.max_attempts(step.name, kind, revised_docs)
+        rows = []
+        for old in current:
+            new = revised.get((old["doc_id"], old["chunk_id"]))
+            if new is None:
+                continue
+            row = dict(old)
+            row.update(run_id=run_id, source_path=live_docs[old["doc_id"]][1], step_version=spec.version,
+                       config_digest=step.digest, status=new["status"], reason=new["reason"], error_type=None,
+                       traceback=None, attempt=attempts.get(old["unit_id"], 0) + 1, started_at=started,
+                       duration_ms=ms)
+            row.update({c: new[c] for c in spec.decision_columns})
+            rows.append(row)
+        if len(rows) != len(revised):
+            raise ValueError(f"step {step.name}: decided about {len(revised) - len(rows)} chunk(s) it was not given")
+        store.write_stage_part(step.name, run_id, f"corpus-{part:05d}", rows_to_table(step.name, kind, rows),
+                               [(d, "units") for d in revised_docs])
+        written += len(rows)
+        affected |= set(revised_docs)
+
+    # Counts over every live chunk the stage now holds: stored ones as decided.
+    if kept.num_rows:
+        stored_status = kept.column("status").to_pylist()
+        stored_ids = kept.column("chunk_id").to_pylist()
+        stored_docs = kept.column("doc_id").to_pylist()
+        for d, c, s in zip(stored_docs, stored_ids, stored_status):
+            new = revised.get((d, c))
+            counts[new["status"] if new is not None else s] += 1
+    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0)
