@@ -10,6 +10,9 @@ Calling conventions, by (consumes, scope):
   chunks, document  run(chunks: list[Chunk], params, ctx) -> list[Chunk]
   chunks, corpus    run(docs: list[DocChunks], params, ctx) -> list[Chunk]
   pages,  corpus    run(docs: list[DocPages], params, ctx) -> list[DocPages]
+  chunks, corpus    an IncrementalCorpusSpec (steps/incremental.py): sketch(docs, params,
+                    ctx) -> pa.Table for changed documents only, then decide(table,
+                    params, ctx) -> pa.Table over every live chunk's stored sketch
 
 A step with `formats` set applies only to documents of those formats (as extraction
 detected them); other documents pass it by unchanged and it writes no rows for them.
