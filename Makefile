@@ -12,16 +12,22 @@ STAMP  := $(VENV)/.thresher-installed
 # Character Database (NormalizationTest.txt), translated manual pages, and Chromium
 # (headless) to render the review page.
 DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
+                        bzip2-doc fontconfig libxslt1-dev locales \
                         unicode-data manpages manpages-de manpages-fr manpages-es \
+                        tesseract-ocr tesseract-ocr-eng libreoffice-writer-nogui \
                         chromium
 
-.PHONY: demo test bench sample clean-store help system-deps
+# Optional OCR of scanned PDF pages (extract: ocr: true): Tesseract and its English data.
+OCR_PACKAGES := tesseract-ocr tesseract-ocr-eng
+
+.PHONY: demo test bench sample clean-store help system-deps ocr
 
 help:
 	@echo "make demo    run the default flow on sample_inputs/ (store in .thresher-store/)"
 	@echo "make test    run the test suite"
 	@echo "make bench   run the benchmarks (prints measured ratios)"
 	@echo "make sample  regenerate sample_inputs/ from tools/make_sample_drive.py"
+	@echo "make ocr     install Tesseract for scanned PDF pages (extract: ocr: true)"
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -44,11 +50,18 @@ test: $(STAMP) system-deps
 
 # Installs only what is missing; needs root (as on CI) or sudo.
 system-deps:
-	@missing=""; for p in $(DEBIAN_TEST_PACKAGES); do \
+	@$(MAKE) --no-print-directory apt-install PACKAGES="$(DEBIAN_TEST_PACKAGES)"
+
+ocr: $(STAMP)
+	@$(MAKE) --no-print-directory apt-install PACKAGES="$(OCR_PACKAGES)"
+	$(BIN)/python -m pip install --quiet -e '.[ocr]'
+
+apt-install:
+	@missing=""; for p in $(PACKAGES); do \
 	  dpkg-query -W -f='$${Status}' $$p 2>/dev/null | grep -q "install ok installed" || missing="$$missing $$p"; \
 	done; \
 	if [ -n "$$missing" ]; then \
-	  echo "installing Debian packages the tests need:$$missing"; \
+	  echo "installing Debian packages:$$missing"; \
 	  SUDO=""; [ "$$(id -u)" = 0 ] || SUDO=sudo; \
 	  $$SUDO apt-get update -qq && $$SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends $$missing; \
 	fi

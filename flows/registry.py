@@ -6,6 +6,7 @@ steps it uses.
 
 BUILTIN_STEPS: dict[str, tuple[str, str]] = {
     "extract": ("thresher.steps.extract", "EXTRACT"),
+    "boilerplate": ("thresher.steps.boilerplate", "BOILERPLATE"),
     "clean": ("thresher.steps.clean", "CLEAN"),
     "language": ("thresher.steps.language", "LANGUAGE"),
     "split": ("thresher.steps.split", "SPLIT"),

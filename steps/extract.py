@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass, field
+from datetime import datetime, timezone
 from typing import Any
 
 from pydantic import Field
@@ -55,7 +56,12 @@ PAYLOAD_KEYS = (
     "word_count",
     "unprintable_share",
     "table_share",
+    "table_count",
+    "columns",
+    "removed",
     "encoding",
+    "byte_size",
+    "modified_at",
 )
 
 
@@ -76,6 +82,16 @@ class ExtractParams(StepParams):
             "page's body size (or it is bold, at body size or larger, and short)"
         ),
     )
+    ocr: bool = Field(
+        False,
+        description="read PDF pages without a text layer with Tesseract (it must be installed)",
+    )
+    ocr_language: str = Field(
+        "eng",
+        pattern=r"^[A-Za-z0-9_]+(\+[A-Za-z0-9_]+)*$",
+        description="Tesseract language(s), joined by '+' (e.g. eng+deu)",
+    )
+    ocr_dpi: int = Field(300, ge=72, le=600, description="resolution pages are rendered at for OCR")
 
 
 class DocumentFailure(Exception):
@@ -96,6 +112,10 @@ class PagePart:
     warnings: list[str] = field(default_factory=list)
     failure: str = ""
     error: BaseException | None = None
+    method: str = ""  # how this page's text was read, when not the reader's usual way
+    columns: int = 1
+    # What was taken out of the page's text and why: {"kind", "text", "reason"} each.
+    removed: list[dict] = field(default_factory=list)
 
 
 @dataclass
@@ -200,10 +220,13 @@ def file_stem(source_path: str) -> str:
 
 # --- payload ------------------------------------------------------------------
 
-def payload(blocks: list[Block], method: str, page_count: int, encoding: str) -> dict[str, Any]:
+def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
+            source: Source | None = None, columns: int = 1,
+            removed: list[dict] | None = None) -> dict[str, Any]:
     text = BLOCK_SEP.join(b.text for b in blocks)
     chars = len(text)
     table_chars = sum(len(b.text) for b in blocks if b.kind == TABLE)
+    size = max(source.size, len(source.data)) if source is not None else None
     return {
         "method": method,
         "page_count": int(page_count),
@@ -212,7 +235,13 @@ def payload(blocks: list[Block], method: str, page_count: int, encoding: str) ->
         "word_count": len(text.split()),
         "unprintable_share": unprintable_count(text) / chars if chars else 0.0,
         "table_share": table_chars / chars if chars else 0.0,
+        "table_count": sum(1 for b in blocks if b.kind == TABLE),
+        "columns": int(columns),
+        "removed": [dict(r) for r in (removed or [])],
         "encoding": encoding,
+        "byte_size": size,
+        "modified_at": (datetime.fromtimestamp(source.mtime, timezone.utc)
+                        if source is not None and source.mtime else None),
     }
 
 
@@ -238,7 +267,7 @@ def failed_document(
         title=file_stem(source.source_path),
         format=fmt,
         parents=[],
-        payload=payload([], _METHODS.get(fmt, ""), 0, ""),
+        payload=payload([], _METHODS.get(fmt, ""), 0, "", source),
     )
     page.fail(reason, exc)
     return [page]
@@ -317,7 +346,8 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
             title=title,
             format=result.format,
             parents=[],
-            payload=payload(part.blocks, result.method, result.page_count, result.encoding),
+            payload=payload(part.blocks, part.method or result.method, result.page_count,
+                            result.encoding, source, part.columns, part.removed),
         )
         page.warnings = doc_warnings + part.warnings
         if part.failure:
@@ -336,7 +366,7 @@ def _time_limit(params: ExtractParams) -> float:
 
 EXTRACT = StepSpec(
     name="extract",
-    version="1",
+    version="2",
     consumes="source",
     produces="pages",
     scope="document",

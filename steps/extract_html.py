@@ -20,8 +20,9 @@ The title is <title>, else the first heading.
 from __future__ import annotations
 
 import re
+import warnings
 
-from bs4 import BeautifulSoup, NavigableString, Tag
+from bs4 import BeautifulSoup, NavigableString, Tag, XMLParsedAsHTMLWarning
 from bs4.element import PreformattedString
 
 from .extract import (
@@ -214,7 +215,10 @@ def visible_text(html: str) -> str:
 
 
 def read_html(text: str, encoding: str) -> ReadResult:
-    soup = BeautifulSoup(text, "lxml")
+    with warnings.catch_warnings():
+        # XHTML is read as HTML on purpose: browsers do so for pages served as HTML.
+        warnings.simplefilter("ignore", XMLParsedAsHTMLWarning)
+        soup = BeautifulSoup(text, "lxml")
     title_tag = soup.find("title")
     title = inline(title_tag.get_text()) if title_tag else ""
     walker = _Walker()

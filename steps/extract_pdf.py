@@ -1,16 +1,25 @@
-"""PDF text layer, page by page, with pdfplumber; outline and metadata from pypdfium2.
+"""PDF pages: PDFium for the text layer, pdfplumber for ruled tables, Tesseract for scans.
+
+Which library does what, and why (measured in bench/extract.py on the PDFs Debian
+documentation packages ship):
+- PDFium (pypdfium2) opens the file (passwords, page count, metadata, outline) and
+  reads every page's characters with their boxes and fonts (pdf_text). It is about
+  twenty times faster than pdfminer and agrees with poppler's pdftotext at least as
+  well once words are broken at our gap rule.
+- pdfplumber's table finder runs only on pages whose vector paths could draw a grid
+  (pdf_tables); the characters inside a table it finds leave the running text.
+- When PDFium cannot open a file at all, pdfplumber (pdfminer) reads it instead, with
+  the same layout rules, and a warning says so.
+- Tesseract reads pages without a text layer when OCR is enabled (pdf_ocr).
 
 Two passes. The first reads each page on its own (a page that fails is recorded and
-the others go on): its ruled tables, then its text lines (without the tables'
-characters), each line with its dominant font size and whether it is bold. The second
-pass sees the whole document and decides what needs more than one page:
-
-Running headers and footers. A line among the first two or last two of a page, in the
-top or bottom 8 % of it, whose text (digits ignored, so page numbers match) recurs
-within 3 pt of the same height on at least half of the text pages (and on 2 or more)
-is dropped, with a warning on the page naming it. (Common practice; thresholds ours.
-On the two PDFs Debian ships in /usr/share/doc, headers sit at 6 % of the page
-height and the first body line at 9 %.)
+the others go on): its words, its tables, and its lines (pdf_layout.make_lines). The
+second sees the whole document: running headers, footers and page numbers are removed
+(pdf_layout.drop_running_lines, each removal recorded in the page's `removed`), then
+each page's columns are found and its lines put in reading order
+(pdf_layout.find_gutters, order_columns), then headings are classified, then
+paragraphs are built with the document's vocabulary deciding hyphenated line ends
+(pdf_layout.join_lines).
 
 Headings. The body size of a page is the font size that most of its characters have
 (rounded to 0.5 pt); a page with fewer than 200 characters uses the document's body
@@ -28,49 +37,43 @@ heading matched promotes the body line with that text on its page. Headings of a
 style that matched no entry take the level most entries of that style had; failing
 that, levels rank the heading styles of the document by size (bold first on a tie).
 
-Paragraphs. Body lines in reading order (top to bottom) join with spaces; a word
-hyphenated at a line end is joined (hyphen removed) when the next line starts in
-the same case as the letter before the hyphen ("re-" "newed", "ELE-" "MENT"; common
-practice, and what pdftotext does; a real hyphen broken at the line end is lost). A new
-paragraph starts after a heading or a table, when the font size changes by more than
-1 pt, when the gap above a line exceeds the page's usual line gap by 0.4 line
-heights, or when a line starts 0.8 to 8 em right of the line above (a first-line
-indent, as books and Texinfo manuals mark paragraphs; not under a list item, whose
-wrapped lines hang indented). A line starting with a bullet glyph starts a new
+Paragraphs. Body lines in reading order join with spaces. A new paragraph starts
+after a heading or a table, when the font size changes by more than 1 pt, when the
+gap above a line (in the same column) exceeds the page's usual line gap by 0.4 line
+heights, or when a line starts 0.8 to 8 em right of the line above, measured from
+its column's usual left edge (a first-line indent, as books and Texinfo manuals mark
+paragraphs; not under a list item, whose wrapped lines hang indented). A paragraph
+that runs to the foot of a column goes on at the head of the next unless the new
+column's first line is indented. A line starting with a bullet glyph starts a new
 "- item" line. Table-of-contents lines (dot leaders and a page number) are never
 headings.
 
-Tables. pdfplumber's find_tables with its ruling-line strategy, only on pages that
-have lines or rectangles; a grid of at least 2 x 2 cells with text is a TABLE block,
-placed by its top edge among the paragraphs, and the characters inside it are left
-out of the running text. A smaller grid (a framed box) is read as running text.
+Words. A gap wider than 0.1 of the font size between two characters is a word break.
+pdfplumber's default (a fixed 3 pt) ran words together on both PDFs Debian ships in
+/usr/share/doc (shared-mime-info, libtasn1-doc): word recall against poppler's
+pdftotext was 0.15 and 0.67; at 0.1 of the font size it was 0.999 and 0.997 (ratios
+0.1-0.25 measured; see tests/test_extract_reference.py).
 
-Words. A gap wider than 0.1 of the font size between two characters is a word break
-(see TEXT_SETTINGS for the measurement behind it). Reading order is top to bottom:
-lines side by side in two columns are not yet told apart.
-
-Pages: no characters but images is a scan (failed, OCR not enabled), and so is a page
-whose images cover 85 % of it with at most 20 characters on top (a stamped number);
-no characters and no images is a blank page (ok, no blocks, a warning). Glyphs
-without a Unicode mapping ("(cid:N)" on more than half the characters) also fail the
-page; a few of them become U+FFFD and count as unprintable.
+Pages: no characters but images is a scan, and so is a page whose images cover 85 %
+of it with at most 20 characters on top (a stamped number); with OCR off it fails
+("OCR is not enabled"), with OCR on and Tesseract missing it fails saying what is
+missing, with OCR it is read and its method is "ocr". No characters and no images is
+a blank page (ok, no blocks, a warning). Glyphs without a Unicode mapping on more than
+half the characters also make the page unreadable as text (OCR reads it when
+enabled); a few of them become U+FFFD and count as unprintable.
 """
 
 from __future__ import annotations
 
 import io
 import re
-import threading
 import unicodedata
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 
-import pdfplumber
-import pdfplumber.page
 import pypdfium2 as pdfium
-from pdfminer.encodingdb import EncodingDB
-from pdfminer.pdfpage import PDFPage
 
+from . import pdf_text
 from .extract import (
     DocumentFailure,
     ExtractParams,
@@ -79,28 +82,28 @@ from .extract import (
     heading_block,
     paragraph_block,
     table_block,
-    table_shape,
 )
+from .pdf_layout import (
+    Line,
+    Vocabulary,
+    drop_running_lines,
+    find_gutters,
+    join_lines,
+    make_lines,
+    order_columns,
+)
+from .pdf_tables import FoundTable, TableReader, inside
+from .pdf_text import LOCK, PageText, Word
 from .units import Block
-
-# PDF Reference 1.7, appendix D, note to the WinAnsiEncoding table (from memory): every
-# unused code above octal 40 shows the bullet. pdfminer leaves them unmapped and writes
-# "(cid:127)"; poppler's pdftotext prints "•", and reportlab (which made the demo
-# drive) encodes its bullets as code 127. So fill the gaps, never replacing a mapping.
-for _code in (0x7F, 0x81, 0x8D, 0x8F, 0x90, 0x9D):
-    EncodingDB.win2unicode.setdefault(_code, "\u2022")
 
 SCANNED = "no text layer (scanned page); OCR is not enabled"
 NO_UNICODE = "text layer has no Unicode mapping (glyph ids only); OCR is not enabled"
+_NO_TEXT = {
+    "scan": "no text layer (scanned page)",
+    "glyphs": "text layer has no Unicode mapping (glyph ids only)",
+}
 
-# PDFium is not thread-safe (pypdfium2's documentation); the flows layer may run
-# extraction in threads, so every PDFium call here holds this lock.
-_PDFIUM_LOCK = threading.Lock()
-
-_BOLD = re.compile(r"bold|black|heavy|semibold|demibold|demi\b|extrabold|ultrabold|\bbd\b",
-                   re.IGNORECASE)
 _BULLET = re.compile(r"^[\u2022\u25e6\u25aa\u25ab\u2023\u2043\u25cf\u25cb\u25a0\u25a1\u2013*\-]\s+")
-_DIGITS = re.compile(r"\d+")
 # A table-of-contents line: dot leaders, then a page number.
 _DOT_LEADER = re.compile(r"(?:\.\s?){4,}\s*[\divxlc]+\s*$", re.IGNORECASE)
 _CID = re.compile(r"\(cid:\d+\)")
@@ -109,39 +112,10 @@ _JUNK_TITLE = re.compile(
     r"^(untitled(\s+document)?|microsoft word\s*-.*|.*\.(docx?|pdf|odt|rtf|txt|tex|indd|qxd))$",
     re.IGNORECASE,
 )
+_BOLD_NAME = re.compile(r"bold|black|heavy|semibold|demibold|demi\b|extrabold|ultrabold|\bbd\b",
+                        re.IGNORECASE)
 
 SMALL_PAGE_CHARS = 200
-# A gap wider than this share of the font size between two characters is a word break.
-# pdfplumber's default (a fixed 3 pt) ran words together on both PDFs Debian ships in
-# /usr/share/doc (shared-mime-info, libtasn1-doc): word recall against poppler's
-# pdftotext was 0.15 and 0.67; at 0.1 of the font size it was 0.999 and 0.997
-# (ratios 0.1-0.25 measured; see tests/test_extract_reference.py).
-TEXT_SETTINGS = {"x_tolerance_ratio": 0.1}
-MARGIN_SHARE = 0.08
-REPEAT_Y_TOLERANCE = 3.0
-
-
-@dataclass
-class Line:
-    text: str
-    top: float
-    bottom: float
-    x0: float
-    size: float
-    bold: bool
-    chars: int
-    heading: bool = False
-    level: int = 0
-
-    @property
-    def style(self) -> tuple[float, bool]:
-        return (round(self.size * 2) / 2, self.bold)
-
-
-@dataclass
-class FoundTable:
-    top: float
-    rows: list[list[str]]
 
 
 @dataclass
@@ -151,8 +125,14 @@ class PageScan:
     lines: list[Line] = field(default_factory=list)
     tables: list[FoundTable] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    removed: list[dict] = field(default_factory=list)
     failure: str = ""
     error: BaseException | None = None
+    no_text: str = ""  # "scan" or "glyphs": a page for OCR
+    columns: int = 1
+    gutters: list[tuple[float, float]] = field(default_factory=list)
+    method: str = "text-layer"
+    ocr_blocks: list[Block] = field(default_factory=list)
 
 
 # --- opening ------------------------------------------------------------------
@@ -184,30 +164,25 @@ class OutlineEntry:
     page: int | None  # 1-based
 
 
-def _pdfium_facts(data: bytes) -> tuple[int, str, list[OutlineEntry]]:
-    """(page count, metadata title, outline); raises PdfiumError if PDFium cannot open it."""
-    with _PDFIUM_LOCK:
-        doc = pdfium.PdfDocument(data)
-        try:
-            count = len(doc)
-            try:
-                title = (doc.get_metadata_value("Title") or "").strip()
-            except Exception:
-                title = ""
-            outline: list[OutlineEntry] = []
-            try:
-                for mark in doc.get_toc(max_depth=6):
-                    dest = mark.get_dest()
-                    index = dest.get_index() if dest is not None else None
-                    outline.append(OutlineEntry(
-                        mark.level + 1,
-                        mark.get_title() or "",
-                        index + 1 if index is not None and index >= 0 else None,
-                    ))
-            except Exception:
-                outline = []  # a broken outline only costs heading levels
-        finally:
-            doc.close()
+def _doc_facts(doc: pdfium.PdfDocument) -> tuple[int, str, list[OutlineEntry]]:
+    """(page count, metadata title, outline). Hold LOCK."""
+    count = len(doc)
+    try:
+        title = (doc.get_metadata_value("Title") or "").strip()
+    except Exception:
+        title = ""
+    outline: list[OutlineEntry] = []
+    try:
+        for mark in doc.get_toc(max_depth=6):
+            dest = mark.get_dest()
+            index = dest.get_index() if dest is not None else None
+            outline.append(OutlineEntry(
+                mark.level + 1,
+                mark.get_title() or "",
+                index + 1 if index is not None and index >= 0 else None,
+            ))
+    except Exception:
+        outline = []  # a broken outline only costs heading levels
     return count, title, outline
 
 
@@ -224,118 +199,201 @@ def _unreadable(data: bytes, pdfium_error: str, exc: BaseException) -> DocumentF
 # --- first pass: one page ---------------------------------------------------------
 
 
-def _is_bold(fontname: str) -> bool:
-    return bool(_BOLD.search(fontname.split("+", 1)[-1]))
-
-
-def _line_from(raw: dict) -> Line | None:
-    chars = [c for c in raw.get("chars", []) if c.get("text", "").strip()]
-    if not chars or not raw.get("text", "").strip():
-        return None
-    sizes = Counter(round(float(c.get("size", 0.0)), 1) for c in chars)
-    bold = sum(1 for c in chars if _is_bold(str(c.get("fontname", ""))))
-    return Line(
-        # A glyph without a Unicode mapping reads "(cid:N)"; it stands for one unknown
-        # character, so it becomes U+FFFD and counts as unprintable.
-        text=_CID.sub("\ufffd", raw["text"].strip()),
-        top=float(raw["top"]),
-        bottom=float(raw["bottom"]),
-        x0=float(raw["x0"]),
-        size=sizes.most_common(1)[0][0],
-        bold=bold >= 0.8 * len(chars),
-        chars=len(chars),
+def _failed_scan(number: int, exc: BaseException) -> PageScan:
+    return PageScan(
+        number=number,
+        failure=f"page could not be read: {type(exc).__name__}: {exc}",
+        error=exc,
     )
 
 
-def _inside(obj: dict, boxes: list[tuple[float, float, float, float]]) -> bool:
-    cx = (obj["x0"] + obj["x1"]) / 2
-    cy = (obj["top"] + obj["bottom"]) / 2
-    return any(x0 <= cx <= x1 and top <= cy <= bottom for x0, top, x1, bottom in boxes)
-
-
-def scan_page(page, number: int) -> PageScan:
-    scan = PageScan(number=number, height=float(page.height))
-    chars = page.chars
-    visible = [c for c in chars if c.get("text", "").strip()]
-    if not visible or _mostly_image(page, visible):
-        if page.images:
-            scan.failure = SCANNED
+def scan_text(number: int, facts: PageText, tables: list[FoundTable]) -> PageScan:
+    """A page's lines (without table text) from its words, or why it has none."""
+    scan = PageScan(number=number, height=facts.height)
+    if facts.visible_chars == 0 or (facts.visible_chars <= 20 and facts.image_share >= 0.85):
+        if facts.images:
+            scan.no_text = "scan"
         else:
             scan.warnings.append("blank page (no text, no images)")
         return scan
-    cid = sum(1 for c in visible if c["text"].startswith("(cid:"))
-    if cid > len(visible) / 2:
-        scan.failure = NO_UNICODE
+    if facts.unmapped > facts.visible_chars / 2:
+        scan.no_text = "glyphs"
         return scan
-
-    boxes = []
-    if page.lines or page.rects:
-        for table in page.find_tables():
-            rows = table.extract(**TEXT_SETTINGS)
-            n_rows, n_cols = table_shape(rows)
-            if n_rows >= 2 and n_cols >= 2:
-                scan.tables.append(FoundTable(top=float(table.bbox[1]), rows=rows))
-                boxes.append(table.bbox)
-    text_page = page
-    if boxes:
-        text_page = page.filter(
-            lambda obj: obj.get("object_type") != "char" or not _inside(obj, boxes)
-        )
-    for raw in text_page.extract_text_lines(return_chars=True, **TEXT_SETTINGS):
-        line = _line_from(raw)
-        if line:
-            scan.lines.append(line)
-    scan.lines.sort(key=lambda ln: (ln.top, ln.x0))
+    words = facts.words
+    if tables:
+        scan.tables = tables
+        boxes = [t.bbox for t in tables]
+        words = [w for w in words if not inside(w.x0, w.top, w.x1, w.bottom, boxes)]
+    scan.lines = make_lines(words)
     return scan
 
 
-def _mostly_image(page, visible: list) -> bool:
-    """A scan with a few stray characters (a stamped number): images cover the page."""
-    if len(visible) > 20 or not page.images:
-        return False
-    area = float(page.width) * float(page.height) or 1.0
-    covered = sum(
+def _pdfium_pages(doc, data: bytes, count: int) -> list[PageScan]:
+    scans: list[PageScan] = []
+    tables = TableReader(data)
+    for index in range(count):
+        number = index + 1
+        try:
+            with LOCK:
+                facts = pdf_text.read_page(doc, index)
+        except Exception as exc:
+            scans.append(_failed_scan(number, exc))
+            continue
+        found: list[FoundTable] = []
+        warnings: list[str] = []
+        if facts.ruled and facts.visible_chars:
+            try:
+                found = tables.tables(number)
+            except Exception as exc:  # tables are a refinement: the text still counts
+                warnings.append(f"tables not read (pdfplumber: {type(exc).__name__}: {exc})")
+        try:
+            scan = scan_text(number, facts, found)
+        except Exception as exc:
+            scan = _failed_scan(number, exc)
+        scan.warnings = warnings + scan.warnings
+        scans.append(scan)
+    return scans
+
+
+# --- the pdfminer route, for files PDFium cannot open ------------------------------
+
+
+def _plumber_words(page) -> PageText:
+    facts = PageText(width=float(page.width), height=float(page.height))
+    chars = [c for c in page.chars if c.get("text", "").strip()]
+    facts.visible_chars = len(chars)
+    facts.unmapped = sum(1 for c in chars if c["text"].startswith("(cid:"))
+    facts.images = len(page.images)
+    area = facts.width * facts.height or 1.0
+    facts.image_share = min(1.0, sum(
         max(0.0, float(im["x1"]) - float(im["x0"])) * max(0.0, float(im["bottom"]) - float(im["top"]))
-        for im in page.images
-    )
-    return covered >= 0.85 * area
+        for im in page.images) / area)
+    facts.ruled = bool(page.lines or page.rects)
+    for w in page.extract_words(x_tolerance_ratio=0.1, extra_attrs=["size", "fontname"]):
+        facts.words.append(Word(
+            text=_CID.sub("\ufffd", w["text"]), x0=float(w["x0"]), x1=float(w["x1"]),
+            top=float(w["top"]), bottom=float(w["bottom"]), size=float(w["size"]),
+            bold=bool(_BOLD_NAME.search(str(w["fontname"]).split("+", 1)[-1])),
+            chars=len(w["text"]),
+        ))
+    return facts
+
+
+def _plumber_tables(page) -> list[FoundTable]:
+    from .extract import table_shape
+    from .pdf_tables import TEXT_SETTINGS
+
+    found = []
+    for table in page.find_tables():
+        rows = table.extract(**TEXT_SETTINGS)
+        n_rows, n_cols = table_shape(rows)
+        if n_rows >= 2 and n_cols >= 2:
+            x0, top, x1, bottom = (float(v) for v in table.bbox)
+            found.append(FoundTable(top=top, bbox=(x0, top, x1, bottom), rows=rows))
+    return found
+
+
+def _pdfminer_pages(data: bytes, pdfium_error: str, params: ExtractParams,
+                    warnings: list[str]) -> list[PageScan]:
+    import pdfplumber
+    import pdfplumber.page
+    from pdfminer.pdfpage import PDFPage
+
+    class _PageOrError(PDFPage):
+        """A pdfminer page that keeps its construction error instead of raising it,
+        so one page with a broken attribute does not end the page-tree walk."""
+
+        def __init__(self, doc, pageid, attrs, label) -> None:  # noqa: ANN001 (pdfminer's)
+            self.error: BaseException | None = None
+            try:
+                super().__init__(doc, pageid, attrs, label)
+            except Exception as exc:
+                self.error = exc
+
+    try:
+        pdf = pdfplumber.open(io.BytesIO(data))
+    except Exception as exc:
+        if _is_password_error(exc):
+            raise DocumentFailure("password protected", exc) from exc
+        raise _unreadable(data, pdfium_error, exc) from exc
+    try:
+        count = sum(1 for _ in _PageOrError.create_pages(pdf.doc))
+    except Exception as exc:
+        raise _unreadable(data, pdfium_error, exc) from exc
+    if not count:
+        raise DocumentFailure(f"unreadable PDF: no pages{_truncation_hint(data)}")
+    if count > params.max_pages:
+        raise DocumentFailure(f"too many pages: {count} over the limit of {params.max_pages}")
+    warnings.append(f"read with pdfminer only ({pdfium_error}); outline not used")
+
+    scans: list[PageScan] = []
+    doctop = 0.0
+    for number, page_obj in enumerate(_PageOrError.create_pages(pdf.doc), start=1):
+        if page_obj.error is not None:
+            scans.append(_failed_scan(number, page_obj.error))
+            continue
+        try:
+            page = pdfplumber.page.Page(pdf, page_obj, page_number=number, initial_doctop=doctop)
+            doctop += float(page.height)
+            facts = _plumber_words(page)
+            found = _plumber_tables(page) if facts.ruled and facts.visible_chars else []
+            scans.append(scan_text(number, facts, found))
+            page.close()
+        except Exception as exc:
+            scans.append(_failed_scan(number, exc))
+    return scans
+
+
+# --- OCR ---------------------------------------------------------------------
+
+
+def _ocr_pages(doc, scans: list[PageScan], params: ExtractParams) -> None:
+    """Read the pages without a text layer with Tesseract, or say why they stay unread."""
+    wanted = [s for s in scans if s.no_text]
+    if not wanted:
+        return
+    if not params.ocr:
+        for scan in wanted:
+            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR is not enabled"
+        return
+    from . import pdf_ocr
+
+    missing = pdf_ocr.unavailable(params.ocr_language)
+    if missing or doc is None:
+        why = missing or "the page cannot be rendered (PDFium could not open the file)"
+        for scan in wanted:
+            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR is not available: {why}"
+        return
+    for scan in wanted:
+        try:
+            with LOCK:
+                page = doc[scan.number - 1]
+                try:
+                    bitmap = page.render(scale=params.ocr_dpi / 72, grayscale=True)
+                    # A copy: the PIL image would otherwise share the bitmap's memory,
+                    # which is freed here, under the lock, not by a later finaliser.
+                    image = bitmap.to_pil().copy()
+                    bitmap.close()
+                finally:
+                    page.close()
+            result = pdf_ocr.read_image(image, params.ocr_language, params.time_limit_seconds)
+        except Exception as exc:
+            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR failed: {type(exc).__name__}: {exc}"
+            scan.error = exc
+            continue
+        if not result.paragraphs:
+            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR found no text"
+            continue
+        scan.method = "ocr"
+        scan.ocr_blocks = [b for b in (paragraph_block(p) for p in result.paragraphs) if b]
+        scan.warnings.append(
+            f"text from OCR (Tesseract {result.version}, language {params.ocr_language}, "
+            f"{params.ocr_dpi} dpi): {result.words} words, mean word confidence "
+            f"{result.confidence:.0f} of 100"
+        )
 
 
 # --- second pass: the document --------------------------------------------------
-
-
-def _repeat_key(text: str) -> str:
-    return _DIGITS.sub("#", " ".join(text.split())).casefold()
-
-
-def drop_running_lines(scans: list[PageScan]) -> None:
-    """Remove header/footer lines that recur at the same height on most pages."""
-    text_pages = [s for s in scans if not s.failure and s.lines]
-    if len(text_pages) < 2:
-        return
-    candidates: dict[int, list[tuple[Line, str]]] = {}
-    seen: dict[str, list[tuple[int, float]]] = defaultdict(list)
-    for scan in text_pages:
-        lines = scan.lines
-        picked = []
-        edge = lines[:2] + [ln for ln in lines[-2:] if ln not in lines[:2]]
-        for ln in edge:
-            if ln.top <= MARGIN_SHARE * scan.height or ln.bottom >= (1 - MARGIN_SHARE) * scan.height:
-                key = _repeat_key(ln.text)
-                picked.append((ln, key))
-                seen[key].append((scan.number, ln.top))
-        candidates[scan.number] = picked
-    need = max(2, (len(text_pages) + 1) // 2)
-    for scan in text_pages:
-        removed = []
-        for ln, key in candidates[scan.number]:
-            pages = {n for n, top in seen[key] if abs(top - ln.top) <= REPEAT_Y_TOLERANCE}
-            if len(pages) >= need:
-                removed.append(ln)
-        if removed:
-            scan.lines = [ln for ln in scan.lines if all(ln is not r for r in removed)]
-            names = "; ".join(f"'{ln.text}'" for ln in removed)
-            scan.warnings.append(f"dropped running header/footer: {names}")
 
 
 def _size_mode(lines: list[Line]) -> tuple[float, int]:
@@ -382,7 +440,8 @@ def _merge_wrapped(lines: list[Line]) -> list[Line]:
             and prev.heading
             and ln.heading
             and prev.style == ln.style
-            and ln.top - prev.bottom <= 0.6 * max(prev.bottom - prev.top, 1.0)
+            and prev.column == ln.column
+            and -0.5 <= ln.top - prev.bottom <= 0.6 * max(prev.bottom - prev.top, 1.0)
         ):
             prev.text = f"{prev.text} {ln.text}"
             prev.bottom = ln.bottom
@@ -393,7 +452,7 @@ def _merge_wrapped(lines: list[Line]) -> list[Line]:
 
 
 def classify_headings(scans: list[PageScan], ratio: float, outline: list[OutlineEntry]) -> None:
-    pages = [s for s in scans if not s.failure]
+    pages = [s for s in scans if not s.failure and s.lines]
     all_lines = [ln for s in pages for ln in s.lines]
     doc_body, _ = _size_mode(all_lines)
     for scan in pages:
@@ -449,30 +508,37 @@ def classify_headings(scans: list[PageScan], ratio: float, outline: list[Outline
                     ln.level = rank.get(ln.style, 1)
 
 
-def _join(current: str, line: str) -> str:
-    if not current:
-        return line
-    if current.endswith("\u00ad"):
-        return current[:-1] + line
-    if current.endswith("-") and len(current) >= 2 and current[-2].isalpha() and line[:1].isalpha():
-        before, after = current[-2], line[0]
-        if (before.islower() and after.islower()) or (before.isupper() and after.isupper()):
-            return current[:-1] + line
-    return f"{current} {line}"
+def _place_tables(scan: PageScan) -> list[object]:
+    """Lines and tables in reading order: a table goes before the first line below it
+    in its column (a table across the gutter: below it in any column)."""
+    items: list[object] = list(scan.lines)
+    mids = [(g0 + g1) / 2 for g0, g1 in scan.gutters]
+    for table in sorted(scan.tables, key=lambda t: t.top):
+        x0, _top, x1, _bottom = table.bbox
+        column = -1
+        if mids:
+            spans = [m for m in mids if x0 < m < x1]
+            if not spans:
+                column = sum(1 for m in mids if m < (x0 + x1) / 2)
+        at = len(items)
+        for k, item in enumerate(items):
+            if isinstance(item, Line) and item.top >= table.top and (
+                column == -1 or item.column in (column, -1) or not mids
+            ):
+                at = k
+                break
+        items.insert(at, table)
+    return items
 
 
-def page_blocks(scan: PageScan) -> list[Block]:
+def page_blocks(scan: PageScan, vocab: Vocabulary | None = None) -> list[Block]:
     body = [ln for ln in scan.lines if not ln.heading]
     gaps = sorted(
         b.top - a.bottom
         for a, b in zip(body, body[1:])
-        if -1.0 <= b.top - a.bottom <= 2.0 * max(a.bottom - a.top, 1.0)
+        if a.column == b.column and -1.0 <= b.top - a.bottom <= 2.0 * max(a.bottom - a.top, 1.0)
     )
     usual = gaps[len(gaps) // 4] if gaps else None
-
-    items: list[tuple[float, int, object]] = [(ln.top, 0, ln) for ln in scan.lines]
-    items += [(t.top, 1, t) for t in scan.tables]
-    items.sort(key=lambda it: (it[0], it[1]))
 
     blocks: list[Block] = []
     para: list[str] = []  # logical lines of the running paragraph
@@ -487,7 +553,7 @@ def page_blocks(scan: PageScan) -> list[Block]:
         para.clear()
         prev = None
 
-    for _top, _order, item in items:
+    for item in _place_tables(scan):
         if isinstance(item, FoundTable):
             flush()
             block = table_block(item.rows)
@@ -503,19 +569,25 @@ def page_blocks(scan: PageScan) -> list[Block]:
             continue
         if prev is not None:
             height = max(prev.bottom - prev.top, 1.0)
-            gap = ln.top - prev.bottom
-            base = usual if usual is not None else 0.2 * height
             indented = (
-                0.8 * ln.size < ln.x0 - prev.x0 < 8 * ln.size
+                0.8 * ln.size < ln.indent - prev.indent < 8 * ln.size
                 and not (para and para[-1].startswith("- "))
             )
-            if gap > base + 0.4 * height or abs(ln.size - prev.size) > 1.0 or indented:
+            if ln.column != prev.column:
+                # On to the next column: the paragraph goes on unless this line is
+                # indented against its own column's left edge.
+                new_para = 0.8 * ln.size < ln.indent < 8 * ln.size or abs(ln.size - prev.size) > 1.0
+            else:
+                gap = ln.top - prev.bottom
+                base = usual if usual is not None else 0.2 * height
+                new_para = gap > base + 0.4 * height or abs(ln.size - prev.size) > 1.0 or indented
+            if new_para:
                 flush()
         bullet = _BULLET.match(ln.text)
         if bullet:
             para.append("- " + ln.text[bullet.end():])
         elif para:
-            para[-1] = _join(para[-1], ln.text)
+            para[-1] = join_lines(para[-1], ln.text, vocab)
         else:
             para.append(ln.text)
         prev = ln
@@ -526,142 +598,61 @@ def page_blocks(scan: PageScan) -> list[Block]:
 # --- the reader ---------------------------------------------------------------
 
 
-class _PageTreeError(Exception):
-    """pdfminer could not walk on through the page tree (the cause says why)."""
-
-
-class _PageOrError(PDFPage):
-    """A pdfminer page that keeps its construction error instead of raising it.
-
-    pdfminer builds pages inside its page-tree walk, so one page with a broken
-    attribute (a MediaBox that is not four numbers, say) would end the walk and lose
-    every later page; this way the walk goes on and only that page fails.
-    """
-
-    def __init__(self, doc, pageid, attrs, label) -> None:  # noqa: ANN001 (pdfminer's)
-        self.error: BaseException | None = None
-        try:
-            super().__init__(doc, pageid, attrs, label)
-        except Exception as exc:
-            self.error = exc
-
-
-def _pages(pdf):
-    """(number, page or None, error or None) for each page, one page's fault its own."""
-    walk = _PageOrError.create_pages(pdf.doc)
-    doctop = 0.0
-    number = 0
-    while True:
-        number += 1
-        try:
-            page_obj = next(walk)
-        except StopIteration:
-            return
-        except Exception as exc:
-            wrapped = _PageTreeError(str(exc))
-            wrapped.__cause__ = exc
-            yield number, None, wrapped
-            return
-        if page_obj.error is not None:
-            yield number, None, page_obj.error
-            continue
-        try:
-            page = pdfplumber.page.Page(pdf, page_obj, page_number=number, initial_doctop=doctop)
-            doctop += float(page.height)
-        except Exception as exc:
-            yield number, None, exc
-            continue
-        yield number, page, None
-
-
-def _failed_scan(number: int, exc: BaseException) -> PageScan:
-    return PageScan(
-        number=number,
-        failure=f"page could not be read: {type(exc).__name__}: {exc}",
-        error=exc,
-    )
-
-
-
 def read_pdf(data: bytes, params: ExtractParams) -> ReadResult:
     warnings: list[str] = []
     outline: list[OutlineEntry] = []
     meta_title = ""
-    count: int | None = None
     pdfium_error = ""
+    doc = None
     try:
-        count, meta_title, outline = _pdfium_facts(data)
+        with LOCK:
+            doc = pdfium.PdfDocument(data)
+            count, meta_title, outline = _doc_facts(doc)
     except Exception as exc:
         if _is_password_error(exc):
             raise DocumentFailure("password protected", exc) from exc
         pdfium_error = _pdfium_message(exc)
-
-    if count is not None and count > params.max_pages:
-        raise DocumentFailure(f"too many pages: {count} over the limit of {params.max_pages}")
+        doc = None
 
     try:
-        pdf = pdfplumber.open(io.BytesIO(data))
-    except Exception as exc:
-        if _is_password_error(exc):
-            raise DocumentFailure("password protected", exc) from exc
-        raise _unreadable(data, pdfium_error, exc) from exc
+        if doc is not None:
+            if count > params.max_pages:
+                raise DocumentFailure(f"too many pages: {count} over the limit of {params.max_pages}")
+            scans = _pdfium_pages(doc, data, count)
+        else:
+            scans = _pdfminer_pages(data, pdfium_error, params, warnings)
+            count = len(scans)
+        _ocr_pages(doc, scans, params)
+    finally:
+        if doc is not None:
+            with LOCK:
+                doc.close()
 
-    scans: list[PageScan] = []
-    stopped: BaseException | None = None
-    # No `with pdf:` on purpose: pdfplumber's close() walks all pages again and would
-    # raise for the broken one; the document lives in memory, so nothing leaks.
-    if count is None:
-        # PDFium could not open the file: count pdfminer's pages for the guard.
-        try:
-            count = sum(1 for _ in _PageOrError.create_pages(pdf.doc))
-        except Exception as exc:
-            raise _unreadable(data, pdfium_error, exc) from exc
-        if not count:
-            raise DocumentFailure(f"unreadable PDF: no pages{_truncation_hint(data)}")
-        warnings.append(f"read with pdfminer only ({pdfium_error}); outline not used")
-        if count > params.max_pages:
-            raise DocumentFailure(
-                f"too many pages: {count} over the limit of {params.max_pages}"
-            )
-    for number, page, error in _pages(pdf):
-        if isinstance(error, _PageTreeError):
-            stopped = error.__cause__
-            break
-        if page is None:
-            scans.append(_failed_scan(number, error))
-            continue
-        try:
-            scans.append(scan_page(page, number))
-        except Exception as exc:
-            scans.append(_failed_scan(number, exc))
-        finally:
-            page.close()  # drop the page's parsed objects; memory stays flat
-
-    found = len(scans)
-    if found < count:
-        # PDFium counted pages that pdfminer could not reach: each still gets a unit.
-        why = f"{type(stopped).__name__}: {stopped}" if stopped else "page tree ends early"
-        for number in range(found + 1, count + 1):
-            scans.append(PageScan(
-                number=number,
-                failure=f"page could not be read: pdfminer found only {found} of "
-                f"{count} pages ({why})",
-                error=stopped,
-            ))
-    elif found > count:
-        warnings.append(f"PDFium counts {count} pages, pdfminer {found}")
-        count = found
-
-    drop_running_lines(scans)
+    text_pages = [s for s in scans if not s.failure and s.lines]
+    removals = drop_running_lines([(s.height, s.lines) for s in text_pages])
+    for scan, removed in zip(text_pages, removals):
+        scan.removed = removed
+        if removed:
+            names = "; ".join(f"'{r['text']}'" for r in removed)
+            scan.warnings.append(f"dropped running header/footer: {names}")
+    for scan in text_pages:
+        em, _ = _size_mode(scan.lines)
+        scan.gutters = find_gutters(scan.lines, em)
+        scan.columns = len(scan.gutters) + 1
+        scan.lines = order_columns(scan.lines, scan.gutters)
     classify_headings(scans, params.pdf_heading_ratio, outline)
+    vocab = Vocabulary()
+    for scan in text_pages:
+        vocab.add("\n".join(ln.text for ln in scan.lines if not ln.heading))
 
     parts_out: list[PagePart] = []
     for scan in scans:
-        part = PagePart(page=scan.number, warnings=scan.warnings,
-                        failure=scan.failure, error=scan.error)
+        part = PagePart(page=scan.number, warnings=scan.warnings, failure=scan.failure,
+                        error=scan.error, method=scan.method, columns=scan.columns,
+                        removed=scan.removed)
         if not scan.failure:
             try:
-                part.blocks = page_blocks(scan)
+                part.blocks = scan.ocr_blocks if scan.method == "ocr" else page_blocks(scan, vocab)
             except Exception as exc:
                 part.failure = f"page layout could not be read: {type(exc).__name__}: {exc}"
                 part.error = exc

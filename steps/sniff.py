@@ -199,9 +199,11 @@ def decode(data: bytes, declared: str | None = None) -> Decoded:
     Order: byte-order mark; UTF-16 without one (NULs on one side of every byte pair);
     a declared charset (HTML <meta>); strict UTF-8; UTF-8 with
     a few bad sequences (when valid multi-byte sequences outnumber the bad ones, the
-    file is UTF-8 with damage, not a legacy encoding: our rule of thumb); else
-    charset-normalizer's best guess (legacy single-byte code pages such as cp1252 or
-    KOI8-R). Line endings become "\\n".
+    file is UTF-8 with damage, not a legacy encoding: our rule of thumb); windows-1252
+    when the text reads as Western European prose in it (see _western_cp1252), unless
+    charset-normalizer names a Central European code page and language; else
+    charset-normalizer's best guess (legacy single-byte code pages such as KOI8-R).
+    Line endings become "\\n".
     """
     warnings: list[str] = []
     bom = _bom(data)
@@ -244,6 +246,9 @@ def decode(data: bytes, declared: str | None = None) -> Decoded:
         return Decoded(_normalise_newlines(text), "utf-8", warnings)
 
     matches = list(charset_normalizer.from_bytes(data))
+    western = _western_cp1252(data)
+    if western is not None and not _central_european(matches):
+        return Decoded(_normalise_newlines(western), "cp1252", warnings)
     if not matches:
         raise NotText("no text encoding fits the bytes")
     best = matches[0]
@@ -261,6 +266,47 @@ def decode(data: bytes, declared: str | None = None) -> Decoded:
             break
     name = codec_name(best.encoding) or best.encoding
     return Decoded(_normalise_newlines(str(best)), name, warnings)
+
+
+# Marks Western European text carries outside ASCII besides letters (cp1252's 0x80-0x9F
+# punctuation, and the Latin-1 signs that occur in prose).
+_TYPOGRAPHIC = set("\u201c\u201d\u2018\u2019\u201a\u201e\u2013\u2014\u2026\u20ac\u00a3\u00a5"
+                   "\u00a9\u00ae\u00b0\u00b1\u00d7\u00f7\u00a7\u00b6\u2022\u00b7\u00ab\u00bb"
+                   "\u00a0\u2122\u00bd\u00bc\u00be\u2030\u2020\u2021")
+_CENTRAL = {"Czech", "Polish", "Slovak", "Hungarian", "Slovene", "Croatian", "Romanian", "Serbian"}
+
+
+def _western_cp1252(data: bytes) -> str | None:
+    """The text as windows-1252, when it reads like Western European prose; else None.
+
+    Short legacy texts give charset-normalizer too little to tell the Latin code pages
+    apart (it read a French Latin-1 note and an English cp1252 note as Baltic cp775).
+    windows-1252 is the HTML standard's legacy default for most locales, so it is
+    taken when every non-ASCII character it yields is a letter or a typographic mark
+    and at most 30 % of the letters are non-ASCII: French, German or Spanish prose
+    has a few per cent; text in another script read as cp1252 (KOI8-R Russian, say)
+    turns nearly every letter into an accented one. (Our rule of thumb.)
+    """
+    try:
+        text = data.decode("cp1252")
+    except UnicodeDecodeError:
+        return None  # 0x81, 0x8D, 0x8F, 0x90 or 0x9D: not windows-1252
+    non_ascii = [c for c in text if ord(c) > 127]
+    if any(not (c.isalpha() or c in _TYPOGRAPHIC) for c in non_ascii):
+        return None
+    letters = sum(1 for c in text if c.isalpha())
+    accented = sum(1 for c in non_ascii if c.isalpha())
+    return text if accented <= 0.3 * max(1, letters) else None
+
+
+def _central_european(matches) -> bool:
+    """charset-normalizer is sure of a Central European code page (Czech in cp1250:
+    its letters also read as Western ones in cp1252, wrongly)."""
+    if not matches:
+        return False
+    best = matches[0]
+    return (codec_name(best.encoding) in ("cp1250", "iso8859-2", "mac-latin2")
+            and best.language in _CENTRAL)
 
 
 def html_declared_charset(data: bytes) -> str | None:

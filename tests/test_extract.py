@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+from datetime import datetime, timezone
 
 import docx
 import pydantic
@@ -16,8 +17,12 @@ from thresher.steps.spec import StepContext, StepParams
 from thresher.steps.units import BLOCK_KINDS, BLOCK_SEP, DOCUMENT_LOCATOR, FAILED, HEADING, OK, Source
 
 
+# 2026-01-14 09:30:00 UTC, as the file system would report it.
+MTIME = 1768383000.0
+
+
 def run(data: bytes, path: str):
-    source = Source(doc_id="d", source_path=path, data=data, size=len(data), mtime=0.0)
+    source = Source(doc_id="d", source_path=path, data=data, size=len(data), mtime=MTIME)
     return extract(source, ExtractParams(), StepContext())
 
 
@@ -53,7 +58,7 @@ METHODS = {"pdf": "text-layer", "docx": "docx", "html": "html", "markdown": "mar
 
 
 def test_spec_names_the_step():
-    assert EXTRACT.name == "extract" and EXTRACT.version == "1"
+    assert EXTRACT.name == "extract" and EXTRACT.version == "2"
     assert (EXTRACT.consumes, EXTRACT.produces, EXTRACT.scope) == ("source", "pages", "document")
     assert EXTRACT.params is ExtractParams and EXTRACT.run is extract
     assert EXTRACT.summary
@@ -63,6 +68,10 @@ def test_params_defaults_and_unknown_keys():
     params = ExtractParams()
     assert issubclass(ExtractParams, StepParams)
     assert (params.max_file_mb, params.max_pages, params.pdf_heading_ratio) == (200, 2000, 1.15)
+    assert (params.ocr, params.ocr_language, params.ocr_dpi) == (False, "eng", 300)
+    assert ExtractParams(ocr_language="eng+deu").ocr_language == "eng+deu"
+    with pytest.raises(pydantic.ValidationError):
+        ExtractParams(ocr_language="eng; rm -rf")
     with pytest.raises(pydantic.ValidationError):
         ExtractParams(max_pages_typo=3)
     with pytest.raises(pydantic.ValidationError):
@@ -85,7 +94,12 @@ def test_every_format_gives_the_same_shape(fmt):
         (HEADING, 1, "Branch Hours"), ("paragraph", 0, "Open daily from nine.")]
     assert tuple(page.payload) == PAYLOAD_KEYS
     assert set(page.payload) == {"method", "page_count", "char_count", "word_count",
-                                 "unprintable_share", "table_share", "encoding"}
+                                 "unprintable_share", "table_share", "table_count", "columns",
+                                 "removed", "encoding", "byte_size", "modified_at"}
+    assert page.payload["byte_size"] == len(data)
+    assert page.payload["modified_at"] == datetime(2026, 1, 14, 9, 30, tzinfo=timezone.utc)
+    assert page.payload["table_count"] == 0 and page.payload["columns"] == 1
+    assert page.payload["removed"] == []
     assert page.payload["method"] == METHODS[fmt]
     assert page.payload["page_count"] == 1
     assert page.payload["char_count"] == len("Branch Hours\n\nOpen daily from nine.")
@@ -99,7 +113,17 @@ def test_failed_document_has_the_full_payload_and_no_blocks():
     assert page.status == FAILED and page.locator == DOCUMENT_LOCATOR
     assert tuple(page.payload) == PAYLOAD_KEYS
     assert page.payload["char_count"] == 0 and page.blocks == [] and page.parents == []
+    assert page.payload["byte_size"] == 0
+    assert page.payload["modified_at"] == datetime(2026, 1, 14, 9, 30, tzinfo=timezone.utc)
     assert page.title == "empty"
+
+
+def test_a_file_over_the_size_limit_still_reports_its_size():
+    # The flows layer does not read such a file: the Source carries its size only.
+    source = Source(doc_id="d", source_path="big/scan.pdf", data=b"", size=3_500_000, mtime=MTIME)
+    (page,) = extract(source, ExtractParams(max_file_mb=1), StepContext())
+    assert page.status == FAILED and page.reason.startswith("file too large: 3.5 MB")
+    assert page.payload["byte_size"] == 3_500_000
 
 
 @settings(max_examples=150, deadline=None)

@@ -1,0 +1,212 @@
+"""What extraction costs, per format, and how thresher's PDF reader compares.
+
+Measured side by side in one run:
+  1. PDF: thresher's extract step, plain pdfplumber `extract_text()` and plain
+     pypdfium2 `get_text_range()` on the same PDFs, first in this process (one
+     worker: wall and CPU time), then with a process pool of every core; each
+     with its word agreement against poppler's pdftotext (precision, recall);
+  2. every other format on the demo drive (and libxslt's HTML site when installed):
+     pages (files) per second through the extract step.
+
+PDFs: the ones Debian documentation packages install and the tests read
+(shared-mime-info, libtasn1-doc, bzip2-doc, fontconfig), plus the demo drive's.
+THRESHER_BENCH_MORE=1 adds every other PDF found under /usr/share/doc and R's
+manuals (r-doc-pdf), gzipped ones unpacked, each once and none over 2 MB;
+pdfplumber then takes minutes.
+"""
+
+from __future__ import annotations
+
+import gzip
+import os
+import shutil
+import subprocess
+import tempfile
+import time
+from collections import Counter
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parents[1]
+SAMPLE = REPO / "sample_inputs"
+
+BASE_PDFS = [
+    "/usr/share/doc/shared-mime-info/shared-mime-info-spec.pdf",
+    "/usr/share/doc/libtasn1-doc/libtasn1.pdf",
+    "/usr/share/doc/bzip2/manual.pdf.gz",
+    "/usr/share/doc/fontconfig/fontconfig-user.pdf.gz",
+]
+BULLETS = {"-", "\u2022"}
+
+
+def _plain(path: str, into: Path) -> Path:
+    if not path.endswith(".gz"):
+        return Path(path)
+    out = into / (Path(path).parent.name + "-" + Path(path).name[:-3])
+    out.write_bytes(gzip.decompress(Path(path).read_bytes()))
+    return out
+
+
+def pdf_corpus(into: Path) -> list[Path]:
+    paths = [p for p in BASE_PDFS if Path(p).exists()]
+    if os.environ.get("THRESHER_BENCH_MORE"):
+        # Each file once (Debian links some manuals from two places); none over 2 MB
+        # (R's 3000-page reference manual alone would keep pdfplumber busy for minutes).
+        seen = {str(Path(p).resolve()) for p in paths}
+        found = sorted(Path("/usr/share/doc").rglob("*.pdf*")) + sorted(Path("/usr/share/R/doc/manual").glob("R-*.pdf"))
+        for p in found:
+            real = p.resolve()
+            if p.suffix in (".pdf", ".gz") and 10_000 < real.stat().st_size < 2_000_000 and str(real) not in seen:
+                seen.add(str(real))
+                paths.append(str(p))
+    out = [_plain(p, into) for p in paths]
+    out += sorted(p for p in SAMPLE.rglob("*.pdf"))
+    return out
+
+
+# --- the three readers: each returns the text of every page ---------------------
+
+
+REMOVED: dict[str, str] = {}  # per PDF, the lines thresher removed (and recorded)
+
+
+def read_thresher(path: str) -> list[str]:
+    from thresher.steps.extract import ExtractParams, extract
+    from thresher.steps.spec import StepContext
+    from thresher.steps.units import Source
+
+    data = Path(path).read_bytes()
+    source = Source(doc_id="bench", source_path=Path(path).name, data=data, size=len(data), mtime=0.0)
+    pages = extract(source, ExtractParams(), StepContext())
+    REMOVED[path] = " ".join(r["text"] for p in pages for r in p.payload["removed"])
+    return [p.text if p.page is not None else "" for p in pages]
+
+
+def read_pdfplumber(path: str) -> list[str]:
+    import pdfplumber
+
+    try:
+        with pdfplumber.open(path) as pdf:
+            return [page.extract_text() or "" for page in pdf.pages]
+    except Exception:  # a file it cannot open (the demo's password-protected one)
+        return []
+
+
+def read_pdfium(path: str) -> list[str]:
+    import pypdfium2 as pdfium
+
+    try:
+        doc = pdfium.PdfDocument(path)
+    except Exception:
+        return []
+    out = []
+    for i in range(len(doc)):
+        page = doc[i]
+        textpage = page.get_textpage()
+        out.append(textpage.get_text_range())
+        textpage.close()
+        page.close()
+    doc.close()
+    return out
+
+
+READERS = {"thresher extract": read_thresher, "pdfplumber extract_text": read_pdfplumber,
+           "pypdfium2 get_text_range": read_pdfium}
+
+
+def _call(args: tuple[str, str]) -> list[str]:
+    name, path = args
+    return READERS[name](path)
+
+
+def _warm() -> None:
+    read_thresher(str(SAMPLE / "policies" / "lending-policy-2025.pdf"))
+    read_pdfplumber(str(SAMPLE / "policies" / "lending-policy-2025.pdf"))
+
+
+def agreement(texts: dict[str, list[str]], reference: dict[str, str]) -> tuple[float, float]:
+    common = ours_n = ref_n = 0
+    for path, pages in texts.items():
+        ours = Counter(w for t in pages for w in t.split() if w not in BULLETS)
+        ref = Counter(w for w in reference[path].split() if w not in BULLETS)
+        common += sum((ours & ref).values())
+        ours_n += sum(ours.values())
+        ref_n += sum(ref.values())
+    return common / max(1, ours_n), common / max(1, ref_n)
+
+
+def main() -> None:
+    cores = os.cpu_count() or 1
+    tmp = Path(tempfile.mkdtemp(prefix="thresher-bench-"))
+    try:
+        pdfs = [str(p) for p in pdf_corpus(tmp)]
+        have_poppler = shutil.which("pdftotext") is not None
+        reference = {}
+        if have_poppler:
+            for p in pdfs:
+                run = subprocess.run(["pdftotext", "-enc", "UTF-8", p, "-"], capture_output=True, text=True)
+                reference[p] = run.stdout if run.returncode == 0 else ""
+        _warm()
+        print(f"PDF corpus: {len(pdfs)} files ({', '.join(Path(p).name for p in pdfs)})")
+        results = {}
+        for name, reader in READERS.items():
+            t0, c0 = time.perf_counter(), time.process_time()
+            texts = {p: reader(p) for p in pdfs}
+            wall, cpu = time.perf_counter() - t0, time.process_time() - c0
+            pages = sum(len(v) for v in texts.values())
+            t0 = time.perf_counter()
+            with ProcessPoolExecutor(max_workers=cores) as pool:
+                list(pool.map(_call, [(name, p) for p in pdfs]))
+            pool_wall = time.perf_counter() - t0
+            results[name] = (pages, wall, cpu, pool_wall, texts)
+        base = results["thresher extract"]
+        print(f"{'reader':26s} {'pages':>5s} {'1 worker':>10s} {'per CPU s':>10s} "
+              f"{'%d workers' % cores:>10s} {'time vs thresher':>17s}  {'P / R vs pdftotext':>18s}")
+        for name, (pages, wall, cpu, pool_wall, texts) in results.items():
+            p, r = agreement(texts, reference) if have_poppler else (float("nan"), float("nan"))
+            print(f"{name:26s} {pages:5d} {pages / wall:8.1f}/s {pages / cpu:8.1f}/s "
+                  f"{pages / pool_wall:8.1f}/s {wall / base[1]:16.2f}x  {p:.4f} / {r:.4f}")
+        if have_poppler:
+            texts = results["thresher extract"][4]
+            p, r = agreement({k: v + [REMOVED.get(k, "")] for k, v in texts.items()}, reference)
+            print(f"{'  + its recorded removals':26s} {'':5s} {'':10s} {'':10s} {'':10s} {'':17s}  {p:.4f} / {r:.4f}")
+        else:
+            print("(no pdftotext: install poppler-utils for the agreement columns)")
+        print("(pages/s: '1 worker' is wall time in this process, 'per CPU s' its CPU time, "
+              f"'{cores} workers' a process pool over documents)")
+
+        # Other formats through the extract step.
+        from thresher.steps.extract import ExtractParams, extract
+        from thresher.steps.sniff import sniff
+        from thresher.steps.spec import StepContext
+        from thresher.steps.units import Source
+
+        files = [p for p in SAMPLE.rglob("*") if p.is_file() and p.suffix != ".pdf"]
+        files += sorted(Path("/usr/share/doc/libxslt1-dev").rglob("*.html"))
+        by_format: dict[str, list[tuple[Path, bytes]]] = {}
+        for f in files:
+            data = f.read_bytes()
+            fmt = sniff(data, f.name).format or "unreadable"
+            by_format.setdefault(fmt, []).append((f, data))
+        print()
+        print(f"{'format':10s} {'files':>5s} {'pages':>5s} {'MB':>6s} {'pages/s (1 worker)':>19s}")
+        for fmt, items in sorted(by_format.items()):
+            if fmt == "unreadable":
+                continue
+            f, data = items[0]  # once untimed: the format's libraries get imported
+            extract(Source(doc_id="w", source_path=f.name, data=data, size=len(data), mtime=0.0),
+                    ExtractParams(), StepContext())
+            t0 = time.perf_counter()
+            pages = 0
+            for f, data in items:
+                src = Source(doc_id="bench", source_path=f.name, data=data, size=len(data), mtime=0.0)
+                pages += len(extract(src, ExtractParams(), StepContext()))
+            wall = time.perf_counter() - t0
+            mb = sum(len(d) for _, d in items) / 1e6
+            print(f"{fmt:10s} {len(items):5d} {pages:5d} {mb:6.2f} {pages / wall:17.1f}/s")
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,378 @@
+"""Page geometry into reading order: lines, columns, running headers, hyphenated words.
+
+Coordinates are points from the top-left corner of the page (y grows downwards).
+
+Lines. Words whose vertical centres lie within 0.35 of a line height of each other
+are one line (so a superscript stays with its line); words of a line are read left
+to right. Two columns whose baselines happen to align become one geometric line here
+and are split again at the gutter below.
+
+Columns (per page). A gutter is a vertical strip at least GUTTER_EM wide, with at
+least COLUMN_EM of text on either side, that at most SPANNING_SHARE of the page's
+lines cross (a title, an abstract or a caption may span the columns), and that has
+text on both sides in at least a fifth of the lines (3 or more). So that a two-column
+list (terms on the left, their descriptions on the right) or a code listing with
+aligned values is not taken for columns, the lines on each side must fill their
+column: half of them reach at least FILL_SHARE of the column's width. (Common
+practice for whitespace-gutter detection; thresholds ours, checked on every page of
+the single-column PDFs Debian ships — none finds a gutter there — and on two-column
+pages built in tests/test_extract_pdf_layout.py.) The page is then read band by
+band: lines that cross no gutter are read column after column, top to bottom within
+each column; a line that crosses a gutter is read where it stands and closes the
+band above it.
+
+Running headers and footers (per document). A line among the first two or last two of
+a page, in the top or bottom 8 % of it, whose text (digits ignored, so page numbers
+match) recurs within 3 pt of the same height on at least half of the text pages (and
+on 2 or more) is removed; each removal is recorded with what it was (page number,
+running header, running footer) and why. (Common practice; thresholds ours. On the
+two PDFs Debian ships in /usr/share/doc from shared-mime-info and libtasn1-doc,
+headers sit at 6 % of the page height and the first body line at 9 %.)
+
+Hyphenated line ends (per document; common practice, the rule is ours). When a line
+ends in a hyphen right after a letter and the next line starts with a letter, the
+document's own vocabulary decides: the hyphenated form ("built-in") is kept when it
+occurs elsewhere in the document more often than the joined form ("builtin"), and the
+word is joined when the joined form occurs more often. When neither occurs, the word
+is joined if the continuation starts lower case (a typesetter's break: "re-" +
+"newed"), or both parts are upper case ("ELE-" + "MENT"); otherwise the hyphen is
+kept without a space ("Quillfern-" + "Central", "ISO-" + "8859"). A soft hyphen
+(U+00AD) at a line end always joins.
+"""
+
+from __future__ import annotations
+
+import re
+from bisect import bisect_right
+from collections import Counter, defaultdict
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .pdf_text import WORD_GAP, Word
+
+GUTTER_EM = 0.6
+COLUMN_EM = 12.0
+SPANNING_SHARE = 0.15
+FILL_SHARE = 0.6
+MARGIN_SHARE = 0.08
+REPEAT_Y_TOLERANCE = 3.0
+
+_DIGITS = re.compile(r"\d+")
+_PAGE_NUMBER = re.compile(
+    r"^\W*(?:(?:page|p\.|seite|pagina|página)\s*)?(?:\d+|[ivxlcdm]+)(?:\s*(?:of|/|von|de|sur)\s*\d+)?\W*$",
+    re.IGNORECASE,
+)
+_WORDS = re.compile(r"[^\W\d_]+(?:-[^\W\d_]+)*")
+
+
+@dataclass
+class Line:
+    text: str
+    top: float
+    bottom: float
+    x0: float
+    x1: float
+    size: float
+    bold: bool
+    chars: int
+    words: list[Word] = field(default_factory=list, repr=False)
+    heading: bool = False
+    level: int = 0
+    column: int = 0  # -1: crosses a gutter
+    indent: float = 0.0  # x0 minus the usual left edge of the line's column
+
+    @property
+    def style(self) -> tuple[float, bool]:
+        return (round(self.size * 2) / 2, self.bold)
+
+    @property
+    def hyphen(self) -> bool:
+        return bool(self.words) and self.words[-1].hyphen
+
+
+def line_from(words: list[Word]) -> Line:
+    words = sorted(words, key=lambda w: w.x0)
+    parts: list[str] = []
+    prev: Word | None = None
+    sizes: dict[float, int] = {}
+    bold = chars = 0
+    top = bottom = None
+    x1 = words[0].x1
+    for w in words:
+        if prev is not None:
+            # Pieces that touch (a superscript, a change of font inside a word) join.
+            limit = 0.25 * WORD_GAP * (w.size if w.size > prev.size else prev.size or 1.0)
+            parts.append("" if w.x0 - prev.x1 <= limit else " ")
+        parts.append(w.text)
+        sizes[w.size] = sizes.get(w.size, 0) + w.chars
+        if w.bold:
+            bold += w.chars
+        chars += w.chars
+        if top is None or w.top < top:
+            top = w.top
+        if bottom is None or w.bottom > bottom:
+            bottom = w.bottom
+        if w.x1 > x1:
+            x1 = w.x1
+        prev = w
+    size = max(sizes.items(), key=lambda kv: kv[1])[0] if sizes else 0.0
+    return Line(
+        text="".join(parts).strip(),
+        top=top,
+        bottom=bottom,
+        x0=words[0].x0,
+        x1=x1,
+        size=round(size, 1),
+        bold=bold >= 0.8 * chars if chars else False,
+        chars=chars,
+        words=words,
+    )
+
+
+def make_lines(words: list[Word]) -> list[Line]:
+    """Group words into lines, top to bottom; text that is not upright comes last."""
+    upright = [w for w in words if w.upright and w.text.strip()]
+    other = [w for w in words if not w.upright and w.text.strip()]
+    upright.sort(key=lambda w: ((w.top + w.bottom) / 2, w.x0))
+    groups: list[list[Word]] = []
+    centre = height = 0.0
+    for w in upright:
+        c = (w.top + w.bottom) / 2
+        h = max(w.bottom - w.top, 0.1)
+        if groups and abs(c - centre) <= 0.35 * max(h, height):
+            groups[-1].append(w)
+            continue
+        groups.append([w])
+        centre, height = c, h
+    lines = [line_from(g) for g in groups]
+    lines.sort(key=lambda ln: (ln.top, ln.x0))
+    lines += [line_from([w]) for w in other]
+    return lines
+
+
+# --- columns ----------------------------------------------------------------
+
+
+def _fills(parts: list[tuple[float, float]], left: float, right: float) -> bool:
+    """Half of the line parts reach FILL_SHARE of the column's width."""
+    width = right - left
+    if width <= 0 or not parts:
+        return False
+    spans = sorted(x1 - x0 for x0, x1 in parts)
+    return spans[len(spans) // 2] >= FILL_SHARE * width
+
+
+def find_gutters(lines: list[Line], em: float) -> list[tuple[float, float]]:
+    """Vertical strips that separate columns of text on this page (left to right)."""
+    lines = [ln for ln in lines if ln.words and ln.words[0].upright]
+    n = len(lines)
+    if n < 6 or em <= 0:
+        return []
+    words = [w for ln in lines for w in ln.words]
+    xs0 = min(w.x0 for w in words)
+    xs1 = max(w.x1 for w in words)
+    if xs1 - xs0 < 2 * COLUMN_EM * em:
+        return []
+    bins = int(xs1 - xs0) + 2
+    diff = np.zeros(bins + 1)
+    a = np.array([int(w.x0 - xs0) for w in words])
+    b = np.array([int(np.ceil(w.x1 - xs0)) for w in words])
+    np.add.at(diff, a, 1)
+    np.add.at(diff, b, -1)
+    coverage = np.cumsum(diff)[:bins]
+    free = coverage <= SPANNING_SHARE * n
+    lo = int(COLUMN_EM * em)
+    hi = bins - int(COLUMN_EM * em)
+    if hi <= lo:
+        return []
+    runs: list[tuple[float, float]] = []
+    start = None
+    for i in range(lo, hi + 1):
+        on = i < hi and bool(free[i])
+        if on and start is None:
+            start = i
+        elif not on and start is not None:
+            if i - start >= max(GUTTER_EM * em, 3.0):
+                runs.append((xs0 + start, xs0 + i))
+            start = None
+    accepted = runs
+    for _ in range(2):  # validate against the neighbours that remain
+        kept = []
+        for k, (g0, g1) in enumerate(accepted):
+            left_edge = accepted[k - 1][1] if k > 0 else xs0
+            right_edge = accepted[k + 1][0] if k + 1 < len(accepted) else xs1
+            left_parts, right_parts = [], []
+            for ln in lines:
+                if any(w.x0 < g1 - 0.5 and w.x1 > g0 + 0.5 for w in ln.words):
+                    continue  # text in the strip: the line spans the columns
+                lw = [w for w in ln.words if left_edge - 0.5 <= w.x0 and w.x1 <= g0 + 0.5]
+                rw = [w for w in ln.words if g1 - 0.5 <= w.x0 and w.x1 <= right_edge + 0.5]
+                if lw:
+                    left_parts.append((min(w.x0 for w in lw), max(w.x1 for w in lw)))
+                if rw:
+                    right_parts.append((min(w.x0 for w in rw), max(w.x1 for w in rw)))
+            need = max(3, n // 5)
+            if (
+                len(left_parts) >= need
+                and len(right_parts) >= need
+                and _fills(left_parts, min(p[0] for p in left_parts), g0)
+                and _fills(right_parts, g1, max(p[1] for p in right_parts))
+            ):
+                kept.append((g0, g1))
+        if kept == accepted:
+            break
+        accepted = kept
+    return accepted
+
+
+def _usual_left(lines: list[Line]) -> float:
+    counts = Counter(round(ln.x0) for ln in lines)
+    return float(counts.most_common(1)[0][0]) if counts else 0.0
+
+
+def order_columns(lines: list[Line], gutters: list[tuple[float, float]]) -> list[Line]:
+    """Reading order: band by band, each band's columns one after the other."""
+    if not gutters:
+        margin = _usual_left(lines)
+        for ln in lines:
+            ln.column = 0
+            ln.indent = ln.x0 - margin
+        return lines
+    mids = [(g0 + g1) / 2 for g0, g1 in gutters]
+    out: list[Line] = []
+    band: dict[int, list[Line]] = defaultdict(list)
+
+    def flush() -> None:
+        for col in sorted(band):
+            out.extend(sorted(band[col], key=lambda ln: (ln.top, ln.x0)))
+        band.clear()
+
+    ordered = sorted([ln for ln in lines if ln.words and ln.words[0].upright],
+                     key=lambda ln: (ln.top, ln.x0))
+    rest = [ln for ln in lines if not (ln.words and ln.words[0].upright)]
+    for ln in ordered:
+        crosses = any(w.x0 < g1 - 0.5 and w.x1 > g0 + 0.5 for w in ln.words for g0, g1 in gutters)
+        if crosses:
+            flush()
+            ln.column = -1
+            out.append(ln)
+            continue
+        by_col: dict[int, list[Word]] = defaultdict(list)
+        for w in ln.words:
+            by_col[bisect_right(mids, (w.x0 + w.x1) / 2)].append(w)
+        for col, ws in by_col.items():
+            part = line_from(ws)
+            part.column = col
+            band[col].append(part)
+    flush()
+    by_column: dict[int, list[Line]] = defaultdict(list)
+    for ln in out:
+        by_column[ln.column].append(ln)
+    for col, members in by_column.items():
+        margin = _usual_left(members)
+        for ln in members:
+            ln.indent = ln.x0 - margin
+    return out + rest
+
+
+# --- running headers and footers ------------------------------------------------
+
+
+def _repeat_key(text: str) -> str:
+    return _DIGITS.sub("#", " ".join(text.split())).casefold()
+
+
+def removal_kind(text: str, top_half: bool) -> str:
+    if _PAGE_NUMBER.match(text.strip()):
+        return "page number"
+    return "running header" if top_half else "running footer"
+
+
+def drop_running_lines(pages: list[tuple[float, list[Line]]]) -> list[list[dict]]:
+    """Remove header/footer lines that recur at the same height on most pages.
+
+    `pages` holds (page height, lines sorted top to bottom) of each text page; the
+    lines lists are edited in place. Returns, per page, the removals made.
+    """
+    removed: list[list[dict]] = [[] for _ in pages]
+    if len(pages) < 2:
+        return removed
+    candidates: list[list[tuple[Line, str]]] = []
+    seen: dict[str, list[tuple[int, float]]] = defaultdict(list)
+    for n, (height, lines) in enumerate(pages):
+        picked = []
+        edge = lines[:2] + [ln for ln in lines[-2:] if ln not in lines[:2]]
+        for ln in edge:
+            if ln.top <= MARGIN_SHARE * height or ln.bottom >= (1 - MARGIN_SHARE) * height:
+                key = _repeat_key(ln.text)
+                picked.append((ln, key))
+                seen[key].append((n, ln.top))
+        candidates.append(picked)
+    total = len(pages)
+    need = max(2, (total + 1) // 2)
+    for n, (height, lines) in enumerate(pages):
+        drop = []
+        for ln, key in candidates[n]:
+            hits = {m for m, top in seen[key] if abs(top - ln.top) <= REPEAT_Y_TOLERANCE}
+            if len(hits) >= need:
+                drop.append(ln)
+                kind = removal_kind(ln.text, ln.top < height / 2)
+                removed[n].append({
+                    "kind": kind,
+                    "text": ln.text,
+                    "reason": f"{kind}: the same line (digits aside) stands at this height "
+                              f"on {len(hits)} of {total} pages",
+                })
+        if drop:
+            lines[:] = [ln for ln in lines if all(ln is not d for d in drop)]
+    return removed
+
+
+# --- hyphenated line ends ----------------------------------------------------
+
+
+@dataclass
+class Vocabulary:
+    """How often the document writes each word joined and each compound hyphenated."""
+
+    joined: Counter = field(default_factory=Counter)
+    hyphenated: Counter = field(default_factory=Counter)
+
+    def add(self, text: str) -> None:
+        tokens = _WORDS.findall(text.casefold())
+        self.joined.update(t for t in tokens if "-" not in t)
+        self.hyphenated.update(t for t in tokens if "-" in t)
+
+
+_TAIL = re.compile(r"([^\W\d_]+)-$")
+_HEAD = re.compile(r"^([^\W\d_]+)")
+
+
+def join_lines(current: str, line: str, vocab: Vocabulary | None = None) -> str:
+    """Append a line to a paragraph, deciding what a line-end hyphen means."""
+    if not current:
+        return line
+    if current.endswith("\u00ad"):
+        return current[:-1] + line
+    if not current.endswith("-"):
+        return f"{current} {line}"
+    tail = _TAIL.search(current)
+    head = _HEAD.match(line)
+    if not tail or not head:
+        # "1-" + "2", "-" alone, a hyphen before punctuation: no word to join.
+        if len(current) >= 2 and current[-2].isalnum() and line[:1].isalnum():
+            return current + line
+        return f"{current} {line}"
+    a, b = tail.group(1), head.group(1)
+    joined = (a + b).casefold()
+    compound = f"{a}-{b}".casefold()
+    n_joined = vocab.joined[joined] if vocab else 0
+    n_hyphenated = vocab.hyphenated[compound] if vocab else 0
+    if n_hyphenated > n_joined:
+        keep = True
+    elif n_joined > n_hyphenated:
+        keep = False
+    else:
+        keep = not (b[0].islower() or (a[-1].isupper() and b.isupper()))
+    return current + line if keep else current[:-1] + line
