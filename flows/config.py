@@ -43,7 +43,7 @@ class RunnerSection(_Strict):
     # For kind "dask": the scheduler of an existing cluster ("tcp://host:8786"); without
     # one, a local Dask cluster of `workers` processes is started for the run.
     address: str | None = None
-    batch_size: int = Field(default=8, ge=1, le=10_000)
+    batch_size: int = Field(default=32, ge=1, le=10_000)
     retries: int = Field(default=2, ge=0, le=20)
     retry_delay_seconds: float = Field(default=2.0, ge=0)
 

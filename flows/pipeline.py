@@ -42,6 +42,8 @@ from thresher.flows.summary import STATUS_ORDER, stage_counts
 # so one huge PDF does not share a task with many others (common practice: size
 # batches by work, not by count alone).
 BATCH_BYTES = 64 << 20
+# Batches per worker to aim for, so the last batches to finish are small ones.
+BATCHES_PER_WORKER = 4
 
 # Testing aid: THRESHER_FAULT=<point> makes the process die at that point, as a
 # killed run would, so tests can prove the store survives it.
@@ -76,13 +78,23 @@ def _default_progress(line: str) -> None:
     print(line, file=sys.stderr, flush=True)
 
 
-def make_batches(jobs: list[DocJob], batch_size: int, batch_bytes: int = BATCH_BYTES) -> list[list[DocJob]]:
-    """Group documents (already largest first) into batches bounded by count and bytes."""
+def make_batches(jobs: list[DocJob], batch_size: int, workers: int = 1,
+                 batch_bytes: int = BATCH_BYTES) -> list[list[DocJob]]:
+    """Group documents into batches, largest documents first.
+
+    A batch is closed at `batch_size` documents or at a byte budget: the drive's bytes
+    spread over BATCHES_PER_WORKER batches per worker (at most BATCH_BYTES). So a few
+    huge PDFs each get a batch of their own and start first, and the many small files
+    fill the remaining batches, which keeps every worker busy to the end.
+    """
+    jobs = sorted(jobs, key=lambda j: (-j.size, j.source_path))
+    total = sum(j.size for j in jobs)
+    budget = min(batch_bytes, max(1, total // max(1, workers * BATCHES_PER_WORKER)))
     batches: list[list[DocJob]] = []
     current: list[DocJob] = []
     size = 0
     for job in jobs:
-        if current and (len(current) >= batch_size or size + job.size > batch_bytes):
+        if current and (len(current) >= batch_size or size + job.size > budget):
             batches.append(current)
             current, size = [], 0
         current.append(job)
@@ -212,7 +224,7 @@ class _Progress:
 
 
 def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: str, data_json: str,
-               progress: Callable[[str], None] | None, timings: dict[str, float]) -> _Progress:
+               progress: Callable[[str], None] | None, timings: dict[str, float], workers: int = 1) -> _Progress:
     """Every segment of the chain in order, for the documents the plan names."""
     model = definition.model
     names = [s.name for s in definition.steps]
@@ -248,7 +260,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 src = jobs_by_doc.get(d)
                 seg_jobs.append(DocJob(d, plan.live[d][1], src.abs_path if src else "", src.size if src else 0,
                                        src.mtime if src else 0.0, first, True))
-            batches = make_batches(seg_jobs, model.runner.batch_size)
+            batches = make_batches(seg_jobs, model.runner.batch_size, workers)
             if not batches:
                 _emit(progress, f"{label}: nothing to do")
                 continue
@@ -302,7 +314,7 @@ def _per_document(store: Store, definition: FlowDefinition, live: dict[str, tupl
 
 def execute_run(definition: FlowDefinition, source_root: str, store_root: str, run_id: str,
                 progress: Callable[[str], None] | None, force: bool = False,
-                rerun: dict[str, Any] | None = None) -> RunOutcome:
+                rerun: dict[str, Any] | None = None, workers: int | None = None) -> RunOutcome:
     """Body of the flows; runs inside a Prefect flow run so tasks are tracked.
 
     `rerun` None: a run over the source folder. Otherwise what to re-run:
@@ -345,7 +357,8 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         timings["plan"] = time.perf_counter() - t0
         logger.info("%s %s: %d documents to process", kind, run_id, len(plan.jobs))
 
-        acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings)
+        acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings,
+                         workers or model.runner.workers)
 
         t0 = time.perf_counter()
         staged = f"runs/{run_id}/staged"
@@ -440,11 +453,11 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
 @flow(name="thresher-run", log_prints=False, persist_result=False)
 def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store_root: str,
            run_id: str | None = None, force: bool = False, quiet: bool = False,
-           rerun: dict[str, Any] | None = None) -> dict[str, Any]:
+           rerun: dict[str, Any] | None = None, workers: int | None = None) -> dict[str, Any]:
     """One run of the chain over the source root (or a re-run of chosen units)."""
     definition = _definition(json.dumps(definition_data, sort_keys=True), origin)
     outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(),
-                          None if quiet else _default_progress, force=force, rerun=rerun)
+                          None if quiet else _default_progress, force=force, rerun=rerun, workers=workers)
     return outcome.manifest
 
 
@@ -471,6 +484,6 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
             flow_obj = build_flow(definition, workers,
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
             return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
-                            run_id=run_id, force=force, quiet=quiet, rerun=rerun)
+                            run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers)
     finally:
         store.release_lock(run_id)

@@ -20,6 +20,7 @@ import os
 from contextlib import contextmanager
 import secrets
 import socket
+import threading
 import time
 import uuid
 from collections.abc import Iterable
@@ -39,6 +40,13 @@ import pyarrow.parquet as pq
 from thresher.flows import schema
 
 RUN_META_KEY = b"thresher.run_id"
+
+# A committed run's files never change, so what they hold is cached for the process,
+# shared by every Store object on the same root (tasks make their own): per
+# (store base, stage, run id), which documents each part file holds and how.
+_LEDGERS: dict[tuple[str, str, str], "Ledger"] = {}
+_LEDGER_FILES: dict[str, list[tuple[str, str]]] = {}
+_LEDGERS_LOCK = threading.Lock()
 COMPRESSION = "zstd"
 
 
@@ -63,6 +71,12 @@ def _filesystem(root: str) -> tuple[pafs.FileSystem, str]:
 
 
 @dataclass
+class Ledger:
+    files: dict[str, list[str]]  # doc_id -> part files holding its rows
+    full: list[str]  # doc_ids the run rewrote whole at the stage
+
+
+@dataclass
 class RunInfo:
     run_id: str
     sequence: int
@@ -74,9 +88,6 @@ class Store:
         self.root = str(root)
         self.fs, self.base = _filesystem(self.root)
         self._runs_cache: list[RunInfo] | None = None
-        # A committed run's files never change: their listings and ledgers are cached.
-        self._files_cache: dict[tuple[str, str], list[str]] = {}
-        self._ledger_cache: dict[tuple[str, str], list[str]] = {}
 
     # ----------------------------------------------------------------- paths and files
 
@@ -371,34 +382,65 @@ class Store:
     def _committed(self, run_id: str) -> bool:
         return any(r.run_id == run_id for r in self.runs())
 
-    def _stage_files(self, stage: str, run_ids: Iterable[str]) -> list[str]:
-        files = []
-        for run_id in sorted(run_ids):
-            key = (stage, run_id)
-            if key in self._files_cache:
-                files.extend(self._files_cache[key])
+    def _ledger(self, stage: str, run_id: str) -> "Ledger":
+        """Which documents a run's part files of a stage hold, and with what scope."""
+        key = (self.base, stage, run_id)
+        with _LEDGERS_LOCK:
+            cached = _LEDGERS.get(key)
+        if cached is not None:
+            return cached
+        files: dict[str, list[str]] = {}
+        full: list[str] = []
+        for info in self._list(f"runs/{run_id}/writes/{stage}"):
+            name = info.base_name
+            if not name.endswith(".parquet") or name.startswith(".tmp-"):
                 continue
-            found = [info.path for info in self._list(f"stages/{stage}/{run_id}")
-                     if info.type == pafs.FileType.File and info.base_name.endswith(".parquet")
-                     and not info.base_name.startswith(".tmp-")]
-            if self._committed(run_id):
-                self._files_cache[key] = found
-            files.extend(found)
+            # A ledger file is written once, whole; the running run's are read once each.
+            with _LEDGERS_LOCK:
+                entries = _LEDGER_FILES.get(info.path)
+            if entries is None:
+                t = pq.read_table(info.path, filesystem=self.fs, columns=["doc_id", "scope"])
+                entries = list(zip(t.column("doc_id").to_pylist(), t.column("scope").to_pylist()))
+                with _LEDGERS_LOCK:
+                    _LEDGER_FILES[info.path] = entries
+            part_file = self.path(f"stages/{stage}/{run_id}/{name}")
+            for doc_id, scope in entries:
+                files.setdefault(doc_id, []).append(part_file)
+                if scope == "document":
+                    full.append(doc_id)
+        ledger = Ledger(files, full)
+        if self._committed(run_id):
+            with _LEDGERS_LOCK:
+                _LEDGERS[key] = ledger
+        return ledger
+
+    def _stage_files(self, stage: str, run_ids: Iterable[str], doc_ids: Iterable[str] | None = None) -> list[str]:
+        """Part files of a stage from these runs; with doc_ids, only files holding them."""
+        wanted = None if doc_ids is None else set(doc_ids)
+        files: list[str] = []
+        for run_id in sorted(run_ids):
+            ledger = self._ledger(stage, run_id)
+            if wanted is None:
+                found = {f for fs in ledger.files.values() for f in fs}
+            else:
+                found = {f for d in wanted for f in ledger.files.get(d, ())}
+            files.extend(sorted(found))
         return files
 
     def stage_rows(self, stage: str, unit: str, doc_ids: Iterable[str] | None = None,
                    columns: list[str] | None = None, include_run: str | None = None,
                    extra_filter: ds.Expression | None = None) -> pa.Table:
-        """All rows (every attempt) of a stage from committed runs."""
+        """All rows (every attempt) of a stage from committed runs (and `include_run`)."""
         seq = self._sequences(include_run)
         sch = schema.stage_schema(stage, unit)
-        files = self._stage_files(stage, seq)
+        doc_ids = None if doc_ids is None else sorted(set(doc_ids))
+        files = self._stage_files(stage, seq, doc_ids)
         if not files:
             return sch.empty_table() if columns is None else sch.empty_table().select(columns)
         dataset = ds.dataset(files, schema=sch, format="parquet", filesystem=self.fs)
         flt = extra_filter
         if doc_ids is not None:
-            doc_filter = ds.field("doc_id").isin(sorted(set(doc_ids)))
+            doc_filter = ds.field("doc_id").isin(doc_ids)
             flt = doc_filter if flt is None else (flt & doc_filter)
         return dataset.to_table(columns=columns, filter=flt)
 
@@ -407,17 +449,7 @@ class Store:
         docs: list[str] = []
         seqs: list[int] = []
         for run_id in seq:
-            key = (stage, run_id)
-            found = self._ledger_cache.get(key)
-            if found is None:
-                found = []
-                for info in self._list(f"runs/{run_id}/writes/{stage}"):
-                    if info.base_name.endswith(".parquet") and not info.base_name.startswith(".tmp-"):
-                        t = pq.read_table(info.path, filesystem=self.fs, columns=["doc_id", "scope"])
-                        mask = pa.compute.equal(t.column("scope"), "document")
-                        found.extend(t.filter(mask).column("doc_id").to_pylist())
-                if self._committed(run_id):
-                    self._ledger_cache[key] = found
+            found = self._ledger(stage, run_id).full
             docs.extend(found)
             seqs.extend([seq[run_id]] * len(found))
         return pd.DataFrame({"doc_id": docs, "seq": seqs})

@@ -25,6 +25,12 @@ What is judged, and what "unknown" means:
   per page (langdetect costs 2-3 ms per paragraph).
 - A chunk: the split step applies `weighted_language` to the blocks it holds, so
   detection and its parameters live here only.
+- A page first judged whole with at least `page_certainty` (0.999) for one language
+  gives that language to its judged blocks without judging each: most pages are in
+  one language, and judging blocks is where this step's time goes. A page with a
+  second language in it usually scores lower and has its blocks judged; a short
+  passage in another language inside a long page can be missed (then its chunk takes
+  the page's language). `page_certainty: 1.0` judges every block.
 - Cost: langdetect's time is mostly per call (7 sampling trials), about 3.5 ms per
   block here, so judging blocks costs about ten times judging pages on text of many
   short paragraphs (bench/chunking.py prints the rate). `detect_blocks: false` judges
@@ -72,6 +78,10 @@ class LanguageParams(StepParams):
     # Judge each block too (per-chunk languages). Off: pages only, about ten times
     # cheaper on text of many paragraphs, and chunks take their pages' languages.
     detect_blocks: bool = True
+    # A page judged whole at least this sure of one language gives it to its blocks
+    # without judging each (most pages of a drive are in one language, and judging
+    # blocks is where the step's time goes). 1.0 judges the blocks of every page.
+    page_certainty: float = Field(0.999, ge=0.0, le=1.0)
 
 
 _factory = None
@@ -169,8 +179,17 @@ def detect_language(pages: list[Page], params: LanguageParams, ctx=None) -> list
     for page in pages:
         text = detection_text(page)
         blocks = [replace(b, language=None, language_prob=None) for b in page.blocks]
+        judged = _judged_blocks(page, params) if params.detect_blocks else []
+        if judged and params.page_certainty < 1.0:
+            p_lang, p_prob = detect_text(text, params)
+            if p_lang != UNKNOWN and p_prob is not None and p_prob >= params.page_certainty:
+                for i in judged:  # a page this sure of one language: its blocks share it
+                    blocks[i] = replace(blocks[i], language=p_lang, language_prob=p_prob)
+                results.append((p_lang, p_prob, blocks))
+                weights[p_lang] += len(text)
+                continue
         covered = 0
-        for i in (_judged_blocks(page, params) if params.detect_blocks else ()):
+        for i in judged:
             b_lang, b_prob = detect_text(page.blocks[i].text.strip(), params)
             blocks[i] = replace(blocks[i], language=b_lang, language_prob=b_prob)
             covered += len(page.blocks[i].text)
@@ -211,7 +230,7 @@ def detect_language(pages: list[Page], params: LanguageParams, ctx=None) -> list
 
 LANGUAGE = StepSpec(
     name="language",
-    version="2",
+    version="3",
     consumes="pages",
     produces="pages",
     scope="document",
