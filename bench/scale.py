@@ -1,5 +1,8 @@
-"""One worker against N processes and a local Dask cluster of N workers, on a drive of a
-few large PDFs and many small files.
+"""One worker against N threads, N processes and a local Dask cluster of N workers, on a
+drive of a few large PDFs and many small files.
+
+Threads are in the list because extraction runs in a child process per batch (for
+its time limit), so even a thread pool extracts on several cores at once.
 
 Each configuration runs as its own `thresher run` process against one Prefect server
 started here first (so no configuration pays for a server start), and is measured
@@ -20,8 +23,8 @@ from pathlib import Path
 
 from bench.drive import add_large_pdfs, make_drive
 
-SMALL_DOCUMENTS = 400
-LARGE_PDFS = 4
+SMALL_DOCUMENTS = 1200
+LARGE_PDFS = 6
 
 
 def _tree_rss(pid: int) -> int:
@@ -82,6 +85,7 @@ def main() -> None:
             add_large_pdfs(drive, LARGE_PDFS)
             configs = {
                 "1 worker (sequential)": {"kind": "sequential", "workers": 1},
+                f"{workers} threads": {"kind": "threads", "workers": workers},
                 f"{workers} processes": {"kind": "processes", "workers": workers},
                 f"Dask, {workers} local workers": {"kind": "dask", "workers": workers},
             }
