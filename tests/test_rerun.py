@@ -168,3 +168,28 @@ def test_one_scanned_page_is_rerun_alone_after_turning_ocr_on(prefect_harness, s
     assert _current_rows(store, doc) == before_rows
     # The document's later steps now include the receipt's text.
     assert any("TOTAL" in (r["text"] or "").upper() for r in store.current("split", "chunks", [doc]).to_pylist())
+
+
+def test_rerun_failed_redoes_every_failed_unit_and_nothing_else(prefect_harness, sample_drive, tmp_path):
+    store_dir = tmp_path / "store"
+    _add_compilation(sample_drive)
+    pipeline.run(_definition(0.2), str(sample_drive), str(store_dir), workers=1, quiet=True)
+    store = Store(store_dir)
+    failed_before = {r["doc_id"] for r in store.current("extract", "pages").to_pylist() if r["status"] == "failed"}
+    cat = {r["doc_id"]: r["source_path"] for r in store.catalog().to_pylist()}
+    assert {cat[d] for d in failed_before} >= {COMPILATION, "hr/salary-review-2026-protected.pdf", "it/scanner-log.txt"}
+    untouched = _current_rows(store, exclude_doc="")  # every row, to compare the others after
+    m = pipeline.run(_definition(120), str(sample_drive), str(store_dir), quiet=True, rerun={"failed": True})
+    store = Store(store_dir)
+    assert m["documents"]["processed"] == len(failed_before)
+    rows = {r["doc_id"]: r for r in store.current("extract", "pages").to_pylist()}
+    comp = {d for d, p in cat.items() if p == COMPILATION}.pop()
+    assert rows[comp]["status"] == "ok"  # fixed by the higher limit
+    protected = {d for d, p in cat.items() if p == "hr/salary-review-2026-protected.pdf"}.pop()
+    assert rows[protected]["status"] == "failed" and rows[protected]["attempt"] == 2
+    assert rows[protected]["reason"] == "password protected"  # still broken, same reason, new attempt
+    for stage, before in untouched.items():
+        after = {r["unit_id"]: r for r in _current_rows(store, exclude_doc="")[stage]}
+        for r in before:
+            if r["doc_id"] not in failed_before and stage in ("extract", "clean", "language", "split"):
+                assert after[r["unit_id"]] == r  # documents that had not failed are as they were
