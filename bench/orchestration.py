@@ -26,7 +26,7 @@ t0 = time.perf_counter()
 from thresher.flows import runtime
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
-from prefect.task_runners import ThreadPoolTaskRunner
+from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 t_import = time.perf_counter() - t0
 
 @task(cache_policy=NO_CACHE)
@@ -35,6 +35,11 @@ def noop(i):
 
 @flow(task_runner=ThreadPoolTaskRunner(max_workers=2))
 def many(n):
+    futs = [noop.submit(i) for i in range(n)]
+    return sum(f.result() for f in futs)
+
+@flow(task_runner=ProcessPoolTaskRunner(max_workers=2))
+def many_processes(n):
     futs = [noop.submit(i) for i in range(n)]
     return sum(f.result() for f in futs)
 
@@ -47,7 +52,11 @@ t = time.perf_counter(); empty(); first = time.perf_counter() - t
 t = time.perf_counter(); empty(); second = time.perf_counter() - t
 t = time.perf_counter(); many(N); with_tasks = time.perf_counter() - t
 t = time.perf_counter(); sum(noop.fn(i) for i in range(N)); plain = time.perf_counter() - t
-print(json.dumps({"import": t_import, "first": first, "second": second, "with_tasks": with_tasks, "plain": plain}))
+from thresher.flows.pipeline import shared_api
+with shared_api("processes"):
+    t = time.perf_counter(); many_processes(N); with_processes = time.perf_counter() - t
+print(json.dumps({"import": t_import, "first": first, "second": second, "with_tasks": with_tasks, "plain": plain,
+                  "with_processes": with_processes}))
 """
 
 
@@ -66,7 +75,10 @@ def main() -> None:
     print(f"prefect import                 {r['import']:.2f} s")
     print(f"first flow run (server start)  {r['first']:.2f} s")
     print(f"second flow run                {r['second']:.2f} s   ratio first/second {r['first'] / r['second']:.1f}x")
-    print(f"{n} batch tasks in one flow     {r['with_tasks']:.2f} s   -> {per_task_ms:.1f} ms per batch task")
+    print(f"{n} batch tasks in one flow     {r['with_tasks']:.2f} s   -> {per_task_ms:.1f} ms per batch task (threads)")
+    per_proc_ms = (r["with_processes"] - r["second"]) / n * 1000
+    print(f"{n} tasks, 2-process pool       {r['with_processes']:.2f} s   -> {per_proc_ms:.1f} ms per task, the pool's "
+          f"start included ({per_proc_ms / per_task_ms:.1f}x threads)")
 
     with tempfile.TemporaryDirectory() as tmp:
         store = Path(tmp) / "store"
