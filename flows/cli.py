@@ -228,7 +228,7 @@ def cmd_status(args: argparse.Namespace) -> int:
                 "documents": tokens.documents, "by_language": tokens.by_language, "by_folder": tokens.by_folder},
         }, indent=2, default=str))
         return 0
-    print(f"store {store.root}: {len(runs)} committed run(s), {len(docs)} live documents")
+    print(f"store {store.base}: {len(runs)} committed run(s), {len(docs)} live documents")
     print("recent runs:")
     for r in recent:
         m = r.manifest

@@ -284,3 +284,15 @@ def test_prefect_receives_the_run_logs_and_a_per_document_artifact(first_run):
     by_doc = {row["document"]: row for row in table}
     assert by_doc["hr/salary-review-2026-protected.pdf"]["status"] == "failed"
     assert by_doc["policies/lending-policy-2025.pdf"]["chunks"] > 0
+
+
+def test_a_copy_saved_by_another_program_is_dropped_as_a_copy_of_the_original(first_run):
+    # Same text, other bytes (CRLF, Windows-1252): a second document, which dedup drops whole.
+    store = first_run["store"]
+    rows = [r for r in store.current("dedup", "chunks").to_pylist()
+            if r["source_path"] == "volunteers/windows-export/volunteer-rota-spring-2026.txt"]
+    assert rows and {r["status"] for r in rows} == {"dropped"}
+    assert all("copy of document volunteers/volunteer-rota-spring-2026.txt" in r["reason"] for r in rows)
+    kept = {r["chunk_id"] for r in store.handoff().to_pylist()
+            if r["source_path"] == "volunteers/volunteer-rota-spring-2026.txt"}
+    assert {r["duplicate_of"] for r in rows} <= kept and kept

@@ -1201,6 +1201,10 @@ def build_drive() -> list[tuple[str, bytes]]:
         ("events/spring-reading-programme-2026.pdf", programme[: int(len(programme) * TRUNCATE_FRACTION)]),
         ("hr/salary-review-2026-protected.pdf", salary),
         ("volunteers/volunteer-rota-spring-2026.txt", VOLUNTEER_ROTA.encode("utf-8")),
+        # The same rota saved again from a Windows program: other bytes (CRLF line ends,
+        # Windows-1252), the same text -- a copy only deduplication can recognise.
+        ("volunteers/windows-export/volunteer-rota-spring-2026.txt",
+         VOLUNTEER_ROTA.replace("\n", "\r\n").encode("cp1252")),
         ("it/scanner-log.txt", b""),
         ("it/label-printer-logo.txt", _logo_png()),
     ]
