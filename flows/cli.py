@@ -177,9 +177,11 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
 
     d = m["documents"]
     lines = [
-        f"run {m['run_id']} finished in {m['seconds']:.1f} s",
-        f"  documents  {d['files']} files, {d['distinct']} distinct; {d['processed']} processed, "
-        f"{d['unchanged']} unchanged, {d['removed']} removed",
+        f"{m.get('kind', 'run')} {m['run_id']} finished in {m['seconds']:.1f} s",
+        (f"  documents  re-ran {d['processed']} of {d['distinct']} live documents"
+         if m.get("kind") == "rerun" else
+         f"  documents  {d['files']} files, {d['distinct']} distinct; {d['processed']} processed, "
+         f"{d['unchanged']} unchanged, {d['removed']} removed"),
         f"  hand-off   {m['chunks']} chunks, {m['tokens']:,} tokens "
         f"({m['changes']['upsert']} to upsert, {m['changes']['delete']} to delete)",
         "  stage       units  by status (current view)",
