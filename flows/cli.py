@@ -144,7 +144,6 @@ def cmd_run(args: argparse.Namespace) -> int:
     if Path(store_root).exists() and not Path(store_root).is_dir():
         raise UsageError(f"store path exists and is not a folder: {store_root}")
     from thresher.flows.encodings import EncodingUnavailable, get_encoding
-    from thresher.flows.store import StoreLocked
 
     for step in definition.steps:  # fail before starting Prefect if an encoding is missing
         for name in step.spec.encoding_params:
@@ -158,12 +157,19 @@ def cmd_run(args: argparse.Namespace) -> int:
     if not args.quiet:
         print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
               "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
+    return _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force)
+
+
+def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source: str, store_root: str,
+                    **options: Any) -> int:
+    """Run the flow, then print its manifest (--json) or the summary."""
     from thresher.flows import pipeline
+    from thresher.flows.rerun import RerunError
+    from thresher.flows.store import StoreLocked
 
     try:
-        manifest = pipeline.run(definition, source, store_root, workers=args.workers, force=args.force,
-                                quiet=args.quiet)
-    except StoreLocked as exc:
+        manifest = pipeline.run(definition, source, store_root, quiet=args.quiet, **options)
+    except (StoreLocked, RerunError) as exc:
         raise UsageError(str(exc)) from None
     if args.json:
         print(json.dumps(manifest, indent=2, default=str))
@@ -409,19 +415,7 @@ def cmd_rerun(args: argparse.Namespace) -> int:
             if count and args.page > count:
                 raise UsageError(f"page {args.page}: {rows[0]['source_path']} has {count} pages")
         rerun = {"doc_id": doc_id, "page": args.page, "step": args.step}
-    from thresher.flows import pipeline
-    from thresher.flows.rerun import RerunError
-    from thresher.flows.store import StoreLocked
-
-    try:
-        manifest = pipeline.run(definition, source, _store_root(args, definition), quiet=args.quiet, rerun=rerun)
-    except (StoreLocked, RerunError) as exc:
-        raise UsageError(str(exc)) from None
-    if args.json:
-        print(json.dumps(manifest, indent=2, default=str))
-    else:
-        print("\n".join(run_summary_lines(manifest)))
-    return 0
+    return _run_and_report(args, definition, source, _store_root(args, definition), rerun=rerun)
 
 
 # ----------------------------------------------------------------------------- export

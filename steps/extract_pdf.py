@@ -92,7 +92,7 @@ from .pdf_layout import (
     make_lines,
     order_columns,
 )
-from .pdf_tables import FoundTable, TableReader, inside
+from .pdf_tables import FoundTable, TableReader, inside, tables_on
 from .pdf_text import LOCK, PageText, Word
 from .units import Block
 
@@ -279,20 +279,6 @@ def _plumber_words(page) -> PageText:
     return facts
 
 
-def _plumber_tables(page) -> list[FoundTable]:
-    from .extract import table_shape
-    from .pdf_tables import TEXT_SETTINGS
-
-    found = []
-    for table in page.find_tables():
-        rows = table.extract(**TEXT_SETTINGS)
-        n_rows, n_cols = table_shape(rows)
-        if n_rows >= 2 and n_cols >= 2:
-            x0, top, x1, bottom = (float(v) for v in table.bbox)
-            found.append(FoundTable(top=top, bbox=(x0, top, x1, bottom), rows=rows))
-    return found
-
-
 def _pdfminer_pages(data: bytes, pdfium_error: str, params: ExtractParams,
                     warnings: list[str]) -> list[PageScan]:
     import pdfplumber
@@ -336,7 +322,7 @@ def _pdfminer_pages(data: bytes, pdfium_error: str, params: ExtractParams,
             page = pdfplumber.page.Page(pdf, page_obj, page_number=number, initial_doctop=doctop)
             doctop += float(page.height)
             facts = _plumber_words(page)
-            found = _plumber_tables(page) if facts.ruled and facts.visible_chars else []
+            found = tables_on(page) if facts.ruled and facts.visible_chars else []
             scans.append(scan_text(number, facts, found))
             page.close()
         except Exception as exc:

@@ -41,16 +41,21 @@ class TableReader:
             self._pdf = pdfplumber.open(io.BytesIO(self._data))
         page = self._pdf.pages[number - 1]
         try:
-            found = []
-            for table in page.find_tables():
-                rows = table.extract(**TEXT_SETTINGS)
-                n_rows, n_cols = table_shape(rows)
-                if n_rows >= 2 and n_cols >= 2:
-                    x0, top, x1, bottom = (float(v) for v in table.bbox)
-                    found.append(FoundTable(top=top, bbox=(x0, top, x1, bottom), rows=rows))
-            return found
+            return tables_on(page)
         finally:
             page.close()  # drop the page's parsed objects; memory stays flat
+
+
+def tables_on(page) -> list[FoundTable]:
+    """The tables pdfplumber finds on one of its pages: two rows and two columns at least."""
+    found = []
+    for table in page.find_tables():
+        rows = table.extract(**TEXT_SETTINGS)
+        n_rows, n_cols = table_shape(rows)
+        if n_rows >= 2 and n_cols >= 2:
+            x0, top, x1, bottom = (float(v) for v in table.bbox)
+            found.append(FoundTable(top=top, bbox=(x0, top, x1, bottom), rows=rows))
+    return found
 
 
 def inside(x0: float, top: float, x1: float, bottom: float,

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import io
 import shutil
-from pathlib import Path
 
 import pypdfium2 as pdfium
 import pytest

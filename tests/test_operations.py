@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
 import subprocess
 import sys
 import time
@@ -13,7 +12,7 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import REPO, SAMPLE
+from conftest import REPO
 from thresher.flows import pipeline
 from thresher.flows.config import load_definition
 from thresher.flows.failures import failure_groups, reason_kind
