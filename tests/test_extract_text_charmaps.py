@@ -50,7 +50,7 @@ SAMPLES = {
                "\u043f\u0435\u043d\u0438\u0435 \u0438 \u0434\u043e \u0432\u0441\u0442\u0440"
                "\u0435\u0447\u0438 \u0432 \u043d\u043e\u0432\u043e\u043c \u0437\u0430\u043b"
                "\u0435.\n"),
-    "ISO-8859-1": ("La salle de lecture de la coop\u00e9rative rouvre lundi. \u00c0 c\u00f4t\u00e9 "
+    "ISO-8859-1": ("La biblioth\u00e8que de la coop\u00e9rative rouvre lundi. \u00c0 c\u00f4t\u00e9 "
                    "de la fen\u00eatre, les p\u00e9riodiques restent \u00e0 disposition.\n\n"
                    "Merci de votre patience ; le caf\u00e9 du hall est ouvert d\u00e8s neuf "
                    "heures.\n"),

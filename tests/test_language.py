@@ -21,7 +21,7 @@ GERMAN = (
     "dürfen bis zu acht Bücher gleichzeitig ausleihen und zweimal online verlängern."
 )
 FRENCH = (
-    "La salle de lecture du deuxième étage reste ouverte jusqu'à neuf heures du soir. "
+    "La salle d'étude du deuxième étage reste ouverte jusqu'à neuf heures du soir. "
     "Les membres peuvent emprunter huit livres à la fois et les renouveler en ligne."
 )
 
