@@ -98,9 +98,11 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
         for doc_pages in out:  # a page step returns DocPages: pages do not name their document
             by_doc[doc_pages.doc_id].extend(doc_pages.pages)
 
-    current = store.current(step.name, kind, sorted(live_docs), include_run=run_id)
+    # Rewritten documents are written whole; only the others are compared with their rows.
+    compared = sorted(set(by_doc) - set(rewrite_docs))
+    current = store.current(step.name, kind, compared, include_run=run_id) if compared else None
     payload_names = [f.name for f in schema.payload_fields(step.name, kind)]
-    before = {r["unit_id"]: _decision(r, payload_names) for r in current.to_pylist()}
+    before = {r["unit_id"]: _decision(r, payload_names) for r in current.to_pylist()} if current else {}
     attempts = store.max_attempts(step.name, kind, sorted(by_doc))
 
     all_rows: list[dict[str, Any]] = []
@@ -197,10 +199,16 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
     fresh_ids = rewritten + [d for d in unchanged if d not in held]
 
     sketches: list[pa.Table] = []
-    for batch in _batches(fresh_ids, DOCS_PER_BATCH):
-        docs, _ = _load_docs(store, definition, index, batch, live_docs, run_id)
+    batches = _batches(fresh_ids, DOCS_PER_BATCH)
+    # With a single batch (the usual week) its chunks are kept for writing the rows;
+    # with more they are let go and read again, so memory holds one batch at a time.
+    kept_batch: tuple[list[DocChunks], dict[str, str]] | None = None
+    for batch in batches:
+        docs, stages = _load_docs(store, definition, index, batch, live_docs, run_id)
         if docs:
             sketches.append(_check_sketch(step, spec.sketch(docs, step.params, ctx), docs))
+        if len(batches) == 1:
+            kept_batch = (docs, stages)
     parts = [_with_place(t, live_docs, True) for t in sketches]
     if kept.num_rows:
         parts.append(_with_place(kept, live_docs, False))
@@ -226,9 +234,15 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
     # Documents whose input changed: rewritten whole, from their input chunks.
     fresh_set = set(fresh_ids)
     rewritten_set = set(rewritten)
-    for batch in _batches(fresh_ids, DOCS_PER_BATCH):
+    for batch in batches:
         with_sketch = [d for d in batch if d in sketch_rows]
-        docs, stages = _load_docs(store, definition, index, with_sketch, live_docs, run_id) if with_sketch else ([], {})
+        if kept_batch is not None:
+            docs = [d for d in kept_batch[0] if d.doc_id in sketch_rows]
+            stages = kept_batch[1]
+        elif with_sketch:
+            docs, stages = _load_docs(store, definition, index, with_sketch, live_docs, run_id)
+        else:
+            docs, stages = [], {}
         attempts = store.max_attempts(step.name, kind, [d.doc_id for d in docs]) if docs else {}
         rows: list[dict[str, Any]] = []
         for doc in docs:

@@ -262,7 +262,7 @@ class BatchRunner:
                                       "processes (a daemonic pool or cluster worker)")
             scope = "document"
             if doc.only is not None and i == indices[0]:
-                out, scope = self._keep_chosen(doc, i, out), "units"
+                out, scope = self._keep_chosen(doc, out), "units"
             self._record(doc, step, prev, out, started, ms, rows, writes, result, scope)
             if scope == "units":
                 inputs = self._merged_with_stored(doc, i, out)
@@ -272,7 +272,7 @@ class BatchRunner:
                 return
             prev = step.name
 
-    def _keep_chosen(self, doc: DocJob, index: int, out: list[Unit]) -> list[Unit]:
+    def _keep_chosen(self, doc: DocJob, out: list[Unit]) -> list[Unit]:
         """A re-run of chosen units keeps only those; a document-wide failure is kept as it is."""
         chosen = [u for u in out if u.locator in set(doc.only or [])]
         return chosen or [u for u in out if u.locator == DOCUMENT_LOCATOR] or chosen

@@ -11,7 +11,6 @@ import json
 import os
 import sys
 import time
-from collections import Counter, defaultdict
 from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
@@ -36,7 +35,7 @@ from thresher.flows.handoff import build_handoff
 from thresher.flows.plan import Plan, make_plan
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
-from thresher.flows.summary import STATUS_ORDER, stage_counts
+from thresher.flows.summary import STATUS_ORDER, counts_by_stage_and_document, document_rows
 
 # A batch holds at most this many bytes of source files besides its document count,
 # so one huge PDF does not share a task with many others (common practice: size
@@ -288,30 +287,6 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
     return acc
 
 
-def _per_document(store: Store, definition: FlowDefinition, live: dict[str, tuple[int, str]],
-                  handoff_docs: dict[str, tuple[int, int]], run_id: str) -> list[dict[str, Any]]:
-    """One row per live document for the run's summary artifact."""
-    by_doc: dict[str, Counter] = defaultdict(Counter)
-    pages: Counter = Counter()
-    first = definition.steps[0]
-    for step in definition.steps:
-        t = store.current(step.name, step.spec.produces, sorted(live), columns=["doc_id", "status"],
-                          include_run=run_id)
-        for d, s in zip(t.column("doc_id").to_pylist(), t.column("status").to_pylist()):
-            by_doc[d][s] += 1
-            if step is first:
-                pages[d] += 1
-    chunks = {d: n for d, (n, _) in handoff_docs.items()}
-    tokens = {d: t for d, (_, t) in handoff_docs.items()}
-    rows = []
-    for d, (_, path) in sorted(live.items(), key=lambda kv: kv[1][1]):
-        c = by_doc[d]
-        rows.append({"document": path, "pages": pages[d], "chunks": chunks.get(d, 0), "tokens": tokens.get(d, 0),
-                     "failed units": c["failed"], "dropped units": c["dropped"],
-                     "status": "failed" if c["failed"] else ("ok" if chunks.get(d) else "no chunks")})
-    return rows
-
-
 def execute_run(definition: FlowDefinition, source_root: str, store_root: str, run_id: str,
                 progress: Callable[[str], None] | None, force: bool = False,
                 rerun: dict[str, Any] | None = None, workers: int | None = None) -> RunOutcome:
@@ -374,10 +349,10 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
 
         live_docs = sorted(plan.live)
         stages = [(s.name, s.spec.produces) for s in definition.steps]
-        current = stage_counts(store, stages, live_docs, include_run=run_id)
+        current, by_doc, doc_pages = counts_by_stage_and_document(store, stages, live_docs, include_run=run_id)
         tokens = handoff.tokens
         pages = next((c.total for c in current if c.stage == definition.steps[0].name), 0)
-        per_doc = _per_document(store, definition, plan.live, handoff.per_doc, run_id)
+        per_doc = document_rows(plan.live, by_doc, doc_pages, handoff.per_doc)
         from prefect.runtime import flow_run as _flow_run
 
         manifest = {
@@ -439,7 +414,8 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
                 sequence: int) -> Plan:
     from thresher.flows.plan import live_documents
 
-    _, live, _ = live_documents(store.catalog().to_pylist(), {r.run_id: r.sequence for r in store.runs()}, sequence)
+    _, live, copies = live_documents(store.catalog().to_pylist(), {r.run_id: r.sequence for r in store.runs()},
+                                     sequence)
     if rerun.get("failed"):
         targets = targets_for_failed(definition, store, live)
     else:
@@ -447,7 +423,7 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
         path = live[doc_id][1] if doc_id in live else doc_id
         targets = [target_for_document(definition, store, doc_id, path, rerun.get("page"), rerun.get("step"))]
     rerun["_described"] = describe(targets)
-    return make_rerun_plan(definition, store, targets, source_root, sequence)
+    return make_rerun_plan(store, targets, source_root, live, copies)
 
 
 @flow(name="thresher-run", log_prints=False, persist_result=False)

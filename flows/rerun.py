@@ -13,7 +13,7 @@ from pathlib import Path
 from thresher.flows.config import FlowDefinition
 from thresher.flows.discover import file_doc_id
 from thresher.flows.execute import DocJob
-from thresher.flows.plan import Plan, live_documents
+from thresher.flows.plan import Plan
 from thresher.flows.store import Store
 from thresher.steps.units import DOCUMENT_LOCATOR, FAILED, page_locator
 
@@ -85,13 +85,11 @@ def targets_for_failed(definition: FlowDefinition, store: Store, live: dict[str,
     return targets
 
 
-def make_rerun_plan(definition: FlowDefinition, store: Store, targets: list[RerunTarget], source_root: str,
-                    sequence: int) -> Plan:
+def make_rerun_plan(store: Store, targets: list[RerunTarget], source_root: str,
+                    live: dict[str, tuple[int, str]], copies: dict[str, list[str]]) -> Plan:
+    """A plan for just these targets; `live` and `copies` as plan.live_documents gives them."""
     catalog = store.catalog()
-    rows = catalog.to_pylist()
-    seq_of = {r.run_id: r.sequence for r in store.runs()}
-    _, live, copies = live_documents(rows, seq_of, sequence)
-    size_of = {r["source_path"]: r for r in rows}
+    size_of = {r["source_path"]: r for r in catalog.to_pylist()}
     jobs = []
     for t in targets:
         if t.doc_id not in live:

@@ -34,11 +34,39 @@ def live_doc_ids(store: Store) -> list[str]:
 
 def stage_counts(store: Store, stages: list[tuple[str, str]], doc_ids: list[str],
                  include_run: str | None = None) -> list[StageCounts]:
-    out = []
-    for name, unit in stages:
-        t = store.current(name, unit, doc_ids, columns=["status"], include_run=include_run)
-        out.append(StageCounts(name, unit, dict(Counter(t.column("status").to_pylist()))))
-    return out
+    return counts_by_stage_and_document(store, stages, doc_ids, include_run)[0]
+
+
+def counts_by_stage_and_document(store: Store, stages: list[tuple[str, str]], doc_ids: list[str],
+                                 include_run: str | None = None
+                                 ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
+    """Per stage the units by status; per document its units by status over all stages,
+    and its units at the first stage (its pages). One read of each stage."""
+    totals = []
+    by_doc: dict[str, Counter] = {}
+    pages: Counter = Counter()
+    for n, (name, unit) in enumerate(stages):
+        t = store.current(name, unit, doc_ids, columns=["doc_id", "status"], include_run=include_run)
+        statuses = t.column("status").to_pylist()
+        totals.append(StageCounts(name, unit, dict(Counter(statuses))))
+        for d, s in zip(t.column("doc_id").to_pylist(), statuses):
+            by_doc.setdefault(d, Counter())[s] += 1
+            if n == 0:
+                pages[d] += 1
+    return totals, by_doc, pages
+
+
+def document_rows(live: dict[str, tuple[int, str]], by_doc: dict[str, Counter], pages: Counter,
+                  handoff_docs: dict[str, tuple[int, int]]) -> list[dict[str, Any]]:
+    """One row per live document (path order): pages, chunks, tokens, failed and dropped units."""
+    rows = []
+    for d, (_, path) in sorted(live.items(), key=lambda kv: kv[1][1]):
+        c = by_doc.get(d, Counter())
+        chunks, tokens = handoff_docs.get(d, (0, 0))
+        rows.append({"document": path, "pages": pages[d], "chunks": chunks, "tokens": tokens,
+                     "failed units": c["failed"], "dropped units": c["dropped"],
+                     "status": "failed" if c["failed"] else ("ok" if chunks else "no chunks")})
+    return rows
 
 
 @dataclass

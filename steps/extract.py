@@ -169,6 +169,15 @@ def list_block(lines: list[str]) -> Block | None:
     return Block(PARAGRAPH, "\n".join(kept)) if kept else None
 
 
+def flush_list(blocks: list[Block], lines: list[str]) -> None:
+    """Close a list being collected: its lines become one block, and `lines` is emptied."""
+    if lines:
+        block = list_block(lines)
+        if block:
+            blocks.append(block)
+        lines.clear()
+
+
 def table_block(rows: list[list[str | None]]) -> Block | None:
     """A table from rows of cells (header row first); None when nothing is left."""
     cells = [[inline(c or "") for c in row] for row in rows]

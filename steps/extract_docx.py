@@ -30,7 +30,7 @@ from .extract import (
     ReadResult,
     heading_block,
     inline,
-    list_block,
+    flush_list,
     paragraph_block,
     table_block,
     table_shape,
@@ -123,16 +123,12 @@ def read_docx(data: bytes) -> ReadResult:
     blocks = []
     list_lines: list[str] = []
 
-    def flush_list() -> None:
-        if list_lines:
-            block = list_block(list_lines)
-            if block:
-                blocks.append(block)
-            list_lines.clear()
+    def end_list() -> None:
+        flush_list(blocks, list_lines)
 
     for item in document.iter_inner_content():
         if isinstance(item, Table):
-            flush_list()
+            end_list()
             rows = table_rows(item)
             n_rows, n_cols = table_shape(rows)
             if n_rows >= 2 and n_cols >= 2:
@@ -150,7 +146,7 @@ def read_docx(data: bytes) -> ReadResult:
             continue
         level = heading_level(item)
         if level:
-            flush_list()
+            end_list()
             block = heading_block(text, level)
             if block:
                 blocks.append(block)
@@ -159,11 +155,11 @@ def read_docx(data: bytes) -> ReadResult:
         if depth is not None:
             list_lines.append("  " * min(depth, 8) + "- " + inline(text))
             continue
-        flush_list()
+        end_list()
         block = paragraph_block(text)
         if block:
             blocks.append(block)
-    flush_list()
+    end_list()
 
     title = ""
     try:

@@ -24,7 +24,7 @@ from .extract import (
     code_block,
     heading_block,
     inline,
-    list_block,
+    flush_list,
     paragraph_block,
     table_block,
 )
@@ -79,12 +79,8 @@ def markdown_blocks(text: str) -> list:
     item_open: list[bool] = []  # per open list item: has its first line been written
     i = 0
 
-    def flush_list() -> None:
-        if list_lines:
-            block = list_block(list_lines)
-            if block:
-                blocks.append(block)
-            list_lines.clear()
+    def end_list() -> None:
+        flush_list(blocks, list_lines)
 
     def add_text(value: str) -> None:
         value = inline(value)
@@ -110,7 +106,7 @@ def markdown_blocks(text: str) -> list:
         tok = tokens[i]
         kind = tok.type
         if kind == "heading_open":
-            flush_list()
+            end_list()
             block = heading_block(_inline_text(tokens[i + 1]), int(tok.tag[1:]))
             if block:
                 blocks.append(block)
@@ -122,7 +118,7 @@ def markdown_blocks(text: str) -> list:
         elif kind in ("bullet_list_close", "ordered_list_close"):
             lists.pop()
             if not lists:
-                flush_list()
+                end_list()
         elif kind == "list_item_open":
             item_open.append(False)
             if lists and lists[-1][0] and tok.info:
@@ -134,12 +130,12 @@ def markdown_blocks(text: str) -> list:
         elif kind == "inline":
             add_text(_inline_text(tok))
         elif kind in ("fence", "code_block"):
-            flush_list()
+            end_list()
             block = code_block(tok.content)
             if block:
                 blocks.append(block)
         elif kind == "table_open":
-            flush_list()
+            end_list()
             rows: list[list[str]] = []
             i += 1
             while i < len(tokens) and tokens[i].type != "table_close":
@@ -155,7 +151,7 @@ def markdown_blocks(text: str) -> list:
         elif kind == "html_block":
             add_text(visible_text(tok.content))
         i += 1
-    flush_list()
+    end_list()
     return blocks
 
 

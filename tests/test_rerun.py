@@ -111,10 +111,13 @@ def test_rerun_targets_name_the_failed_step_or_the_whole_document(prefect_harnes
     assert (definition.steps[t.step].name, t.locators) == ("split", None)
     # A file edited since it was catalogued cannot be re-run from its old bytes.
     (sample_drive / "README.txt").write_text("changed\n")
+    from thresher.flows.plan import live_documents
+
+    _, live, copies = live_documents(store.catalog().to_pylist(), {r.run_id: r.sequence for r in store.runs()}, 99)
     with pytest.raises(RerunError, match="changed since it was catalogued"):
-        make_rerun_plan(definition, store, [target_for_document(definition, store, cat["README.txt"],
-                                                                "README.txt", None, "extract")],
-                        str(sample_drive), 99)
+        make_rerun_plan(store, [target_for_document(definition, store, cat["README.txt"],
+                                                    "README.txt", None, "extract")],
+                        str(sample_drive), live, copies)
 
 
 def test_one_scanned_page_is_rerun_alone_after_turning_ocr_on(prefect_harness, sample_drive, tmp_path):
