@@ -3,7 +3,7 @@
 Corpus: plain text that Debian ships -- /usr/share/common-licenses and the packages'
 /usr/share/doc/*/copyright files, in path order, until CORPUS_BYTES of UTF-8 -- one
 document per file, read into blocks the way thresher reads a plain-text file
-(steps.extract_text.text_blocks; not timed).
+(steps.extract.text.text_blocks; not timed).
 
 Measured in one run, on the same texts, ROUNDS times in turn (the fastest round of each
 counts, so a busy machine disturbs the ratio less):
@@ -57,7 +57,7 @@ def load_corpus(limit: int = CORPUS_BYTES) -> list[tuple[str, str]]:
 def main() -> None:
     from thresher.flows.encodings import get_encoding
     from thresher.steps.clean import CleanParams, clean
-    from thresher.steps.extract_text import text_blocks
+    from thresher.steps.extract.text import text_blocks
     from thresher.steps.language import LanguageParams, detect_language
     from thresher.steps.spec import StepContext
     from thresher.steps.split import SplitParams, split

@@ -177,7 +177,7 @@ def main() -> None:
 
         # Other formats through the extract step.
         from thresher.steps.extract import ExtractParams, extract
-        from thresher.steps.sniff import sniff
+        from thresher.steps.extract.sniff import sniff
         from thresher.steps.spec import StepContext
         from thresher.steps.units import Source
 

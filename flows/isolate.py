@@ -17,9 +17,10 @@ import traceback
 from multiprocessing.connection import Connection
 from typing import Any, Callable
 
+from thresher.steps.extract.registry import reader_modules
+
 # Modules the fork server imports once, so children start warm.
-PRELOAD = ["thresher.steps.extract", "thresher.steps.extract_pdf", "thresher.steps.extract_html",
-           "thresher.steps.extract_docx", "thresher.steps.extract_markdown", "thresher.steps.extract_text"]
+PRELOAD = ["thresher.steps.extract", *reader_modules()]
 
 # A child is replaced after this many calls, so a leak in a parser stays bounded.
 CALLS_PER_CHILD = 200

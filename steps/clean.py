@@ -56,7 +56,7 @@ Then across the document's pages (so the step needs all pages of a document):
      runs masked ("- 12 -" matches "- 13 -"): masking digits in lines with words
      would make "Week 3 total: 12" on every page of a report boilerplate. Running
      headers and footers such as "Page 3 of 9" are the PDF reader's job, as it knows
-     where on the page a line sits (extract_pdf); blocks repeated across the pages of
+     where on the page a line sits (extract/pdf.py); blocks repeated across the pages of
      an HTML site are the boilerplate step's (steps/boilerplate.py). Headings, tables
      and code are never removed this way: a repeated table header or heading is
      structure. A document of one page (plain text, HTML, Word, Markdown) has no pages

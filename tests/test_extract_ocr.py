@@ -18,7 +18,7 @@ from reportlab.lib.utils import ImageReader
 from reportlab.pdfgen import canvas
 
 from conftest import SAMPLE
-from thresher.steps import pdf_ocr
+from thresher.steps.extract import pdf_ocr
 from thresher.steps.extract import ExtractParams, extract
 from thresher.steps.spec import StepContext
 from thresher.steps.units import FAILED, OK, Source

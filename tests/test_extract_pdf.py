@@ -13,7 +13,7 @@ from reportlab.lib.utils import ImageReader
 from reportlab.pdfgen import canvas
 
 from thresher.steps.extract import ExtractParams, extract
-from thresher.steps.extract_pdf import NO_UNICODE, SCANNED
+from thresher.steps.extract.pdf import NO_UNICODE, SCANNED
 from thresher.steps.spec import StepContext
 from thresher.steps.units import BLOCK_SEP, CODE, DOCUMENT_LOCATOR, FAILED, HEADING, OK, PARAGRAPH, TABLE, Source
 

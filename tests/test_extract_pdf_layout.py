@@ -9,7 +9,7 @@ from reportlab.lib.pagesizes import A4
 from reportlab.pdfgen import canvas
 
 from thresher.steps.extract import ExtractParams, extract
-from thresher.steps.pdf_layout import Vocabulary, join_lines
+from thresher.steps.extract.pdf_layout import Vocabulary, join_lines
 from thresher.steps.spec import StepContext
 from thresher.steps.units import HEADING, OK, PARAGRAPH, TABLE, Source
 

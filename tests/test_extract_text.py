@@ -8,7 +8,7 @@ import random
 import zipfile
 
 from thresher.steps.extract import ExtractParams, extract
-from thresher.steps.sniff import decode, sniff
+from thresher.steps.extract.sniff import decode, sniff
 from thresher.steps.spec import StepContext
 from thresher.steps.units import DOCUMENT_LOCATOR, FAILED, HEADING, OK, PARAGRAPH, Source
 

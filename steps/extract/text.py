@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import re
 
-from .extract import PagePart, ReadResult, heading_block, paragraph_block
+from .blocks import PagePart, ReaderInput, ReadResult, heading_block, paragraph_block
 
 _BLANK = re.compile(r"\n[^\S\n]*(?:\n[^\S\n]*)+")
 _UNDERLINE = re.compile(r"^(=+|-+)[^\S\n]*$")
@@ -36,7 +36,8 @@ def text_blocks(text: str) -> list:
     return blocks
 
 
-def read_text(text: str, encoding: str) -> ReadResult:
+def read_text(inp: ReaderInput) -> ReadResult:
+    text, encoding = inp.text or "", inp.encoding
     blocks = text_blocks(text)
     part = PagePart(page=None, blocks=blocks)
     if not blocks:

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import pdfplumber
 
-from .extract import table_shape
+from .blocks import table_shape
 
 # A gap wider than this share of the font size between two characters is a word
 # break (the same rule as pdf_text.WORD_GAP; pdfplumber's own default is 3 pt).

@@ -18,7 +18,8 @@ import re
 from markdown_it import MarkdownIt
 from markdown_it.token import Token
 
-from .extract import (
+from .blocks import (
+    ReaderInput,
     PagePart,
     ReadResult,
     code_block,
@@ -28,7 +29,7 @@ from .extract import (
     paragraph_block,
     table_block,
 )
-from .extract_html import visible_text
+from .html_walk import visible_text
 
 _FRONT_MATTER = re.compile(r"\A---[^\S\n]*\n(.*?\n)(?:---|\.\.\.)[^\S\n]*(?:\n|\Z)", re.DOTALL)
 _FRONT_KEY = re.compile(r"^[A-Za-z_][\w-]*\s*:")
@@ -155,7 +156,8 @@ def markdown_blocks(text: str) -> list:
     return blocks
 
 
-def read_markdown(text: str, encoding: str) -> ReadResult:
+def read_markdown(inp: ReaderInput) -> ReadResult:
+    text, encoding = inp.text or "", inp.encoding
     title, body = split_front_matter(text)
     blocks = markdown_blocks(body)
     part = PagePart(page=None, blocks=blocks)

@@ -8,7 +8,7 @@ so a page of 2 000 characters is read in a few milliseconds (bench/extract.py).
 What one page gives (`PageText`):
 - words: runs of characters between spaces (real ones or the ones PDFium generates at
   a gap), also broken where the gap to the previous character exceeds WORD_GAP of the
-  font size (the measurement behind 0.1 is in extract_pdf's docstring) or where the
+  font size (the measurement behind 0.1 is in pdf.py's docstring) or where the
   text jumps to another line; each word has its box in points from the top of the page,
   its font size (the Tf size times the text matrix' vertical scale, so scaled text
   counts at the size it is drawn), and whether its font is bold (the base font name,

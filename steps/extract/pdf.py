@@ -74,9 +74,11 @@ from dataclasses import dataclass, field
 import pypdfium2 as pdfium
 
 from . import pdf_text
-from .extract import (
+from typing import TYPE_CHECKING
+
+from .blocks import (
     DocumentFailure,
-    ExtractParams,
+    ReaderInput,
     PagePart,
     ReadResult,
     heading_block,
@@ -94,7 +96,10 @@ from .pdf_layout import (
 )
 from .pdf_tables import FoundTable, TableReader, inside, tables_on
 from .pdf_text import LOCK, PageText, Word
-from .units import Block
+
+if TYPE_CHECKING:
+    from .step import ExtractParams
+from ..units import Block
 
 SCANNED = "no text layer (scanned page); OCR is not enabled"
 NO_UNICODE = "text layer has no Unicode mapping (glyph ids only); OCR is not enabled"
@@ -584,7 +589,8 @@ def page_blocks(scan: PageScan, vocab: Vocabulary | None = None) -> list[Block]:
 # --- the reader ---------------------------------------------------------------
 
 
-def read_pdf(data: bytes, params: ExtractParams) -> ReadResult:
+def read_pdf(inp: ReaderInput) -> ReadResult:
+    data, params = inp.data, inp.params
     warnings: list[str] = []
     outline: list[OutlineEntry] = []
     meta_title = ""

@@ -1,4 +1,4 @@
-"""HTML, parsed with beautifulsoup4 on lxml; the whole file is one page.
+"""HTML to blocks, parsed with beautifulsoup4 on lxml (shared by every reader that meets HTML).
 
 Dropped with everything inside: script, style, noscript, template, nav, aside, form
 and form controls, embedded objects, anything marked hidden (the `hidden` attribute,
@@ -20,14 +20,12 @@ The title is <title>, else the first heading.
 from __future__ import annotations
 
 import re
-import warnings
 
-from bs4 import BeautifulSoup, NavigableString, Tag, XMLParsedAsHTMLWarning
+
+from bs4 import BeautifulSoup, NavigableString, Tag
 from bs4.element import PreformattedString
 
-from .extract import (
-    PagePart,
-    ReadResult,
+from .blocks import (
     code_block,
     heading_block,
     inline,
@@ -122,7 +120,7 @@ def _rows(table: Tag) -> list[list[str]] | None:
     return rows
 
 
-class _Walker:
+class Walker:
     def __init__(self) -> None:
         self.blocks: list = []
         self.buf: list[str] = []
@@ -208,24 +206,7 @@ class _Walker:
 def visible_text(html: str) -> str:
     """The text a reader would see in an HTML fragment, as one line (same drop rules)."""
     soup = BeautifulSoup(html, "lxml")
-    walker = _Walker()
+    walker = Walker()
     walker.walk(soup)
     walker.flush()
     return inline(" ".join(b.text for b in walker.blocks))
-
-
-def read_html(text: str, encoding: str) -> ReadResult:
-    with warnings.catch_warnings():
-        # XHTML is read as HTML on purpose: browsers do so for pages served as HTML.
-        warnings.simplefilter("ignore", XMLParsedAsHTMLWarning)
-        soup = BeautifulSoup(text, "lxml")
-    title_tag = soup.find("title")
-    title = inline(title_tag.get_text()) if title_tag else ""
-    walker = _Walker()
-    walker.walk(soup)
-    walker.flush()
-    part = PagePart(page=None, blocks=walker.blocks)
-    if not walker.blocks:
-        part.warnings.append("no text (the page has no visible content)")
-    return ReadResult(format="html", method="html", pages=[part], title=title,
-                      encoding=encoding)

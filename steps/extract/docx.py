@@ -24,7 +24,8 @@ import docx
 from docx.table import Table
 from docx.text.paragraph import Paragraph
 
-from .extract import (
+from .blocks import (
+    ReaderInput,
     DocumentFailure,
     PagePart,
     ReadResult,
@@ -114,7 +115,8 @@ def table_rows(table: Table) -> list[list[str]]:
     return rows
 
 
-def read_docx(data: bytes) -> ReadResult:
+def read_docx(inp: ReaderInput) -> ReadResult:
+    data = inp.data
     try:
         document = docx.Document(io.BytesIO(data))
     except Exception as exc:  # python-docx raises several kinds for damaged packages

@@ -1,0 +1,42 @@
+"""Which reader reads which sniffed format: one line per format.
+
+A reader is a function `read(ReaderInput) -> ReadResult` in a module of this package.
+Adding a format means adding its module and one line below (and, if sniffing does not
+know it yet, teaching sniff.py its signature). Readers are imported on first use, so a
+run that meets only text files never loads the PDF or Office libraries.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Callable
+
+from .blocks import DocumentFailure, ReaderInput, ReadResult
+
+# sniffed format -> (reader module in this package, function name, the page's default method)
+READERS: dict[str, tuple[str, str, str]] = {
+    "pdf": ("pdf", "read_pdf", "text-layer"),
+    "html": ("html", "read_html", "html"),
+    "markdown": ("markdown", "read_markdown", "markdown"),
+    "text": ("text", "read_text", "plain"),
+    "docx": ("docx", "read_docx", "docx"),
+}
+
+# The method a failed document of a format is labelled with.
+METHODS = {fmt: method for fmt, (_, _, method) in READERS.items()}
+
+Reader = Callable[[ReaderInput], ReadResult]
+
+
+def reader_for(fmt: str) -> Reader:
+    """The reader for a sniffed format; DocumentFailure when none reads it."""
+    entry = READERS.get(fmt)
+    if entry is None:
+        raise DocumentFailure(f"unsupported format: {fmt}")
+    module, name, _ = entry
+    return getattr(importlib.import_module(f"{__package__}.{module}"), name)
+
+
+def reader_modules() -> list[str]:
+    """Every reader module's import name (for warming a worker process)."""
+    return [f"{__package__}.{module}" for module, _, _ in READERS.values()]

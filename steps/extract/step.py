@@ -1,0 +1,198 @@
+"""The extract step: a source file's bytes in, the document's pages of blocks out.
+
+This module holds the step's contract: its parameters, the guards that apply to every
+format (file size, empty files, what sniffing refuses), and the turning of a reader's
+`ReadResult` into `Page` units with the payload every page carries.
+
+Which reader reads which sniffed format is the registry's business (registry.py); the
+readers import only the helpers (blocks.py and the shared parsers such as html_walk.py),
+never this module and never each other. Readers are imported when first needed, so a
+text-only run never loads the PDF stack. The block rules are in blocks.py.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+from typing import Any
+
+from pydantic import Field
+
+from ..spec import StepContext, StepParams, StepSpec
+from ..units import BLOCK_SEP, DOCUMENT_LOCATOR, TABLE, Block, Page, Source, page_locator
+from .blocks import DocumentFailure, ReaderInput, file_stem, first_heading
+from .registry import METHODS, reader_for
+from .sniff import sniff, unprintable_count
+
+# Bytes in a megabyte for the file-size guard (SI megabyte, as file managers show it).
+MB = 1_000_000
+
+PAYLOAD_KEYS = (
+    "method",
+    "page_count",
+    "char_count",
+    "word_count",
+    "unprintable_share",
+    "table_share",
+    "table_count",
+    "columns",
+    "removed",
+    "encoding",
+    "byte_size",
+    "modified_at",
+)
+
+
+class ExtractParams(StepParams):
+    """Parameters of the extract step."""
+
+    max_file_mb: float = Field(200, gt=0, description="larger files fail without being parsed")
+    max_pages: int = Field(2000, gt=0, description="PDFs with more pages fail without being parsed")
+    time_limit_seconds: float = Field(
+        120, gt=0,
+        description="a document whose extraction takes longer is stopped (its parser process is killed)",
+    )
+    pdf_heading_ratio: float = Field(
+        1.15,
+        ge=1.0,
+        description=(
+            "a PDF line is a heading when its font size is at least this ratio of the "
+            "page's body size (or it is bold, at body size or larger, and short)"
+        ),
+    )
+    ocr: bool = Field(
+        False,
+        description="read PDF pages without a text layer with Tesseract (it must be installed)",
+    )
+    ocr_language: str = Field(
+        "eng",
+        pattern=r"^[A-Za-z0-9_]+(\+[A-Za-z0-9_]+)*$",
+        description="Tesseract language(s), joined by '+' (e.g. eng+deu)",
+    )
+    ocr_dpi: int = Field(300, ge=72, le=600, description="resolution pages are rendered at for OCR")
+
+
+def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
+            source: Source | None = None, columns: int = 1,
+            removed: list[dict] | None = None) -> dict[str, Any]:
+    text = BLOCK_SEP.join(b.text for b in blocks)
+    chars = len(text)
+    table_chars = sum(len(b.text) for b in blocks if b.kind == TABLE)
+    size = max(source.size, len(source.data)) if source is not None else None
+    return {
+        "method": method,
+        "page_count": int(page_count),
+        "char_count": chars,
+        # Whitespace-separated words (common practice; scripts without spaces count low).
+        "word_count": len(text.split()),
+        "unprintable_share": unprintable_count(text) / chars if chars else 0.0,
+        "table_share": table_chars / chars if chars else 0.0,
+        "table_count": sum(1 for b in blocks if b.kind == TABLE),
+        "columns": int(columns),
+        "removed": [dict(r) for r in (removed or [])],
+        "encoding": encoding,
+        "byte_size": size,
+        "modified_at": (datetime.fromtimestamp(source.mtime, timezone.utc)
+                        if source is not None and source.mtime else None),
+    }
+
+
+
+
+# --- the step -----------------------------------------------------------------
+
+def failed_document(
+    source: Source, reason: str, exc: BaseException | None = None, fmt: str = ""
+) -> list[Page]:
+    """The single unit that stands for a document that could not be split into pages."""
+    page = Page(
+        locator=DOCUMENT_LOCATOR,
+        page=None,
+        blocks=[],
+        title=file_stem(source.source_path),
+        format=fmt,
+        parents=[],
+        payload=payload([], METHODS.get(fmt, ""), 0, "", source),
+    )
+    page.fail(reason, exc)
+    return [page]
+
+
+def _mb(value: float) -> str:
+    return f"{value:.1f}" if value >= 0.1 else f"{value:.2g}"
+
+
+def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Page]:
+    """Read one source file into pages; bad input gives a failed unit, never an exception."""
+    data = source.data
+    # The size comes from the file system: the flows layer does not read a file over
+    # the limit (see source_limit below), so `data` may then be empty.
+    size = max(source.size, len(data))
+    if size > params.max_file_mb * MB:
+        return failed_document(
+            source,
+            f"file too large: {_mb(size / MB)} MB over the limit of "
+            f"{params.max_file_mb:g} MB",
+        )
+    if len(data) == 0:
+        return failed_document(source, "empty file (0 bytes)")
+
+    found = sniff(data, source.source_path)
+    if found.reason:
+        return failed_document(source, found.reason, fmt=found.format)
+
+    try:
+        result = reader_for(found.format)(ReaderInput(data, found.text, found.encoding, params, source.source_path))
+    except DocumentFailure as failure:
+        return failed_document(source, failure.reason, failure.cause, fmt=found.format)
+    except Exception as exc:  # a parser bug or a file it chokes on: this file only
+        return failed_document(
+            source,
+            f"could not extract {found.format.upper()}: {type(exc).__name__}: {exc}",
+            exc,
+            fmt=found.format,
+        )
+
+    title = result.title.strip() or first_heading(result.pages) or file_stem(source.source_path)
+    doc_warnings = found.warnings + result.warnings
+    pages: list[Page] = []
+    for part in result.pages:
+        page = Page(
+            locator=page_locator(part.page),
+            page=part.page,
+            blocks=part.blocks,
+            title=title,
+            format=result.format,
+            parents=[],
+            payload=payload(part.blocks, part.method or result.method, result.page_count,
+                            result.encoding, source, part.columns, part.removed),
+        )
+        page.warnings = doc_warnings + part.warnings
+        if part.failure:
+            page.fail(part.failure, part.error)
+        pages.append(page)
+    return pages
+
+
+def _source_limit(params: ExtractParams) -> int:
+    return int(params.max_file_mb * MB)
+
+
+def _time_limit(params: ExtractParams) -> float:
+    return params.time_limit_seconds
+
+
+EXTRACT = StepSpec(
+    name="extract",
+    version="2",
+    consumes="source",
+    produces="pages",
+    scope="document",
+    params=ExtractParams,
+    run=extract,
+    source_limit=_source_limit,
+    time_limit=_time_limit,
+    summary=(
+        "Reads a source file (PDF, HTML, Markdown, plain text, DOCX; format sniffed from "
+        "content) into pages of heading, paragraph, table and code blocks."
+    ),
+)
