@@ -10,11 +10,15 @@ STAMP  := $(VENV)/.thresher-installed
 # Debian packages the tests read as outside references: PDFs and HTML manuals that
 # Debian ships, poppler's pdftotext/pdfinfo (the reference PDF extractor), the Unicode
 # Character Database (NormalizationTest.txt), translated manual pages, and Chromium
-# (headless) to render the review page.
+# (headless) to render the review page; LibreOffice Calc and Impress and the office
+# files of python-odf-doc, debian-policy and developers-reference (ODF, EPUB) for the
+# office-format readers' tests.
 DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
                         bzip2-doc fontconfig libxslt1-dev locales \
                         unicode-data manpages manpages-de manpages-fr manpages-es \
                         tesseract-ocr tesseract-ocr-eng libreoffice-writer-nogui \
+                        libreoffice-calc-nogui libreoffice-impress-nogui \
+                        python-odf-doc debian-policy developers-reference \
                         chromium
 
 # Manuals Debian ships as both PDF and HTML: the retrieval benchmark (bench/retrieval.py)

@@ -163,16 +163,13 @@ def zip_with(names: dict[str, bytes]) -> bytes:
     return buf.getvalue()
 
 
-def test_zip_containers_other_than_docx_are_unsupported():
+def test_zip_containers_other_than_office_books_are_unsupported():
     assert one(zip_with({"a.txt": b"x"}), "bundle.docx").reason == (
         "unsupported format: zip archive without word/document.xml (not a .docx)"
     )
-    assert one(zip_with({"xl/workbook.xml": b"<x/>"}), "budget.xlsx").reason == (
-        "unsupported format: XLSX spreadsheet"
-    )
-    data = zip_with({"mimetype": b"application/vnd.oasis.opendocument.text"})
-    assert one(data, "minutes.odt").reason == (
-        "unsupported format: OpenDocument file (application/vnd.oasis.opendocument.text)"
+    data = zip_with({"mimetype": b"application/vnd.oasis.opendocument.graphics"})
+    assert one(data, "logo.odg").reason == (
+        "unsupported format: OpenDocument file (application/vnd.oasis.opendocument.graphics)"
     )
 
 
@@ -182,17 +179,18 @@ def test_damaged_zip_named_docx():
     assert page.status == FAILED and page.reason.startswith("unreadable DOCX: ")
 
 
-def test_legacy_office_and_encrypted_office_files():
+def test_legacy_office_kinds_and_encrypted_office_files():
+    from thresher.steps.extract.sniff import sniff
     ole = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1" + bytes(504)
-    assert one(ole + b"WordDocument", "minutes.doc").reason == (
-        "unsupported format: legacy Microsoft Office binary file (.doc/.xls/.ppt)"
+    assert sniff(ole + "WordDocument".encode("utf-16-le"), "minutes.doc").format == "doc"
+    assert sniff(ole + "Workbook".encode("utf-16-le"), "budget.xls").format == "xls"
+    deck = sniff(ole + "PowerPoint Document".encode("utf-16-le"), "talk.doc")
+    assert deck.format == "ppt" and deck.warnings == ["content is ppt although the file is named .doc"]
+    assert one(ole + b"nothing we know", "thing.doc").reason == (
+        "unsupported format: OLE2 compound file that is not a Word, Excel or PowerPoint document"
     )
     encrypted = ole + "EncryptionInfo".encode("utf-16-le") + bytes(100)
     assert one(encrypted, "salaries.docx").reason == "password protected"
-
-
-def test_rtf_is_unsupported():
-    assert one(b"{\\rtf1\\ansi Hello}", "letter.rtf").reason == "unsupported format: RTF document"
 
 
 def test_content_decides_the_format_and_a_mismatch_is_noted():

@@ -20,6 +20,9 @@ READERS: dict[str, tuple[str, str, str]] = {
     "markdown": ("markdown", "read_markdown", "markdown"),
     "text": ("text", "read_text", "plain"),
     "docx": ("docx", "read_docx", "docx"),
+    "xlsx": ("spreadsheet", "read_xlsx", "xlsx"),
+    "xls": ("spreadsheet", "read_xls", "xls"),
+    "ods": ("spreadsheet", "read_ods", "ods"),
 }
 
 # The method a failed document of a format is labelled with.

@@ -34,6 +34,17 @@ UNPRINTABLE_SHARE_LIMIT = 0.10
 EXTENSION_FORMATS = {
     "pdf": "pdf",
     "docx": "docx",
+    "xlsx": "xlsx",
+    "xlsm": "xlsx",
+    "xls": "xls",
+    "ods": "ods",
+    "pptx": "pptx",
+    "odp": "odp",
+    "odt": "odt",
+    "rtf": "rtf",
+    "epub": "epub",
+    "doc": "doc",
+    "ppt": "ppt",
     "html": "html",
     "htm": "html",
     "xhtml": "html",
@@ -315,29 +326,84 @@ def html_declared_charset(data: bytes) -> str | None:
     return found.group(1).decode("ascii", "replace") if found else None
 
 
+# OpenDocument mimetypes (the zip's first member, ODF 1.2 part 3, 3.3) and what they are.
+ODF_KINDS = {
+    "application/vnd.oasis.opendocument.text": "odt",
+    "application/vnd.oasis.opendocument.text-template": "odt",
+    "application/vnd.oasis.opendocument.spreadsheet": "ods",
+    "application/vnd.oasis.opendocument.spreadsheet-template": "ods",
+    "application/vnd.oasis.opendocument.presentation": "odp",
+    "application/vnd.oasis.opendocument.presentation-template": "odp",
+}
+EPUB_MIMETYPE = b"application/epub+zip"
+
+
 def _zip_kind(data: bytes, ext: str) -> Sniffed:
+    """An Office or OpenDocument package, an EPUB, or a zip we do not read.
+
+    OOXML is known by its main part (word/document.xml, xl/workbook.xml,
+    ppt/presentation.xml), ODF and EPUB by their `mimetype` member. Any other zip is
+    an archive of documents, not one document.
+    """
     try:
         with zipfile.ZipFile(io.BytesIO(data)) as archive:
             names = set(archive.namelist())
             mimetype = b""
             if "mimetype" in names:
                 mimetype = archive.read("mimetype")[:100].strip()
-    except (zipfile.BadZipFile, OSError, EOFError, ValueError) as exc:
-        what = "DOCX" if ext == "docx" else "zip archive"
+            encrypted_odf = (mimetype.startswith(b"application/vnd.oasis.opendocument")
+                             and "META-INF/manifest.xml" in names
+                             and b"encryption-data" in archive.read("META-INF/manifest.xml"))
+    except (zipfile.BadZipFile, OSError, EOFError, ValueError, KeyError,
+            NotImplementedError, RuntimeError) as exc:
+        what = {"docx": "DOCX", "xlsx": "XLSX", "xlsm": "XLSX", "pptx": "PPTX",
+                "odt": "OpenDocument", "ods": "OpenDocument", "odp": "OpenDocument",
+                "epub": "EPUB"}.get(ext, "zip archive")
         return Sniffed(reason=f"unreadable {what}: {exc}")
     if "word/document.xml" in names:
         return Sniffed(format="docx")
     if "xl/workbook.xml" in names:
-        kind = "XLSX spreadsheet"
-    elif "ppt/presentation.xml" in names:
-        kind = "PPTX presentation"
-    elif mimetype.startswith(b"application/vnd.oasis.opendocument"):
-        kind = f"OpenDocument file ({mimetype.decode('ascii', 'replace')})"
-    elif mimetype == b"application/epub+zip":
-        kind = "EPUB book"
-    else:
-        kind = "zip archive without word/document.xml (not a .docx)"
-    return Sniffed(reason=f"unsupported format: {kind}")
+        return Sniffed(format="xlsx")
+    if "ppt/presentation.xml" in names:
+        return Sniffed(format="pptx")
+    kind = ODF_KINDS.get(mimetype.decode("ascii", "replace"))
+    if kind:
+        if encrypted_odf:
+            return Sniffed(reason="password protected")
+        return Sniffed(format=kind)
+    if mimetype.startswith(b"application/vnd.oasis.opendocument"):
+        return Sniffed(reason=f"unsupported format: OpenDocument file "
+                              f"({mimetype.decode('ascii', 'replace')})")
+    if mimetype == EPUB_MIMETYPE:
+        return Sniffed(format="epub")
+    return Sniffed(reason="unsupported format: zip archive without word/document.xml (not a .docx)")
+
+
+def _utf16(name: str) -> bytes:
+    return name.encode("utf-16-le")
+
+
+# Stream names in an OLE2 compound file's directory (stored as UTF-16LE) that say which
+# legacy Office program wrote it ([MS-DOC] 2.1, [MS-XLS] 2.1.2, [MS-PPT] 2.1.1).
+_OLE_KINDS = (
+    (_utf16("WordDocument"), "doc"),
+    (_utf16("PowerPoint Document"), "ppt"),
+    # Checked last: a Word or PowerPoint file may embed a workbook.
+    (_utf16("Workbook"), "xls"),
+    (_utf16("Book\x00"), "xls"),  # Excel 5/95 workbooks
+)
+
+
+def _ole_kind(data: bytes) -> Sniffed:
+    if _ENCRYPTION_INFO in data or _utf16("EncryptedPackage") in data:
+        return Sniffed(reason="password protected")
+    for name, kind in _OLE_KINDS:
+        if name in data:
+            return Sniffed(format=kind)
+    return Sniffed(
+        reason="unsupported format: OLE2 compound file that is not a Word, Excel or "
+               "PowerPoint document"
+    )
 
 
 def sniff(data: bytes, source_path: str) -> Sniffed:
@@ -349,13 +415,9 @@ def sniff(data: bytes, source_path: str) -> Sniffed:
     if data.startswith((b"PK\x03\x04", b"PK\x05\x06")):
         return _with_extension_note(_zip_kind(data, ext), ext)
     if data.startswith(_OLE2):
-        if _ENCRYPTION_INFO in data:
-            return Sniffed(reason="password protected")
-        return Sniffed(
-            reason="unsupported format: legacy Microsoft Office binary file (.doc/.xls/.ppt)"
-        )
+        return _with_extension_note(_ole_kind(data), ext)
     if data.startswith(b"{\\rtf"):
-        return Sniffed(reason="unsupported format: RTF document")
+        return _with_extension_note(Sniffed(format="rtf"), ext)
     for magic, kind in _BINARY_SIGNATURES:
         if data.startswith(magic):
             return Sniffed(reason=f"not text: {kind} (binary content)")

@@ -69,6 +69,9 @@ class ExtractParams(StepParams):
         description="Tesseract language(s), joined by '+' (e.g. eng+deu)",
     )
     ocr_dpi: int = Field(300, ge=72, le=600, description="resolution pages are rendered at for OCR")
+    slide_notes: bool = Field(
+        True, description="read a slide's speaker notes (after the slide, under a heading 'Notes')",
+    )
 
 
 def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
@@ -192,7 +195,7 @@ EXTRACT = StepSpec(
     source_limit=_source_limit,
     time_limit=_time_limit,
     summary=(
-        "Reads a source file (PDF, HTML, Markdown, plain text, DOCX; format sniffed from "
-        "content) into pages of heading, paragraph, table and code blocks."
+        "Reads a source file (PDF, HTML, Markdown, plain text, DOCX, spreadsheets; format "
+        "sniffed from content) into pages of heading, paragraph, table and code blocks."
     ),
 )
