@@ -23,6 +23,8 @@ READERS: dict[str, tuple[str, str, str]] = {
     "xlsx": ("spreadsheet", "read_xlsx", "xlsx"),
     "xls": ("spreadsheet", "read_xls", "xls"),
     "ods": ("spreadsheet", "read_ods", "ods"),
+    "pptx": ("pptx", "read_pptx", "pptx"),
+    "odp": ("odp", "read_odp", "odp"),
 }
 
 # The method a failed document of a format is labelled with.
