@@ -41,8 +41,9 @@ P, H, S, TAB, BR, NOTE, NOTE_BODY, ANNOTATION = (
 LIST, LIST_ITEM, LIST_HEADER = q("text:list"), q("text:list-item"), q("text:list-header")
 TABLE, ROW, CELL, COVERED = (q("table:table"), q("table:table-row"), q("table:table-cell"),
                              q("table:covered-table-cell"))
-_SKIP_INLINE = {ANNOTATION, q("text:note-citation"), q("draw:frame"), q("draw:a"),
-                q("text:bookmark-ref")}
+# Inside a paragraph: comments, note marks (a note is read on its own), and frames
+# (pictures, text boxes anchored to the paragraph) are not part of its text.
+_SKIP_INLINE = {ANNOTATION, q("text:note-citation"), q("draw:frame"), q("draw:a")}
 # A cap on table:number-columns-repeated: a row padded to the sheet's last column
 # repeats an empty cell some 16,000 times.
 MAX_REPEAT = 256

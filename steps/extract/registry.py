@@ -25,6 +25,7 @@ READERS: dict[str, tuple[str, str, str]] = {
     "ods": ("spreadsheet", "read_ods", "ods"),
     "pptx": ("pptx", "read_pptx", "pptx"),
     "odp": ("odp", "read_odp", "odp"),
+    "odt": ("odt", "read_odt", "odt"),
 }
 
 # The method a failed document of a format is labelled with.
