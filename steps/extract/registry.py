@@ -26,6 +26,7 @@ READERS: dict[str, tuple[str, str, str]] = {
     "pptx": ("pptx", "read_pptx", "pptx"),
     "odp": ("odp", "read_odp", "odp"),
     "odt": ("odt", "read_odt", "odt"),
+    "epub": ("epub", "read_epub", "epub"),
 }
 
 # The method a failed document of a format is labelled with.
