@@ -45,6 +45,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", metavar="N", type=_positive_int, help="parallel tasks (default: from the flow definition)")
     p.add_argument("--force", action="store_true", help="process every document again, even unchanged ones")
     p.add_argument("--quiet", action="store_true", help="no progress lines, only the summary")
+    p.add_argument("--probes", metavar="FILE", help="probe file to check after the run (default: the definition's probes)")
+    p.add_argument("--fail-on-regression", action="store_true",
+                   help="exit with status 3 when a probe that passed in the previous probed run fails now")
 
     p = sub.add_parser("status", help="recent runs and per stage the counts by status",
                        description="Recent runs, and for each stage the current units by status.")
@@ -91,6 +94,15 @@ def build_parser() -> argparse.ArgumentParser:
     _common(p, json_flag=False)
     p.add_argument("--format", choices=["parquet", "jsonl"], required=True, help="file format")
     p.add_argument("--out", metavar="PATH", required=True, help="file to write ('-' for standard output, jsonl only)")
+
+    p = sub.add_parser("deliver", help="apply committed runs' change sets to the definition's targets",
+                       description=(
+                           "Bring each delivery target named in the definition (deliver.targets) to the latest "
+                           "committed run: the change sets of the runs it lacks, in run order, in one transaction, "
+                           "or a full load from the hand-off when it is new or too far behind. Applying again is "
+                           "a no-op."))
+    _common(p)
+    p.add_argument("--target", metavar="NAME", action="append", help="only this target (repeatable)")
 
     p = sub.add_parser("schedule", help="serve the weekly deployment named in the flow definition",
                        description=(
@@ -154,10 +166,22 @@ def cmd_run(args: argparse.Namespace) -> int:
                 except EncodingUnavailable as exc:
                     raise UsageError(str(exc).replace("\n", " ")) from None
 
+    probe_file = args.probes or definition.model.probes
+    if probe_file:
+        from thresher.flows.probes import ProbeError, load_probes
+
+        try:
+            load_probes(probe_file)
+        except ProbeError as exc:
+            raise UsageError(str(exc)) from None
+    elif args.fail_on_regression:
+        raise UsageError("--fail-on-regression needs probes: --probes FILE or `probes:` in the definition")
     if not args.quiet:
         print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
               "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
-    return _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force)
+    code = _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
+                           probes=args.probes)
+    return code
 
 
 def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source: str, store_root: str,
@@ -175,6 +199,17 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
         print(json.dumps(manifest, indent=2, default=str))
     else:
         print("\n".join(run_summary_lines(manifest)))
+    delivered = manifest.get("delivered")
+    if delivered and delivered.get("error"):
+        print(f"thresher {args.verb}: the run is committed, but delivery failed: {delivered['error']}; "
+              "`thresher deliver` tries again", file=sys.stderr)
+        return 1
+    probes = manifest.get("probes") or {}
+    if getattr(args, "fail_on_regression", False) and probes.get("regressions"):
+        print(f"thresher {args.verb}: {len(probes['regressions'])} probe(s) that passed in run "
+              f"{probes.get('previous_run')} fail now: {', '.join(map(str, probes['regressions']))}",
+              file=sys.stderr)
+        return 3
     return 0
 
 
@@ -198,6 +233,17 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
         parts = ", ".join(f"{by_status[s]} {s}" for s in STATUS_ORDER if by_status.get(s))
         lines.append(f"  {stage:<10} {total:>6} {units.get(stage, ''):<7} {parts or 'none'}")
     lines.append(f"  store      {m['store_root']}")
+    probes = m.get("probes")
+    if probes:
+        regress = probes.get("regressions") or []
+        lines.append(f"  probes     {probes['count']} questions: {probes['hit_at_1']:.0%} answered first, "
+                     f"{probes['hit_at_5']:.0%} within 5" + (f"; {len(regress)} regression(s): probe "
+                                                          + ", ".join(map(str, regress)) if regress else ""))
+    for t in (m.get("delivered") or {}).get("targets", []):
+        what = ("already up to date" if t["mode"] == "up to date" else
+                f"full load of {t['upserts']} chunks" if t["mode"] == "full load" else
+                f"{len(t['runs'])} run(s): {t['upserts']} upserted, {t['deletes']} deleted")
+        lines.append(f"  delivered  {t['target']}: {what}" + (f"; holds {t['rows']} chunks" if t["rows"] is not None else ""))
     if m.get("failures"):
         lines.append(f"  {m['failures']} unit(s) failed this run; `thresher trail PATH` shows each one's way:")
         shown = m.get("failed_units", [])[:10]
@@ -231,6 +277,8 @@ def cmd_status(args: argparse.Namespace) -> int:
                       "failures": r.manifest.get("failures")} for r in recent],
             "live_documents": len(docs),
             "stages": {c.stage: c.by_status for c in counts},
+            "probes": next((r.manifest["probes"] for r in reversed(runs) if r.manifest.get("probes")), None),
+            "targets": _target_states(definition, store),
             "tokens": None if tokens is None else {
                 "encoding": tokens.encoding, "total": tokens.total, "chunks": tokens.chunks,
                 "documents": tokens.documents, "by_language": tokens.by_language, "by_folder": tokens.by_folder},
@@ -257,7 +305,23 @@ def cmd_status(args: argparse.Namespace) -> int:
 
         print(f"  by language: {share(tokens.by_language)}")
         print(f"  by folder:   {share(tokens.by_folder)}")
+    probed = next((r.manifest["probes"] for r in reversed(runs) if r.manifest.get("probes")), None)
+    if probed:
+        print(f"probes: {probed['count']} questions, {probed['hit_at_1']:.0%} answered first, "
+              f"{probed['hit_at_5']:.0%} within 5, {len(probed['regressions'])} regression(s)")
+    for t in _target_states(definition, store):
+        print(f"target {t['name']} ({t['kind']}): " + (t["problem"] or (
+            "up to date" if t["behind"] == 0 else f"{t['behind']} run(s) behind"
+            + (f" (holds {t['applied']})" if t["applied"] else " (empty)"))))
     return 0
+
+
+def _target_states(definition: FlowDefinition, store) -> list[dict[str, Any]]:
+    from dataclasses import asdict
+
+    from thresher.flows.deliver import target_states
+
+    return [asdict(t) for t in target_states(definition, store)]
 
 
 # ----------------------------------------------------------------------------- trail
@@ -456,6 +520,44 @@ def cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------- deliver
+
+def cmd_deliver(args: argparse.Namespace) -> int:
+    from dataclasses import asdict
+
+    from thresher.flows.deliver import DeliveryError, deliver
+    from thresher.flows.store import StoreLocked, new_run_id
+
+    definition = _definition(args)
+    store = _open_store(args, definition)
+    if not definition.model.deliver.targets:
+        raise UsageError("the flow definition names no targets (deliver.targets); see the README's Delivery section")
+    # The lock keeps a run from committing while its predecessor is delivered.
+    holder = f"deliver-{new_run_id()}"
+    try:
+        store.acquire_lock(holder, wait_seconds=60)
+    except StoreLocked as exc:
+        raise UsageError(str(exc)) from None
+    try:
+        results = deliver(definition, store, args.target)
+    except DeliveryError as exc:
+        raise UsageError(str(exc)) from None
+    finally:
+        store.release_lock(holder)
+    if args.json:
+        print(json.dumps([asdict(r) for r in results], indent=2))
+        return 0
+    for r in results:
+        if r.mode == "up to date":
+            print(f"{r.target}: already up to date ({r.rows} chunks)")
+        elif r.mode == "full load":
+            print(f"{r.target}: full load of {r.upserts} chunks from the hand-off of run {r.runs[0]}")
+        else:
+            print(f"{r.target}: applied {len(r.runs)} run(s) in order ({', '.join(r.runs)}): "
+                  f"{r.upserts} upserted, {r.deletes} deleted; now {r.rows} chunks")
+    return 0
+
+
 # ----------------------------------------------------------------------------- schedule
 
 def cmd_schedule(args: argparse.Namespace) -> int:
@@ -476,7 +578,8 @@ def cmd_schedule(args: argparse.Namespace) -> int:
 
 
 COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail, "failures": cmd_failures,
-            "rerun": cmd_rerun, "report": cmd_report, "export": cmd_export, "schedule": cmd_schedule}
+            "rerun": cmd_rerun, "report": cmd_report, "export": cmd_export, "deliver": cmd_deliver,
+            "schedule": cmd_schedule}
 
 
 def main(argv: list[str] | None = None) -> int:

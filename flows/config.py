@@ -85,6 +85,60 @@ class ScheduleSection(_Strict):
         return v
 
 
+class TargetEntry(_Strict):
+    """One index that `thresher deliver` keeps up to date."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+    name: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
+    # "sqlite", "postgres", or your own target as "package.module:factory"
+    kind: str
+    # sqlite: the database file (relative paths from the directory thresher starts in)
+    database: str | None = None
+    # postgres: the name of an environment variable holding the connection string, so
+    # no password sits in the definition; `dsn` is for password-less local sockets.
+    dsn_env: str | None = None
+    dsn: str | None = None
+    db_schema: str = Field(default="thresher", alias="schema", pattern=r"^[a-z_][a-z0-9_]*$")
+    table: str = Field(default="chunks", pattern=r"^[a-z_][a-z0-9_]*$")
+    # free settings for your own target
+    options: dict[str, Any] = Field(default_factory=dict)
+
+    @field_validator("kind")
+    @classmethod
+    def _known_kind(cls, v: str) -> str:
+        if v in ("sqlite", "postgres"):
+            return v
+        module, colon, attr = v.partition(":")
+        if not colon or not module or not attr.isidentifier():
+            raise ValueError("kind is sqlite, postgres, or your own target as package.module:factory")
+        return v
+
+    @model_validator(mode="after")
+    def _settings_for_kind(self) -> "TargetEntry":
+        if self.kind == "sqlite" and not self.database:
+            raise ValueError("a sqlite target needs database: the path of its database file")
+        if self.kind == "postgres" and not (self.dsn_env or self.dsn):
+            raise ValueError("a postgres target needs dsn_env (an environment variable holding "
+                             "the connection string) or dsn")
+        return self
+
+
+class DeliverSection(_Strict):
+    # Deliver to every target after each committed run (`thresher run`, the weekly deployment).
+    after_run: bool = True
+    targets: list[TargetEntry] = Field(default_factory=list)
+
+    @field_validator("targets")
+    @classmethod
+    def _unique_names(cls, v: list[TargetEntry]) -> list[TargetEntry]:
+        names = [t.name for t in v]
+        dupes = sorted({n for n in names if names.count(n) > 1})
+        if dupes:
+            raise ValueError(f"target names must be unique: {', '.join(dupes)} appears more than once")
+        return v
+
+
 class StepEntry(_Strict):
     step: str
     params: dict[str, Any] = Field(default_factory=dict)
@@ -96,6 +150,9 @@ class FlowDefinitionModel(_Strict):
     store: str = ".thresher-store"
     runner: RunnerSection = Field(default_factory=RunnerSection)
     schedule: ScheduleSection = Field(default_factory=ScheduleSection)
+    deliver: DeliverSection = Field(default_factory=DeliverSection)
+    # A probe file (questions and the documents that should answer them), checked after each run.
+    probes: str | None = None
     steps: list[StepEntry]
 
 

@@ -31,6 +31,7 @@ from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import run_corpus_step
 from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob
+from thresher.flows.faults import fault
 from thresher.flows.handoff import build_handoff
 from thresher.flows.plan import Plan, make_plan
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
@@ -50,8 +51,7 @@ FAULT_POINTS = ("after-first-batch", "after-corpus", "before-commit", "after-com
 
 
 def _fault(point: str) -> None:
-    if os.environ.get("THRESHER_FAULT") == point:
-        os._exit(75)
+    fault(point)
 
 
 @lru_cache(maxsize=8)
@@ -289,7 +289,8 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
 
 def execute_run(definition: FlowDefinition, source_root: str, store_root: str, run_id: str,
                 progress: Callable[[str], None] | None, force: bool = False,
-                rerun: dict[str, Any] | None = None, workers: int | None = None) -> RunOutcome:
+                rerun: dict[str, Any] | None = None, workers: int | None = None,
+                probes: str | None = None) -> RunOutcome:
     """Body of the flows; runs inside a Prefect flow run so tasks are tracked.
 
     `rerun` None: a run over the source folder. Otherwise what to re-run:
@@ -342,6 +343,14 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
                    "staged/digests.parquet": "handoff/digests.parquet",
                    "staged/changes.parquet": f"handoff/changes/{run_id}.parquet"}
+        probe_file = probes or model.probes
+        probe_summary = None
+        if probe_file:
+            from thresher.flows.probes import probe_run, probes_rel
+
+            probe_summary = probe_run(store, f"{staged}/chunks.parquet", run_id, probe_file,
+                                      f"{staged}/probes.parquet").as_dict()
+            publish["staged/probes.parquet"] = probes_rel(run_id)
         if rerun is None:
             store.write_table(f"{staged}/catalog.parquet", plan.catalog, run_id=run_id)
             publish["staged/catalog.parquet"] = "catalog.parquet"
@@ -380,6 +389,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "chunks": handoff.chunks,
             "tokens": tokens,
             "changes": {"upsert": handoff.upserts, "delete": handoff.deletes},
+            "probes": probe_summary,
             "failures": len(acc.failures),
             # The first ones, for the summary; every one is in the stage tables.
             "failed_units": [{"source_path": p, "stage": s, "reason": r} for p, s, r in sorted(acc.failures)[:50]],
@@ -429,12 +439,35 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
 @flow(name="thresher-run", log_prints=False, persist_result=False)
 def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store_root: str,
            run_id: str | None = None, force: bool = False, quiet: bool = False,
-           rerun: dict[str, Any] | None = None, workers: int | None = None) -> dict[str, Any]:
-    """One run of the chain over the source root (or a re-run of chosen units)."""
+           rerun: dict[str, Any] | None = None, workers: int | None = None,
+           probes: str | None = None) -> dict[str, Any]:
+    """One run of the chain over the source root (or a re-run of chosen units), then the
+    delivery of its change set to the definition's targets when it asks for that."""
     definition = _definition(json.dumps(definition_data, sort_keys=True), origin)
     outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(),
-                          None if quiet else _default_progress, force=force, rerun=rerun, workers=workers)
-    return outcome.manifest
+                          None if quiet else _default_progress, force=force, rerun=rerun, workers=workers,
+                          probes=probes)
+    result = dict(outcome.manifest)
+    deliver_section = definition.model.deliver
+    if deliver_section.after_run and deliver_section.targets:
+        result["delivered"] = deliver_after_run(definition, store_root)
+    return result
+
+
+def deliver_after_run(definition: FlowDefinition, store_root: str) -> dict[str, Any]:
+    """Deliver to every target; a target that fails is reported, the run stays committed."""
+    from thresher.flows.deliver import DeliveryError, deliver
+
+    logger = get_run_logger()
+    try:
+        results = deliver(definition, Store(store_root))
+    except DeliveryError as exc:
+        logger.error("delivery failed: %s", exc)
+        return {"error": str(exc), "targets": []}
+    except Exception as exc:  # noqa: BLE001 - a database fault: the run is committed, say so
+        logger.error("delivery failed: %s: %s", type(exc).__name__, exc)
+        return {"error": f"{type(exc).__name__}: {exc}", "targets": []}
+    return {"error": None, "targets": [asdict(r) for r in results]}
 
 
 def build_flow(definition: FlowDefinition, workers: int | None = None, name: str | None = None):
@@ -446,7 +479,8 @@ def build_flow(definition: FlowDefinition, workers: int | None = None, name: str
 
 
 def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
-        force: bool = False, quiet: bool = False, rerun: dict[str, Any] | None = None) -> dict[str, Any]:
+        force: bool = False, quiet: bool = False, rerun: dict[str, Any] | None = None,
+        probes: str | None = None) -> dict[str, Any]:
     """Run the flow (embedded Prefect unless PREFECT_API_URL is set).
 
     The store's lock is taken before Prefect starts, so a second run on the same
@@ -460,6 +494,6 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
             flow_obj = build_flow(definition, workers,
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
             return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
-                            run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers)
+                            run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers, probes=probes)
     finally:
         store.release_lock(run_id)

@@ -221,6 +221,25 @@ CHANGES = pa.schema(
     ]
 )
 
+# One row per retrieval probe of a run (flows/probes.py), under probes/<run_id>.parquet.
+PROBES = pa.schema(
+    [
+        pa.field("run_id", pa.string(), nullable=False),
+        pa.field("probe", pa.int32(), nullable=False),  # 1-based position in the probe file
+        pa.field("ask", pa.string()),
+        pa.field("expect", pa.string()),
+        pa.field("page", pa.int32()),
+        pa.field("heading", pa.string()),
+        pa.field("rank", pa.int32()),  # of the first matching chunk; null when not within the first 100
+        pa.field("chunk_id", pa.string()),
+        pa.field("source_path", pa.string()),
+        pa.field("top_chunk_ids", STR_LIST),
+        pa.field("top_paths", STR_LIST),
+        pa.field("passed", pa.bool_()),
+        pa.field("regression", pa.bool_()),
+    ]
+)
+
 WRITES = pa.schema(
     [
         pa.field("stage", pa.string(), nullable=False),

@@ -1,0 +1,1 @@
+"""Built-in delivery targets (see flows/deliver.py for the interface)."""
