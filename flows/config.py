@@ -292,7 +292,7 @@ def _check_chain(steps: list[ResolvedStep]) -> list[str]:
 
 def build_definition(data: Any, origin: str = "<memory>") -> FlowDefinition:
     if not isinstance(data, dict):
-        raise ConfigError(f"{origin}: a flow definition is a mapping of keys (name, source, store, runner, schedule, steps)")
+        raise ConfigError(f"{origin}: a flow definition is a mapping of keys ({', '.join(FlowDefinitionModel.model_fields)})")
     try:
         model = FlowDefinitionModel.model_validate(data)
     except ValidationError as exc:
