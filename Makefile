@@ -24,6 +24,8 @@ DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
 # Manuals Debian ships as both PDF and HTML: the retrieval benchmark (bench/retrieval.py)
 # takes its questions from the HTML edition and ranks chunks of the PDF edition.
 BENCH_PACKAGES := debian-faq developers-reference debian-policy
+# The FAQ's PDF (contents and index pages against its outline) is also a test reference.
+DEBIAN_TEST_PACKAGES += debian-faq
 
 # Optional OCR of scanned PDF pages (extract: ocr: true): Tesseract and its English data.
 OCR_PACKAGES := tesseract-ocr tesseract-ocr-eng

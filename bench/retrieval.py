@@ -185,7 +185,7 @@ def run_chain(chain, data: bytes, path: str, cache: dict):
 
 def navigation_truth(data: bytes) -> set[int]:
     """Pages the outline places outside the body: front matter before the first
-    top-level entry that holds at least 3 outline titles (contents), and every page from
+    top-level entry that holds at least 5 outline titles (contents), and every page from
     a top-level entry titled "Index" on. Independent of thresher's own navigation rule."""
     import pypdfium2 as pdfium
 
@@ -200,11 +200,11 @@ def navigation_truth(data: bytes) -> set[int]:
         if not top:
             return set()
         body = min(page for _, page in top)
-        titles = {norm(t) for _, t, _ in marks if len(norm(t)) >= 6}
+        titles = {norm(t) for _, t, _ in marks if len(norm(t)) >= 10}
         out = set()
         for n in range(1, body):
             text = norm(doc[n - 1].get_textpage().get_text_range())
-            if sum(1 for t in titles if t in text) >= 3:
+            if sum(1 for t in titles if t in text) >= 5:
                 out.add(n)
         for title, page in top:
             if "index" in title.casefold():

@@ -95,6 +95,8 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
         pa.field("table_count", pa.int32()),
         pa.field("columns", pa.int32()),
         pa.field("removed", pa.list_(REMOVAL)),
+        # A navigation page's kind (contents, index, figures, tables), else empty.
+        pa.field("navigation", pa.string()),
         pa.field("encoding", pa.string()),
         pa.field("byte_size", pa.int64()),
         pa.field("modified_at", TS),

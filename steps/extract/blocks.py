@@ -60,6 +60,8 @@ class PagePart:
     columns: int = 1
     # What was taken out of the page's text and why: {"kind", "text", "reason"} each.
     removed: list[dict] = field(default_factory=list)
+    # A navigation page's kind ("contents", "index", "figures", "tables"), else "".
+    navigation: str = ""
 
 
 @dataclass

@@ -94,6 +94,7 @@ from .pdf_layout import (
     make_lines,
     order_columns,
 )
+from . import pdf_navigation
 from .pdf_tables import FoundTable, TableReader, inside, tables_on
 from .pdf_text import LOCK, PageText, Word
 
@@ -137,6 +138,7 @@ class PageScan:
     columns: int = 1
     gutters: list[tuple[float, float]] = field(default_factory=list)
     method: str = "text-layer"
+    navigation: str = ""
     ocr_blocks: list[Block] = field(default_factory=list)
 
 
@@ -586,6 +588,53 @@ def page_blocks(scan: PageScan, vocab: Vocabulary | None = None) -> list[Block]:
     return blocks
 
 
+def _outline_navigation(outline: list[OutlineEntry], page_count: int) -> set[int]:
+    """Pages of the outline's sections titled like an index or a contents list."""
+    marked = sorted((e.page, e.title) for e in outline if e.page)
+    out: set[int] = set()
+    for k, (page, title) in enumerate(marked):
+        if pdf_navigation.OUTLINE_TITLE.match(title):
+            nxt = next((p for p, _ in marked[k + 1:] if p > page), page_count + 1)
+            out.update(range(page, nxt))
+    return out
+
+
+def judge_navigation(text_pages: list[PageScan], page_count: int,
+                     outline: list[OutlineEntry] | None = None) -> None:
+    """Set each page's navigation kind (pdf_navigation); on a chapter's opening page,
+    remove its contents entries instead (recorded like running headers)."""
+    named = _outline_navigation(outline or [], page_count)
+    prev = (None, "")
+    for scan in text_pages:
+        lines = [ln.text for ln in scan.lines]
+        heads = [ln.text for ln in scan.lines if ln.heading]
+        judgement = pdf_navigation.judge_page(lines, heads, page_count)
+        if not judgement.kind and scan.number in named:
+            judgement = pdf_navigation.judge_page(
+                lines, heads, page_count, pdf_navigation.NEXT_MIN_ENTRIES,
+                pdf_navigation.NEXT_ENTRY_SHARE, ordered=False)
+        if not judgement.kind and prev[1] and prev[0] == scan.number - 1:
+            judgement = pdf_navigation.judge_page(
+                lines, heads, page_count, pdf_navigation.NEXT_MIN_ENTRIES,
+                pdf_navigation.NEXT_ENTRY_SHARE)
+        if judgement.kind:
+            heading_at = {i for i, ln in enumerate(scan.lines) if ln.heading}
+            words = pdf_navigation.body_after_entries(lines, judgement.entries, heading_at)
+            if words >= pdf_navigation.BODY_WORDS:
+                drop = set(judgement.entries)
+                for i in sorted(drop):
+                    scan.removed.append({
+                        "kind": "contents entry",
+                        "text": lines[i],
+                        "reason": f"a {judgement.kind} entry above {words} words of text "
+                                  "on the same page",
+                    })
+                scan.lines = [ln for i, ln in enumerate(scan.lines) if i not in drop]
+                judgement = pdf_navigation.Judgement()
+        scan.navigation = judgement.kind
+        prev = (scan.number, judgement.kind)
+
+
 # --- the reader ---------------------------------------------------------------
 
 
@@ -633,6 +682,7 @@ def read_pdf(inp: ReaderInput) -> ReadResult:
         scan.columns = len(scan.gutters) + 1
         scan.lines = order_columns(scan.lines, scan.gutters)
     classify_headings(scans, params.pdf_heading_ratio, outline)
+    judge_navigation(text_pages, count, outline)
     vocab = Vocabulary()
     for scan in text_pages:
         vocab.add("\n".join(ln.text for ln in scan.lines if not ln.heading))
@@ -641,7 +691,7 @@ def read_pdf(inp: ReaderInput) -> ReadResult:
     for scan in scans:
         part = PagePart(page=scan.number, warnings=scan.warnings, failure=scan.failure,
                         error=scan.error, method=scan.method, columns=scan.columns,
-                        removed=scan.removed)
+                        removed=scan.removed, navigation=scan.navigation)
         if not scan.failure:
             try:
                 part.blocks = scan.ocr_blocks if scan.method == "ocr" else page_blocks(scan, vocab)

@@ -36,6 +36,7 @@ PAYLOAD_KEYS = (
     "table_count",
     "columns",
     "removed",
+    "navigation",
     "encoding",
     "byte_size",
     "modified_at",
@@ -72,11 +73,18 @@ class ExtractParams(StepParams):
     slide_notes: bool = Field(
         True, description="read a slide's speaker notes (after the slide, under a heading 'Notes')",
     )
+    drop_navigation: bool = Field(
+        True,
+        description=(
+            "drop PDF pages judged to be navigation (contents, index, lists of figures or "
+            "tables: column `navigation`) instead of passing them on to be chunked"
+        ),
+    )
 
 
 def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
             source: Source | None = None, columns: int = 1,
-            removed: list[dict] | None = None) -> dict[str, Any]:
+            removed: list[dict] | None = None, navigation: str = "") -> dict[str, Any]:
     text = BLOCK_SEP.join(b.text for b in blocks)
     chars = len(text)
     table_chars = sum(len(b.text) for b in blocks if b.kind == TABLE)
@@ -92,6 +100,7 @@ def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
         "table_count": sum(1 for b in blocks if b.kind == TABLE),
         "columns": int(columns),
         "removed": [dict(r) for r in (removed or [])],
+        "navigation": navigation,
         "encoding": encoding,
         "byte_size": size,
         "modified_at": (datetime.fromtimestamp(source.mtime, timezone.utc)
@@ -167,11 +176,15 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
             format=result.format,
             parents=[],
             payload=payload(part.blocks, part.method or result.method, result.page_count,
-                            result.encoding, source, part.columns, part.removed),
+                            result.encoding, source, part.columns, part.removed,
+                            part.navigation),
         )
         page.warnings = doc_warnings + part.warnings
         if part.failure:
             page.fail(part.failure, part.error)
+        elif part.navigation and params.drop_navigation:
+            page.drop(f"navigation page ({part.navigation}): its lines are entries with "
+                      "page references; set extract drop_navigation: false to keep it")
         pages.append(page)
     return pages
 
@@ -186,7 +199,7 @@ def _time_limit(params: ExtractParams) -> float:
 
 EXTRACT = StepSpec(
     name="extract",
-    version="2",
+    version="3",
     consumes="source",
     produces="pages",
     scope="document",
