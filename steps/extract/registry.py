@@ -27,6 +27,7 @@ READERS: dict[str, tuple[str, str, str]] = {
     "odp": ("odp", "read_odp", "odp"),
     "odt": ("odt", "read_odt", "odt"),
     "epub": ("epub", "read_epub", "epub"),
+    "rtf": ("rtf", "read_rtf", "rtf"),
 }
 
 # The method a failed document of a format is labelled with.
