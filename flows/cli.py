@@ -82,12 +82,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--source", metavar="DIR", help="source folder (default: the one the latest run read)")
     p.add_argument("--quiet", action="store_true", help="no progress lines, only the summary")
 
-    p = sub.add_parser("report", help="write the review page (one static HTML file)",
-                       description="Write the review page of a run as one self-contained HTML file: summary, "
-                                   "charts, problems by reason, documents, and each page's text before and after.")
+    p = sub.add_parser("report", help="write the review pages (a summary file and a folder of pages beside it)",
+                       description="Write the review pages: FILE is the summary (figures, charts, problems by "
+                                   "reason, the documents that need a look) and the folder beside it (FILE's name "
+                                   "without .html, plus -pages) holds one page per document, with each page's text "
+                                   "before and after, and the full documents list. Pages of documents the store "
+                                   "holds nothing new for since the last report into that folder are kept as they "
+                                   "are. No script; nothing is fetched.")
     _common(p, json_flag=False)
-    p.add_argument("--out", metavar="FILE", default="report.html", help="file to write (default: report.html)")
-    p.add_argument("--run", metavar="RUN_ID", help="a committed run to show (default: the latest)")
+    p.add_argument("--out", metavar="FILE", default="report.html",
+                   help="summary file to write; its pages go to the folder FILE-without-.html-pages "
+                        "(default: report.html and report-pages/)")
+    p.add_argument("--run", metavar="RUN_ID",
+                   help="a committed run to show as it left the store (default: the state of the store, "
+                        "the latest run and the reruns after it)")
 
     p = sub.add_parser("export", help="write the live chunks as Parquet or JSONL",
                        description="Write the hand-off's live chunks to a file, as Parquet or JSON Lines.")
@@ -511,12 +519,14 @@ def cmd_report(args: argparse.Namespace) -> int:
     definition = _definition(args)
     store = _open_store(args, definition)
     try:
-        path = write_report(store, args.out, run_id=args.run)
+        done = write_report(store, args.out, run_id=args.run)
     except ReportError as exc:
         raise UsageError(str(exc)) from None
     except OSError as exc:
         raise UsageError(f"cannot write {args.out}: {exc.strerror or exc}") from None
-    print(f"wrote the review page to {path}", file=sys.stderr)
+    print(f"wrote the review summary to {done.summary} and {done.documents:,} document pages in {done.folder}/ "
+          f"({done.pages_written:,} written, {done.pages_kept:,} unchanged, {done.pages_removed:,} removed)",
+          file=sys.stderr)
     return 0
 
 

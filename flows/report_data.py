@@ -15,6 +15,8 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
+import pyarrow.dataset as ds
+
 from thresher.flows import schema
 from thresher.flows.store import RunInfo, Store
 
@@ -69,6 +71,17 @@ class UnitAtStage:
     text: str | None = None
     run_id: str = ""
     attempt: int = 1
+    removed: list[dict[str, Any]] = field(default_factory=list)  # lines a stage took out, and why
+
+    @property
+    def removed_kinds(self) -> str:
+        counts = Counter(r.get("kind") or "line" for r in self.removed)
+        return ", ".join(f"{k} {n}" for k, n in sorted(counts.items()))
+
+    @property
+    def traceback_pane(self):
+        from thresher.flows.report_diff import single
+        return single(self.traceback)
 
 
 @dataclass
@@ -176,6 +189,7 @@ class ReportData:
     generated_at: datetime
     store_root: str
     budget_tokens: int | None = None  # a chunk stage's max_tokens parameter, if any
+    scope: "Scope | None" = None
 
     @property
     def manifest(self) -> dict[str, Any]:
@@ -230,17 +244,29 @@ def own_columns(names: list[str], unit: str) -> list[str]:
     return [n for n in names if n not in COMMON_NAMES and n not in unit_names]
 
 
+# A warning that only repeats, one by one, the lines the `removed` column lists.
+_REMOVAL_WARNING = "dropped running header/footer:"
+
+
 def _unit_at(stage: str, row: dict[str, Any], own: list[str]) -> UnitAtStage:
     facts = []
+    removed = []
     for name in own:
-        text = format_value(row.get(name))
+        value = row.get(name)
+        if name == "removed" and isinstance(value, list):
+            removed = [r for r in value if isinstance(r, dict)]
+            continue
+        text = format_value(value)
         if text is not None:
             facts.append((name, text))
+    warnings = list(row.get("warnings") or [])
+    if removed:  # one folded line per page with a count instead (the list is behind a disclosure)
+        warnings = [w for w in warnings if not w.startswith(_REMOVAL_WARNING)]
     return UnitAtStage(
         stage=stage, status=row.get("status") or "ok", reason=row.get("reason") or "",
         error_type=row.get("error_type") or "", traceback=row.get("traceback") or "",
-        warnings=list(row.get("warnings") or []), facts=facts, text=row.get("text"),
-        run_id=row.get("run_id") or "", attempt=row.get("attempt") or 1,
+        warnings=warnings, facts=facts, text=row.get("text"),
+        run_id=row.get("run_id") or "", attempt=row.get("attempt") or 1, removed=removed,
     )
 
 
@@ -257,15 +283,48 @@ class _StoreAsOf(Store):
         return [r for r in super().runs(refresh) if r.sequence <= self._as_of]
 
 
-def _pick_run(store: Store, run_id: str | None) -> tuple[RunInfo, bool]:
+@dataclass
+class Scope:
+    """The runs a report covers, oldest first: a run and the reruns that followed it.
+
+    By default the state of the store: the latest full run plus every rerun after it
+    (a rerun alone saw no files, so its own figures would say "0 files seen"). With
+    --run, that one run as it left the store.
+    """
+
+    runs: list[RunInfo]
+    is_latest: bool
+
+    @property
+    def base(self) -> RunInfo:
+        return self.runs[0]
+
+    @property
+    def last(self) -> RunInfo:
+        return self.runs[-1]
+
+    @property
+    def reruns(self) -> list[RunInfo]:
+        return self.runs[1:]
+
+    @property
+    def label(self) -> str:
+        n = len(self.reruns)
+        return self.base.run_id + (f" + {n} rerun{'s' if n != 1 else ''}" if n else "")
+
+
+def pick_scope(store: Store, run_id: str | None) -> Scope:
     runs = store.runs(refresh=True)
     if not runs:
         raise ReportError(f"no committed run in store {store.root}; run `thresher run` first")
     if run_id is None:
-        return runs[-1], True
+        start = len(runs) - 1
+        while start > 0 and runs[start].manifest.get("kind") == "rerun":
+            start -= 1
+        return Scope(runs[start:], True)
     for r in runs:
         if r.run_id == run_id:
-            return r, r is runs[-1]
+            return Scope([r], r is runs[-1])
     raise ReportError(f"no committed run {run_id!r} in store {store.root} "
                       f"(latest is {runs[-1].run_id})")
 
@@ -310,17 +369,42 @@ def _canonical_path(rows: list[dict[str, Any]]) -> str:
     return paths[0]
 
 
-def gather(store: Store, run_id: str | None = None) -> ReportData:
-    """Everything the review page shows, for `run_id` (default: the latest committed run)."""
-    run, is_latest = _pick_run(store, run_id)
-    view = store if is_latest else _StoreAsOf(store.root, run.sequence)
-    catalog = _live_catalog(view, run, is_latest)
-    doc_ids = sorted(catalog)
-    stages = _stage_infos(run.manifest)
+# What the summary needs of each unit; the text, tracebacks and a stage's own columns
+# are read only for the document pages being written.
+LIGHT_COLUMNS = ("doc_id", "unit_id", "locator", "page", "status", "reason", "error_type", "format", "title",
+                 "language", "doc_language", "chunk_id", "chunk_index", "token_count", "heading_path",
+                 "page_start", "page_end", "duplicate_of", "duplicate_kind", "similarity", "run_id", "attempt")
 
+
+@dataclass
+class StoreView:
+    """One report's reading of the store: its scope, the live catalog and the stages."""
+
+    store: Store
+    scope: Scope
+    view: Store
+    catalog: dict[str, list[dict[str, Any]]]
+    stages: list[StageInfo]
+
+    @property
+    def doc_ids(self) -> list[str]:
+        return sorted(self.catalog)
+
+
+def open_view(store: Store, run_id: str | None = None) -> StoreView:
+    scope = pick_scope(store, run_id)
+    view = store if scope.is_latest else _StoreAsOf(store.root, scope.last.sequence)
+    return StoreView(store, scope, view, _live_catalog(view, scope.last, scope.is_latest),
+                     _stage_infos(scope.last.manifest))
+
+
+def gather_documents(sv: StoreView, doc_ids: list[str], light: bool = False, count: bool = True) -> list[DocumentView]:
+    """The documents `doc_ids` with their units at every stage, read with the store's
+    doc_id filter; `light` leaves out texts, tracebacks, warnings and own columns.
+    With `count`, adds what it reads to each stage's counts."""
     docs: dict[str, DocumentView] = {}
     for d in doc_ids:
-        rows = catalog[d]
+        rows = sv.catalog[d]
         path = _canonical_path(rows)
         first = rows[0]
         docs[d] = DocumentView(
@@ -328,15 +412,20 @@ def gather(store: Store, run_id: str | None = None) -> ReportData:
             size=first.get("size"), first_run=first.get("first_run"), last_run=first.get("last_run"),
             anchor=f"d-{d}",
         )
-
+    stages = sv.stages
     pages: dict[tuple[str, str], PageView] = {}
     chunks: dict[str, ChunkView] = {}
     chunk_ok: dict[str, list[bool]] = {}  # per chunk: ok at each stage that is not format-limited
     for st in stages:
-        table = view.current(st.name, st.unit, doc_ids) if doc_ids else None
+        columns = None
+        if light:
+            names = set(schema.stage_schema(st.name, st.unit).names)
+            columns = [c for c in LIGHT_COLUMNS if c in names]
+        table = sv.view.current(st.name, st.unit, doc_ids, columns=columns) if doc_ids else None
         rows = table.to_pylist() if table is not None else []
-        own = own_columns(table.schema.names, st.unit) if table is not None else []
-        st.counts = dict(Counter(r["status"] for r in rows))
+        own = own_columns(table.schema.names, st.unit) if table is not None and not light else []
+        for status, n in Counter(r["status"] for r in rows).items() if count else ():
+            st.counts[status] = st.counts.get(status, 0) + n
         held_by = set()
         for row in rows:
             doc = docs.get(row["doc_id"])
@@ -410,16 +499,44 @@ def gather(store: Store, run_id: str | None = None) -> ReportData:
             langs = Counter(p.language for p in doc.pages if p.language)
             if langs:
                 doc.language = langs.most_common(1)[0][0]
+    return [docs[d] for d in doc_ids]
 
-    budget = None
+
+def chunk_owners(sv: StoreView, chunk_ids: set[str]) -> dict[str, tuple[str, int]]:
+    """chunk_id -> (doc_id, chunk index) for the chunks asked for (duplicate targets),
+    read from the first chunk stage with a filter on chunk_id."""
+    first = next((s for s in sv.stages if s.unit == "chunks"), None)
+    if first is None or not chunk_ids:
+        return {}
+    wanted = sorted(chunk_ids)
+    t = sv.view.stage_rows(first.name, "chunks", None, ["chunk_id", "doc_id", "chunk_index"],
+                           extra_filter=ds.field("chunk_id").isin(wanted))
+    live = sv.catalog
+    return {c: (d, i or 0) for c, d, i in zip(t.column("chunk_id").to_pylist(), t.column("doc_id").to_pylist(),
+                                              t.column("chunk_index").to_pylist()) if d in live}
+
+
+def budget_tokens(stages: list[StageInfo]) -> int | None:
+    """A chunk stage's max_tokens parameter, if any (drawn on the chunk-size chart)."""
     for s in stages:
         if s.unit == "chunks" and isinstance(s.params.get("max_tokens"), int):
-            budget = s.params["max_tokens"]
-            break
-    status_rank = {s: i for i, s in enumerate(SEVERITY)}
-    ordered = sorted(docs.values(), key=lambda d: (status_rank.get(d.status, len(SEVERITY)), d.path))
-    return ReportData(run=run, is_latest=is_latest, stages=stages, documents=ordered,
-                      generated_at=datetime.now().astimezone(), store_root=store.root, budget_tokens=budget)
+            return s.params["max_tokens"]
+    return None
+
+
+STATUS_RANK = {s: i for i, s in enumerate(SEVERITY)}
+
+
+def gather(store: Store, run_id: str | None = None) -> ReportData:
+    """Everything about every live document, for the runs the report covers (default:
+    the state of the store). Loads every text: for tests and small stores; the
+    written report reads documents in batches (report.py)."""
+    sv = open_view(store, run_id)
+    docs = gather_documents(sv, sv.doc_ids)
+    ordered = sorted(docs, key=lambda d: (STATUS_RANK.get(d.status, len(SEVERITY)), d.path))
+    return ReportData(run=sv.scope.last, is_latest=sv.scope.is_latest, stages=sv.stages, documents=ordered,
+                      generated_at=datetime.now().astimezone(), store_root=store.root,
+                      budget_tokens=budget_tokens(sv.stages), scope=sv.scope)
 
 
 def _first_problem(doc: DocumentView, order: dict[str, int]) -> str:

@@ -427,6 +427,15 @@ class Store:
             files.extend(sorted(found))
         return files
 
+    def doc_writes(self, stage: str) -> dict[str, list[str]]:
+        """doc_id -> the committed runs whose part files of `stage` hold it, oldest first
+        (read from the runs' small ledgers, not the stage tables)."""
+        out: dict[str, list[str]] = {}
+        for r in self.runs():
+            for doc_id in self._ledger(stage, r.run_id).files:
+                out.setdefault(doc_id, []).append(r.run_id)
+        return out
+
     def stage_rows(self, stage: str, unit: str, doc_ids: Iterable[str] | None = None,
                    columns: list[str] | None = None, include_run: str | None = None,
                    extra_filter: ds.Expression | None = None) -> pa.Table:

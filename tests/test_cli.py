@@ -110,7 +110,9 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     rep = _cli("report", "--store", str(store), "--out", str(tmp_path / "review.html"), cwd=tmp_path)
     assert rep.returncode == 0, rep.stderr
     page = (tmp_path / "review.html").read_text(encoding="utf-8")
-    assert "Run summary" in page and "hr/salary-review-2026-protected.pdf" in page and "<script" not in page
+    assert "Run summary" in page and "hr/<wbr>salary-review-2026-protected.pdf" in page and "<script" not in page
+    pages = tmp_path / "review-pages"  # the documents' pages, beside the summary
+    assert f"document pages in {pages}" in rep.stderr and (pages / "list-1.html").is_file()
 
     missing = _cli("trail", "nowhere/nothing.pdf", "--store", str(store), cwd=tmp_path)
     assert missing.returncode == 2 and "no document 'nowhere/nothing.pdf'" in missing.stderr

@@ -21,7 +21,14 @@ CHECK = """
 import importlib.util, json, sys
 import thresher.flows.cli, thresher.steps.units, thresher.flows.config as c
 d = c.load_definition()  # the embedded default travels with the package
+from thresher.flows import report_html  # the review pages' templates travel with it too
+env = report_html.environment()
+templates = sorted(env.list_templates())
+for name in templates:
+    env.get_template(name)
 print(json.dumps({
+    "templates": templates,
+    "templates_dir": str(report_html.TEMPLATES),
     "cli": thresher.flows.cli.__file__,
     "steps": [s.name for s in d.steps],
     "bare_flows": importlib.util.find_spec("flows") is not None,
@@ -58,12 +65,16 @@ def test_install_maps_flows_and_steps_under_thresher(tmp_path, editable):
     order = ["extract", "clean", "language", "split", "dedup", "tokens"]
     assert [s for s in info["steps"] if s in order] == order
     assert not info["bare_flows"] and not info["bare_steps"]
+    shipped = sorted(str(p.relative_to(REPO / "flows" / "report_templates")).replace("\\", "/")
+                     for p in (REPO / "flows" / "report_templates").rglob("*") if p.is_file())
+    assert info["templates"] == shipped and "sections/summary.html" in shipped and "report.css" in shipped
     cli_path = Path(info["cli"]).resolve()
     if editable:
         assert cli_path == (src / "flows" / "cli.py").resolve()
     else:
         assert "site-packages" in cli_path.parts and cli_path.parent.name == "flows"
         assert cli_path.parent.parent.name == "thresher"
+        assert "site-packages" in Path(info["templates_dir"]).parts
     script = tmp_path / "venv" / "bin" / "thresher"
     help_out = subprocess.run([str(script), "run", "--help"], capture_output=True, text=True, cwd=tmp_path)
     assert help_out.returncode == 0 and "--workers" in help_out.stdout

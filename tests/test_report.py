@@ -1,16 +1,19 @@
-"""The review page (`thresher report`): its figures against the store, its text
-comparison, its escaping proved in a real headless Chromium, and its look.
+"""The review pages (`thresher report`): a summary file and a folder of pages beside
+it. Their figures against the store, the text comparison, the escaping proved in a
+real headless Chromium, the look, and that a second report into the same folder
+writes only the pages of documents the store holds something new for.
 
 Two stores, each built by the real flow: the demo drive plus a re-saved copy of one
 file (so dedup drops chunks that the page must link to what they duplicate), and a
 small drive of files full of markup and script, run with a changed chain (an own
-step, a format-limited step, no language or dedup step) and then run again after a
-file is added, so the page of an older run can be checked.
+step, a format-limited step, no language or dedup step), reported, then run again
+after a file is added and one document re-run, and reported into the same folder.
 """
 
 from __future__ import annotations
 
 import random
+import re
 import shutil
 import subprocess
 from collections import Counter
@@ -23,7 +26,7 @@ from PIL import Image
 
 from thresher.flows import pipeline
 from thresher.flows.config import build_definition, default_config_text, load_definition
-from thresher.flows.report import ReportError, build_report, write_report
+from thresher.flows.report import STATE_FILE, ReportError, pages_folder, write_report
 from thresher.flows.report_html import diff_segments, render_comparison
 from thresher.flows.store import Store
 
@@ -66,9 +69,9 @@ def review(tmp_path_factory, prefect_harness):
     (drive / "volunteers" / "volunteer-rota-spring-2026.windows.txt").write_bytes(rota.replace("\n", "\r\n").encode())
     manifest = _run(drive, base / "store")
     store = Store(base / "store")
-    out = write_report(store, base / "out" / "review.html")
-    return {"store": store, "manifest": manifest, "html": out.read_text(encoding="utf-8"), "path": out,
-            "drive": drive}
+    done = write_report(store, base / "out" / "review.html")
+    return {"store": store, "manifest": manifest, "html": done.summary.read_text(encoding="utf-8"),
+            "path": done.summary, "folder": done.folder, "drive": drive, "written": done}
 
 
 def _hostile_text() -> str:
@@ -103,12 +106,18 @@ def hostile(tmp_path_factory, prefect_harness):
     data["steps"].insert(2, {"step": "example_steps:HTML_ONLY"})
     definition = build_definition(data, "test")
     first = _run(drive, base / "store", definition)
+    store = Store(base / "store")
+    before = write_report(store, base / "hostile.html")
+    pages_before = {f.name: (f.stat().st_ino, f.read_bytes()) for f in before.folder.iterdir()}
     (drive / "added-later.txt").write_text("A note added after the first run, about the van timetable.\n")
     second = _run(drive, base / "store", definition)
-    store = Store(base / "store")
-    out = write_report(store, base / "hostile.html")
-    return {"store": store, "first": first, "second": second, "path": out,
-            "html": out.read_text(encoding="utf-8"), "base": base}
+    notes_doc = next(r["doc_id"] for r in store.catalog().to_pylist() if r["source_path"] == "notes.txt")
+    rerun = pipeline.run(definition, str(drive), str(base / "store"), workers=1, quiet=True,
+                         rerun={"doc_id": notes_doc, "page": None, "step": None})
+    done = write_report(store, base / "hostile.html")
+    return {"store": store, "first": first, "second": second, "rerun": rerun, "path": done.summary,
+            "folder": done.folder, "html": done.summary.read_text(encoding="utf-8"), "base": base,
+            "before": before, "pages_before": pages_before, "written": done, "notes_doc": notes_doc}
 
 
 # ----------------------------------------------------------------------------- Chromium
@@ -151,7 +160,7 @@ def test_a_store_without_a_committed_run_is_a_one_line_error(tmp_path):
     with pytest.raises(ReportError) as err:
         write_report(Store(tmp_path / "empty"), tmp_path / "r.html")
     assert "no committed run" in str(err.value) and "\n" not in str(err.value)
-    assert not (tmp_path / "r.html").exists()
+    assert not (tmp_path / "r.html").exists() and not pages_folder(tmp_path / "r.html").exists()
 
 
 def test_an_unknown_run_and_a_folder_as_output_are_one_line_errors(review, tmp_path):
@@ -161,10 +170,32 @@ def test_an_unknown_run_and_a_folder_as_output_are_one_line_errors(review, tmp_p
         write_report(review["store"], tmp_path)
 
 
-# ----------------------------------------------------------------------------- figures
+# ----------------------------------------------------------------------------- reading the pages
 
 def _doc(html: str):
     return lxml.html.fromstring(html)
+
+
+def _read(path: Path):
+    return _doc(path.read_text(encoding="utf-8"))
+
+
+def _list_rows(folder: Path) -> list:
+    """Every row of the documents list, over all its pages, in order."""
+    rows = []
+    n = 1
+    while (folder / f"list-{n}.html").exists():
+        rows += _read(folder / f"list-{n}.html").get_element_by_id("documents-table").xpath("./tbody/tr")
+        n += 1
+    return rows
+
+
+def _row_path(tr) -> str:
+    return tr.xpath("./td[1]/a")[0].text_content()
+
+
+def _doc_page(folder: Path, doc_id: str):
+    return _read(folder / f"{doc_id}.html")
 
 
 def _figure_table(dom, key: str) -> list[list[str]]:
@@ -209,9 +240,9 @@ def test_tokens_languages_and_chunk_sizes_agree_with_the_handoff(review):
     for r in handoff:
         per_doc[r["source_path"]] += r["token_count"]
     table = {}
-    for tr in dom.get_element_by_id("documents-table").xpath("./tbody/tr"):
+    for tr in _list_rows(review["folder"]):
         cells = [td.text_content().strip() for td in tr.xpath("./td")]
-        table[tr.xpath("./td[1]/a")[0].text_content()] = int(cells[4].replace(",", ""))
+        table[_row_path(tr)] = int(cells[4].replace(",", ""))
     assert {p: n for p, n in table.items() if n} == dict(per_doc)
     langs = Counter(r["language"] for r in handoff)
     assert {row[0]: int(row[1]) for row in _figure_table(dom, "chart-languages")} == dict(langs)
@@ -225,24 +256,51 @@ def test_tokens_languages_and_chunk_sizes_agree_with_the_handoff(review):
     assert tok_rows[0][0] == max(per_doc, key=per_doc.get)  # the largest document comes first
 
 
-def test_documents_table_has_one_row_per_live_document_with_status_and_reason(review):
+def test_documents_list_has_one_row_per_live_document_with_status_and_reason(review):
     store = review["store"]
     live = {r["doc_id"] for r in store.catalog().to_pylist() if r["present"]}
-    dom = _doc(review["html"])
-    rows = dom.get_element_by_id("documents-table").xpath("./tbody/tr")
+    rows = _list_rows(review["folder"])
     assert {r.get("id")[len("row-"):] for r in rows} == live and len(rows) == len(live)
-    by_path = {r.xpath("./td[1]/a")[0].text_content(): [td.text_content().strip() for td in r.xpath("./td")]
-               for r in rows}
+
+    def problem(tr) -> str:
+        return "".join(d.text_content() for d in tr.find_class("problem"))
+
+    by_path = {_row_path(r): r for r in rows}
     protected = by_path["hr/salary-review-2026-protected.pdf"]
-    assert protected[6] == "failed" and protected[7] == "extract: password protected"
-    assert by_path["policies/lending-policy-2026.pdf"][1:3] == ["pdf", "2"]
-    handbook = [r for r in rows if "branch-operations-handbook" in r.xpath("./td[1]/a")[0].text_content()]
+    assert protected.xpath("./td[7]")[0].text_content() == "failed"
+    assert problem(protected) == "extract: password protected"
+    assert [td.text_content() for td in by_path["policies/lending-policy-2026.pdf"].xpath("./td")[1:3]] == ["pdf", "2"]
+    assert problem(by_path["policies/lending-policy-2026.pdf"]) == ""  # no empty reason line for an ok document
+    handbook = [r for p, r in by_path.items() if "branch-operations-handbook" in p]
     assert len(handbook) == 1 and "same bytes also at" in handbook[0].text_content()
     copy = by_path["volunteers/volunteer-rota-spring-2026.windows.txt"]
-    assert copy[6] == "dropped" and copy[7].startswith("dedup: copy of document volunteers/volunteer-rota")
+    assert copy.xpath("./td[7]")[0].text_content() == "dropped"
+    assert problem(copy).startswith("dedup: copy of document volunteers/volunteer-rota")
     # Worst first: every failed row comes before every ok row.
     statuses = [r.xpath("./td[7]")[0].text_content() for r in rows]
     assert statuses.index("ok") > max(i for i, s in enumerate(statuses) if s == "failed")
+    # Each row links to its document's page, which exists beside the list.
+    for r in rows:
+        href = r.xpath("./td[1]/a/@href")[0]
+        assert href == f"{r.get('id')[len('row-'):]}.html" and (review["folder"] / href).is_file()
+    # The summary shows only the documents that need a look, linked into the folder.
+    summary = _doc(review["html"]).get_element_by_id("documents-table").xpath("./tbody/tr")
+    assert {_row_path(r) for r in summary} == {_row_path(r) for r in rows
+                                               if r.xpath("./td[7]")[0].text_content() != "ok"}
+    assert all(r.xpath("./td[1]/a/@href")[0].startswith(review["folder"].name + "/") for r in summary)
+
+
+def test_paths_break_only_after_a_slash_and_the_reason_sits_under_the_path(review):
+    # A path is long and one word to the browser: break-all cut it anywhere; now the
+    # only break points are after its slashes (a <wbr>), and the cell takes most of the row.
+    css = (Path(__file__).resolve().parents[1] / "flows" / "report_templates" / "report.css").read_text()
+    assert "break-all" not in css and "td.pathcell{width:55%}" in css
+    rows = _list_rows(review["folder"])
+    html = (review["folder"] / "list-1.html").read_text(encoding="utf-8")
+    for r in rows:
+        assert '<span class="path">' + "/<wbr>".join(_row_path(r).split("/")) + "</span>" in html
+    head = [th.text_content() for th in _read(review["folder"] / "list-1.html").xpath("//thead/tr/th")]
+    assert head == ["path", "format", "pages", "chunks", "tokens", "language", "status"]
 
 
 def _pane_text(el) -> str:
@@ -258,12 +316,12 @@ def _pane_text(el) -> str:
     return "".join(out)
 
 
-def test_each_document_section_shows_pages_side_by_side_and_its_chunks(review):
-    dom = _doc(review["html"])
+def test_each_document_page_shows_pages_side_by_side_and_its_chunks(review):
     store = review["store"]
     clean = {(r["source_path"], r["locator"]): r for r in store.current("clean", "pages").to_pylist()}
     extract = {(r["source_path"], r["locator"]): r for r in store.current("extract", "pages").to_pylist()}
     readme_doc = extract[("README.txt", "file")]["doc_id"]
+    dom = _doc_page(review["folder"], readme_doc)
     page = dom.get_element_by_id(f"p-{readme_doc}-file")
     panes = page.find_class("pane")
     assert len(panes) == 2
@@ -286,27 +344,37 @@ def test_each_document_section_shows_pages_side_by_side_and_its_chunks(review):
     assert len(chunks) == len(split) >= 1
     assert f"{split[0]['token_count']:,} tokens" in chunks[0].text_content()
     assert " › ".join(split[0]["heading_path"]) in chunks[0].text_content()
-    # The warnings and method of a PDF page are on the page.
+    # The method of a PDF page is on the page; its removed running lines fold into one
+    # line with a count, the lines themselves behind a disclosure, not repeated as warnings.
     pdf = extract[("policies/lending-policy-2025.pdf", "page/1")]
-    pdf_page = dom.get_element_by_id(f"p-{pdf['doc_id']}-page-1").text_content()
-    assert "dropped running header/footer" in pdf_page and pdf["method"] in pdf_page
+    pdf_dom = _doc_page(review["folder"], pdf["doc_id"])
+    pdf_page = pdf_dom.get_element_by_id(f"p-{pdf['doc_id']}-page-1")
+    assert pdf["method"] in pdf_page.text_content()
+    assert pdf["removed"], "the demo PDF has running lines (tools/make_sample_drive.py)"
+    folded = pdf_page.xpath(".//details[contains(@class, 'removed')]")
+    assert len(folded) == 1
+    n = len(pdf["removed"])
+    assert folded[0].findtext("summary").startswith(f"removed {n} line")
+    assert [li.xpath(".//q")[0].text_content() for li in folded[0].xpath(".//li")] == [r["text"] for r in pdf["removed"]]
+    assert "dropped running header/footer" not in pdf_page.text_content()
 
 
 def test_dropped_chunks_link_to_the_chunk_they_duplicate(review):
-    dom = _doc(review["html"])
     dedup = {r["chunk_id"]: r for r in review["store"].current("dedup", "chunks").to_pylist()}
-    links = dom.find_class("duplink")
     dropped = [r for r in dedup.values() if r["status"] == "dropped"]
-    assert dropped and len(links) == len(dropped)
+    assert dropped
+    links = []
+    for doc_id in {r["doc_id"] for r in dropped}:
+        links += _doc_page(review["folder"], doc_id).find_class("duplink")
+    assert len(links) == len(dropped)
     for a in links:
         li = next(a.iterancestors("li"))
         own = li.get("id")[len("c-"):]
-        target = a.get("href")[1:]
-        assert target == f"c-{dedup[own]['duplicate_of']}"
-        hit = dom.get_element_by_id(target)  # the anchor resolves ...
-        assert hit.tag == "li" and "st-ok" in hit.get("class")
-        section = next(hit.iterancestors("section"))  # ... to the kept chunk in its own document's section
-        assert section.get("id") == f"d-{dedup[dedup[own]['duplicate_of']]['doc_id']}"
+        kept = dedup[own]["duplicate_of"]
+        page, anchor = a.get("href").split("#")
+        assert page == f"{dedup[kept]['doc_id']}.html" and anchor == f"c-{kept}"
+        hit = _read(review["folder"] / page).get_element_by_id(anchor)  # the anchor resolves ...
+        assert hit.tag == "li" and "st-ok" in hit.get("class")  # ... to the kept chunk on its document's page
 
 
 # ----------------------------------------------------------------------------- text comparison
@@ -345,9 +413,8 @@ def test_own_and_format_limited_stages_show_and_absent_ones_are_not_invented(hos
     stages = [row[0] for row in _figure_table(dom, "chart-status")]
     assert stages == [s["name"] for s in hostile["second"]["definition"]["steps"]]  # chain order
     assert {"mask_emails", "html_only"} <= set(stages) and not {"language", "dedup"} & set(stages)
-    notes = hostile["store"].current("extract", "pages").to_pylist()
-    notes_doc = next(r["doc_id"] for r in notes if r["source_path"] == "notes.txt")
-    section = dom.get_element_by_id(f"d-{notes_doc}").text_content()
+    section = _doc_page(hostile["folder"], hostile["notes_doc"]).get_element_by_id(
+        f"d-{hostile['notes_doc']}").text_content()
     assert "passed by (not for this format): html_only" in section
     assert "notes masked 1" in section  # the own step's notes column
     assert "after mask_emails, clean" in section  # both stages that changed the text are named
@@ -355,18 +422,78 @@ def test_own_and_format_limited_stages_show_and_absent_ones_are_not_invented(hos
     assert [r[0] for r in langs] == ["unknown"]  # no language step: said, not guessed
 
 
-def test_the_page_of_an_older_run_shows_the_store_as_that_run_left_it(hostile):
+# ----------------------------------------------------------------------------- runs covered
+
+def test_after_a_rerun_the_report_shows_the_state_of_the_store_and_names_its_runs(hostile):
+    # The rerun saw no files itself; the summary takes the scan from the run before it.
+    second, rerun = hostile["second"], hostile["rerun"]
+    assert rerun["kind"] == "rerun" and rerun["documents"]["files"] == 0
+    dom = _doc(hostile["html"])
+    assert dom.findtext(".//title") == f"thresher review: run {second['run_id']} + 1 rerun"
+    summary = dom.get_element_by_id("summary")
+    cards = {c.findtext("span"): c.findtext("b") for c in summary.find_class("card")}
+    assert cards["files seen"] == str(second["documents"]["files"]) == "5"
+    assert cards["distinct documents"] == "5"
+    assert cards["processed (run and reruns)"] == str(second["documents"]["processed"] + 1)
+    covers = summary.xpath(".//tr[th='covers']/td")[0].text_content()
+    assert second["run_id"] in covers and rerun["run_id"] in covers and hostile["first"]["run_id"] not in covers
+    assert "re-ran 1 of 5 live documents" in covers
+
+
+def test_the_report_of_an_older_run_shows_the_store_as_that_run_left_it(hostile, tmp_path):
     store = hostile["store"]
-    old = _doc(build_report(store, hostile["first"]["run_id"]))
-    new = _doc(hostile["html"])
+    old = write_report(store, tmp_path / "old.html", run_id=hostile["first"]["run_id"])
+    paths_old = sorted(_row_path(r) for r in _list_rows(old.folder))
+    paths_new = sorted(_row_path(r) for r in _list_rows(hostile["folder"]))
+    assert "added-later.txt" in paths_new and "added-later.txt" not in paths_old
+    assert len(paths_new) == len(paths_old) + 1
+    dom = _read(old.summary)
+    assert dom.findtext(".//title") == f"thresher review: run {hostile['first']['run_id']}"
+    assert "older run" in dom.get_element_by_id("summary").text_content()
 
-    def paths(dom):
-        return sorted(a.text_content() for a in dom.xpath("//table[@id='documents-table']/tbody/tr/td[1]/a"))
 
-    assert "added-later.txt" in paths(new) and "added-later.txt" not in paths(old)
-    assert len(paths(new)) == len(paths(old)) + 1
-    assert hostile["first"]["run_id"] in old.findtext(".//title")
-    assert "older run" in old.get_element_by_id("summary").text_content()
+# ----------------------------------------------------------------------------- the folder
+
+def test_a_second_report_into_the_folder_writes_only_the_pages_of_changed_documents(hostile):
+    # Between the two reports: one file added (its page is new) and one document re-run
+    # (its page is written again); the other three pages are left as they were, the
+    # very same files.
+    before, after = hostile["before"], hostile["written"]
+    assert before.pages_written == 4 and before.documents == 4
+    assert after.documents == 5 and after.pages_written == 2 and after.pages_kept == 3
+    added = next(r["doc_id"] for r in hostile["store"].catalog().to_pylist() if r["source_path"] == "added-later.txt")
+    kept = {name for name in hostile["pages_before"] if name.endswith(".html") and not name.startswith("list-")}
+    kept -= {f"{hostile['notes_doc']}.html"}
+    assert len(kept) == 3
+    for name in kept:
+        f = hostile["folder"] / name
+        assert (f.stat().st_ino, f.read_bytes()) == hostile["pages_before"][name], name
+    notes = hostile["folder"] / f"{hostile['notes_doc']}.html"
+    assert notes.stat().st_ino != hostile["pages_before"][notes.name][0]
+    assert (hostile["folder"] / f"{added}.html").is_file()
+    # The re-run document's page shows the rerun's attempt.
+    assert hostile["rerun"]["run_id"] in notes.read_text(encoding="utf-8") or "attempt 2" in notes.read_text(
+        encoding="utf-8")
+
+
+def test_pages_of_documents_gone_from_the_store_are_removed_and_a_lost_page_is_written_again(hostile, tmp_path):
+    out = tmp_path / "r.html"
+    first = write_report(hostile["store"], out, run_id=hostile["second"]["run_id"])
+    assert first.pages_written == 5
+    lost = sorted(first.folder.glob("*.html"))[0]
+    lost.unlink()
+    stray = first.folder / ("ab" * 32 + ".html")  # a page of a document the store no longer holds
+    stray.write_text("old page")
+    again = write_report(hostile["store"], out, run_id=hostile["second"]["run_id"])
+    assert again.pages_written == 1 and again.pages_removed == 1
+    assert lost.is_file() and not stray.exists()
+    assert (first.folder / STATE_FILE).is_file()
+
+
+def test_the_summary_holds_no_document_text(hostile):
+    # The summary stays small whatever the drive: the texts live on the documents' pages.
+    assert AFTER_COMMENT not in hostile["html"]
+    assert AFTER_COMMENT in (hostile["folder"] / f"{hostile['notes_doc']}.html").read_text(encoding="utf-8")
 
 
 # ----------------------------------------------------------------------------- the browser
@@ -380,37 +507,54 @@ def test_control_page_proves_the_browser_would_show_executed_payloads(tmp_path):
     assert set(EXECUTING) <= set(ran), ran
 
 
-def test_nothing_in_the_documents_runs_in_chromium_and_the_page_renders(hostile, tmp_path):
-    html = hostile["html"]
+def _without_csp(page: Path, where: Path) -> Path:
+    """A copy of a page with its Content-Security-Policy taken out: escaping alone must hold."""
+    html = page.read_text(encoding="utf-8")
     csp = '<meta http-equiv="Content-Security-Policy"'
     policy = _doc(html).xpath("//meta[@http-equiv='Content-Security-Policy']/@content")
-    assert html.count(csp) == 1 and len(policy) == 1
+    assert html.count(csp) == 1 and len(policy) == 1, page
     assert "script-src 'none'" in policy[0] and "default-src 'none'" in policy[0]
-    without_csp = tmp_path / "without-csp.html"  # escaping alone must hold, not only the policy
     start = html.index(csp)
-    without_csp.write_text(html[:start] + html[html.index(">", start) + 1:], encoding="utf-8")
-    for page in (hostile["path"], without_csp):
-        dom = dump_dom(page, tmp_path / page.stem)
-        assert _ran(dom) == [], f"{page.name}: {_ran(dom)}"
-        assert dom.findtext(".//title").startswith("thresher review: run ")
-        assert dom.xpath("//script | //iframe | //img | //a[@id='pwned-link']") == []
-        assert len(dom.xpath("//style")) == 1
-        assert dom.xpath("//@*[starts-with(name(), 'on')]") == []
-        assert [h for h in dom.xpath("//a/@href") if not h.startswith("#")] == []
-        # The page rendered: every document has its row and its section, and the
-        # markup from the files is there as text.
-        rows = dom.xpath("//table[@id='documents-table']/tbody/tr")
-        assert len(rows) == len(dom.xpath("//section[contains(@class, 'doc')]")) == 5
-        text = dom.text_content()
-        for payload in (VECTORS["script"], VECTORS["img"], VECTORS["textarea"], VECTORS["comment"]):
-            assert payload in text, payload
-        assert AFTER_COMMENT in text
-        assert HOSTILE_NAME in text
-        # Headings (from the .md) and titles (from the .html) are documents' text too.
-        headings = [h.text_content() for h in dom.find_class("heading")]
-        assert any(h.startswith(f"Minutes {VECTORS['img']}") for h in headings), headings
-        assert f"{VECTORS['svg']} Opening hours" in headings, headings
-        assert "title: " + VECTORS["script"] in text
+    out = where / page.name
+    out.write_text(html[:start] + html[html.index(">", start) + 1:], encoding="utf-8")
+    return out
+
+
+def test_nothing_in_the_documents_runs_in_chromium_and_the_pages_render(hostile, tmp_path):
+    folder = hostile["folder"]
+    pages = [hostile["path"], folder / "list-1.html"] + sorted(
+        f for f in folder.glob("*.html") if not f.name.startswith("list-"))
+    assert len(pages) == 7
+    bare = tmp_path / "without-csp"
+    bare.mkdir()
+    text = ""
+    headings: list[str] = []
+    for page in pages:
+        for variant in (page, _without_csp(page, bare)):
+            dom = dump_dom(variant, tmp_path / f"{variant.parent.name}-{variant.stem}")
+            assert _ran(dom) == [], f"{variant}: {_ran(dom)}"
+            assert dom.findtext(".//title").startswith("thresher review: run ")
+            assert dom.xpath("//script | //iframe | //img | //a[@id='pwned-link']") == []
+            assert len(dom.xpath("//style")) == 1
+            assert dom.xpath("//@*[starts-with(name(), 'on')]") == []
+            # Links stay inside the report: anchors, its own pages, the summary.
+            for h in dom.xpath("//a/@href"):
+                assert re.fullmatch(r"(#[\w-]+|[\w.-]+\.html(#[\w-]+)?|../hostile\.html|hostile-pages/[\w.-]+)", h), h
+            if variant is page:
+                text += dom.text_content()
+                headings += [h.text_content() for h in dom.find_class("heading")]
+    # The pages rendered: every document has its row and its page, and the markup from
+    # the files is there as text.
+    rows = _list_rows(folder)
+    assert len(rows) == len(pages) - 2 == 5
+    for payload in (VECTORS["script"], VECTORS["img"], VECTORS["textarea"], VECTORS["comment"]):
+        assert payload in text, payload
+    assert AFTER_COMMENT in text
+    assert HOSTILE_NAME in text
+    # Headings (from the .md) and titles (from the .html) are documents' text too.
+    assert any(h.startswith(f"Minutes {VECTORS['img']}") for h in headings), headings
+    assert f"{VECTORS['svg']} Opening hours" in headings, headings
+    assert "title: " + VECTORS["script"] in text
 
 
 def test_screenshot_shows_a_drawn_page_and_the_dom_has_every_part(review, tmp_path):
@@ -435,13 +579,12 @@ def test_screenshot_shows_a_drawn_page_and_the_dom_has_every_part(review, tmp_pa
         assert svg is not None and svg.findtext("title") and svg.findtext("desc"), key
         assert svg.xpath(".//rect"), key
         assert fig.xpath(".//table/tbody/tr"), key  # the text alternative
-    live = {r["doc_id"] for r in review["store"].catalog().to_pylist() if r["present"]}
-    rows = dom.xpath("//table[@id='documents-table']/tbody/tr")
-    assert len(rows) == len(live)
-    ids = set(dom.xpath("//@id"))
-    for row in rows:
-        href = row.xpath("./td[1]/a/@href")[0]
-        assert href[1:] in ids and dom.get_element_by_id(href[1:]).tag == "section"
-    assert len(dom.xpath("//section[contains(@class, 'doc')]")) == len(live)
-    dup = dom.find_class("duplink")
-    assert dup and all(a.get("href")[1:] in ids for a in dup)
+    # Every link from the summary leads to a file of the report.
+    for href in dom.xpath("//a/@href"):
+        target = href.split("#")[0]
+        assert not target or (review["path"].parent / target).is_file(), href
+    # A document's page, drawn: the style applies there too.
+    page = next(review["folder"].glob("[0-9a-f]*.html"))
+    shot = tmp_path / "doc.png"
+    _browse(page, tmp_path / "shot-doc", f"--screenshot={shot}", "--window-size=1280,900")
+    assert (0x24, 0x32, 0x4a) in {c for _, c in Image.open(shot).convert("RGB").getcolors(maxcolors=1 << 20)}
