@@ -180,29 +180,6 @@ class DocumentView:
         return sum(c.tokens or 0 for c in self.live_chunks)
 
 
-@dataclass
-class ReportData:
-    run: RunInfo
-    is_latest: bool
-    stages: list[StageInfo]
-    documents: list[DocumentView]
-    generated_at: datetime
-    store_root: str
-    budget_tokens: int | None = None  # a chunk stage's max_tokens parameter, if any
-    scope: "Scope | None" = None
-
-    @property
-    def manifest(self) -> dict[str, Any]:
-        return self.run.manifest
-
-    @property
-    def live_chunks(self) -> list[ChunkView]:
-        return [c for d in self.documents for c in d.live_chunks]
-
-    def chunk_owner(self) -> dict[str, tuple[DocumentView, ChunkView]]:
-        return {c.chunk_id: (d, c) for d in self.documents for c in d.chunks}
-
-
 # --------------------------------------------------------------------------- formatting facts
 
 def format_value(value: Any) -> str | None:
@@ -525,18 +502,6 @@ def budget_tokens(stages: list[StageInfo]) -> int | None:
 
 
 STATUS_RANK = {s: i for i, s in enumerate(SEVERITY)}
-
-
-def gather(store: Store, run_id: str | None = None) -> ReportData:
-    """Everything about every live document, for the runs the report covers (default:
-    the state of the store). Loads every text: for tests and small stores; the
-    written report reads documents in batches (report.py)."""
-    sv = open_view(store, run_id)
-    docs = gather_documents(sv, sv.doc_ids)
-    ordered = sorted(docs, key=lambda d: (STATUS_RANK.get(d.status, len(SEVERITY)), d.path))
-    return ReportData(run=sv.scope.last, is_latest=sv.scope.is_latest, stages=sv.stages, documents=ordered,
-                      generated_at=datetime.now().astimezone(), store_root=store.root,
-                      budget_tokens=budget_tokens(sv.stages), scope=sv.scope)
 
 
 def _first_problem(doc: DocumentView, order: dict[str, int]) -> str:
