@@ -29,11 +29,18 @@ heading when it has a letter, at most 20 words, and either
   - it is bold (80 % of its characters in a bold face), at least body size, at most
     12 words, and does not end like a sentence or a run-in label (. , ; :),
     unless the page's body text is itself bold.
-Consecutive heading lines of the same style close together are one wrapped heading.
+Consecutive heading lines of the same style in one column, each starting at most
+1.7 font sizes or 1.15 line-box heights below the one before (heading boxes overlap,
+so the tops are compared), are one wrapped heading; a hyphen at a line end is joined
+by the body rule. A chapter label line ("Chapter 4", "Appendix B") joins the heading
+below it ("Chapter 4. Compatibility issues").
 Levels: when the PDF has an outline (bookmarks), a heading whose text matches an
 outline entry on the same page (case, spacing and punctuation ignored; a leading
 section number may differ) takes that entry's depth; an outline entry that no
-heading matched promotes the body line with that text on its page. Headings of a
+heading matched promotes the body line with that text on its page, or joins the run
+of up to four wrapped lines whose text together is the title. The outline is the
+authority for the text too where the page's looks damaged or lost a hyphen
+(`_outline_text`). Headings of a
 style that matched no entry take the level most entries of that style had; failing
 that, levels rank the heading styles of the document by size (bold first on a tie).
 
@@ -122,6 +129,14 @@ _BOLD_NAME = re.compile(r"bold|black|heavy|semibold|demibold|demi\b|extrabold|ul
                         re.IGNORECASE)
 
 SMALL_PAGE_CHARS = 200
+# Wrapped heading lines: the next baseline within this many font sizes. A chapter label
+# ("Chapter 4") may stand further above its title.
+_WRAP_PITCH = 1.7
+_WRAP_BOX = 1.15
+_LABEL_PITCH = 4.0
+_MAX_RUN = 4
+_LABEL = re.compile(r"^(?:chapter|appendix|part|kapitel|chapitre|cap[ií]tulo|anhang|annexe)\s+"
+                    r"(?:\d+|[ivxlc]+|[A-Z])\W?$", re.IGNORECASE)
 
 
 @dataclass
@@ -423,25 +438,96 @@ def _norm_variants(text: str) -> set[str]:
     return {v for v in (_norm(text), _norm(stripped)) if v}
 
 
+def _wrapped(prev: Line, ln: Line) -> bool:
+    """True when `ln` continues heading line `prev`: same style and column, on the next
+    line at a heading's pitch. Heading boxes often overlap (accents and tall glyphs make
+    them higher than the font size), so the tops are compared, against the larger of
+    _WRAP_PITCH font sizes and _WRAP_BOX times the line's box height."""
+    pitch = min(ln.top - prev.top, ln.bottom - prev.bottom)
+    limit = max(_WRAP_PITCH * max(prev.size, 1.0), _WRAP_BOX * (prev.bottom - prev.top))
+    return (prev.style == ln.style and prev.column == ln.column
+            and 0 < pitch and ln.top - prev.top <= limit)
+
+
+def _join_into(prev: Line, ln: Line) -> None:
+    prev.text = join_lines(prev.text, ln.text)
+    prev.bottom = max(prev.bottom, ln.bottom)
+    prev.chars += ln.chars
+
+
+_QUOTES = str.maketrans({c: "'" for c in "\u2018\u2019\u201a\u201b\u201c\u201d\u201e`\u00b4\""})
+
+
+def _outline_text(line: str, title: str) -> str:
+    """The outline's title (after the line's own section number when the title lacks
+    it) when the line's text looks damaged (combining marks, replacement characters) or
+    differs from the title only in spaces, hyphens and quote shapes (a hyphen lost at a
+    line break); otherwise the line's own text (an outline may leave out signs such as
+    "<" that the page shows)."""
+    title = " ".join(title.split())
+    number = _LEADING_NUMBER.match(line)
+    body = line[number.end():] if number and not _LEADING_NUMBER.match(title) else line
+
+    def loose(s: str) -> str:
+        return re.sub(r"[\s\-\u00ad']", "", s.translate(_QUOTES))
+
+    damaged = "\ufffd" in line or any(unicodedata.category(c) == "Mn" for c in line)
+    if not damaged and loose(body) != loose(title):
+        return line
+    return (number.group(0) if body is not line else "") + title
+
+
 def _merge_wrapped(lines: list[Line]) -> list[Line]:
-    """Join consecutive heading lines of one style that sit close together."""
+    """Join consecutive heading lines of one style that sit close together, hyphens at
+    line ends joined by the body rule (pdf_layout.join_lines)."""
     out: list[Line] = []
     for ln in lines:
         prev = out[-1] if out else None
-        if (
-            prev is not None
-            and prev.heading
-            and ln.heading
-            and prev.style == ln.style
-            and prev.column == ln.column
-            and -0.5 <= ln.top - prev.bottom <= 0.6 * max(prev.bottom - prev.top, 1.0)
-        ):
-            prev.text = f"{prev.text} {ln.text}"
-            prev.bottom = ln.bottom
-            prev.chars += ln.chars
+        if prev is not None and prev.heading and ln.heading and _wrapped(prev, ln):
+            _join_into(prev, ln)
             continue
         out.append(ln)
     return out
+
+
+def _join_labels(lines: list[Line]) -> list[Line]:
+    """A chapter label line ("Chapter 4", "Appendix B") joins the heading after it."""
+    out: list[Line] = []
+    for ln in lines:
+        prev = out[-1] if out else None
+        if (prev is not None and prev.heading and ln.heading and _LABEL.match(prev.text)
+                and prev.column == ln.column
+                and 0 < ln.top - prev.top <= _LABEL_PITCH * max(prev.size, ln.size, 1.0)):
+            ln.text = f"{prev.text.rstrip('.:')}. {ln.text}"
+            ln.top = prev.top
+            ln.chars += prev.chars
+            out[-1] = ln
+            continue
+        out.append(ln)
+    return out
+
+
+def _outline_runs(scan: PageScan, entry: OutlineEntry) -> bool:
+    """Join the run of up to _MAX_RUN consecutive lines whose text together is the
+    entry's title into one heading at the entry's level; True when found."""
+    wanted = _norm_variants(entry.title)
+    lines = scan.lines
+    for i in range(len(lines)):
+        text = lines[i].text
+        for j in range(i + 1, min(len(lines), i + _MAX_RUN)):
+            if lines[j].column != lines[i].column or not _wrapped(lines[j - 1], lines[j]):
+                break
+            text = join_lines(text, lines[j].text)
+            if _norm_variants(text) & wanted:
+                head = lines[i]
+                for ln in lines[i + 1:j + 1]:
+                    _join_into(head, ln)
+                head.heading = True
+                head.level = min(6, entry.level)
+                head.text = _outline_text(head.text, entry.title)
+                del lines[i + 1:j + 1]
+                return True
+    return False
 
 
 def classify_headings(scans: list[PageScan], ratio: float, outline: list[OutlineEntry]) -> None:
@@ -476,6 +562,7 @@ def classify_headings(scans: list[PageScan], ratio: float, outline: list[Outline
             for entry in unmatched:
                 if variants & _norm_variants(entry.title):
                     ln.level = min(6, entry.level)
+                    ln.text = _outline_text(ln.text, entry.title)
                     learned[ln.style][ln.level] += 1
                     unmatched.remove(entry)
                     break
@@ -485,7 +572,11 @@ def classify_headings(scans: list[PageScan], ratio: float, outline: list[Outline
                 if not ln.heading and _norm_variants(ln.text) & wanted:
                     ln.heading = True
                     ln.level = min(6, entry.level)
+                    ln.text = _outline_text(ln.text, entry.title)
                     break
+            else:
+                # A title set on several lines that the style rule did not join.
+                _outline_runs(scan, entry)
 
     styles = sorted(
         {ln.style for s in pages for ln in s.lines if ln.heading},
@@ -499,6 +590,7 @@ def classify_headings(scans: list[PageScan], ratio: float, outline: list[Outline
                     ln.level = learned[ln.style].most_common(1)[0][0]
                 else:
                     ln.level = rank.get(ln.style, 1)
+        scan.lines = _join_labels(scan.lines)
 
 
 def _place_tables(scan: PageScan) -> list[object]:
