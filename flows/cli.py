@@ -44,6 +44,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--source", metavar="DIR", help="source folder (default: from the flow definition)")
     p.add_argument("--workers", metavar="N", type=_positive_int, help="parallel tasks (default: from the flow definition)")
     p.add_argument("--force", action="store_true", help="process every document again, even unchanged ones")
+    p.add_argument("--verify", action="store_true",
+                   help="read and hash every file, even those whose size, times, inode and device are unchanged")
     p.add_argument("--quiet", action="store_true", help="no progress lines, only the summary")
     p.add_argument("--probes", metavar="FILE", help="probe file to check after the run (default: the definition's probes)")
     p.add_argument("--fail-on-regression", action="store_true",
@@ -188,7 +190,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
               "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
     code = _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
-                           probes=args.probes)
+                           probes=args.probes, verify=args.verify)
     return code
 
 

@@ -35,6 +35,8 @@ class SourceSection(_Strict):
     root: str = "sample_inputs"
     include: list[str] = Field(default_factory=lambda: ["**/*"])
     exclude: list[str] = Field(default_factory=list)
+    # True: hash every file's bytes on every run instead of trusting an unchanged stat record.
+    verify: bool = False
 
 
 class RunnerSection(_Strict):

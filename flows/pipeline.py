@@ -290,7 +290,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
 def execute_run(definition: FlowDefinition, source_root: str, store_root: str, run_id: str,
                 progress: Callable[[str], None] | None, force: bool = False,
                 rerun: dict[str, Any] | None = None, workers: int | None = None,
-                probes: str | None = None) -> RunOutcome:
+                probes: str | None = None, verify: bool = False) -> RunOutcome:
     """Body of the flows; runs inside a Prefect flow run so tasks are tracked.
 
     `rerun` None: a run over the source folder. Otherwise what to re-run:
@@ -318,10 +318,13 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         files: list = []
         t0 = time.perf_counter()
         if rerun is None:
-            files, problems = scan(source_root, list(model.source.include), list(model.source.exclude))
+            known = {r["source_path"]: r for r in store.catalog().to_pylist() if r["present"]}
+            files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
+                                   known=known, verify=verify or model.source.verify)
             plan = make_plan(definition, store, files, run_id, sequence, force=force)
             _emit(progress, f"found {len(files)} files ({len(plan.live)} distinct documents): "
-                            f"{len(plan.jobs)} to process, {len(plan.skipped)} unchanged, {len(plan.deleted)} removed")
+                            f"{len(plan.jobs)} to process, {len(plan.skipped)} unchanged, {len(plan.deleted)} removed; "
+                            f"{sum(f.hashed for f in files)} files read to hash (the rest matched their stat record)")
             for p in problems:
                 _emit(progress, f"  cannot read {p.source_path}: {p.reason}")
         else:
@@ -379,7 +382,8 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "definition": definition.snapshot(),
             "chain_digest": definition.chain_digest,
             "versions": _versions(),
-            "documents": {"files": len(files), "distinct": len(plan.live), "processed": len(plan.jobs),
+            "documents": {"files": len(files), "hashed": sum(f.hashed for f in files),
+                          "distinct": len(plan.live), "processed": len(plan.jobs),
                           "unchanged": len(plan.skipped), "removed": len(plan.deleted),
                           "copies": {d: p for d, p in plan.copies.items()}},
             "scan_problems": [asdict(p) for p in problems],
@@ -440,13 +444,13 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
 def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store_root: str,
            run_id: str | None = None, force: bool = False, quiet: bool = False,
            rerun: dict[str, Any] | None = None, workers: int | None = None,
-           probes: str | None = None) -> dict[str, Any]:
+           probes: str | None = None, verify: bool = False) -> dict[str, Any]:
     """One run of the chain over the source root (or a re-run of chosen units), then the
     delivery of its change set to the definition's targets when it asks for that."""
     definition = _definition(json.dumps(definition_data, sort_keys=True), origin)
     outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(),
                           None if quiet else _default_progress, force=force, rerun=rerun, workers=workers,
-                          probes=probes)
+                          probes=probes, verify=verify)
     result = dict(outcome.manifest)
     deliver_section = definition.model.deliver
     if deliver_section.after_run and deliver_section.targets:
@@ -480,7 +484,7 @@ def build_flow(definition: FlowDefinition, workers: int | None = None, name: str
 
 def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
         force: bool = False, quiet: bool = False, rerun: dict[str, Any] | None = None,
-        probes: str | None = None) -> dict[str, Any]:
+        probes: str | None = None, verify: bool = False) -> dict[str, Any]:
     """Run the flow (embedded Prefect unless PREFECT_API_URL is set).
 
     The store's lock is taken before Prefect starts, so a second run on the same
@@ -494,6 +498,7 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
             flow_obj = build_flow(definition, workers,
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
             return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
-                            run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers, probes=probes)
+                            run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers, probes=probes,
+                            verify=verify)
     finally:
         store.release_lock(run_id)

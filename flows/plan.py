@@ -103,6 +103,7 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
         same = prev is not None and prev["doc_id"] == f.doc_id
         rows.append({
             "source_path": f.source_path, "doc_id": f.doc_id, "size": f.size, "mtime": _ts(f.mtime),
+            "mtime_ns": f.mtime_ns, "inode": f.inode, "device": f.device, "ctime_ns": f.ctime_ns,
             "first_run": prev["first_run"] if same else run_id, "last_run": run_id, "present": True,
             "canonical_path": None, "chain_digest": None,
         })

@@ -159,6 +159,11 @@ CATALOG = pa.schema(
         pa.field("doc_id", pa.string(), nullable=False),
         pa.field("size", pa.int64()),
         pa.field("mtime", TS),
+        # The stat record: when all of size and these match, the stored doc_id is reused.
+        pa.field("mtime_ns", pa.int64()),
+        pa.field("inode", pa.int64()),
+        pa.field("device", pa.int64()),
+        pa.field("ctime_ns", pa.int64()),
         pa.field("first_run", pa.string()),
         pa.field("last_run", pa.string()),
         pa.field("present", pa.bool_()),

@@ -1,0 +1,100 @@
+"""The scan's stat record: an unchanged file is not read, a touched one is hashed again but
+not re-extracted, an edit that keeps size and modification time is still caught."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from thresher.flows import pipeline
+from thresher.flows.config import load_definition
+from thresher.flows.discover import file_doc_id, scan
+from thresher.flows.store import Store
+
+
+def _drive(root: Path) -> Path:
+    root.mkdir()
+    (root / "rota.md").write_text("# Rota\n\nThe Saturday rota changes from March at every branch of Quillfern.\n")
+    (root / "vans.md").write_text("# Vans\n\nThe mobile library van is serviced on the first Monday.\n")
+    return root
+
+
+def _same_size_edit(path: Path, old: str, new: str) -> None:
+    """Rewrite a file with text of the same length and put its modification time back."""
+    st = path.stat()
+    text = path.read_text()
+    assert len(old) == len(new) and old in text
+    path.write_text(text.replace(old, new))
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert path.stat().st_size == st.st_size and path.stat().st_mtime_ns == st.st_mtime_ns
+
+
+def test_scan_reuses_doc_ids_only_while_every_stat_field_matches(tmp_path):
+    drive = _drive(tmp_path / "drive")
+    first, _ = scan(drive, ["**/*"], [])
+    assert all(f.hashed for f in first)
+    known = {f.source_path: {"doc_id": f.doc_id, "size": f.size, "mtime_ns": f.mtime_ns, "inode": f.inode,
+                             "device": f.device, "ctime_ns": f.ctime_ns} for f in first}
+    again, _ = scan(drive, ["**/*"], [], known=known)
+    assert [f.hashed for f in again] == [False, False]
+    assert [f.doc_id for f in again] == [f.doc_id for f in first]
+
+    # The same bytes at another inode (a restore, a copy put in place) is hashed again.
+    rota = drive / "rota.md"
+    data, st = rota.read_bytes(), rota.stat()
+    rota.unlink()
+    (drive / "tmp").write_bytes(data)
+    os.utime(drive / "tmp", ns=(st.st_atime_ns, st.st_mtime_ns))
+    (drive / "tmp").rename(rota)
+    moved, _ = scan(drive, ["**/*"], [], known=known)
+    assert {f.source_path: f.hashed for f in moved} == {"rota.md": True, "vans.md": False}
+    assert moved[0].doc_id == first[0].doc_id
+
+    # A catalog row whose stat fields all match yet which names other bytes: what a file
+    # system that does not move the change time (some network shares) leaves behind.
+    # Only --verify reads the file and finds the new content.
+    vans = drive / "vans.md"
+    _same_size_edit(vans, "Monday", "Friday")
+    f = next(x for x in scan(drive, ["**/*"], [])[0] if x.source_path == "vans.md")
+    stale = dict(known, **{"vans.md": {"doc_id": first[1].doc_id, "size": f.size, "mtime_ns": f.mtime_ns,
+                                       "inode": f.inode, "device": f.device, "ctime_ns": f.ctime_ns}})
+    trusted = {x.source_path: x for x in scan(drive, ["**/*"], [], known=stale)[0]}
+    assert trusted["vans.md"].doc_id == first[1].doc_id and not trusted["vans.md"].hashed
+    verified = {x.source_path: x for x in scan(drive, ["**/*"], [], known=stale, verify=True)[0]}
+    assert verified["vans.md"].doc_id == file_doc_id(vans) != first[1].doc_id
+    assert all(x.hashed for x in verified.values())
+
+
+def test_scan_in_threads_keeps_path_order_and_reports_unreadable_files(tmp_path):
+    drive = tmp_path / "drive"
+    for i in range(40):
+        (drive / f"d{i % 3}").mkdir(parents=True, exist_ok=True)
+        (drive / f"d{i % 3}" / f"f{i:02d}.txt").write_text(f"Quillfern note {i}\n")
+    (drive / "d0" / "dangling.txt").symlink_to(drive / "missing.txt")
+    found, problems = scan(drive, ["**/*"], [], threads=4)
+    paths = [f.source_path for f in found]
+    assert paths == sorted(paths, key=lambda p: (p.split("/")[0], p)) and len(paths) == 40
+    assert [p.source_path for p in problems] == ["d0/dangling.txt"]
+    assert all(f.doc_id == file_doc_id(drive / f.source_path) for f in found)
+
+
+def test_a_touched_file_is_not_extracted_again_and_verify_rereads_every_file(prefect_harness, tmp_path):
+    drive = _drive(tmp_path / "drive")
+    (drive / "hours.md").write_text("# Hours\n\nThe reading room opens at nine on weekdays.\n")
+    store = tmp_path / "store"
+
+    def run(**kw):
+        return pipeline.run(load_definition(), str(drive), str(store), workers=1, quiet=True, **kw)
+
+    run()
+    os.utime(drive / "rota.md")  # touched, bytes unchanged
+    # Same size, same modification time, other bytes: the change time gives it away.
+    _same_size_edit(drive / "vans.md", "Monday", "Friday")
+    second = run()
+    assert second["documents"]["hashed"] == 2  # hours.md was not read
+    assert second["documents"]["processed"] == 1  # only vans.md; the touched rota.md is reused
+    rows = Store(store).current("extract", "pages", columns=["source_path", "run_id"]).to_pylist()
+    assert [r["source_path"] for r in rows if r["run_id"] == second["run_id"]] == ["vans.md"]
+
+    verified = run(verify=True)
+    assert verified["documents"]["hashed"] == 3 and verified["documents"]["processed"] == 0
