@@ -87,7 +87,6 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     ctx = StepContext(encoding=get_encoding)
     started = now_utc()
     out = step.spec.run(docs, step.params, ctx) if docs else []
-    ms = (time.perf_counter() - t0) * 1000.0
 
     by_doc: dict[str, list[Unit]] = defaultdict(list)
     if kind == "chunks":
@@ -111,7 +110,7 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     counts: dict[str, int] = {}
     for doc_id, units in sorted(by_doc.items()):
         rctx = RowContext(run_id, doc_id, live_docs[doc_id][1], step.name, step.spec.version, step.digest,
-                          kind, loaded[doc_id].stage, started, round(ms, 3), attempts)
+                          kind, loaded[doc_id].stage, started, None, attempts)
         rows = [to_row(rctx, u) for u in units]
         for u in units:
             counts[u.status] = counts.get(u.status, 0) + 1
@@ -221,7 +220,6 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
                    if c not in decisions.column_names]
         if missing:
             raise ValueError(f"step {step.name}: decisions lack columns {missing}")
-    ms = round((time.perf_counter() - t0) * 1000.0, 3)
 
     dec_rows = _rows_by_doc(decisions) if decisions is not None else {}
     fresh_sketch = pa.concat_tables(sketches) if sketches else None
@@ -265,7 +263,7 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
                 units.append(unit)
                 counts[unit.status] += 1
             rctx = RowContext(run_id, doc.doc_id, doc.source_path, step.name, spec.version, step.digest, kind,
-                              stages[doc.doc_id], started, ms, attempts)
+                              stages[doc.doc_id], started, None, attempts)
             rows.extend(to_row(rctx, u) for u in units)
             affected.add(doc.doc_id)
         # A rewritten document with no chunks now still retires its older rows.
@@ -294,7 +292,7 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
             row.update(run_id=run_id, source_path=live_docs[old["doc_id"]][1], step_version=spec.version,
                        config_digest=step.digest, status=new["status"], reason=new["reason"], error_type=None,
                        traceback=None, attempt=attempts.get(old["unit_id"], 0) + 1, started_at=started,
-                       duration_ms=ms)
+                       duration_ms=None, document_ms=None)
             row.update({c: new[c] for c in spec.decision_columns})
             rows.append(row)
         if len(rows) != len(revised):

@@ -165,6 +165,8 @@ def _rows_for(step: ResolvedStep, ctx: RowContext, units: list[Unit]) -> list[di
                                        [p for u in units for p in u.parents])
         rows = [to_row(ctx, failed)]
         units[:] = [failed]
+    for row in rows[1:]:
+        row["document_ms"] = None  # the document's time once, so a sum over rows is real time
     if ctx.unit == "chunks":
         for unit, row in zip(units, rows):
             unit.chunk_id = row["chunk_id"]
@@ -251,6 +253,9 @@ class BatchRunner:
             if i > 0 and not applies_to(step, inputs):
                 continue  # passed by: the next step reads what this one would have read
             ctx = StepContext(doc_id=doc.doc_id, source_path=doc.source_path, encoding=get_encoding)
+            if i > 0:
+                for u in inputs:  # a time the previous step measured is not this step's
+                    u.duration_ms = None
             started = now_utc()
             t0 = time.perf_counter()
             caller = self._caller_for(step)

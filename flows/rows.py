@@ -34,7 +34,7 @@ class RowContext:
     unit: str  # "pages" | "chunks"
     prev_step: str | None
     started_at: datetime
-    duration_ms: float
+    document_ms: float | None  # the step's time for this whole document (first row only)
     attempts: dict[str, int]  # unit_id -> highest attempt already stored
 
 
@@ -71,7 +71,8 @@ def _common(ctx: RowContext, unit: Page | Chunk) -> dict[str, Any]:
         "traceback": unit.traceback or None,
         "attempt": ctx.attempts.get(uid, 0) + 1,
         "started_at": ctx.started_at,
-        "duration_ms": ctx.duration_ms,
+        "duration_ms": unit.duration_ms,
+        "document_ms": ctx.document_ms,
         "warnings": list(unit.warnings),
     }
 

@@ -30,7 +30,11 @@ COMMON = [
     pa.field("traceback", pa.string()),
     pa.field("attempt", pa.int32(), nullable=False),
     pa.field("started_at", TS),
+    # This unit's own time in the step, when the step measured units separately (PDF
+    # pages at extract), else null; document_ms is the step's time for the whole document,
+    # on the document's first row at that stage only, so both sum to real time.
     pa.field("duration_ms", pa.float64()),
+    pa.field("document_ms", pa.float64()),
     pa.field("warnings", STR_LIST),
 ]
 

@@ -69,6 +69,9 @@ class Outcome:
     error_type: str = ""
     traceback: str = ""
     warnings: list[str] = field(default_factory=list)
+    # This unit's own time in the step that made it, when that step measured each unit
+    # separately (a PDF page's own read); None when only the whole document was timed.
+    duration_ms: float | None = None
 
     def fail(self, reason: str, exc: BaseException | None = None) -> None:
         """Mark this unit failed; keep the exception's type and traceback if given."""

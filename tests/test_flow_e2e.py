@@ -296,3 +296,21 @@ def test_a_copy_saved_by_another_program_is_dropped_as_a_copy_of_the_original(fi
     kept = {r["chunk_id"] for r in store.handoff().to_pylist()
             if r["source_path"] == "volunteers/volunteer-rota-spring-2026.txt"}
     assert {r["duplicate_of"] for r in rows} <= kept and kept
+
+
+def test_unit_timings_add_up_to_each_documents_time_once(first_run):
+    store = first_run["store"]
+    extract = store.current("extract", "pages").to_pylist()
+    for stage, unit in (("extract", "pages"), ("clean", "pages"), ("split", "chunks")):
+        by_doc: dict[str, list[dict]] = {}
+        for r in store.current(stage, unit).to_pylist():
+            by_doc.setdefault(r["doc_id"], []).append(r)
+        for doc_id, rows in by_doc.items():
+            timed = [r["document_ms"] for r in rows if r["document_ms"] is not None]
+            assert len(timed) == 1 and timed[0] >= 0, (stage, rows[0]["source_path"])
+    # A PDF's pages carry their own read time, which fits inside the document's time.
+    pdf = [r for r in extract if r["source_path"] == "operations/branch-operations-handbook.pdf"]
+    assert len(pdf) > 2 and all(r["duration_ms"] is not None and r["duration_ms"] > 0 for r in pdf)
+    assert sum(r["duration_ms"] for r in pdf) <= sum(r["document_ms"] or 0 for r in pdf)
+    # Steps that time the document only leave the unit's own time empty.
+    assert all(r["duration_ms"] is None for r in store.current("clean", "pages").to_pylist())

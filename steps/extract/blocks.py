@@ -62,6 +62,7 @@ class PagePart:
     removed: list[dict] = field(default_factory=list)
     # A navigation page's kind ("contents", "index", "figures", "tables"), else "".
     navigation: str = ""
+    duration_ms: float | None = None  # the page's own read time, when measured per page
 
 
 @dataclass

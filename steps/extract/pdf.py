@@ -73,6 +73,7 @@ enabled); a few of them become U+FFFD and count as unprintable.
 from __future__ import annotations
 
 import io
+import time
 import re
 import unicodedata
 from collections import Counter, defaultdict
@@ -155,6 +156,7 @@ class PageScan:
     method: str = "text-layer"
     navigation: str = ""
     ocr_blocks: list[Block] = field(default_factory=list)
+    duration_ms: float | None = None  # this page's own read (text layer, tables, lines)
 
 
 # --- opening ------------------------------------------------------------------
@@ -783,7 +785,8 @@ def read_pdf(inp: ReaderInput) -> ReadResult:
     for scan in scans:
         part = PagePart(page=scan.number, warnings=scan.warnings, failure=scan.failure,
                         error=scan.error, method=scan.method, columns=scan.columns,
-                        removed=scan.removed, navigation=scan.navigation)
+                        removed=scan.removed, navigation=scan.navigation,
+                        duration_ms=scan.duration_ms)
         if not scan.failure:
             try:
                 part.blocks = scan.ocr_blocks if scan.method == "ocr" else page_blocks(scan, vocab)

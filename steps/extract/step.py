@@ -178,6 +178,7 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
             payload=payload(part.blocks, part.method or result.method, result.page_count,
                             result.encoding, source, part.columns, part.removed,
                             part.navigation),
+            duration_ms=None if part.duration_ms is None else round(part.duration_ms, 3),
         )
         page.warnings = doc_warnings + part.warnings
         if part.failure:
