@@ -1,18 +1,16 @@
-"""Ruled tables, found by pdfplumber's table finder on the pages that may hold one.
+"""Ruled tables, found by pdfplumber's table finder: for PDFs PDFium cannot open.
 
 pdfplumber parses a page's every character and line in Python (50-600 ms a page on
-the Debian documentation PDFs), so it runs only on pages whose vector paths could
-draw a grid (pdf_text.PageText.ruled). Its "lines" strategy builds cells from ruling
-lines and rectangle edges; a grid of at least 2 x 2 cells holding text is a table (a
-single framed box is not). Cell text uses the same word gap as the running text.
+the Debian documentation PDFs), so PDFs PDFium opens get their tables from pdf_grid;
+this finder serves the pdfminer route and is pdf_grid's reference in the tests. Its
+"lines" strategy builds cells from ruling lines and rectangle edges; a grid of at least
+2 x 2 cells holding text is a table (a single framed box is not). Cell text uses the
+same word gap as the running text.
 """
 
 from __future__ import annotations
 
-import io
 from dataclasses import dataclass
-
-import pdfplumber
 
 from .blocks import table_shape
 
@@ -26,24 +24,6 @@ class FoundTable:
     top: float
     bbox: tuple[float, float, float, float]  # x0, top, x1, bottom (points from the top)
     rows: list[list[str]]
-
-
-class TableReader:
-    """Opens the PDF with pdfplumber once, when the first page needs it."""
-
-    def __init__(self, data: bytes):
-        self._data = data
-        self._pdf = None
-
-    def tables(self, number: int) -> list[FoundTable]:
-        """Tables on page `number` (1-based); raises when pdfplumber cannot read it."""
-        if self._pdf is None:
-            self._pdf = pdfplumber.open(io.BytesIO(self._data))
-        page = self._pdf.pages[number - 1]
-        try:
-            return tables_on(page)
-        finally:
-            page.close()  # drop the page's parsed objects; memory stays flat
 
 
 def tables_on(page) -> list[FoundTable]:

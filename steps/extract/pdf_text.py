@@ -18,8 +18,8 @@ What one page gives (`PageText`):
 - text objects that are not text: images (their share of the page, for scans), and
   whether the page's vector paths could form a ruled table (at least three distinct
   horizontal and three distinct vertical edges, as a 2 x 2 grid needs; or one path with
-  many segments spanning an area, which may draw a whole grid): only such pages are
-  handed to pdfplumber's table finder.
+  many segments spanning an area, which may draw a whole grid); only on such pages are
+  the straight segments of the paths read as `edges` for the table finder (pdf_grid).
 - `unmapped`: characters PDFium flags as having no Unicode mapping (glyph ids only).
 
 Every PDFium call is made while holding LOCK (PDFium is not thread-safe; pypdfium2's
@@ -83,6 +83,9 @@ class PageText:
     image_share: float = 0.0
     images: int = 0
     ruled: bool = False
+    # On a ruled page: its straight axis-parallel path segments ("h"|"v", x0, top, x1,
+    # bottom in points from the top), for pdf_grid's table finder.
+    edges: list[tuple[str, float, float, float, float]] = field(default_factory=list)
 
 
 def _font_facts(font) -> tuple[bool, str]:
@@ -95,34 +98,90 @@ def _font_facts(font) -> tuple[bool, str]:
     return bold, base
 
 
+_IDENTITY = (1.0, 0.0, 0.0, 1.0, 0.0, 0.0)
+
+
+def _matrix(obj) -> tuple[float, ...]:
+    m = raw.FS_MATRIX()
+    if not raw.FPDFPageObj_GetMatrix(obj, ctypes.byref(m)):
+        return _IDENTITY
+    return (m.a, m.b, m.c, m.d, m.e, m.f)
+
+
+def _then(m: tuple[float, ...], outer: tuple[float, ...]) -> tuple[float, ...]:
+    """The matrix applying m first, then outer (PDF's row-vector convention)."""
+    a, b, c, d, e, f = m
+    A, B, C, D, E, F = outer
+    return (a * A + b * C, a * B + b * D, c * A + d * C, c * B + d * D, e * A + f * C + E, e * B + f * D + F)
+
+
 def _page_objects(page_raw):
-    """(type, object) of every page object, inside form XObjects too."""
-    stack = [(raw.FPDFPage_CountObjects(page_raw), lambda i: raw.FPDFPage_GetObject(page_raw, i))]
+    """(type, object, matrix of the forms around it) of every non-text page object."""
+    stack = [(raw.FPDFPage_CountObjects(page_raw), lambda i: raw.FPDFPage_GetObject(page_raw, i), _IDENTITY)]
     out = []
     while stack:
-        count, get = stack.pop()
+        count, get, outer = stack.pop()
         for i in range(count):
             obj = get(i)
             kind = raw.FPDFPageObj_GetType(obj)
             if kind == PAGEOBJ_FORM:
                 stack.append((raw.FPDFFormObj_CountObjects(obj),
-                              lambda j, o=obj: raw.FPDFFormObj_GetObject(o, j)))
+                              lambda j, o=obj: raw.FPDFFormObj_GetObject(o, j), _then(_matrix(obj), outer)))
             elif kind != PAGEOBJ_TEXT:
-                out.append((kind, obj))
+                out.append((kind, obj, outer))
     return out
 
 
-def _graphics(page_raw, width: float, height: float, facts: PageText) -> None:
-    """Image coverage and whether the page's paths could draw a ruled table."""
+def _path_edges(obj, outer: tuple[float, ...], page_top: float, out: list) -> None:
+    """The path's straight horizontal and vertical segments, in points from the page top.
+
+    As pdfplumber takes them from pdfminer: the drawn path's own coordinates (without
+    the stroke's width), each straight piece and each closing piece; curves are left out.
+    """
+    a, b, c, d, e, f = _then(_matrix(obj), outer)
+    x, y = ctypes.c_float(), ctypes.c_float()
+    px, py = ctypes.byref(x), ctypes.byref(y)
+    start = prev = None
+    for i in range(raw.FPDFPath_CountSegments(obj)):
+        seg = raw.FPDFPath_GetPathSegment(obj, i)
+        if not raw.FPDFPathSegment_GetPoint(seg, px, py):
+            continue
+        pt = (a * x.value + c * y.value + e, page_top - (b * x.value + d * y.value + f))
+        kind = raw.FPDFPathSegment_GetType(seg)
+        if kind == raw.FPDF_SEGMENT_MOVETO:
+            start = prev = pt
+            continue
+        if kind == raw.FPDF_SEGMENT_LINETO and prev is not None:
+            _edge(prev, pt, out)
+        if raw.FPDFPathSegment_GetClose(seg) and start is not None:
+            _edge(pt, start, out)
+            prev = start
+        else:
+            prev = pt
+
+
+def _edge(p, q, out: list) -> None:
+    (x0, y0), (x1, y1) = p, q
+    if abs(y0 - y1) < 0.01 and x0 != x1:
+        out.append(("h", min(x0, x1), y0, max(x0, x1), y0))
+    elif abs(x0 - x1) < 0.01 and y0 != y1:
+        out.append(("v", x0, min(y0, y1), x0, max(y0, y1)))
+
+
+def _graphics(page_raw, width: float, height: float, facts: PageText, page_top: float) -> None:
+    """Image coverage, whether the page's paths could draw a ruled table, and if so its edges."""
     left, bottom, right, top = (ctypes.c_float() for _ in range(4))
     refs = [ctypes.byref(v) for v in (left, bottom, right, top)]
     image_area = 0.0
     hs: set[int] = set()
     vs: set[int] = set()
     grid_like = False
-    for kind, obj in _page_objects(page_raw):
+    paths = []
+    for kind, obj, outer in _page_objects(page_raw):
         if kind not in (PAGEOBJ_PATH, PAGEOBJ_IMAGE):
             continue
+        if kind == PAGEOBJ_PATH:
+            paths.append((obj, outer))
         if not raw.FPDFPageObj_GetBounds(obj, *refs):
             continue
         w = right.value - left.value
@@ -145,6 +204,9 @@ def _graphics(page_raw, width: float, height: float, facts: PageText) -> None:
     area = width * height or 1.0
     facts.image_share = min(1.0, image_area / area)
     facts.ruled = grid_like or (len(hs) >= 3 and len(vs) >= 3)
+    if facts.ruled:
+        for obj, outer in paths:
+            _path_edges(obj, outer, page_top, facts.edges)
 
 
 def _chars_text(tp, n: int) -> str:
@@ -215,7 +277,7 @@ def read_page(doc: pdfium.PdfDocument, index: int) -> PageText:
         mb_left, mb_bottom, mb_right, mb_top = page.get_mediabox()
         facts = PageText(width=float(width), height=float(height))
         page_raw = page.raw
-        _graphics(page_raw, facts.width, facts.height, facts)
+        _graphics(page_raw, facts.width, facts.height, facts, float(mb_top))
         textpage = page.get_textpage()
         try:
             _words(textpage.raw, float(mb_top), facts)
