@@ -12,14 +12,16 @@ STAMP  := $(VENV)/.thresher-installed
 # Character Database (NormalizationTest.txt), translated manual pages, and Chromium
 # (headless) to render the review page; LibreOffice Calc and Impress and the office
 # files of python-odf-doc, debian-policy and developers-reference (ODF, EPUB) for the
-# office-format readers' tests; PostgreSQL for the delivery target's tests.
+# office-format readers' tests; PostgreSQL for the delivery target's tests; PDFs with
+# ruled tables (debian-policy's FHS, zlib1g-dev's CRC paper, the Debian FAQ) for the
+# table grid against pdfplumber.
 DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
                         bzip2-doc fontconfig libxslt1-dev locales \
                         unicode-data manpages manpages-de manpages-fr manpages-es \
                         tesseract-ocr tesseract-ocr-eng libreoffice-writer-nogui \
                         libreoffice-calc-nogui libreoffice-impress-nogui \
                         python-odf-doc debian-policy developers-reference \
-                        chromium postgresql
+                        chromium postgresql zlib1g-dev debian-faq
 
 # Manuals Debian ships as both PDF and HTML: the retrieval benchmark (bench/retrieval.py)
 # takes its questions from the HTML edition and ranks chunks of the PDF edition.
