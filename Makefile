@@ -40,6 +40,7 @@ help:
 	@echo "make bench   run the benchmarks (prints measured ratios)"
 	@echo "make sample  regenerate sample_inputs/ from tools/make_sample_drive.py"
 	@echo "make ocr     install Tesseract for scanned PDF pages (extract: ocr: true)"
+	@echo "make office  install LibreOffice to read legacy .doc and .ppt files"
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -67,6 +68,9 @@ system-deps:
 ocr: $(STAMP)
 	@$(MAKE) --no-print-directory apt-install PACKAGES="$(OCR_PACKAGES)"
 	$(BIN)/python -m pip install --quiet -e '.[ocr]'
+
+office:
+	@$(MAKE) --no-print-directory apt-install PACKAGES="$(OFFICE_PACKAGES)"
 
 apt-install:
 	@missing=""; for p in $(PACKAGES); do \

@@ -186,9 +186,12 @@ def test_legacy_office_kinds_and_encrypted_office_files():
     assert sniff(ole + "Workbook".encode("utf-16-le"), "budget.xls").format == "xls"
     deck = sniff(ole + "PowerPoint Document".encode("utf-16-le"), "talk.doc")
     assert deck.format == "ppt" and deck.warnings == ["content is ppt although the file is named .doc"]
-    assert one(ole + b"nothing we know", "thing.doc").reason == (
+    assert one(ole + b"nothing we know", "thing.bin").reason == (
         "unsupported format: OLE2 compound file that is not a Word, Excel or PowerPoint document"
     )
+    assert one(ole + b"nothing we know", "minutes.doc").reason == (
+        "unreadable DOC: the compound file names no Word, Excel or PowerPoint stream "
+        "(damaged or truncated)")
     encrypted = ole + "EncryptionInfo".encode("utf-16-le") + bytes(100)
     assert one(encrypted, "salaries.docx").reason == "password protected"
 

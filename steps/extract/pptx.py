@@ -3,8 +3,9 @@
 Page = the slide's number in the deck (hidden slides counted, so numbers match the
 program's). The title placeholder (title or centred title) is the level-1 heading;
 other shapes follow in reading order (slides_order.py): text frames paragraph by
-paragraph (a paragraph with an outline level above 0, or any paragraph of a body
-placeholder that holds several, is a list item), tables as tables, group members
+paragraph (a list item when it sets a bullet or number itself; when it inherits
+one, when it has an outline level above 0 or is one of several paragraphs of a body
+placeholder), tables as tables, group members
 inside their group. Pictures, charts and media hold no text we read. Speaker notes
 come last under "Notes" unless `slide_notes` is off. Hidden slides (show="0") are
 left out and listed in the first page's `removed`.
@@ -28,6 +29,21 @@ def _placeholder_type(shape) -> str:
         return shape.placeholder_format.type.name or ""
     except Exception:  # a placeholder without a type attribute, or an unknown one
         return "BODY" if shape.is_placeholder else ""
+
+
+def _bullet(paragraph) -> bool | None:
+    """True/False when the paragraph itself sets a bullet or number (a:buChar,
+    a:buAutoNum) or none (a:buNone); None when it inherits (ECMA-376 21.1.2.4)."""
+    ppr = paragraph._p.pPr
+    if ppr is None:
+        return None
+    for child in ppr:
+        local = child.tag.rsplit("}", 1)[-1]
+        if local in ("buChar", "buAutoNum", "buBlip"):
+            return True
+        if local == "buNone":
+            return False
+    return None
 
 
 def _position(shape) -> tuple[float, float]:
@@ -54,8 +70,9 @@ def _shape(shape) -> Shape | None:
     bulleted = kind in _BODY_TYPES and len(paragraphs) > 1
     out = []
     for p in paragraphs:
-        level = p.level if (p.level or bulleted) else None
-        out.append((p.text.replace("\x0b", " "), level))
+        bullet = _bullet(p)
+        is_item = bullet if bullet is not None else bool(p.level or bulleted)
+        out.append((p.text.replace("\x0b", " "), p.level if is_item else None))
     if not out:
         return None
     return Shape(top, left, title=kind in _TITLE_TYPES, paragraphs=out)

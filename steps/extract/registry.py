@@ -30,8 +30,13 @@ READERS: dict[str, tuple[str, str, str]] = {
     "rtf": ("rtf", "read_rtf", "rtf"),
 }
 
+# Formats that LibreOffice converts first (office_convert.py), and the format whose
+# reader then reads the converted file.
+CONVERTED: dict[str, str] = {"doc": "docx", "ppt": "pptx"}
+
 # The method a failed document of a format is labelled with.
 METHODS = {fmt: method for fmt, (_, _, method) in READERS.items()}
+METHODS.update({fmt: f"libreoffice+{target}" for fmt, target in CONVERTED.items()})
 
 Reader = Callable[[ReaderInput], ReadResult]
 

@@ -394,16 +394,57 @@ _OLE_KINDS = (
 )
 
 
-def _ole_kind(data: bytes) -> Sniffed:
+def _ole_kind(data: bytes, ext: str) -> Sniffed:
     if _ENCRYPTION_INFO in data or _utf16("EncryptedPackage") in data:
         return Sniffed(reason="password protected")
     for name, kind in _OLE_KINDS:
         if name in data:
+            if _legacy_encrypted(data, kind):
+                return Sniffed(reason="password protected")
             return Sniffed(format=kind)
+    if ext in ("doc", "xls", "ppt"):
+        return Sniffed(reason=f"unreadable {ext.upper()}: the compound file names no Word, "
+                              "Excel or PowerPoint stream (damaged or truncated)")
     return Sniffed(
         reason="unsupported format: OLE2 compound file that is not a Word, Excel or "
                "PowerPoint document"
     )
+
+
+def _legacy_encrypted(data: bytes, kind: str) -> bool:
+    """A .doc, .xls or .ppt encrypted with a password: the Word FIB's fEncrypted bit
+    ([MS-DOC] 2.5.2, bit 0x0100 of the flags at offset 10), a FILEPASS record (type
+    0x002F) among the records that open an Excel workbook ([MS-XLS] 2.4.117), or
+    PowerPoint's EncryptedSummary stream ([MS-PPT] 2.1.3). An unreadable compound
+    file is left to the reader to report."""
+    if kind == "ppt":
+        return _utf16("EncryptedSummary") in data
+    import olefile
+
+    try:
+        with olefile.OleFileIO(data) as ole:
+            if kind == "doc" and ole.exists("WordDocument"):
+                fib = ole.openstream("WordDocument").read(12)
+                return len(fib) >= 12 and bool(int.from_bytes(fib[10:12], "little") & 0x0100)
+            if kind == "xls":
+                stream = "Workbook" if ole.exists("Workbook") else "Book"
+                if not ole.exists(stream):
+                    return False
+                head = ole.openstream(stream).read(4096)
+                pos = 0
+                for _ in range(40):  # FILEPASS follows BOF closely when present
+                    if pos + 4 > len(head):
+                        break
+                    rtype = int.from_bytes(head[pos:pos + 2], "little")
+                    size = int.from_bytes(head[pos + 2:pos + 4], "little")
+                    if rtype == 0x002F:
+                        return True
+                    if rtype == 0x0085:  # BOUNDSHEET: past the workbook's opening records
+                        break
+                    pos += 4 + size
+    except Exception:  # olefile raises several kinds for damaged compound files
+        return False
+    return False
 
 
 def sniff(data: bytes, source_path: str) -> Sniffed:
@@ -415,7 +456,7 @@ def sniff(data: bytes, source_path: str) -> Sniffed:
     if data.startswith((b"PK\x03\x04", b"PK\x05\x06")):
         return _with_extension_note(_zip_kind(data, ext), ext)
     if data.startswith(_OLE2):
-        return _with_extension_note(_ole_kind(data), ext)
+        return _with_extension_note(_ole_kind(data, ext), ext)
     if data.startswith(b"{\\rtf"):
         return _with_extension_note(Sniffed(format="rtf"), ext)
     for magic, kind in _BINARY_SIGNATURES:

@@ -20,7 +20,7 @@ from pydantic import Field
 from ..spec import StepContext, StepParams, StepSpec
 from ..units import BLOCK_SEP, DOCUMENT_LOCATOR, TABLE, Block, Page, Source, page_locator
 from .blocks import DocumentFailure, ReaderInput, file_stem, first_heading
-from .registry import METHODS, reader_for
+from .registry import CONVERTED, METHODS, reader_for
 from .sniff import sniff, unprintable_count
 
 # Bytes in a megabyte for the file-size guard (SI megabyte, as file managers show it).
@@ -152,8 +152,19 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
     if found.reason:
         return failed_document(source, found.reason, fmt=found.format)
 
+    fmt, read_data, method_prefix = found.format, data, ""
     try:
-        result = reader_for(found.format)(ReaderInput(data, found.text, found.encoding, params, source.source_path))
+        if fmt in CONVERTED:
+            # .doc/.ppt: LibreOffice writes .docx/.pptx, which the matching reader reads.
+            from .office_convert import convert
+
+            # 90 % of the limit: LibreOffice runs in its own process group, which the
+            # flows layer's kill at the limit would not reach.
+            read_data = convert(data, fmt, 0.9 * params.time_limit_seconds)
+            fmt, method_prefix = CONVERTED[fmt], "libreoffice+"
+        result = reader_for(fmt)(ReaderInput(read_data, found.text, found.encoding, params, source.source_path))
+        if method_prefix:
+            result.format, result.method = found.format, method_prefix + result.method
     except DocumentFailure as failure:
         return failed_document(source, failure.reason, failure.cause, fmt=found.format)
     except Exception as exc:  # a parser bug or a file it chokes on: this file only
@@ -209,7 +220,8 @@ EXTRACT = StepSpec(
     source_limit=_source_limit,
     time_limit=_time_limit,
     summary=(
-        "Reads a source file (PDF, HTML, Markdown, plain text, DOCX, spreadsheets; format "
-        "sniffed from content) into pages of heading, paragraph, table and code blocks."
+        "Reads a source file (PDF, HTML, Markdown, plain text, Word, OpenDocument, RTF, "
+        "EPUB, slide decks, spreadsheets; format sniffed from content) into pages of "
+        "heading, paragraph, table and code blocks."
     ),
 )
