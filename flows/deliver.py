@@ -114,11 +114,19 @@ def open_target(entry: TargetEntry, store: Store) -> Target:
     return factory(entry, store)
 
 
-def _handoff(store: Store) -> pa.Table:
+def _handoff(store: Store, chunk_ids: list[str] | None = None) -> pa.Table:
+    """The current hand-off, or only the rows of these chunk ids."""
     rel = store.published(HANDOFF_REL)
     if rel is None:
         raise DeliveryError("the store has no hand-off yet: run `thresher run` first")
-    return store.read_table(rel)
+    if chunk_ids is None:
+        return store.read_table(rel)
+    import pyarrow.dataset as ds
+
+    data = ds.dataset(store.path(rel), filesystem=store.fs, format="parquet")
+    if not chunk_ids:
+        return data.schema.empty_table()
+    return data.to_table(filter=ds.field("chunk_id").isin(pa.array(chunk_ids, pa.string())))
 
 
 def plan_delivery(store: Store, applied: list[str]) -> Delivery | None:
@@ -130,25 +138,30 @@ def plan_delivery(store: Store, applied: list[str]) -> Delivery | None:
     if applied and applied[-1] == latest.run_id:
         return None
     seq_of = {r.run_id: r.sequence for r in runs}
-    handoff = _handoff(store)
     last = applied[-1] if applied else None
-    if last not in seq_of:
-        # New, or the run it holds last has been removed from the store (retention).
-        return Delivery(columns=handoff.schema, full=handoff, record=[(latest.run_id, latest.sequence)])
-    last_seq = seq_of[last]
-    pending = [r for r in runs if r.sequence > last_seq]
+    pending = [r for r in runs if last in seq_of and r.sequence > seq_of[last]]
     rels = [store.published(changes_rel(r.run_id)) for r in pending]
-    if any(rel is None for rel in rels):
-        # A change set it needs is gone (retention): start again from the hand-off.
+    if last not in seq_of or any(rel is None for rel in rels):
+        # New; or the run it holds last, or a change set it needs, has been removed
+        # from the store (retention): start again from the hand-off.
+        handoff = _handoff(store)
         return Delivery(columns=handoff.schema, full=handoff, record=[(latest.run_id, latest.sequence)])
-    index = {cid: i for i, cid in enumerate(handoff.column("chunk_id").to_pylist())}
-    out = Delivery(columns=handoff.schema)
-    for r, rel in zip(pending, rels):
-        changes = store.read_table(rel, columns=["chunk_id", "action"])
-        ups = changes.filter(pc.equal(changes.column("action"), "upsert")).column("chunk_id").to_pylist()
-        dels = changes.filter(pc.equal(changes.column("action"), "delete")).column("chunk_id").to_pylist()
-        rows = sorted(index[c] for c in ups if c in index)
-        out.runs.append(RunChanges(r.run_id, r.sequence, handoff.take(pa.array(rows, pa.int64())), dels))
+    changes = []
+    wanted: set[str] = set()
+    for rel in rels:
+        t = store.read_table(rel, columns=["chunk_id", "action"])
+        ups = t.filter(pc.equal(t.column("action"), "upsert")).column("chunk_id").to_pylist()
+        dels = t.filter(pc.equal(t.column("action"), "delete")).column("chunk_id").to_pylist()
+        changes.append((ups, dels))
+        wanted.update(ups)
+    # Only the rows the change sets upsert are read from the hand-off (a filter on
+    # chunk_id), so a small week costs in proportion to what changed.
+    rows = _handoff(store, sorted(wanted))
+    index = {cid: i for i, cid in enumerate(rows.column("chunk_id").to_pylist())}
+    out = Delivery(columns=rows.schema)
+    for r, (ups, dels) in zip(pending, changes):
+        take = sorted(index[c] for c in ups if c in index)
+        out.runs.append(RunChanges(r.run_id, r.sequence, rows.take(pa.array(take, pa.int64())), dels))
         out.record.append((r.run_id, r.sequence))
     return out
 

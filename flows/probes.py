@@ -30,17 +30,45 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from thresher.flows import schema
-from thresher.steps.bm25 import BM25
+from thresher.steps.bm25 import BM25, terms
 
 TOP = 5  # a probe passes when the expected document ranks within this many chunks
 DEPTH = 100  # ranks beyond this are recorded as not found
 
 
 class ProbeIndex(BM25):
-    """BM25 with the term weight floored at zero (see the module's docstring)."""
+    """BM25 with the term weight floored at zero (see the module's docstring), ranked
+    from postings: a question touches only the chunks that hold one of its terms, so
+    time per question follows those, not the drive."""
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        self._postings: dict[str, list[int]] = {}
+        for i, counts in enumerate(self._tf):
+            for t in counts:
+                self._postings.setdefault(t, []).append(i)
 
     def idf(self, term: str) -> float:
         return max(super().idf(term), 0.0)
+
+    def rank(self, query: str, k: int | None = None) -> list[int]:
+        """Indexes best first; chunks with no score follow in order (as BM25.rank ties)."""
+        q = {t: self.idf(t) for t in set(terms(query)) if t in self._postings}
+        scores: dict[int, float] = {}
+        for t, w in q.items():
+            if w <= 0:
+                continue
+            for i in self._postings[t]:
+                dl = self._len[i]
+                norm = self.k1 * ((1 - self.b) + self.b * dl / self._avdl)
+                tf = self._tf[i][t]
+                scores[i] = scores.get(i, 0.0) + tf / (norm + tf) * w
+        order = sorted((i for i, v in scores.items() if v > 0), key=lambda i: (-scores[i], i))
+        limit = len(self.texts) if k is None else k
+        if len(order) < limit:
+            seen = set(order)
+            order += [i for i in range(len(self.texts)) if i not in seen][:limit - len(order)]
+        return order[:limit]
 
 
 class ProbeError(ValueError):

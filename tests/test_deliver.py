@@ -8,22 +8,18 @@ a deletion — delivers after each, and checks the target's table equals the han
 
 from __future__ import annotations
 
-import glob
 import json
 import os
-import pwd
-import shutil
-import socket
 import sqlite3
 import subprocess
 import sys
-import tempfile
 import time
 from pathlib import Path
 
 import pytest
 
 from conftest import REPO
+from pgserver import pg_bin, scratch_server
 from thresher.flows import pipeline
 from thresher.flows.config import build_definition, default_config_text
 from thresher.flows.deliver import deliver, target_states
@@ -193,46 +189,13 @@ def test_a_delivery_killed_between_deletes_and_upserts_leaves_the_previous_state
 
 # ------------------------------------------------------------------ PostgreSQL
 
-def _pg_bin() -> Path | None:
-    found = sorted(glob.glob("/usr/lib/postgresql/*/bin/pg_ctl"))
-    return Path(found[-1]).parent if found else None
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 @pytest.fixture(scope="module")
 def postgres():
-    """A throwaway PostgreSQL server on 127.0.0.1; its DSN. Root runs it as `postgres`."""
-    pg = _pg_bin()
-    if pg is None:
+    """A throwaway PostgreSQL server on 127.0.0.1; its DSN."""
+    if pg_bin() is None:
         pytest.fail("PostgreSQL is not installed: `make test` installs Debian's postgresql package")
-    # Not under pytest's own temporary folder: that is private to root, and the server
-    # runs as the postgres user.
-    base = Path(tempfile.mkdtemp(prefix="thresher-pg-"))
-    data, sock = base / "data", base / "sock"
-    sock.mkdir()
-    prefix: list[str] = []
-    if os.geteuid() == 0:  # the server refuses to run as root
-        user = pwd.getpwnam("postgres")
-        for p in (base, sock):
-            os.chown(p, user.pw_uid, user.pw_gid)
-        prefix = ["runuser", "-u", "postgres", "--"]
-    subprocess.run(prefix + [str(pg / "initdb"), "-D", str(data), "-U", "postgres", "--auth=trust",
-                             "-E", "UTF8", "--locale=C.UTF-8"], check=True, capture_output=True)
-    port = _free_port()
-    subprocess.run(prefix + [str(pg / "pg_ctl"), "-D", str(data), "-l", str(base / "log"), "-w", "-t", "60",
-                             "-o", f"-c listen_addresses=127.0.0.1 -c port={port} -c unix_socket_directories={sock} "
-                                   "-c fsync=off", "start"], check=True, capture_output=True)
-    try:
-        yield f"host=127.0.0.1 port={port} user=postgres dbname=postgres"
-    finally:
-        subprocess.run(prefix + [str(pg / "pg_ctl"), "-D", str(data), "-m", "immediate", "stop"],
-                       capture_output=True)
-        shutil.rmtree(base, ignore_errors=True)
+    with scratch_server() as dsn:
+        yield dsn
 
 
 def _pg_rows(dsn: str, schema: str) -> dict[str, dict]:

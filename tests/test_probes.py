@@ -70,6 +70,8 @@ def test_bm25_ranks_real_text_like_an_independent_implementation():
         assert [round(mine[i], 3) for i in top] == [round(float(theirs[i]), 3) for i in ref_top], query
         floored = probe_index.scores(words)
         assert floored == pytest.approx(list(ref.get_scores(sorted(set(terms(words))))), rel=1e-4, abs=1e-4)
+        # The probes' ranking from postings orders chunks as the full scores do.
+        assert probe_index.rank(words, 20) == sorted(range(len(texts)), key=lambda i: (-floored[i], i))[:20]
 
 
 def _chunks(rows: list[tuple[str, str, list[str], int | None]]) -> pa.Table:
