@@ -771,7 +771,8 @@ def read_pdf(inp: ReaderInput) -> ReadResult:
                 doc.close()
 
     text_pages = [s for s in scans if not s.failure and s.lines]
-    removals = drop_running_lines([(s.height, s.lines) for s in text_pages])
+    titles = [e.title for e in outline] + ([meta_title] if meta_title else [])
+    removals = drop_running_lines([(s.height, s.lines) for s in text_pages], titles)
     for scan, removed in zip(text_pages, removals):
         scan.removed = removed
         if removed:

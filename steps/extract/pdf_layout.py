@@ -27,7 +27,12 @@ match) recurs within 3 pt of the same height on at least half of the text pages 
 on 2 or more) is removed; each removal is recorded with what it was (page number,
 running header, running footer) and why. (Common practice; thresholds ours. On the
 two PDFs Debian ships in /usr/share/doc from shared-mime-info and libtasn1-doc,
-headers sit at 6 % of the page height and the first body line at 9 %.)
+headers sit at 6 % of the page height and the first body line at 9 %.) A header that
+varies with the chapter ("CHAPTER 7. BASICS OF ... 7.7. WHAT IS ...", "12 Chapter 2.
+The Debian Archive") is removed too when header or footer lines stand at its height
+(within 3 pt) on at least half of the text pages and its text is a chapter or section
+label with a number, or starts or ends with a title from the outline or the metadata
+(`follows_document`); such removals are recorded the same way.
 
 Hyphenated line ends (per document; common practice, the rule is ours). When a line
 ends in a hyphen right after a letter and the next line starts with a letter, the
@@ -289,17 +294,56 @@ def removal_kind(text: str, top_half: bool) -> str:
     return "running header" if top_half else "running footer"
 
 
-def drop_running_lines(pages: list[tuple[float, list[Line]]]) -> list[list[dict]]:
+_RUNNING_LABEL = re.compile(
+    r"^\W*(?:[\divxlc]+\s+)?(?:chapter|section|appendix|part|kapitel|chapitre|cap[ií]tulo|anhang|annexe)"
+    r"\s+(?:\d+|[ivxlc]+|[a-z])\b",
+    re.IGNORECASE,
+)
+
+
+def _loose(text: str) -> str:
+    return "".join(ch for ch in text.casefold() if ch.isalpha())
+
+
+_SECTION_NUMBER = re.compile(r"^\W*(?:\d+(?:\.\d+)*|[A-Z](?:\.\d+)+)\.?\s+")
+
+
+def _exact(text: str) -> str:
+    return "".join(ch for ch in _SECTION_NUMBER.sub("", text).casefold() if ch.isalnum())
+
+
+def follows_document(text: str, titles: set[str], exact: set[str] = frozenset()) -> bool:
+    """True when a header/footer line's text is a chapter or section label with a number
+    ("CHAPTER 7. BASICS OF ...", "12 Chapter 2. The Debian Archive"), or starts or ends
+    with a title the document's outline or metadata names (digits aside) -- but not
+    when it is that title and nothing more (`exact`: a section's own heading that
+    happens to open a page)."""
+    if _exact(text) in exact:
+        return False
+    if _RUNNING_LABEL.match(text):
+        return True
+    loose = _loose(text)
+    return any(len(t) >= 8 and (loose.startswith(t) or loose.endswith(t)) for t in titles)
+
+
+def drop_running_lines(pages: list[tuple[float, list[Line]]],
+                       titles: list[str] | None = None) -> list[list[dict]]:
     """Remove header/footer lines that recur at the same height on most pages.
 
     `pages` holds (page height, lines sorted top to bottom) of each text page; the
-    lines lists are edited in place. Returns, per page, the removals made.
+    lines lists are edited in place. Returns, per page, the removals made. With
+    `titles` (outline entries, the document title), a line that varies from page to
+    page is removed too when its height recurs on most pages and its text follows the
+    document (follows_document).
     """
     removed: list[list[dict]] = [[] for _ in pages]
     if len(pages) < 2:
         return removed
+    loose_titles = {_loose(t) for t in (titles or [])}
+    exact_titles = {_exact(t) for t in (titles or [])}
     candidates: list[list[tuple[Line, str]]] = []
     seen: dict[str, list[tuple[int, float]]] = defaultdict(list)
+    heights: list[tuple[int, float]] = []
     for n, (height, lines) in enumerate(pages):
         picked = []
         edge = lines[:2] + [ln for ln in lines[-2:] if ln not in lines[:2]]
@@ -308,6 +352,7 @@ def drop_running_lines(pages: list[tuple[float, list[Line]]]) -> list[list[dict]
                 key = _repeat_key(ln.text)
                 picked.append((ln, key))
                 seen[key].append((n, ln.top))
+                heights.append((n, ln.top))
         candidates.append(picked)
     total = len(pages)
     need = max(2, (total + 1) // 2)
@@ -323,6 +368,19 @@ def drop_running_lines(pages: list[tuple[float, list[Line]]]) -> list[list[dict]
                     "text": ln.text,
                     "reason": f"{kind}: the same line (digits aside) stands at this height "
                               f"on {len(hits)} of {total} pages",
+                })
+                continue
+            if titles is None or not follows_document(ln.text, loose_titles, exact_titles):
+                continue
+            slot = {m for m, top in heights if abs(top - ln.top) <= REPEAT_Y_TOLERANCE}
+            if len(slot) >= need:
+                drop.append(ln)
+                kind = "running header" if ln.top < height / 2 else "running footer"
+                removed[n].append({
+                    "kind": kind,
+                    "text": ln.text,
+                    "reason": f"{kind}: a chapter or section label or title at a height "
+                              f"where header lines stand on {len(slot)} of {total} pages",
                 })
         if drop:
             lines[:] = [ln for ln in lines if all(ln is not d for d in drop)]
