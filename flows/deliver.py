@@ -218,10 +218,20 @@ class TargetState:
 
 def target_states(definition: FlowDefinition, store: Store) -> list[TargetState]:
     """How far behind the latest committed run each target is (for status and the report)."""
+    return entry_states(list(definition.model.deliver.targets), store)
+
+
+def snapshot_targets(manifest: dict) -> list[TargetEntry]:
+    """The targets named by the definition a run used (its manifest's snapshot)."""
+    section = (manifest.get("definition") or {}).get("deliver") or {}
+    return [TargetEntry.model_validate(t) for t in section.get("targets") or []]
+
+
+def entry_states(entries: list[TargetEntry], store: Store) -> list[TargetState]:
     runs = store.runs()
     seq_of = {r.run_id: r.sequence for r in runs}
     out = []
-    for entry in definition.model.deliver.targets:
+    for entry in entries:
         try:
             target = open_target(entry, store)
             try:

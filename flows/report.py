@@ -25,7 +25,7 @@ from pathlib import Path
 from thresher.flows.report_data import ReportError, StoreView, budget_tokens, chunk_owners, gather_documents, open_view
 from thresher.flows.report_html import render_document, render_list_page, render_summary, template_digest
 from thresher.flows.report_overview import Overview
-from thresher.flows.report_sections import list_pages
+from thresher.flows.report_sections import list_pages, probes_and_targets
 from thresher.flows.store import Store
 
 __all__ = ["ReportError", "ReportWritten", "pages_folder", "write_report"]
@@ -111,6 +111,7 @@ def write_report(store: Store, out_path: str | os.PathLike[str], run_id: str | N
     owners = chunk_owners(sv, {t for ts in targets_of.values() for t in ts})
     targets = {c: {"href": f"{d}.html#c-{c}", "index": i, "path": ov.path_of(d)} for c, (d, i) in owners.items()}
     ov.list_pages = list_pages(ov, lambda n: f"list-{n}.html")
+    ov.probes, ov.targets = probes_and_targets(store, sv.scope.last.manifest)
     fingerprints = _fingerprints(sv, targets_of, targets)
 
     try:

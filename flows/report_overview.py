@@ -86,6 +86,8 @@ class Overview:
     lang_docs: Counter = field(default_factory=Counter)
     chunk_sizes: Counter = field(default_factory=Counter)
     list_pages: list[dict] = field(default_factory=list)  # set by the writer (report_sections.list_pages)
+    probes: list[dict] = field(default_factory=list)  # the last covered run's probe rows (set by the writer)
+    targets: list[dict] = field(default_factory=list)  # delivery targets and how far behind (set by the writer)
     _position: dict[str, int] = field(default_factory=dict)
 
     @property

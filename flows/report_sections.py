@@ -156,9 +156,42 @@ def documents_context(ov: Overview) -> dict[str, Any]:
             "rows": attention[:MAX_SUMMARY_ROWS], "more": len(attention) > MAX_SUMMARY_ROWS}
 
 
+def probes_and_targets(store, manifest: dict) -> tuple[list[dict], list[dict]]:
+    """The run's probe rows (when it was probed) and each delivery target's state."""
+    from dataclasses import asdict
+
+    from thresher.flows.deliver import entry_states, snapshot_targets
+    from thresher.flows.probes import probes_rel
+
+    rel = store.published(probes_rel(manifest["run_id"])) if manifest.get("probes") else None
+    probes = store.read_table(rel).to_pylist() if rel else []
+    try:
+        targets = [asdict(t) for t in entry_states(snapshot_targets(manifest), store)]
+    except Exception as exc:  # noqa: BLE001 - an unreadable snapshot must not stop the report
+        targets = [{"name": "-", "kind": "-", "applied": None, "behind": None, "problem": str(exc)}]
+    return probes, targets
+
+
+def probes_context(ov: Overview) -> dict[str, Any]:
+    m = ov.scope.last.manifest.get("probes") or {}
+    rows = [{"n": p["probe"], "ask": p["ask"], "expect": p["expect"],
+             "rank": p["rank"] if p["rank"] is not None else "not in the first 100",
+             "passed": p["passed"], "regression": p["regression"], "found": p["source_path"],
+             "top": list(zip(p["top_paths"] or [], p["top_chunk_ids"] or []))}
+            for p in ov.probes]
+    rows.sort(key=lambda r: (not r["regression"], r["passed"], r["n"]))
+    return {"summary": m, "rows": rows, "run": ov.scope.last.run_id}
+
+
+def delivery_context(ov: Overview) -> dict[str, Any]:
+    return {"targets": ov.targets}
+
+
 SECTIONS: list[Section] = [
     Section("summary", "Summary", "sections/summary.html", summary_context),
     Section("charts", "Charts", "sections/charts.html", charts_context),
     Section("problems", "Problems", "sections/problems.html", problems_context),
     Section("documents", "Documents", "sections/documents.html", documents_context),
+    Section("probes", "Probes", "sections/probes.html", probes_context),
+    Section("delivery", "Delivery", "sections/delivery.html", delivery_context),
 ]

@@ -149,3 +149,30 @@ def test_probes_run_after_each_run_and_a_regression_fails_the_cli(prefect_harnes
     status = subprocess.run([THRESHER, "status", "--config", str(definition_file), "--store", str(store_dir)],
                             capture_output=True, text=True, env=env, timeout=120)
     assert "probes: " in status.stdout and "1 regression(s)" in status.stdout
+
+
+def test_the_report_lists_probes_regressions_first_and_the_delivery_targets(prefect_harness, sample_drive, tmp_path):
+    from thresher.flows.report import write_report
+
+    probe_file = tmp_path / "probes.yaml"
+    probe_file.write_text(yaml.safe_dump({"questions": [
+        {"ask": "How do I report a broken <b>printer</b> or kiosk?", "expect": "intranet/reporting-a-fault.html"},
+        {"ask": "How do I book the community room?", "expect": "forms/meeting-room-booking-form.docx"},
+    ]}), "utf-8")
+    data = yaml.safe_load(default_config_text())
+    data["probes"] = str(probe_file)  # the embedded default's SQLite target stays
+    definition = build_definition(data, "test")
+    store_dir = tmp_path / "store"
+    pipeline.run(definition, str(sample_drive), str(store_dir), workers=1, quiet=True)
+    (sample_drive / "intranet" / "reporting-a-fault.html").unlink()
+    pipeline.run(definition, str(sample_drive), str(store_dir), workers=1, quiet=True)
+    written = write_report(Store(store_dir), tmp_path / "report.html")
+    html = written.summary.read_text("utf-8")
+    probes = html[html.index('<section id="probes">'):]
+    probes = probes[:probes.index("</section>")]
+    assert "1 regression" in probes
+    # Regressions first, and the question's markup shown as text.
+    assert probes.index("broken &lt;b&gt;printer&lt;/b&gt;") < probes.index("community room")
+    assert "<b>printer</b>" not in html
+    delivery = html[html.index('<section id="delivery">'):]
+    assert "local" in delivery and "up to date" in delivery
