@@ -32,12 +32,13 @@ DEBIAN_TEST_PACKAGES += debian-faq
 # Optional OCR of scanned PDF pages (extract: ocr: true): Tesseract and its English data.
 OCR_PACKAGES := tesseract-ocr tesseract-ocr-eng
 
-.PHONY: demo test bench bench-deps sample clean-store help system-deps ocr
+.PHONY: demo test bench bench-deps sample clean-store help system-deps ocr fuzz
 
 help:
 	@echo "make demo    run the default flow on sample_inputs/ (store in .thresher-store/)"
 	@echo "make test    run the test suite"
 	@echo "make bench   run the benchmarks (prints measured ratios)"
+	@echo "make fuzz    extraction of thousands of damaged files (make test runs a few hundred)"
 	@echo "make sample  regenerate sample_inputs/ from tools/make_sample_drive.py"
 	@echo "make ocr     install Tesseract for scanned PDF pages (extract: ocr: true)"
 	@echo "make office  install LibreOffice to read legacy .doc and .ppt files"
@@ -87,6 +88,10 @@ bench: $(STAMP) bench-deps
 
 bench-deps:
 	@$(MAKE) --no-print-directory apt-install PACKAGES="$(BENCH_PACKAGES)"
+
+# Long fuzzing of extraction; THRESHER_FUZZ_SEED picks another sequence of mutations.
+fuzz: $(STAMP)
+	THRESHER_FUZZ_CASES=$${THRESHER_FUZZ_CASES:-5000} $(BIN)/python -m pytest -q tests/test_fuzz.py
 
 sample: $(STAMP)
 	$(BIN)/python tools/make_sample_drive.py

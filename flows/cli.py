@@ -6,6 +6,7 @@ import argparse
 import json
 import os
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, NoReturn
 
@@ -79,6 +80,8 @@ def build_parser() -> argparse.ArgumentParser:
     which.add_argument("--doc", metavar="ID", help="the document's doc_id (or a unique prefix)")
     which.add_argument("--path", metavar="P", help="the document's source path")
     which.add_argument("--failed", action="store_true", help="every failed unit of the live documents")
+    which.add_argument("--damaged", action="store_true",
+                       help="every document whose stored rows `thresher verify` finds damaged or missing")
     p.add_argument("--page", metavar="N", type=_positive_int, help="only this page (1-based)")
     p.add_argument("--step", metavar="NAME", help="the step to start from (default: the first one that failed)")
     p.add_argument("--source", metavar="DIR", help="source folder (default: the one the latest run read)")
@@ -114,6 +117,33 @@ def build_parser() -> argparse.ArgumentParser:
     _common(p)
     p.add_argument("--target", metavar="NAME", action="append", help="only this target (repeatable)")
 
+    p = sub.add_parser("verify", help="check that the store is intact; one line per problem",
+                       description=(
+                           "Check every file a committed run or compaction recorded (exists, size, SHA-256), every "
+                           "ledger against its part, every hand-off chunk back to the first stage, and the catalog "
+                           "against the current view. Exit 0 when intact, 1 when a problem is found."))
+    _common(p)
+
+    p = sub.add_parser("compact", help="rewrite a stage's many small part files into few large ones",
+                       description=(
+                           "Rewrite the rows of every stage (or the named ones) into few large part files sorted by "
+                           "document, without changing any row or the current view. Runs also do this by themselves "
+                           "when a stage passes housekeeping: compact_parts files."))
+    _common(p)
+    p.add_argument("--stage", metavar="NAME", action="append", help="only this stage (may repeat)")
+
+    p = sub.add_parser("retain", help="remove old attempts, keeping recent runs and the current view",
+                       description=(
+                           "Keep every row of the last N committed runs (or of runs started since a date), and always "
+                           "the current view and the current hand-off; remove older attempts, and the manifests and "
+                           "folders of old runs that no longer hold any row; remove change sets beyond their own limit."))
+    _common(p)
+    p.add_argument("--keep-runs", metavar="N", type=_positive_int, help="keep the attempts of the last N runs")
+    p.add_argument("--since", metavar="DATE", type=_date, help="keep the attempts of runs started on or after DATE (YYYY-MM-DD)")
+    p.add_argument("--keep-changes", metavar="N", type=_positive_int,
+                   help="keep the change sets of the last N runs (default: as many as the runs kept)")
+    p.add_argument("--dry-run", action="store_true", help="print what would go and the bytes freed; change nothing")
+
     p = sub.add_parser("schedule", help="serve the weekly deployment named in the flow definition",
                        description=(
                            "Register the flow definition's deployment with its cron schedule and time zone on "
@@ -132,6 +162,16 @@ def _positive_int(value: str) -> int:
     if n < 1:
         raise argparse.ArgumentTypeError(f"must be at least 1, got {n}")
     return n
+
+
+def _date(value: str):
+    from datetime import datetime, timezone
+
+    try:
+        d = datetime.fromisoformat(value)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a date like 2026-01-31, got {value!r}") from None
+    return d if d.tzinfo else d.replace(tzinfo=timezone.utc)
 
 
 def _definition(args: argparse.Namespace) -> FlowDefinition:
@@ -468,6 +508,16 @@ def cmd_rerun(args: argparse.Namespace) -> int:
     if args.step is not None and args.step not in [s.name for s in definition.steps]:
         raise UsageError(f"no step {args.step!r} in the flow definition; steps are "
                          f"{', '.join(s.name for s in definition.steps)}")
+    if args.damaged:
+        if args.page is not None or args.step is not None:
+            raise UsageError("--damaged re-runs each document from its damaged step; --page and --step go with --doc or --path")
+        from thresher.flows.verify import damaged_documents, verify
+
+        damaged = damaged_documents(verify(store), [s.name for s in definition.steps])
+        if not damaged:
+            print("no damaged or missing part holds a live document; nothing to re-run")
+            return 0
+        return _run_and_report(args, definition, source, _store_root(args, definition), rerun={"damaged": damaged})
     if args.failed:
         if args.page is not None or args.step is not None:
             raise UsageError("--failed re-runs every failed unit from where it failed; --page and --step go with --doc or --path")
@@ -567,6 +617,84 @@ def cmd_deliver(args: argparse.Namespace) -> int:
         else:
             print(f"{r.target}: applied {len(r.runs)} run(s) in order ({', '.join(r.runs)}): "
                   f"{r.upserts} upserted, {r.deletes} deleted; now {r.rows} chunks")
+
+# ----------------------------------------------------------------------------- housekeeping
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    from thresher.flows.verify import PROBLEM, verify
+
+    store = _open_store(args, _definition(args))
+    findings = verify(store)
+    problems = [f for f in findings if f.severity == PROBLEM]
+    if args.json:
+        print(json.dumps({"store": store.root, "intact": not problems, "runs": len(store.runs()),
+                          "findings": [f.as_dict() for f in findings]}, indent=2))
+    else:
+        for f in findings:
+            print(f.line())
+        print(f"{len(problems)} problem(s), {len(findings) - len(problems)} note(s) in {store.root} "
+              f"({len(store.runs())} committed runs)", file=sys.stderr)
+    return 1 if problems else 0
+
+
+@contextmanager
+def _locked(store):
+    from thresher.flows.store import StoreLocked, new_run_id
+
+    holder = "housekeeping-" + new_run_id()
+    try:
+        store.acquire_lock(holder)
+    except StoreLocked as exc:
+        raise UsageError(str(exc)) from None
+    try:
+        store.recover()
+        store.sweep_uncommitted()
+        yield
+    finally:
+        store.release_lock(holder)
+
+
+def cmd_compact(args: argparse.Namespace) -> int:
+    from thresher.flows.housekeeping import compact
+
+    store = _open_store(args, _definition(args))
+    known = {s["name"] for s in store.latest_run().manifest["definition"]["steps"]}
+    for name in args.stage or []:
+        if name not in known:
+            raise UsageError(f"no stage {name!r} in the store; stages are {', '.join(sorted(known))}")
+    with _locked(store):
+        done = compact(store, 0, args.stage)
+    if args.json:
+        print(json.dumps([vars(d) for d in done], indent=2))
+    else:
+        for d in done:
+            print(f"{d.stage}: {d.parts_before} part files into {d.parts_after}, {d.rows_after} rows")
+        if not done:
+            print("nothing to compact: every stage is in one part file or none")
+    return 0
+
+
+def cmd_retain(args: argparse.Namespace) -> int:
+    from thresher.flows.housekeeping import retain
+
+    if args.keep_runs is None and args.since is None:
+        raise UsageError("say what to keep: --keep-runs N and/or --since DATE")
+    store = _open_store(args, _definition(args))
+    if args.dry_run:
+        plan = retain(store, args.keep_runs, args.since, args.keep_changes, dry_run=True)
+    else:
+        with _locked(store):
+            plan = retain(store, args.keep_runs, args.since, args.keep_changes)
+    if args.json:
+        print(json.dumps(vars(plan), indent=2))
+        return 0
+    verb = "would remove" if args.dry_run else "removed"
+    print(f"keeping {len(plan.kept_runs)} run(s) whole and the current view; {verb}:")
+    for stage, n in plan.rows_dropped.items():
+        if n:
+            print(f"  {stage}: {n} old attempt row(s)")
+    print(f"  {len(plan.changes)} change set(s), {len(plan.runs_removed)} old run(s) with nothing left")
+    print(f"{'about ' if args.dry_run else ''}{plan.bytes_freed:,} bytes {'would be ' if args.dry_run else ''}freed")
     return 0
 
 
@@ -591,7 +719,8 @@ def cmd_schedule(args: argparse.Namespace) -> int:
 
 COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail, "failures": cmd_failures,
             "rerun": cmd_rerun, "report": cmd_report, "export": cmd_export, "deliver": cmd_deliver,
-            "schedule": cmd_schedule}
+            "schedule": cmd_schedule,
+            "verify": cmd_verify, "compact": cmd_compact, "retain": cmd_retain}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -141,6 +141,13 @@ class DeliverSection(_Strict):
         return v
 
 
+class HousekeepingSection(_Strict):
+    # After a run, compact a stage whose rows are spread over more part files than
+    # this (0: only by hand, `thresher compact`). Each run adds about one part per
+    # batch per stage; a few hundred small files still read quickly (common practice).
+    compact_parts: int = Field(default=200, ge=0)
+
+
 class StepEntry(_Strict):
     step: str
     params: dict[str, Any] = Field(default_factory=dict)
@@ -155,6 +162,7 @@ class FlowDefinitionModel(_Strict):
     deliver: DeliverSection = Field(default_factory=DeliverSection)
     # A probe file (questions and the documents that should answer them), checked after each run.
     probes: str | None = None
+    housekeeping: HousekeepingSection = Field(default_factory=HousekeepingSection)
     steps: list[StepEntry]
 
 

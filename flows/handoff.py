@@ -19,6 +19,7 @@ import pyarrow.compute as pc
 
 from thresher.flows import schema
 from thresher.flows.config import FlowDefinition
+from thresher.flows.faults import fault
 from thresher.flows.store import Store
 from thresher.steps.units import OK
 
@@ -148,8 +149,10 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
             per_doc.update({d: (counts[d], tokens[d]) for d in counts})
             total_chunks += len(rows)
             total_tokens += sum(tokens.values())
+    fault("handoff-chunks-staged")
     new = pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
     store.write_table(digests_rel, new, run_id=run_id)
+    fault("handoff-digests-staged")
 
     old = previous_digests(store)
     # Upsert: new chunk ids, or any column an index holds changed. Delete: ids gone.

@@ -31,7 +31,7 @@ from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import run_corpus_step
 from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob
-from thresher.flows.faults import fault
+from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff
 from thresher.flows.plan import Plan, make_plan
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
@@ -45,13 +45,6 @@ BATCH_BYTES = 64 << 20
 # Batches per worker to aim for, so the last batches to finish are small ones.
 BATCHES_PER_WORKER = 4
 
-# Testing aid: THRESHER_FAULT=<point> makes the process die at that point, as a
-# killed run would, so tests can prove the store survives it.
-FAULT_POINTS = ("after-first-batch", "after-corpus", "before-commit", "after-commit")
-
-
-def _fault(point: str) -> None:
-    fault(point)
 
 
 @lru_cache(maxsize=8)
@@ -294,7 +287,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
     """Body of the flows; runs inside a Prefect flow run so tasks are tracked.
 
     `rerun` None: a run over the source folder. Otherwise what to re-run:
-    {"failed": True} or {"doc_id": ..., "page": N or None, "step": NAME or None}.
+    {"failed": True}, {"damaged": {doc_id: step}} or {"doc_id": ..., "page": N or None, "step": NAME or None}.
     """
     t_start = time.perf_counter()
     started_at = datetime.now(timezone.utc)
@@ -354,9 +347,11 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             probe_summary = probe_run(store, f"{staged}/chunks.parquet", run_id, probe_file,
                                       f"{staged}/probes.parquet").as_dict()
             publish["staged/probes.parquet"] = probes_rel(run_id)
+        _fault("handoff-staged")
         if rerun is None:
             store.write_table(f"{staged}/catalog.parquet", plan.catalog, run_id=run_id)
             publish["staged/catalog.parquet"] = "catalog.parquet"
+            _fault("catalog-staged")
         timings["handoff"] = time.perf_counter() - t0
 
         live_docs = sorted(plan.live)
@@ -404,6 +399,12 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         }
         _fault("before-commit")
         store.commit(run_id, manifest, before_publish=lambda: _fault("after-commit"))
+        threshold = model.housekeeping.compact_parts
+        if threshold:
+            from thresher.flows.housekeeping import compact
+
+            for done in compact(store, threshold):
+                _emit(progress, f"compacted {done.stage}: {done.parts_before} part files into {done.parts_after}")
     finally:
         if owns_lock:
             store.release_lock(run_id)
@@ -432,6 +433,9 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
                                      sequence)
     if rerun.get("failed"):
         targets = targets_for_failed(definition, store, live)
+    elif rerun.get("damaged"):  # {doc_id: step name}: what `thresher verify` found damaged
+        targets = [target_for_document(definition, store, d, live[d][1], None, step)
+                   for d, step in sorted(rerun["damaged"].items()) if d in live]
     else:
         doc_id = rerun["doc_id"]
         path = live[doc_id][1] if doc_id in live else doc_id

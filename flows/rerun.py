@@ -42,7 +42,9 @@ def _failed_units(definition: FlowDefinition, store: Store, doc_ids: list[str]) 
     """Per document, its failed units in the current view as (step index, row)."""
     out: dict[str, list[tuple[int, dict]]] = {}
     for i, step in enumerate(definition.steps):
-        t = store.current(step.name, step.spec.produces, doc_ids, columns=["doc_id", "locator", "page", "status", "reason"])
+        # A damaged part (see `thresher verify`) must not stop the re-run that repairs it.
+        t = store.current(step.name, step.spec.produces, doc_ids, columns=["doc_id", "locator", "page", "status", "reason"],
+                          tolerant=True)
         for row in t.to_pylist():
             if row["status"] == FAILED:
                 out.setdefault(row["doc_id"], []).append((i, row))

@@ -260,3 +260,15 @@ WRITES = pa.schema(
         pa.field("scope", pa.string(), nullable=False),
     ]
 )
+
+# Ledger of a compacted stage: which part holds each (run, document), and the whole-
+# document rewrites of the runs it covers (scope as in WRITES; part "" when the run
+# wrote the document whole but produced no unit for it).
+COMPACTED_LEDGER = pa.schema(
+    [
+        pa.field("run_id", pa.string(), nullable=False),
+        pa.field("doc_id", pa.string(), nullable=False),
+        pa.field("scope", pa.string(), nullable=False),
+        pa.field("part", pa.string(), nullable=False),
+    ]
+)

@@ -6,7 +6,12 @@ Layout under the store root:
   runs/<run_id>/manifest.json                written last: the run is committed
   runs/<run_id>/staged/...                   catalog and hand-off, published after commit
   catalog.parquet, handoff/chunks.parquet, handoff/changes/<run_id>.parquet
+  stages/<stage>/_compacted.json             which runs' rows a compaction rewrote, and where
+  stages/<stage>/_compacted/<gen>/...        those rows in few large files, sorted by document
   .lock                                      held by the one run writing to the store
+
+Every manifest records the size and SHA-256 of each file its run wrote (under the
+name the file is published at), so `thresher verify` can prove them intact.
 
 Readers only see runs whose manifest exists. Every file is written under a
 temporary name and renamed into place, so a killed run leaves no partial file that
@@ -15,6 +20,7 @@ a reader could take for output.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 from contextlib import contextmanager
@@ -38,6 +44,7 @@ import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
 from thresher.flows import schema
+from thresher.flows.faults import fault
 
 RUN_META_KEY = b"thresher.run_id"
 
@@ -47,7 +54,9 @@ RUN_META_KEY = b"thresher.run_id"
 _LEDGERS: dict[tuple[str, str, str], "Ledger"] = {}
 _LEDGER_FILES: dict[str, list[tuple[str, str]]] = {}
 _LEDGERS_LOCK = threading.Lock()
+_COMPACTED: dict[tuple[str, str, str], "CompactedLedger"] = {}
 COMPRESSION = "zstd"
+COMPACTED = "_compacted"
 
 
 class StoreError(RuntimeError):
@@ -77,6 +86,21 @@ class Ledger:
 
 
 @dataclass
+class CompactedLedger:
+    """A compacted stage: per document, (run_id, part file) pairs; whole-document rewrites."""
+    files: dict[str, list[tuple[str, str]]]
+    full: list[tuple[str, str]]  # (doc_id, run_id)
+
+
+class StoreDamaged(StoreError):
+    """A part file cannot be read; `path` names it."""
+
+    def __init__(self, path: str, reason: str):
+        super().__init__(f"cannot read {path}: {reason}; run `thresher verify` to see what it holds")
+        self.path = path
+
+
+@dataclass
 class RunInfo:
     run_id: str
     sequence: int
@@ -88,6 +112,7 @@ class Store:
         self.root = str(root)
         self.fs, self.base = _filesystem(self.root)
         self._runs_cache: list[RunInfo] | None = None
+        self._compaction_cache: dict[str, dict | None] = {}
 
     # ----------------------------------------------------------------- paths and files
 
@@ -182,6 +207,30 @@ class Store:
     def delete_dir(self, rel: str) -> None:
         if self.exists(rel):
             self.fs.delete_dir(self.path(rel))
+
+    def delete_file(self, rel: str) -> None:
+        try:
+            self.fs.delete_file(self.path(rel))
+        except FileNotFoundError:
+            pass
+
+    def file_record(self, rel: str) -> list:
+        """[size in bytes, SHA-256] of a stored file, as the manifest records it."""
+        h = hashlib.sha256()
+        size = 0
+        with self.fs.open_input_stream(self.path(rel)) as f:
+            while True:
+                block = f.read(1 << 20)
+                if not block:
+                    break
+                h.update(block)
+                size += len(block)
+        return [size, h.hexdigest()]
+
+    def files_under(self, rel: str) -> list[str]:
+        """Store-relative paths of the files below a folder (none if it is missing)."""
+        return sorted(i.path[len(self.base) + 1:] for i in self._list(rel, recursive=True)
+                      if i.type == pafs.FileType.File and not i.base_name.startswith(".tmp-"))
 
     # ----------------------------------------------------------------- the lock
 
@@ -281,6 +330,7 @@ class Store:
     def runs(self, refresh: bool = False) -> list[RunInfo]:
         """Committed runs, oldest first."""
         if self._runs_cache is None or refresh:
+            self._compaction_cache = {}
             out = []
             for info in self._list("runs"):
                 if info.type != pafs.FileType.Directory:
@@ -307,19 +357,38 @@ class Store:
         found = set()
         for top in ("runs",) + tuple(f"stages/{s.base_name}" for s in self._list("stages")):
             for info in self._list(top):
-                if info.type == pafs.FileType.Directory and info.base_name not in committed:
+                if (info.type == pafs.FileType.Directory and info.base_name not in committed
+                        and not info.base_name.startswith("_")):
                     found.add(f"{top}/{info.base_name}")
         return sorted(found)
 
     def sweep_uncommitted(self) -> list[str]:
         """Delete what killed runs left behind. Call only while holding the lock."""
         removed = self.uncommitted_run_dirs()
-        for rel in removed:
+        for n, rel in enumerate(removed):
+            if n:
+                fault("mid-sweep")
             self.delete_dir(rel)
         return removed
 
+    def run_files(self, run_id: str, publish: dict[str, str] | None = None) -> dict[str, list]:
+        """Size and checksum of every file a run wrote, by the name it is read under."""
+        rels = self.files_under(f"runs/{run_id}")
+        for info in self._list("stages"):
+            if info.type == pafs.FileType.Directory:
+                rels += self.files_under(f"stages/{info.base_name}/{run_id}")
+        out = {}
+        for rel in rels:
+            if rel == f"runs/{run_id}/manifest.json":
+                continue
+            inside = rel[len(f"runs/{run_id}/"):] if rel.startswith(f"runs/{run_id}/") else None
+            out[(publish or {}).get(inside, rel)] = self.file_record(rel)
+        return out
+
     def commit(self, run_id: str, manifest: dict[str, Any], before_publish=None) -> None:
         """Write the manifest (the commit point), then publish staged files."""
+        manifest = dict(manifest)
+        manifest["files"] = self.run_files(run_id, manifest.get("publish"))
         self.write_json(f"runs/{run_id}/manifest.json", manifest)
         self._runs_cache = None
         if before_publish is not None:
@@ -328,16 +397,96 @@ class Store:
 
     def publish(self, manifest: dict[str, Any]) -> None:
         run_id = manifest["run_id"]
+        moved = 0
         for staged, final in manifest.get("publish", {}).items():
             src = f"runs/{run_id}/{staged}"
             if self.exists(src):
+                if moved:
+                    fault("mid-publish")
                 self.move(src, final)
+                moved += 1
 
     def recover(self) -> None:
-        """Finish publishing the latest committed run if it was killed mid-way."""
+        """Finish what a killed writer left half done. Call only while holding the lock.
+
+        The latest committed run's publishing; a compaction's removal of the files it
+        replaced (or of its own files, if it never switched over).
+        """
         latest = self.latest_run()
         if latest is not None:
             self.publish(latest.manifest)
+        for info in self._list("stages"):
+            if info.type == pafs.FileType.Directory:
+                self.finish_compaction(info.base_name)
+
+    # ----------------------------------------------------------------- compaction records
+
+    def compaction_rel(self, stage: str) -> str:
+        return f"stages/{stage}/{COMPACTED}.json"
+
+    def compaction(self, stage: str) -> dict | None:
+        """The stage's compaction record: {"generation", "runs", "files"}, or None."""
+        if stage not in self._compaction_cache:
+            rel = self.compaction_rel(stage)
+            self._compaction_cache[stage] = self.read_json(rel) if self.exists(rel) else None
+        return self._compaction_cache[stage]
+
+    def retired_changes(self) -> set[str]:
+        """Runs whose change set retention removed (so verification does not miss it)."""
+        if not self.exists("retention.json"):
+            return set()
+        return set(self.read_json("retention.json").get("changes_retired", []))
+
+    def finish_compaction(self, stage: str, each=None) -> list[str]:
+        """Remove what the stage's compaction record replaced, and unused generations."""
+        rec = self.compaction(stage)
+        gen = rec["generation"] if rec else None
+        removed = []
+        for info in self._list(f"stages/{stage}/{COMPACTED}"):
+            if info.base_name != gen:
+                removed.append(f"stages/{stage}/{COMPACTED}/{info.base_name}")
+        for run_id in (rec["runs"] if rec else []):
+            for rel in (f"stages/{stage}/{run_id}", f"runs/{run_id}/writes/{stage}"):
+                if self.exists(rel):
+                    removed.append(rel)
+        for rel in removed:
+            if each is not None:
+                each(rel)
+            self.delete_dir(rel)
+        return removed
+
+    def _compacted_ledger(self, stage: str) -> CompactedLedger | None:
+        rec = self.compaction(stage)
+        if rec is None:
+            return None
+        key = (self.base, stage, rec["generation"])
+        with _LEDGERS_LOCK:
+            cached = _COMPACTED.get(key)
+        if cached is not None:
+            return cached
+        folder = f"stages/{stage}/{COMPACTED}/{rec['generation']}"
+        t = self.read_table(f"{folder}/ledger.parquet")
+        files: dict[str, list[tuple[str, str]]] = {}
+        full: list[tuple[str, str]] = []
+        for run_id, doc_id, scope, part in zip(*(t.column(c).to_pylist() for c in ("run_id", "doc_id", "scope", "part"))):
+            if part:
+                files.setdefault(doc_id, []).append((run_id, self.path(f"{folder}/{part}")))
+            if scope == "document":
+                full.append((doc_id, run_id))
+        ledger = CompactedLedger(files, full)
+        with _LEDGERS_LOCK:
+            _COMPACTED[key] = ledger
+        return ledger
+
+    def part_files(self, stage: str) -> int:
+        """How many part files a stage's rows are spread over now."""
+        covered = set((self.compaction(stage) or {}).get("runs", []))
+        n = 0
+        for info in self._list(f"stages/{stage}"):
+            if info.type == pafs.FileType.Directory and info.base_name not in covered:
+                n += sum(1 for f in self._list(f"stages/{stage}/{info.base_name}", recursive=True)
+                         if f.base_name.endswith(".parquet") and not f.base_name.startswith(".tmp-"))
+        return n
 
     def published(self, final_rel: str) -> str | None:
         """Where a published file (catalog, hand-off) can be read now.
@@ -366,6 +515,7 @@ class Store:
         """
         table = table.sort_by([("doc_id", "ascending"), ("unit_id", "ascending")])
         self.write_table(self.stage_part_rel(stage, run_id, part), table, run_id=run_id)
+        fault("part-before-ledger")
         rows = sorted(set(writes))
         ledger = pa.table(
             {"stage": [stage] * len(rows), "doc_id": [d for d, _ in rows], "scope": [s for _, s in rows]},
@@ -414,16 +564,35 @@ class Store:
                 _LEDGERS[key] = ledger
         return ledger
 
-    def _stage_files(self, stage: str, run_ids: Iterable[str], doc_ids: Iterable[str] | None = None) -> list[str]:
-        """Part files of a stage from these runs; with doc_ids, only files holding them."""
+    def _stage_files(self, stage: str, seq: dict[str, int], doc_ids: Iterable[str] | None = None,
+                     floors: dict[str, int] | None = None) -> list[str]:
+        """Part files of a stage from these runs; with doc_ids, only files holding them.
+
+        With `floors` (doc_id -> sequence of its latest whole-document rewrite), a file is
+        read for a document only if its run is not older than that rewrite: the current
+        view never needs older files, so one damaged old part does not block it.
+        """
         wanted = None if doc_ids is None else set(doc_ids)
+        floors = floors or {}
         files: list[str] = []
-        for run_id in sorted(run_ids):
+        compacted = self._compacted_ledger(stage)
+        covered = set((self.compaction(stage) or {}).get("runs", []))
+        if compacted is not None:
+            found = set()
+            pairs = (compacted.files.items() if wanted is None
+                     else ((d, compacted.files.get(d, ())) for d in wanted))
+            for d, entries in pairs:
+                floor = floors.get(d, 0)
+                found |= {f for run_id, f in entries if run_id in seq and seq[run_id] >= floor}
+            files.extend(sorted(found))
+        for run_id in sorted(seq):
+            if run_id in covered:
+                continue
             ledger = self._ledger(stage, run_id)
             if wanted is None:
                 found = {f for fs in ledger.files.values() for f in fs}
             else:
-                found = {f for d in wanted for f in ledger.files.get(d, ())}
+                found = {f for d in wanted if seq[run_id] >= floors.get(d, 0) for f in ledger.files.get(d, ())}
             files.extend(sorted(found))
         return files
 
@@ -431,40 +600,81 @@ class Store:
         """doc_id -> the committed runs whose part files of `stage` hold it, oldest first
         (read from the runs' small ledgers, not the stage tables)."""
         out: dict[str, list[str]] = {}
+        seq = {r.run_id: r.sequence for r in self.runs()}
+        covered = set((self.compaction(stage) or {}).get("runs", []))
+        compacted = self._compacted_ledger(stage)
+        if compacted is not None:
+            for doc_id, entries in compacted.files.items():
+                out[doc_id] = sorted({r for r, _ in entries if r in seq}, key=seq.get)
         for r in self.runs():
+            if r.run_id in covered:
+                continue
             for doc_id in self._ledger(stage, r.run_id).files:
                 out.setdefault(doc_id, []).append(r.run_id)
         return out
 
+    def _read(self, files: list[str], sch: pa.Schema, columns: list[str] | None,
+              flt: ds.Expression | None, tolerant: bool) -> pa.Table:
+        """Rows of these part files; a file that cannot be read raises StoreDamaged
+        naming it, or with `tolerant` is left out (attempt counts need no more)."""
+        try:
+            dataset = ds.dataset(files, schema=sch, format="parquet", filesystem=self.fs)
+            return dataset.to_table(columns=columns, filter=flt)
+        except (OSError, pa.ArrowException) as exc:
+            first_error = exc
+        parts = []
+        for f in files:
+            try:
+                parts.append(ds.dataset([f], schema=sch, format="parquet", filesystem=self.fs)
+                             .to_table(columns=columns, filter=flt))
+            except (OSError, pa.ArrowException) as exc:
+                if not tolerant:
+                    raise StoreDamaged(f[len(self.base) + 1:] if f.startswith(self.base) else f,
+                                       str(exc).splitlines()[0]) from None
+        if not parts and not tolerant:
+            raise first_error
+        empty = sch.empty_table() if columns is None else sch.empty_table().select(columns)
+        return pa.concat_tables(parts) if parts else empty
+
     def stage_rows(self, stage: str, unit: str, doc_ids: Iterable[str] | None = None,
                    columns: list[str] | None = None, include_run: str | None = None,
-                   extra_filter: ds.Expression | None = None) -> pa.Table:
+                   extra_filter: ds.Expression | None = None, floors: dict[str, int] | None = None,
+                   tolerant: bool = False) -> pa.Table:
         """All rows (every attempt) of a stage from committed runs (and `include_run`)."""
         seq = self._sequences(include_run)
         sch = schema.stage_schema(stage, unit)
         doc_ids = None if doc_ids is None else sorted(set(doc_ids))
-        files = self._stage_files(stage, seq, doc_ids)
+        files = self._stage_files(stage, seq, doc_ids, floors)
         if not files:
             return sch.empty_table() if columns is None else sch.empty_table().select(columns)
-        dataset = ds.dataset(files, schema=sch, format="parquet", filesystem=self.fs)
         flt = extra_filter
         if doc_ids is not None:
             doc_filter = ds.field("doc_id").isin(doc_ids)
             flt = doc_filter if flt is None else (flt & doc_filter)
-        return dataset.to_table(columns=columns, filter=flt)
+        return self._read(files, sch, columns, flt, tolerant)
 
     def _writes(self, stage: str, seq: dict[str, int]) -> pd.DataFrame:
         """Per run, the documents it rewrote whole at this stage."""
         docs: list[str] = []
         seqs: list[int] = []
+        covered = set((self.compaction(stage) or {}).get("runs", []))
+        compacted = self._compacted_ledger(stage)
+        if compacted is not None:
+            for doc_id, run_id in compacted.full:
+                if run_id in seq:
+                    docs.append(doc_id)
+                    seqs.append(seq[run_id])
         for run_id in seq:
+            if run_id in covered:
+                continue
             found = self._ledger(stage, run_id).full
             docs.extend(found)
             seqs.extend([seq[run_id]] * len(found))
         return pd.DataFrame({"doc_id": docs, "seq": seqs})
 
     def current(self, stage: str, unit: str, doc_ids: Iterable[str] | None = None,
-                columns: list[str] | None = None, include_run: str | None = None) -> pa.Table:
+                columns: list[str] | None = None, include_run: str | None = None,
+                tolerant: bool = False) -> pa.Table:
         """Per unit, the latest attempt from a committed run (optionally also `include_run`).
 
         A run that rewrote a whole document at this stage retires that document's
@@ -474,7 +684,12 @@ class Store:
         need = None
         if columns is not None:
             need = list(dict.fromkeys(columns + ["run_id", "doc_id", "unit_id", "attempt"]))
-        rows = self.stage_rows(stage, unit, doc_ids, need, include_run)
+        writes = self._writes(stage, seq)
+        full = writes.groupby("doc_id")["seq"].max() if len(writes) else None
+        floors = None
+        if full is not None and doc_ids is not None:
+            floors = {d: int(full[d]) for d in set(doc_ids) if d in full.index}
+        rows = self.stage_rows(stage, unit, doc_ids, need, include_run, floors=floors, tolerant=tolerant)
         if rows.num_rows == 0:
             return rows if columns is None else rows.select(columns)
         keys = pd.DataFrame({
@@ -484,9 +699,8 @@ class Store:
             "attempt": rows.column("attempt").to_pylist(),
         })
         keys["seq"] = keys["run"].map(seq)
-        writes = self._writes(stage, seq)
-        if len(writes):
-            full = writes.groupby("doc_id")["seq"].max()
+        keys = keys[keys["seq"].notna()]
+        if full is not None:
             floor = keys["doc_id"].map(full).fillna(0)
             keys = keys[keys["seq"] >= floor]
         keys = keys.sort_values(["unit_id", "seq", "attempt"])
@@ -495,7 +709,7 @@ class Store:
         return out if columns is None else out.select(columns)
 
     def max_attempts(self, stage: str, unit: str, doc_ids: Iterable[str]) -> dict[str, int]:
-        rows = self.stage_rows(stage, unit, doc_ids, ["unit_id", "attempt"])
+        rows = self.stage_rows(stage, unit, doc_ids, ["unit_id", "attempt"], tolerant=True)
         if rows.num_rows == 0:
             return {}
         df = rows.to_pandas()

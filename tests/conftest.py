@@ -28,3 +28,17 @@ def sample_drive(tmp_path: Path) -> Path:
     dst = tmp_path / "drive"
     shutil.copytree(SAMPLE, dst)
     return dst
+
+
+@pytest.fixture(scope="session")
+def harness_env(prefect_harness) -> dict:
+    """Environment for child `thresher` processes: the harness's one Prefect API (so no
+    child starts a server of its own) and the tests folder on the import path."""
+    import os
+
+    from prefect.settings import PREFECT_API_URL
+
+    env = dict(os.environ)
+    env["PREFECT_API_URL"] = PREFECT_API_URL.value()
+    env["PYTHONPATH"] = os.pathsep.join([str(REPO / "tests"), env.get("PYTHONPATH", "")])
+    return env

@@ -34,7 +34,7 @@ def test_misspelt_top_level_key_names_it_and_the_allowed_keys():
     msg = str(e.value)
     assert "flow.yaml: stroe: unknown key" in msg
     allowed = msg.split("allowed", 1)[1] if "allowed" in msg else msg
-    for key in ("name", "source", "store", "runner", "schedule", "deliver", "probes", "steps"):
+    for key in ("name", "source", "store", "runner", "schedule", "deliver", "probes", "housekeeping", "steps"):
         assert key in allowed, key
 
 

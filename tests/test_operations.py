@@ -133,37 +133,4 @@ def test_a_second_run_on_the_same_store_is_refused_while_the_first_works(harness
     assert not (store_dir / ".lock").exists()
 
 
-@pytest.mark.parametrize("point", pipeline.FAULT_POINTS)
-def test_a_run_killed_at_any_point_leaves_the_last_state_and_the_next_run_completes(
-        harness_api, sample_drive, tmp_path, point):
-    store_dir = tmp_path / "store"
-    _run(sample_drive, store_dir)
-    before = Store(store_dir)
-    first_run = before.latest_run().run_id
-    first_handoff = _content(before.handoff())
-
-    minutes = sample_drive / "board" / "2026-01-20-board-minutes.md"
-    minutes.write_text(minutes.read_text() + "\n\n## Late item\n\nThe treasurer reported that the new "
-                       "returns trolleys for Lindle Cross have been delivered and paid for.\n")
-    killed = subprocess.run([THRESHER, "run", "--source", str(sample_drive), "--store", str(store_dir), "--quiet"],
-                            env=_env(harness_api, THRESHER_FAULT=point), capture_output=True, text=True, timeout=300)
-    assert killed.returncode == 75, killed.stderr  # died where it was told to
-
-    # The store reads as its last committed state: before the kill's commit, the first run's.
-    seen = Store(store_dir)
-    status = subprocess.run([THRESHER, "status", "--store", str(store_dir), "--json"], capture_output=True, text=True)
-    assert status.returncode == 0, status.stderr
-    if point == "after-commit":
-        assert seen.latest_run().run_id != first_run
-        assert any("treasurer reported" in t for t in seen.handoff().column("text").to_pylist())
-    else:
-        assert seen.latest_run().run_id == first_run
-        assert _content(seen.handoff()) == first_handoff
-
-    finished = _run(sample_drive, store_dir)
-    clean_dir = tmp_path / "clean"
-    _run(sample_drive, clean_dir)
-    assert _content(Store(store_dir).handoff()) == _content(Store(clean_dir).handoff())
-    assert not Store(store_dir).uncommitted_run_dirs()
-    if point != "after-commit":
-        assert finished["documents"]["processed"] == 1
+# Runs killed at every write boundary: tests/test_faults.py.
