@@ -9,7 +9,7 @@ import importlib
 import sys
 
 BENCHES = ["orchestration", "incremental", "scale", "chunking", "extract", "dedup", "retrieval", "deliver",
-           "formats"]
+           "formats", "store_growth"]
 
 
 def main(argv: list[str]) -> int:

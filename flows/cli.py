@@ -239,11 +239,11 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
     """Run the flow, then print its manifest (--json) or the summary."""
     from thresher.flows import pipeline
     from thresher.flows.rerun import RerunError
-    from thresher.flows.store import StoreLocked
+    from thresher.flows.store import StoreError
 
     try:
         manifest = pipeline.run(definition, source, store_root, quiet=args.quiet, **options)
-    except (StoreLocked, RerunError) as exc:
+    except (StoreError, RerunError) as exc:
         raise UsageError(str(exc)) from None
     if args.json:
         print(json.dumps(manifest, indent=2, default=str))

@@ -9,6 +9,7 @@ it writes no rows for them, and the next step reads the stage before it.
 
 from __future__ import annotations
 
+import hashlib
 import time
 from collections import defaultdict
 from dataclasses import dataclass, field
@@ -240,6 +241,14 @@ class BatchRunner:
                 data = b"" if limit is not None and doc.size > limit else Path(doc.abs_path).read_bytes()
             except OSError as exc:  # moved, deleted or locked since the scan: this file only
                 failed = _failed_document_unit("pages", f"cannot read file: {exc.strerror or exc}", exc, [])
+                self._record(doc, steps[0], None, [failed], now_utc(), 0.0, rows, writes, result)
+                return
+            if data and hashlib.sha256(data).hexdigest() != doc.doc_id:
+                # Rewritten between the scan and this read: these bytes are not the
+                # document the catalog names; the next run scans the new version.
+                failed = _failed_document_unit("pages", "file changed while the run read it (its content hash "
+                                               "differs from the scan's); the next run reads the new version",
+                                               None, [])
                 self._record(doc, steps[0], None, [failed], now_utc(), 0.0, rows, writes, result)
                 return
             inputs: Any = Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime)

@@ -34,9 +34,9 @@ from thresher.flows.summary import stages_of
 
 # Rows per compacted part file, and per row group inside it. A row group is what a
 # one-document read skips by its doc_id statistics (common practice: row groups of a
-# few thousand rows for point lookups).
+# few hundred rows for point lookups: pages of text are large).
 ROWS_PER_PART = 200_000
-ROW_GROUP_ROWS = 2048
+ROW_GROUP_ROWS = 512
 # Documents read at a time while rewriting, so memory holds one group's rows.
 GROUP_DOCS = 500
 

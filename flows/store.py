@@ -30,7 +30,7 @@ import threading
 import time
 import uuid
 from collections.abc import Iterable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -83,6 +83,10 @@ def _filesystem(root: str) -> tuple[pafs.FileSystem, str]:
 class Ledger:
     files: dict[str, list[str]]  # doc_id -> part files holding its rows
     full: list[str]  # doc_ids the run rewrote whole at the stage
+    full_set: frozenset = frozenset()
+
+    def __post_init__(self):
+        self.full_set = frozenset(self.full)
 
 
 @dataclass
@@ -90,6 +94,11 @@ class CompactedLedger:
     """A compacted stage: per document, (run_id, part file) pairs; whole-document rewrites."""
     files: dict[str, list[tuple[str, str]]]
     full: list[tuple[str, str]]  # (doc_id, run_id)
+    full_by_doc: dict = field(default_factory=dict)  # doc_id -> run_ids
+
+    def __post_init__(self):
+        for d, r in self.full:
+            self.full_by_doc.setdefault(d, []).append(r)
 
 
 class StoreDamaged(StoreError):
@@ -296,11 +305,16 @@ class Store:
     def _create_lock(self, run_id: str) -> bool:
         data = json.dumps(self._lock_info(run_id))
         if self._is_local():
-            Path(self.base).mkdir(parents=True, exist_ok=True)
+            try:
+                Path(self.base).mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise StoreError(f"cannot write to store {self.root}: {exc.strerror or exc}") from None
             try:
                 fd = os.open(Path(self.base) / self.LOCK, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
             except FileExistsError:
                 return False
+            except OSError as exc:  # a read-only or full file system: say so, in one line
+                raise StoreError(f"cannot write to store {self.root}: {exc.strerror or exc}") from None
             with os.fdopen(fd, "w") as f:
                 f.write(data)
             return True
@@ -672,6 +686,25 @@ class Store:
             seqs.extend([seq[run_id]] * len(found))
         return pd.DataFrame({"doc_id": docs, "seq": seqs})
 
+    def _floors(self, stage: str, seq: dict[str, int], doc_ids: set[str]) -> dict[str, int]:
+        """Per document, the sequence of the latest run that rewrote it whole here."""
+        floors: dict[str, int] = {}
+        covered = set((self.compaction(stage) or {}).get("runs", []))
+        compacted = self._compacted_ledger(stage)
+        if compacted is not None:
+            for d in doc_ids:
+                for run_id in compacted.full_by_doc.get(d, ()):
+                    if run_id in seq and seq[run_id] > floors.get(d, 0):
+                        floors[d] = seq[run_id]
+        for run_id, s in seq.items():
+            if run_id in covered:
+                continue
+            full = self._ledger(stage, run_id).full_set
+            for d in (doc_ids & full if len(doc_ids) < len(full) else full & doc_ids):
+                if s > floors.get(d, 0):
+                    floors[d] = s
+        return floors
+
     def current(self, stage: str, unit: str, doc_ids: Iterable[str] | None = None,
                 columns: list[str] | None = None, include_run: str | None = None,
                 tolerant: bool = False) -> pa.Table:
@@ -684,11 +717,14 @@ class Store:
         need = None
         if columns is not None:
             need = list(dict.fromkeys(columns + ["run_id", "doc_id", "unit_id", "attempt"]))
-        writes = self._writes(stage, seq)
-        full = writes.groupby("doc_id")["seq"].max() if len(writes) else None
-        floors = None
-        if full is not None and doc_ids is not None:
-            floors = {d: int(full[d]) for d in set(doc_ids) if d in full.index}
+        if doc_ids is not None:
+            doc_ids = set(doc_ids)
+            floors = self._floors(stage, seq, doc_ids)
+            full = pd.Series(floors, dtype="int64") if floors else None
+        else:
+            writes = self._writes(stage, seq)
+            full = writes.groupby("doc_id")["seq"].max() if len(writes) else None
+            floors = None
         rows = self.stage_rows(stage, unit, doc_ids, need, include_run, floors=floors, tolerant=tolerant)
         if rows.num_rows == 0:
             return rows if columns is None else rows.select(columns)
@@ -717,12 +753,29 @@ class Store:
 
     # ----------------------------------------------------------------- catalog and hand-off
 
+    def read_published(self, final_rel: str) -> tuple[pa.Table, list] | None:
+        """A published file's table and its [size, SHA-256], read from one set of bytes.
+
+        A run may publish (move the staged copy into place) between finding the file
+        and opening it: then the runs are read again and the file looked up anew.
+        """
+        for attempt in range(3):
+            rel = self.published(final_rel)
+            if rel is None:
+                return None
+            try:
+                with self.fs.open_input_stream(self.path(rel)) as f:
+                    data = f.read()
+            except FileNotFoundError:
+                self.runs(refresh=True)
+                continue
+            return pq.read_table(pa.BufferReader(data)), [len(data), hashlib.sha256(data).hexdigest()]
+        raise StoreError(f"{final_rel} kept moving while it was read; try again")
+
     def catalog(self) -> pa.Table:
-        rel = self.published("catalog.parquet")
-        if rel is None:
-            return schema.CATALOG.empty_table()
-        return self.read_table(rel)
+        found = self.read_published("catalog.parquet")
+        return schema.CATALOG.empty_table() if found is None else found[0]
 
     def handoff(self) -> pa.Table | None:
-        rel = self.published("handoff/chunks.parquet")
-        return self.read_table(rel) if rel else None
+        found = self.read_published("handoff/chunks.parquet")
+        return None if found is None else found[0]
