@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+
 import yaml
 
 from thresher.flows.config import build_definition, default_config_text
@@ -42,6 +44,11 @@ def test_a_file_gone_since_the_scan_fails_alone_with_the_reason(tmp_path):
     assert result.failures == [("gone.txt", "extract", "cannot read file: No such file or directory")]
 
 
+def _sha(data: bytes) -> str:
+    """A document's id is the SHA-256 of its bytes (the runner checks it on reading)."""
+    return hashlib.sha256(data).hexdigest()
+
+
 def test_a_file_over_the_size_limit_is_not_read_at_all(tmp_path):
     # The path does not exist: had the runner tried to read it, the reason would say so.
     doc = DocJob("b" * 64, "huge.pdf", str(tmp_path / "huge.pdf"), 3_000_000, 0.0, 0, False)
@@ -58,7 +65,7 @@ def test_a_step_that_raises_fails_that_document_with_its_traceback(tmp_path):
     broken = type(step.spec)(**{**step.spec.__dict__, "run": lambda pages, params, ctx: 1 / 0})
     object.__setattr__(step, "spec", broken)
     store = Store(tmp_path / "store")
-    doc = DocJob("c" * 64, "ok.md", str(tmp_path / "ok.md"), 40, 0.0, 0, False)
+    doc = DocJob(_sha((tmp_path / "ok.md").read_bytes()), "ok.md", str(tmp_path / "ok.md"), 40, 0.0, 0, False)
     BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, _segment(definition), "b0", [doc]))
     rows = store.current("mask_emails", "pages", include_run="r1").to_pylist()
     assert len(rows) == 1 and rows[0]["locator"] == "document"
@@ -82,7 +89,7 @@ def test_a_hung_parser_is_stopped_at_the_time_limit_and_the_batch_goes_on(tmp_pa
     docs = []
     for i, (name, text) in enumerate(files.items()):
         (tmp_path / name).write_text(text)
-        docs.append(DocJob(str(i) * 64, name, str(tmp_path / name), len(text), 0.0, 0, False))
+        docs.append(DocJob(_sha(text.encode()), name, str(tmp_path / name), len(text), 0.0, 0, False))
     store = Store(tmp_path / "store")
     definition = _guarded_definition(1.5)
     BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, _segment(definition), "b0", docs))
