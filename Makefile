@@ -20,7 +20,7 @@ DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
                         unicode-data manpages manpages-de manpages-fr manpages-es \
                         tesseract-ocr tesseract-ocr-eng libreoffice-writer-nogui \
                         libreoffice-calc-nogui libreoffice-impress-nogui \
-                        python-odf-doc debian-policy developers-reference \
+                        python-odf-doc debian-policy developers-reference fonts-dejavu-core \
                         chromium postgresql zlib1g-dev debian-faq
 
 # Manuals Debian ships as both PDF and HTML: the retrieval benchmark (bench/retrieval.py)

@@ -65,7 +65,8 @@ def document_rows(live: dict[str, tuple[int, str]], by_doc: dict[str, Counter], 
         chunks, tokens = handoff_docs.get(d, (0, 0))
         rows.append({"document": path, "pages": pages[d], "chunks": chunks, "tokens": tokens,
                      "failed units": c["failed"], "dropped units": c["dropped"],
-                     "status": "failed" if c["failed"] else ("ok" if chunks else "no chunks")})
+                     "status": "failed" if c["failed"] else ("ok" if chunks else
+                                                             "skipped" if c["skipped"] else "no chunks")})
     return rows
 
 

@@ -87,6 +87,11 @@ class Outcome:
         self.status = DROPPED
         self.reason = reason
 
+    def skip(self, reason: str) -> None:
+        """Not read on purpose (not a document): counted apart from failures."""
+        self.status = SKIPPED
+        self.reason = reason
+
     @property
     def ok(self) -> bool:
         return self.status == OK

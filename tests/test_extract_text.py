@@ -133,7 +133,8 @@ def test_control_heavy_bytes_without_nul_are_not_text():
 
 def test_known_binary_signatures_name_the_format():
     png = b"\x89PNG\r\n\x1a\n" + b"\x00\x00\x00\rIHDR" + bytes(40)
-    assert one(png, "scan.txt").reason == "not text: PNG image (binary content)"
+    assert one(b"\x7fELF" + bytes(60), "tool.txt").reason == "not a document: executable (.txt); add 'executable' to extract's read_kinds to read such files"
+    assert one(b"PAR1" + bytes(40), "table.txt").reason == "not text: Parquet file (binary content)"
     assert one(b"\x1f\x8b\x08\x00" + bytes(30), "notes.txt").reason == "not text: gzip archive (binary content)"
 
 
@@ -186,7 +187,7 @@ def test_legacy_office_kinds_and_encrypted_office_files():
     assert sniff(ole + "Workbook".encode("utf-16-le"), "budget.xls").format == "xls"
     deck = sniff(ole + "PowerPoint Document".encode("utf-16-le"), "talk.doc")
     assert deck.format == "ppt" and deck.warnings == ["content is ppt although the file is named .doc"]
-    assert one(ole + b"nothing we know", "thing.bin").reason == (
+    assert one(ole + b"nothing we know", "thing.dat").reason == (
         "unsupported format: OLE2 compound file that is not a Word, Excel or PowerPoint document"
     )
     assert one(ole + b"nothing we know", "minutes.doc").reason == (

@@ -114,7 +114,6 @@ def _extract_rows(store: Store, path: str) -> list[dict]:
     ("events/spring-reading-programme-2026.pdf", "unreadable PDF"),
     ("hr/salary-review-2026-protected.pdf", "password protected"),
     ("it/scanner-log.txt", "empty file (0 bytes)"),
-    ("it/label-printer-logo.txt", "not text"),
     ("finance/2026-01-14-receipt-stationery-scan.pdf", "no text layer"),
 ])
 def test_broken_files_fail_with_specific_reasons_and_the_run_completes(first_run, path, reason):
@@ -123,6 +122,11 @@ def test_broken_files_fail_with_specific_reasons_and_the_run_completes(first_run
     assert all(r["status"] == "failed" for r in rows)
     assert any(reason in (r["reason"] or "") for r in rows), [r["reason"] for r in rows]
     assert first_run["manifest"]["chunks"] > 0  # the rest of the drive got through
+
+
+def test_an_image_without_ocr_is_skipped_not_failed(first_run):
+    (row,) = _extract_rows(first_run["store"], "it/label-printer-logo.txt")
+    assert row["status"] == "skipped" and row["reason"].startswith("image: OCR is not enabled")
 
 
 def test_the_archived_copy_is_one_document_at_two_paths(first_run):

@@ -47,6 +47,15 @@ class DocumentFailure(Exception):
         self.cause = cause
 
 
+class DocumentSkipped(Exception):
+    """A reader's signal that the file is not a document to read (an image without
+    OCR): the unit is `skipped` with the reason, not `failed`."""
+
+    def __init__(self, reason: str):
+        super().__init__(reason)
+        self.reason = reason
+
+
 @dataclass
 class PagePart:
     """One page as a reader produced it (or the reason it could not)."""

@@ -28,6 +28,7 @@ READERS: dict[str, tuple[str, str, str]] = {
     "odt": ("odt", "read_odt", "odt"),
     "epub": ("epub", "read_epub", "epub"),
     "rtf": ("rtf", "read_rtf", "rtf"),
+    "image": ("image", "read_image", "ocr"),
 }
 
 # Formats that LibreOffice converts first (office_convert.py), and the format whose

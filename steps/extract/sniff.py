@@ -4,7 +4,8 @@ The extension only breaks ties (HTML fragment vs text, Markdown vs text) and is
 reported in a warning when the content says otherwise. Order of the checks:
 
 1. Signatures: PDF, zip containers (a .docx is a zip with word/document.xml), OLE2
-   (legacy Office, or an encrypted Office file), RTF, and common binary formats.
+   (legacy Office, or an encrypted Office file), RTF, images (PNG, JPEG, GIF, TIFF,
+   BMP, WebP), and common binary formats.
 2. Binary test on the first 64 KiB: any NUL byte (outside UTF-16/32 text), or more
    than 5 % control bytes, means "not text". Git and grep use the NUL test on the
    first 8000 bytes (common practice); the 5 % control share is our rule of thumb.
@@ -55,13 +56,10 @@ EXTENSION_FORMATS = {
 }
 
 # Signatures of binary formats we do not read; the name goes into the reason.
+_IMAGE_SIGNATURES = (
+    b"\x89PNG\r\n\x1a\n", b"\xff\xd8\xff", b"GIF87a", b"GIF89a", b"II*\x00", b"MM\x00*",
+)
 _BINARY_SIGNATURES = (
-    (b"\x89PNG\r\n\x1a\n", "PNG image"),
-    (b"\xff\xd8\xff", "JPEG image"),
-    (b"GIF87a", "GIF image"),
-    (b"GIF89a", "GIF image"),
-    (b"II*\x00", "TIFF image"),
-    (b"MM\x00*", "TIFF image"),
     (b"\x1f\x8b", "gzip archive"),
     (b"BZh", "bzip2 archive"),
     (b"\xfd7zXZ\x00", "xz archive"),
@@ -447,6 +445,17 @@ def _legacy_encrypted(data: bytes, kind: str) -> bool:
     return False
 
 
+def _webp_or_bmp(data: bytes) -> bool:
+    if data[:4] == b"RIFF" and data[8:12] == b"WEBP":
+        return True
+    # BMP: "BM", then the file size and the pixel offset (little-endian) that fit it.
+    if data[:2] == b"BM" and len(data) >= 26:
+        size = int.from_bytes(data[2:6], "little")
+        offset = int.from_bytes(data[10:14], "little")
+        return size == len(data) and 26 <= offset < size
+    return False
+
+
 def sniff(data: bytes, source_path: str) -> Sniffed:
     ext = extension(source_path)
     head = data[:1024]
@@ -459,6 +468,8 @@ def sniff(data: bytes, source_path: str) -> Sniffed:
         return _with_extension_note(_ole_kind(data, ext), ext)
     if data.startswith(b"{\\rtf"):
         return _with_extension_note(Sniffed(format="rtf"), ext)
+    if data.startswith(_IMAGE_SIGNATURES) or _webp_or_bmp(data):
+        return Sniffed(format="image")
     for magic, kind in _BINARY_SIGNATURES:
         if data.startswith(magic):
             return Sniffed(reason=f"not text: {kind} (binary content)")

@@ -15,13 +15,16 @@ from __future__ import annotations
 from datetime import datetime, timezone
 from typing import Any
 
-from pydantic import Field
+from pydantic import Field, field_validator
 
 from ..spec import StepContext, StepParams, StepSpec
 from ..units import BLOCK_SEP, DOCUMENT_LOCATOR, TABLE, Block, Page, Source, page_locator
-from .blocks import DocumentFailure, ReaderInput, file_stem, first_heading
+from .blocks import DocumentFailure, DocumentSkipped, ReaderInput, file_stem, first_heading
+from .nondocs import KINDS as NONDOC_KINDS
+from .nondocs import kind_of as nondoc_kind
+from .nondocs import reason as nondoc_reason
 from .registry import CONVERTED, METHODS, reader_for
-from .sniff import sniff, unprintable_count
+from .sniff import extension, sniff, unprintable_count
 
 # Bytes in a megabyte for the file-size guard (SI megabyte, as file managers show it).
 MB = 1_000_000
@@ -70,6 +73,19 @@ class ExtractParams(StepParams):
         description="Tesseract language(s), joined by '+' (e.g. eng+deu)",
     )
     ocr_dpi: int = Field(300, ge=72, le=600, description="resolution pages are rendered at for OCR")
+    read_kinds: list[str] = Field(
+        default_factory=list,
+        description=("kinds of non-documents to read anyway, as text (skipped by default): "
+                     + ", ".join(NONDOC_KINDS)),
+    )
+    @field_validator("read_kinds")
+    @classmethod
+    def _known_kinds(cls, kinds: list[str]) -> list[str]:
+        unknown = [k for k in kinds if k not in NONDOC_KINDS]
+        if unknown:
+            raise ValueError(f"unknown kind(s) {unknown}; known: {', '.join(NONDOC_KINDS)}")
+        return kinds
+
     slide_notes: bool = Field(
         True, description="read a slide's speaker notes (after the slide, under a heading 'Notes')",
     )
@@ -129,6 +145,13 @@ def failed_document(
     return [page]
 
 
+def skipped_document(source: Source, reason: str, fmt: str = "") -> list[Page]:
+    """The single unit that stands for a file that is not a document to read."""
+    page = failed_document(source, reason, fmt=fmt)[0]
+    page.skip(reason)
+    return [page]
+
+
 def _mb(value: float) -> str:
     return f"{value:.1f}" if value >= 0.1 else f"{value:.2g}"
 
@@ -148,6 +171,12 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
     if len(data) == 0:
         return failed_document(source, "empty file (0 bytes)")
 
+    name = source.source_path.replace("\\", "/").rsplit("/", 1)[-1]
+    ext = extension(source.source_path)
+    kind = nondoc_kind(name, ext, data[:4096])
+    if kind and kind not in params.read_kinds:
+        return skipped_document(source, nondoc_reason(kind, ext))
+
     found = sniff(data, source.source_path)
     if found.reason:
         return failed_document(source, found.reason, fmt=found.format)
@@ -165,6 +194,8 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
         result = reader_for(fmt)(ReaderInput(read_data, found.text, found.encoding, params, source.source_path))
         if method_prefix:
             result.format, result.method = found.format, method_prefix + result.method
+    except DocumentSkipped as skipped:
+        return skipped_document(source, skipped.reason, fmt=found.format)
     except DocumentFailure as failure:
         return failed_document(source, failure.reason, failure.cause, fmt=found.format)
     except Exception as exc:  # a parser bug or a file it chokes on: this file only
