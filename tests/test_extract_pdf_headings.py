@@ -102,3 +102,11 @@ def test_a_section_heading_at_the_top_of_a_page_stays():
     _, pages = _pages("/usr/share/doc/debian/FAQ/debian-faq.en.pdf.gz")
     heads = [b.text for p in pages if p.page == 17 for b in p.blocks if b.kind == HEADING]
     assert any("You are talking about testing being broken" in h for h in heads)
+
+
+def test_tex_left_quote_is_a_quote_not_an_accent():
+    # debian-faq's PDF maps TeX's ` to U+0300 (a combining grave) in its text layer.
+    _, pages = _pages("/usr/share/doc/debian/FAQ/debian-faq.en.pdf.gz")
+    text = "\n".join(p.text for p in pages)
+    assert "\u0300" not in text
+    assert "the \u2018stable\u2019 distribution" in text

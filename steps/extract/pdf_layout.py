@@ -68,6 +68,10 @@ _PAGE_NUMBER = re.compile(
     r"^\W*(?:(?:page|p\.|seite|pagina|página)\s*)?(?:\d+|[ivxlcdm]+)(?:\s*(?:of|/|von|de|sur)\s*\d+)?\W*$",
     re.IGNORECASE,
 )
+# TeX's left quote glyph in some fonts maps to U+0300 (a combining grave accent) in the
+# text layer, so "`stable'" reads as U+0300 + "stable’". At a word's start, where no
+# letter can carry the accent, it is the quote (seen in debian-faq's PDF).
+_TEX_GRAVE = re.compile(r"(?:^|(?<=[\s(\[\u201c\u2018\"]))\u0300")
 _WORDS = re.compile(r"[^\W\d_]+(?:-[^\W\d_]+)*")
 
 
@@ -123,7 +127,7 @@ def line_from(words: list[Word]) -> Line:
         prev = w
     size = max(sizes.items(), key=lambda kv: kv[1])[0] if sizes else 0.0
     return Line(
-        text="".join(parts).strip(),
+        text=_TEX_GRAVE.sub("\u2018", "".join(parts).strip()),
         top=top,
         bottom=bottom,
         x0=words[0].x0,
