@@ -25,8 +25,10 @@ from thresher.steps.units import (
 
 CTX = StepContext(doc_id="d1", source_path="handbook.pdf", encoding=get_encoding)
 ENC = get_encoding("cl100k_base")
-# Small sections merge by default; tests of the section structure itself turn it off.
+# Small sections merge by default; tests of merging say so, tests of the section
+# structure itself turn it off.
 NOMERGE = {"merge_below_tokens": 0}
+MERGE = {"merge_below_tokens": 100}
 
 
 def count(text):
@@ -427,15 +429,15 @@ def test_small_sibling_sections_merge_under_their_parent():
     pages = [page(1, H("Guide", 1), P("About the guide."),
                   H("Loans", 2), P("How loans work."),
                   H("Fees", 2), P("No fees for members."))]
-    [chunk] = split(pages, SplitParams(), CTX)
+    [chunk] = split(pages, SplitParams(**MERGE), CTX)
     assert chunk.text == pages[0].text
     assert chunk.heading_path == ["Guide"]
     assert chunk.payload["merged_sections"] == 3
-    check_invariants(pages, [chunk], SplitParams())
+    check_invariants(pages, [chunk], SplitParams(**MERGE))
 
 
 def test_merging_stays_under_the_first_sections_parent():
-    params = SplitParams(max_tokens=120)
+    params = SplitParams(max_tokens=120, **MERGE)
     pages = [page(1, H("Loans", 1), P(sentences(20)),            # too long: never merges
                   H("Renewals", 2), P("Renew twice online."),
                   H("Reservations", 2), P("Reserve up to five books."),
@@ -452,7 +454,7 @@ def test_merging_stays_under_the_first_sections_parent():
 
 def test_a_subsection_does_not_merge_with_its_aunt():
     # Renewals sits under Loans; Fees is Loans' sibling, not Renewals'.
-    params = SplitParams(max_tokens=120)
+    params = SplitParams(max_tokens=120, **MERGE)
     pages = [page(1, H("Loans", 1), P(sentences(20)), H("Renewals", 2), P("Renew twice."),
                   H("Fees", 1), P("None."))]
     chunks = split(pages, params, CTX)
@@ -579,3 +581,17 @@ def test_invariants_hold_in_a_byte_encoding(page_blocks, max_tokens, overlap, me
     chunks = split(pages, params, BYTES_CTX)
     assert all(c.ok and len(c.text.encode("utf-8")) <= max_tokens for c in chunks)
     check_invariants(pages, chunks, params, enc=BYTES)
+
+
+def test_a_sentence_ending_in_a_colon_stays_with_what_it_introduces():
+    # Common practice: "To renew a loan, do this:" introduces the steps; a chunk that
+    # would end on it gives it to the next chunk. The budget is chosen so that greedy
+    # packing would cut right after the colon.
+    lead = sentences(6)
+    intro = "To renew a loan at the Quillfern desk, do this:"
+    steps = "- Bring the book.\n- Show your card.\n- Sign the slip."
+    pages = [page(1, H("Loans", 1), P(lead), P(intro), P(steps))]
+    budget = count("Loans\n\n" + lead + "\n\n" + intro) + 1
+    assert count("Loans\n\n" + lead + "\n\n" + intro + "\n\n" + steps) > budget
+    chunks = split(pages, SplitParams(max_tokens=budget, **NOMERGE), CTX)
+    assert [c.text for c in chunks] == ["Loans\n\n" + lead, intro + "\n\n" + steps]
