@@ -28,6 +28,9 @@ DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
 BENCH_PACKAGES := debian-faq developers-reference debian-policy
 # The FAQ's PDF (contents and index pages against its outline) is also a test reference.
 DEBIAN_TEST_PACKAGES += debian-faq
+# Reference cards in many scripts (one with a mis-mapped text layer) and Tesseract's
+# Hindi data to read that card's page: tests/test_extract_text_layer.py.
+DEBIAN_TEST_PACKAGES += debian-refcard tesseract-ocr-hin
 
 # Optional OCR of scanned PDF pages (extract: ocr: true): Tesseract and its English data.
 OCR_PACKAGES := tesseract-ocr tesseract-ocr-eng

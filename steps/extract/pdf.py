@@ -106,7 +106,7 @@ from .pdf_layout import (
     make_lines,
     order_columns,
 )
-from . import pdf_navigation
+from . import pdf_navigation, text_layer
 from .pdf_grid import find_tables
 from .pdf_tables import FoundTable, inside, tables_on
 from .pdf_text import LOCK, PageText, Word
@@ -155,7 +155,8 @@ class PageScan:
     removed: list[dict] = field(default_factory=list)
     failure: str = ""
     error: BaseException | None = None
-    no_text: str = ""  # "scan" or "glyphs": a page for OCR
+    no_text: str = ""  # "scan", "glyphs" or "layer": a page for OCR
+    layer_reason: str = ""  # why the text layer of a "layer" page is unreadable
     columns: int = 1
     gutters: list[tuple[float, float]] = field(default_factory=list)
     method: str = "text-layer"
@@ -364,6 +365,21 @@ def _pdfminer_pages(data: bytes, pdfium_error: str, params: ExtractParams,
 # --- OCR ---------------------------------------------------------------------
 
 
+def _why_no_text(scan: PageScan) -> str:
+    return _NO_TEXT.get(scan.no_text) or scan.layer_reason
+
+
+def judge_text_layers(scans: list[PageScan]) -> None:
+    """Pages whose text layer reads as the wrong characters become pages for OCR
+    (text_layer.unreadable), their lines dropped."""
+    for scan in scans:
+        if scan.failure or scan.no_text or not scan.lines:
+            continue
+        reason = text_layer.unreadable("\n".join(ln.text for ln in scan.lines))
+        if reason:
+            scan.no_text, scan.layer_reason, scan.lines = "layer", reason, []
+
+
 def _ocr_pages(doc, scans: list[PageScan], params: ExtractParams) -> None:
     """Read the pages without a text layer with Tesseract, or say why they stay unread."""
     wanted = [s for s in scans if s.no_text]
@@ -371,7 +387,7 @@ def _ocr_pages(doc, scans: list[PageScan], params: ExtractParams) -> None:
         return
     if not params.ocr:
         for scan in wanted:
-            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR is not enabled"
+            scan.failure = f"{_why_no_text(scan)}; OCR is not enabled"
         return
     from . import pdf_ocr
 
@@ -379,7 +395,7 @@ def _ocr_pages(doc, scans: list[PageScan], params: ExtractParams) -> None:
     if missing or doc is None:
         why = missing or "the page cannot be rendered (PDFium could not open the file)"
         for scan in wanted:
-            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR is not available: {why}"
+            scan.failure = f"{_why_no_text(scan)}; OCR is not available: {why}"
         return
     for scan in wanted:
         try:
@@ -395,14 +411,16 @@ def _ocr_pages(doc, scans: list[PageScan], params: ExtractParams) -> None:
                     page.close()
             result = pdf_ocr.read_image(image, params.ocr_language, params.time_limit_seconds)
         except Exception as exc:
-            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR failed: {type(exc).__name__}: {exc}"
+            scan.failure = f"{_why_no_text(scan)}; OCR failed: {type(exc).__name__}: {exc}"
             scan.error = exc
             continue
         if not result.paragraphs:
-            scan.failure = f"{_NO_TEXT[scan.no_text]}; OCR found no text"
+            scan.failure = f"{_why_no_text(scan)}; OCR found no text"
             continue
         scan.method = "ocr"
         scan.ocr_blocks = [b for b in (paragraph_block(p) for p in result.paragraphs) if b]
+        if scan.layer_reason:
+            scan.warnings.append(f"read by OCR instead of its text layer: {scan.layer_reason}")
         scan.warnings.append(
             f"text from OCR (Tesseract {result.version}, language {params.ocr_language}, "
             f"{params.ocr_dpi} dpi): {result.words} words, mean word confidence "
@@ -764,6 +782,7 @@ def read_pdf(inp: ReaderInput) -> ReadResult:
         else:
             scans = _pdfminer_pages(data, pdfium_error, params, warnings)
             count = len(scans)
+        judge_text_layers(scans)
         _ocr_pages(doc, scans, params)
     finally:
         if doc is not None:
