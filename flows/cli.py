@@ -271,7 +271,9 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
         f"{m.get('kind', 'run')} {m['run_id']} finished in {m['seconds']:.1f} s",
         (f"  documents  re-ran {d['processed']} of {d['distinct']} live documents"
          if m.get("kind") == "rerun" else
-         f"  documents  {d['files']} files, {d['distinct']} distinct; {d['processed']} processed, "
+         f"  documents  {d['files']} files, {d['distinct']} distinct"
+         + (f" ({d['inside']} inside other documents)" if d.get("inside") else "")
+         + f"; {d['processed']} processed, "
          f"{d['unchanged']} unchanged, {d['removed']} removed"),
         f"  hand-off   {m['chunks']} chunks, {m['tokens']:,} tokens "
         f"({m['changes']['upsert']} to upsert, {m['changes']['delete']} to delete)",
@@ -436,6 +438,16 @@ def cmd_trail(args: argparse.Namespace) -> int:
         print(f"  {r['size']:,} bytes, first seen in run {r['first_run']}, last seen in run {r['last_run']}")
         if len(present) > 1:
             print(f"  the same bytes sit at {len(present)} paths; {r['canonical_path']} stands for all of them")
+        catalog = store.catalog().to_pylist()
+        for c in present:
+            if c.get("container_doc_id"):
+                holder = next((x["canonical_path"] for x in catalog if x["doc_id"] == c["container_doc_id"]
+                               and x["present"]), c["container_doc_id"])
+                print(f"  inside {holder} (doc_id {c['container_doc_id'][:12]}) as {c['member_name']}")
+        inside = sorted(x["source_path"] for x in catalog if x.get("container_doc_id") == doc_id and x["present"])
+        if inside:
+            print(f"  holds {len(inside)} document(s): {', '.join(inside[:10])}"
+                  + (f" and {len(inside) - 10} more" if len(inside) > 10 else ""))
     else:
         print("  removed from the source folder (no present path)")
     limited = {s["name"]: s.get("formats") or [] for s in store.latest_run().manifest["definition"]["steps"]}

@@ -41,6 +41,24 @@ class DocJob:
     # A re-run of chosen units: the first step keeps only these locators of its output
     # and the rest of that stage stays as stored (None: the whole document).
     only: list[str] | None = None
+    # A document inside a document: `abs_path` is the drive file that holds it and
+    # `member_of` the member names from there down to it; `data` its bytes when the
+    # container was just read in this batch (else they are unpacked again from abs_path).
+    member_of: tuple[str, ...] = ()
+    data: bytes | None = None
+
+
+@dataclass
+class MemberInfo:
+    """A document found inside another one during extraction, for the catalog."""
+
+    source_path: str
+    doc_id: str
+    size: int
+    mtime: float
+    container_doc_id: str
+    member_name: str
+    processed: bool  # read in this run (False: the store holds it with this chain already)
 
 
 @dataclass
@@ -50,6 +68,7 @@ class BatchJob:
     segment: list[int]  # step indices, consecutive document-scope steps
     part: str
     docs: list[DocJob]
+    force: bool = False  # read documents found inside containers even if the store has them
 
 
 @dataclass
@@ -60,6 +79,7 @@ class BatchResult:
     step_seconds: float = 0.0
     seconds: float = 0.0
     failures: list[tuple[str, str, str]] = field(default_factory=list)  # path, stage, reason
+    members: list[MemberInfo] = field(default_factory=list)
 
 
 @dataclass
@@ -183,6 +203,9 @@ class BatchRunner:
         self.run_id = run_id
         self._caller: IsolatedCaller | None = None
         self._attempts: dict[str, dict[str, int]] = {}  # stage -> unit_id -> highest stored attempt
+        self._catalog: dict[str, set[str]] | None = None  # doc_id -> chain digests it was processed with
+        self._members_seen: set[str] = set()
+        self._force = False
 
     def _caller_for(self, step: ResolvedStep) -> IsolatedCaller | None:
         if step.spec.time_limit is None or step.spec.time_limit(step.params) is None:
@@ -196,6 +219,7 @@ class BatchRunner:
     def run(self, job: BatchJob) -> BatchResult:
         t0 = time.perf_counter()
         result = BatchResult(part=job.part, documents=len(job.docs))
+        self._force = job.force
         rows: dict[str, list[dict[str, Any]]] = defaultdict(list)
         writes: dict[str, list[tuple[str, str]]] = defaultdict(list)
         # Documents that start past the first step read their input from the store.
@@ -238,7 +262,14 @@ class BatchRunner:
             spec, params = steps[0].spec, steps[0].params
             limit = spec.source_limit(params) if spec.source_limit else None
             try:
-                data = b"" if limit is not None and doc.size > limit else Path(doc.abs_path).read_bytes()
+                if limit is not None and doc.size > limit:
+                    data = b""
+                elif doc.data is not None:
+                    data = doc.data
+                elif doc.member_of:
+                    data = self._member_bytes(doc)
+                else:
+                    data = Path(doc.abs_path).read_bytes()
             except OSError as exc:  # moved, deleted or locked since the scan: this file only
                 failed = _failed_document_unit("pages", f"cannot read file: {exc.strerror or exc}", exc, [])
                 self._record(doc, steps[0], None, [failed], now_utc(), 0.0, rows, writes, result)
@@ -251,7 +282,7 @@ class BatchRunner:
                                                None, [])
                 self._record(doc, steps[0], None, [failed], now_utc(), 0.0, rows, writes, result)
                 return
-            inputs: Any = Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime)
+            inputs: Any = Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime, len(doc.member_of))
             prev = None
         else:
             if stored is None or not stored.units:
@@ -278,6 +309,8 @@ class BatchRunner:
             if doc.only is not None and i == indices[0]:
                 out, scope = self._keep_chosen(doc, out), "units"
             self._record(doc, step, prev, out, started, ms, rows, writes, result, scope)
+            if i == 0:
+                self._run_members(doc, out, indices, rows, writes, result)
             if scope == "units":
                 inputs = self._merged_with_stored(doc, i, out)
             else:
@@ -285,6 +318,62 @@ class BatchRunner:
             if not inputs:
                 return
             prev = step.name
+
+    def _run_members(self, container: DocJob, out: list[Unit], indices: list[int],
+                     rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
+                     result: BatchResult) -> None:
+        """Documents that extraction found inside `container` go through the same steps
+        now, as documents of their own (doc_id from their bytes), unless the store holds
+        them with this chain already or this batch has read them."""
+        found = [m for u in out if isinstance(u, Page) for m in u.members]
+        for u in out:
+            if isinstance(u, Page):
+                u.members = []  # bytes are not kept beyond this point
+        for m in found:
+            doc_id = hashlib.sha256(m.data).hexdigest()
+            done = self._processed_with().get(doc_id, set())
+            process = (self._force or self.definition.chain_digest not in done) and doc_id not in self._members_seen
+            mtime = m.mtime if m.mtime is not None else container.mtime
+            info = MemberInfo(f"{container.source_path}/{m.name}", doc_id, len(m.data), mtime,
+                              container.doc_id, m.name, process)
+            result.members.append(info)
+            if not process:
+                continue
+            self._members_seen.add(doc_id)
+            job = DocJob(doc_id, info.source_path, container.abs_path, info.size, mtime, 0, bool(done),
+                         member_of=container.member_of + (m.name,), data=m.data)
+            if job.known:
+                for i in indices:
+                    step = self.definition.steps[i]
+                    self._attempts.setdefault(step.name, {}).update(
+                        self.store.max_attempts(step.name, unit_kind(step), [doc_id]))
+            self._run_document(job, indices, None, rows, writes, result)
+
+    def _processed_with(self) -> dict[str, set[str]]:
+        """The store's catalog as doc_id -> chain digests, read once per batch and only
+        when a container is met."""
+        if self._catalog is None:
+            cat = self.store.catalog()
+            self._catalog = {}
+            for d, c in zip(cat.column("doc_id").to_pylist(), cat.column("chain_digest").to_pylist()):
+                self._catalog.setdefault(d, set()).add(c or "")
+        return self._catalog
+
+    def _member_bytes(self, doc: DocJob) -> bytes:
+        """A member's bytes, unpacked again from the drive file that holds it by running
+        extraction on each container in turn (in this process: unpacking is guarded by
+        the step's own size and count limits)."""
+        step = self.definition.steps[0]
+        names = doc.member_of
+        path = doc.source_path[: len(doc.source_path) - len("/".join(names)) - 1]
+        data = Path(doc.abs_path).read_bytes()
+        for depth, name in enumerate(names):
+            pages = step.spec.run(Source("", path, data, len(data), 0.0, depth), step.params, StepContext())
+            inside = {m.name: m.data for p in pages for m in p.members}
+            if name not in inside:
+                raise FileNotFoundError(f"{name} is no longer inside {path}")
+            data, path = inside[name], f"{path}/{name}"
+        return data
 
     def _keep_chosen(self, doc: DocJob, out: list[Unit]) -> list[Unit]:
         """A re-run of chosen units keeps only those; a document-wide failure is kept as it is."""

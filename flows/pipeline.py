@@ -12,7 +12,7 @@ import os
 import sys
 import time
 from contextlib import contextmanager
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from datetime import datetime, timezone
 from functools import lru_cache
 from importlib import metadata
@@ -33,7 +33,7 @@ from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff
-from thresher.flows.plan import Plan, make_plan
+from thresher.flows.plan import Plan, add_members, make_plan
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
 from thresher.flows.summary import STATUS_ORDER, counts_by_stage_and_document, document_rows
@@ -216,7 +216,8 @@ class _Progress:
 
 
 def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: str, data_json: str,
-               progress: Callable[[str], None] | None, timings: dict[str, float], workers: int = 1) -> _Progress:
+               progress: Callable[[str], None] | None, timings: dict[str, float], workers: int = 1,
+               force: bool = False) -> _Progress:
     """Every segment of the chain in order, for the documents the plan names."""
     model = definition.model
     names = [s.name for s in definition.steps]
@@ -246,25 +247,28 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             for j in plan.jobs:
                 if j.start <= last:
                     only = j.only if first <= j.start <= last else None
-                    seg_jobs.append(DocJob(j.doc_id, j.source_path, j.abs_path, j.size, j.mtime, j.start,
-                                           j.known, only))
+                    seg_jobs.append(replace(j, only=only))
             for d in sorted(affected - {j.doc_id for j in seg_jobs}):
                 src = jobs_by_doc.get(d)
                 seg_jobs.append(DocJob(d, plan.live[d][1], src.abs_path if src else "", src.size if src else 0,
                                        src.mtime if src else 0.0, first, True))
             batches = make_batches(seg_jobs, model.runner.batch_size, workers)
             if not batches:
+                if first == 0 and plan.run_id:
+                    add_members(plan, [])  # members of removed containers leave
                 _emit(progress, f"{label}: nothing to do")
                 continue
             futures = []
             for n, batch in enumerate(batches):
-                job = BatchJob(run_id, store_root, indices, f"s{first:02d}-b{n:05d}", batch)
+                job = BatchJob(run_id, store_root, indices, f"s{first:02d}-b{n:05d}", batch, force)
                 futures.append(process_batch.with_options(
                     retries=model.runner.retries, retry_delay_seconds=model.runner.retry_delay_seconds,
                 ).submit(job, data_json, definition.origin))
             done = 0
+            found = []
             for fut in as_completed(futures):
                 res: BatchResult = fut.result()
+                found += res.members
                 done += 1
                 acc.step_seconds += res.step_seconds
                 acc.failures.extend(res.failures)
@@ -276,6 +280,14 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                     first_batch_done = True
                     _fault("after-first-batch")
             processed |= {j.doc_id for j in seg_jobs}
+            if first == 0 and plan.run_id:  # (a re-run keeps the catalog as it is)
+                # Documents found inside documents join the catalog and the later segments.
+                found.sort(key=lambda m: m.source_path)  # batches finish in any order
+                inside = add_members(plan, found)
+                processed |= {j.doc_id for j in inside}
+                if found:
+                    _emit(progress, f"{label}: {len(found)} documents found inside documents, "
+                                    f"{len(inside)} of them read")
         timings[label] = time.perf_counter() - t0
     return acc
 
@@ -330,7 +342,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         logger.info("%s %s: %d documents to process", kind, run_id, len(plan.jobs))
 
         acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings,
-                         workers or model.runner.workers)
+                         workers or model.runner.workers, force)
 
         t0 = time.perf_counter()
         staged = f"runs/{run_id}/staged"
@@ -379,6 +391,8 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "versions": _versions(),
             "documents": {"files": len(files), "hashed": sum(f.hashed for f in files),
                           "distinct": len(plan.live), "processed": len(plan.jobs),
+                          "inside": len(plan.live) - len({f.doc_id for f in files} & set(plan.live))
+                          if rerun is None else 0,
                           "unchanged": len(plan.skipped), "removed": len(plan.deleted),
                           "copies": {d: p for d, p in plan.copies.items()}},
             "scan_problems": [asdict(p) for p in problems],

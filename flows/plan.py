@@ -15,7 +15,7 @@ import pyarrow as pa
 from thresher.flows import schema
 from thresher.flows.config import FlowDefinition
 from thresher.flows.discover import SourceFile
-from thresher.flows.execute import DocJob
+from thresher.flows.execute import DocJob, MemberInfo
 from thresher.flows.store import Store
 
 
@@ -27,6 +27,14 @@ class Plan:
     deleted: list[str]  # doc_ids no longer at any path
     live: dict[str, tuple[int, str]]  # doc_id -> (rank, canonical path)
     copies: dict[str, list[str]] = field(default_factory=dict)  # doc_id -> other paths with the same bytes
+    # For ranking documents found inside containers during the run (add_members).
+    seq_of: dict[str, int] = field(default_factory=dict)
+    sequence: int = 0
+    run_id: str = ""
+    chain: str = ""
+    # Catalog rows (by path) of members of containers read again in this run: removed
+    # unless the run finds them again, or finds their container unchanged.
+    awaited: dict[str, dict] = field(default_factory=dict)
 
 
 def _ts(epoch: float) -> datetime:
@@ -69,14 +77,18 @@ def live_documents(catalog_rows: list[dict], seq_of: dict[str, int], sequence: i
     duplicate cluster): first the run that first saw it, then its canonical path.
     """
     present_paths: dict[str, list[str]] = {}
+    inside: set[str] = set()  # paths of documents inside documents
     for r in catalog_rows:
         if r["present"]:
             present_paths.setdefault(r["doc_id"], []).append(r["source_path"])
+            if r.get("container_doc_id"):
+                inside.add(r["source_path"])
     first_seq: dict[str, int] = {}
     for r in catalog_rows:
         s = seq_of.get(r["first_run"], sequence)
         first_seq[r["doc_id"]] = min(first_seq.get(r["doc_id"], s), s)
-    canonical = {d: min(paths) for d, paths in present_paths.items()}
+    # A file of the drive stands for its copies inside archives or e-mails.
+    canonical = {d: min(paths, key=lambda p: (p in inside, p)) for d, paths in present_paths.items()}
     order = sorted(canonical, key=lambda d: (first_seq[d], canonical[d]))
     live = {d: (rank, canonical[d]) for rank, d in enumerate(order)}
     copies = {d: sorted(p for p in paths if p != canonical[d]) for d, paths in present_paths.items() if len(paths) > 1}
@@ -108,24 +120,60 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
             "canonical_path": None, "chain_digest": None,
         })
         seen_paths.add(f.source_path)
+    drive_docs = {f.doc_id for f in files}
+    members = [r for r in old if r.get("container_doc_id") and r["source_path"] not in seen_paths]
     for r in old:
-        if r["source_path"] not in seen_paths:
+        if r["source_path"] not in seen_paths and not r.get("container_doc_id"):
             gone = dict(r)
             gone["present"] = False
             rows.append(gone)
 
+    # Which drive documents start at extraction: those re-read their members in the run.
+    to_do_drive = {d for d in drive_docs if force or chain not in processed_with.get(d, set())}
+    known_drive = [d for d in to_do_drive if d in processed_with]
+    starts = start_stages(definition, store, known_drive) if known_drive and not force else {}
+    reread = {d for d in to_do_drive if starts.get(d, 0) == 0}
+    # Members of containers that are not read again stay as they are (transitively).
+    live_ids = set(drive_docs)
+    carried: list[dict] = []
+    pending = members
+    while True:
+        keep = [r for r in pending if r["present"] and r["container_doc_id"] in live_ids
+                and r["container_doc_id"] not in reread]
+        if not keep:
+            break
+        carried += keep
+        live_ids |= {r["doc_id"] for r in keep}
+        pending = [r for r in pending if r not in keep]
+    for r in carried:
+        rows.append(dict(r, last_run=run_id))
+    for r in pending:
+        rows.append(dict(r, present=False))
+    # Members of containers read again or gone: removed unless the run finds them again.
+    awaited = {r["source_path"]: r for r in pending if r["present"]}
+
     canonical, live, copies = live_documents(rows, seq_of, sequence)
 
     file_at = {f.source_path: f for f in files}
+    row_at = {r["source_path"]: r for r in rows}
     to_do = [d for d in canonical if force or chain not in processed_with.get(d, set())]
     skipped = sorted(set(canonical) - set(to_do))
-    known = [d for d in to_do if d in processed_with]
-    starts = start_stages(definition, store, known) if known and not force else {}
+    more = [d for d in to_do if d in processed_with and d not in to_do_drive]
+    if more and not force:
+        starts.update(start_stages(definition, store, more))
     jobs = []
     for d in to_do:
-        f = file_at[canonical[d]]
-        jobs.append(DocJob(doc_id=d, source_path=canonical[d], abs_path=f.abs_path, size=f.size,
-                           mtime=f.mtime, start=starts.get(d, 0), known=d in processed_with))
+        path = canonical[d]
+        if path in file_at:
+            f = file_at[path]
+            abs_path, size, mtime, inside = f.abs_path, f.size, f.mtime, ()
+        else:
+            outer, inside = member_chain(row_at, canonical, path)
+            r = row_at[path]
+            abs_path = file_at[outer].abs_path
+            size, mtime = int(r.get("size") or 0), r["mtime"].timestamp() if r.get("mtime") else 0.0
+        jobs.append(DocJob(doc_id=d, source_path=path, abs_path=abs_path, size=size, mtime=mtime,
+                           start=starts.get(d, 0), known=d in processed_with, member_of=inside))
     jobs.sort(key=lambda j: (-j.size, j.source_path))
 
     for r in rows:
@@ -134,6 +182,70 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
             r["canonical_path"] = canonical[r["doc_id"]]
             r["chain_digest"] = chain
     rows.sort(key=lambda r: r["source_path"])
-    deleted = sorted({r["doc_id"] for r in old if r["present"]} - set(canonical))
+    deleted = sorted({r["doc_id"] for r in old if r["present"]} - set(canonical)
+                     - {r["doc_id"] for r in awaited.values()})
     catalog = pa.Table.from_pylist(rows, schema=schema.CATALOG)
-    return Plan(catalog=catalog, jobs=jobs, skipped=skipped, deleted=deleted, live=live, copies=copies)
+    return Plan(catalog=catalog, jobs=jobs, skipped=skipped, deleted=deleted, live=live, copies=copies,
+                seq_of=seq_of, sequence=sequence, run_id=run_id, chain=chain, awaited=awaited)
+
+
+def member_chain(row_at: dict[str, dict], canonical: dict[str, str], path: str) -> tuple[str, tuple[str, ...]]:
+    """For a document inside documents: the drive file that holds it and the member
+    names from there down (each container by its canonical path)."""
+    names: list[str] = []
+    row = row_at[path]
+    while row.get("container_doc_id"):
+        names.append(row["member_name"])
+        row = row_at[canonical[row["container_doc_id"]]]
+    return row["source_path"], tuple(reversed(names))
+
+
+def add_members(plan: Plan, found: list[MemberInfo]) -> list[DocJob]:
+    """Documents found inside containers during the run join the catalog and the live
+    documents; returns jobs for those read in this run (their later steps still to run).
+
+    A member that is a copy of a drive file is the same document (same doc_id); the
+    drive's path stands for it.
+    """
+    awaited_ids = {r["doc_id"] for r in plan.awaited.values()}
+    if not found:
+        plan.deleted = sorted(set(plan.deleted) | (awaited_ids - set(plan.live)))
+        return []
+    rows = {r["source_path"]: r for r in plan.catalog.to_pylist()}
+    for m in found:
+        prev = rows.get(m.source_path)
+        same = prev is not None and prev["doc_id"] == m.doc_id
+        rows[m.source_path] = {
+            "source_path": m.source_path, "doc_id": m.doc_id, "size": m.size, "mtime": _ts(m.mtime),
+            "first_run": prev["first_run"] if same else plan.run_id, "last_run": plan.run_id, "present": True,
+            "canonical_path": None, "chain_digest": plan.chain, "container_doc_id": m.container_doc_id,
+            "member_name": m.member_name,
+        }
+    # A member found unchanged was not opened again: what it held stays (transitively).
+    unopened = {m.doc_id for m in found if not m.processed}
+    found_paths = {m.source_path for m in found}
+    while True:
+        keep = [r for p, r in plan.awaited.items() if p not in found_paths and not rows[p]["present"]
+                and r["container_doc_id"] in unopened]
+        if not keep:
+            break
+        for r in keep:
+            rows[r["source_path"]] = dict(r, present=True, last_run=plan.run_id)
+            unopened.add(r["doc_id"])
+    all_rows = sorted(rows.values(), key=lambda r: r["source_path"])
+    canonical, live, copies = live_documents(all_rows, plan.seq_of, plan.sequence)
+    for r in all_rows:
+        if r["present"]:
+            r["canonical_path"] = canonical[r["doc_id"]]
+            r["chain_digest"] = plan.chain
+    plan.catalog = pa.Table.from_pylist(all_rows, schema=schema.CATALOG)
+    plan.live, plan.copies = live, copies
+    plan.deleted = sorted((set(plan.deleted) | awaited_ids) - set(live))
+    jobs = []
+    seen = {j.doc_id for j in plan.jobs}
+    for m in found:
+        if m.processed and m.doc_id not in seen:
+            seen.add(m.doc_id)
+            jobs.append(DocJob(m.doc_id, canonical[m.doc_id], "", m.size, m.mtime, 0, True))
+    plan.jobs.extend(jobs)
+    return jobs

@@ -13,7 +13,7 @@ from pathlib import Path
 from thresher.flows.config import FlowDefinition
 from thresher.flows.discover import file_doc_id
 from thresher.flows.execute import DocJob
-from thresher.flows.plan import Plan
+from thresher.flows.plan import Plan, member_chain
 from thresher.flows.store import Store
 from thresher.steps.units import DOCUMENT_LOCATOR, FAILED, page_locator
 
@@ -92,23 +92,27 @@ def make_rerun_plan(store: Store, targets: list[RerunTarget], source_root: str,
     """A plan for just these targets; `live` and `copies` as plan.live_documents gives them."""
     catalog = store.catalog()
     size_of = {r["source_path"]: r for r in catalog.to_pylist()}
+    canonical = {d: p for d, (_, p) in live.items()}
     jobs = []
     for t in targets:
         if t.doc_id not in live:
             raise RerunError(f"{t.source_path} is no longer in the source folder; nothing to re-run")
         path = live[t.doc_id][1]
         entry = size_of[path]
-        abs_path = str(Path(source_root) / path)
+        # A document inside documents is unpacked again from the drive file holding it.
+        outer, inside = member_chain(size_of, canonical, path)
+        abs_path = str(Path(source_root) / outer)
         if t.step == 0:
             try:
                 found = file_doc_id(abs_path)
             except OSError as exc:
                 raise RerunError(f"cannot read {abs_path}: {exc.strerror or exc}") from None
-            if found != t.doc_id:
-                raise RerunError(f"{path} changed since it was catalogued (its content hash differs); "
+            if found != size_of[outer]["doc_id"]:
+                raise RerunError(f"{outer} changed since it was catalogued (its content hash differs); "
                                  "run `thresher run` to process the new version")
         mtime = entry["mtime"].timestamp() if entry.get("mtime") else 0.0
-        jobs.append(DocJob(t.doc_id, path, abs_path, int(entry.get("size") or 0), mtime, t.step, True, t.locators))
+        jobs.append(DocJob(t.doc_id, path, abs_path, int(entry.get("size") or 0), mtime, t.step, True, t.locators,
+                           member_of=inside))
     return Plan(catalog=catalog, jobs=jobs, skipped=[], deleted=[], live=live, copies=copies)
 
 

@@ -104,6 +104,11 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
         pa.field("encoding", pa.string()),
         pa.field("byte_size", pa.int64()),
         pa.field("modified_at", TS),
+        # An e-mail's header fields (null for other formats): metadata, not chunk text.
+        pa.field("mail_from", pa.string()),
+        pa.field("mail_to", pa.string()),
+        pa.field("mail_cc", pa.string()),
+        pa.field("mail_date", pa.string()),
     ],
     "boilerplate": [
         pa.field("site", pa.string()),
@@ -173,6 +178,10 @@ CATALOG = pa.schema(
         pa.field("present", pa.bool_()),
         pa.field("canonical_path", pa.string()),
         pa.field("chain_digest", pa.string()),
+        # A document inside a document (archive member, attachment): its container's
+        # doc_id and its name there; null for a file of the drive.
+        pa.field("container_doc_id", pa.string()),
+        pa.field("member_name", pa.string()),
     ]
 )
 

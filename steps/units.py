@@ -51,13 +51,30 @@ class Block:
 
 @dataclass
 class Source:
-    """One source file, with its bytes handed in by the flows layer."""
+    """One source file, with its bytes handed in by the flows layer.
+
+    `depth` counts the containers around it: 0 for a file of the drive, 1 for a member
+    of an archive on the drive, and so on (the nesting guard reads it).
+    """
 
     doc_id: str
     source_path: str
     data: bytes
     size: int
     mtime: float
+    depth: int = 0
+
+
+@dataclass
+class Member:
+    """A document inside a document (an archive member, an e-mail's attachment or an
+    mbox's message), handed back by extraction for the flows layer to read as a
+    document of its own. `name` is its path under the container's path
+    (`march/minutes.docx`, `attachments/1-budget.xlsx`); it is never stored as a unit."""
+
+    name: str
+    data: bytes
+    mtime: float | None = None
 
 
 @dataclass
@@ -116,6 +133,9 @@ class Page(Outcome):
     language_prob: float | None = None
     parents: list[str] = field(default_factory=list)
     payload: dict[str, Any] = field(default_factory=dict)
+    # Documents inside this one (extraction sets it on a document's first unit); the
+    # flows layer reads them as documents of their own and does not store this field.
+    members: list[Member] = field(default_factory=list)
 
     @property
     def text(self) -> str:

@@ -1071,7 +1071,8 @@ How the folders are organised
   hr/           HR documents; files here are password protected
   volunteers/   volunteer rotas and notes for volunteer coordinators
   it/           exports and logs from the library systems
-  archive/      earlier editions kept for reference, by year
+  archive/      earlier editions kept for reference, by year; old minutes zipped by year
+  mail/         e-mails worth keeping, saved as .eml with their attachments
 
 Naming files
 
@@ -1207,7 +1208,122 @@ def build_drive() -> list[tuple[str, bytes]]:
          VOLUNTEER_ROTA.replace("\n", "\r\n").encode("cp1252")),
         ("it/scanner-log.txt", b""),
         ("it/label-printer-logo.txt", _logo_png()),
+        ("archive/2024-minutes.zip", minutes_zip()),
+        ("mail/2026-03-02-lindle-cross-heating.eml", heating_notice_eml()),
     ]
+
+
+# ---------------------------------------------------------------------------------------
+# Documents inside documents: an e-mail with an attachment, a zip of old minutes
+# ---------------------------------------------------------------------------------------
+
+MINUTES_STAMP = (2024, 12, 20, 16, 0, 0)
+
+OLD_MINUTES = {
+    "march/2024-03-19-board-minutes.md": """\
+Board of Trustees: Minutes, 19 March 2024
+=========================================
+
+Held at Sorrel Wharf at 18:30. Odile Fenwarrow in the chair.
+
+## 1. Mobile library
+
+The trustees agreed to keep the mobile library on its Tuesday route along the river
+villages for another year, and to ask the volunteers which stops they would move.
+
+## 2. Roof at Lindle Cross
+
+The surveyor's report found two cracked slates above the children's corner. Bram Oduya
+will ask for three quotes before the June meeting.
+""",
+    "june/2024-06-18-board-minutes.md": """\
+Board of Trustees: Minutes, 18 June 2024
+========================================
+
+Held at Quillfern Central at 18:30. Odile Fenwarrow in the chair.
+
+## 1. Roof at Lindle Cross
+
+Three quotes were received. The trustees chose the second, which repairs the slates and
+the gutter together, and asked for the work to be done before the autumn half term.
+
+## 2. Summer reading challenge
+
+Ines Catterick reported that two hundred and twelve children had signed up by the end
+of the first week, more than in any earlier year.
+""",
+}
+
+
+def minutes_zip() -> bytes:
+    """Old minutes zipped by year: fixed member order, times and compression."""
+    out = io.BytesIO()
+    with zipfile.ZipFile(out, "w") as dst:
+        for name in sorted(OLD_MINUTES):
+            info = zipfile.ZipInfo(name, date_time=MINUTES_STAMP)
+            info.compress_type = zipfile.ZIP_DEFLATED
+            info.create_system = 0
+            info.external_attr = 0
+            dst.writestr(info, OLD_MINUTES[name].encode("utf-8"), compresslevel=6)
+    return out.getvalue()
+
+
+REPAIR_BUDGET = """\
+# Repair budget 2026
+
+| Item | Branch | Crowns |
+|---|---|---|
+| Boiler service and new valve | Lindle Cross | 640 |
+| Book binding thread and glue | all branches | 180 |
+| Reading room chairs recovered | Quillfern Central | 410 |
+
+The heating works at Lindle Cross come first; the chairs wait until the boiler is paid for.
+"""
+
+HEATING_NOTICE_BODY = """\
+Dear all,
+
+The heating engineer comes to Lindle Cross on Thursday 5 March, so the branch closes at
+one o'clock that day. Please tell patrons who ask, and move the afternoon story time to
+Friday. The repair budget for this year is attached.
+
+Ines wrote on Friday:
+> Could the story time move to Friday at the same hour?
+> The volunteers are free then.
+
+Thank you,
+Tomasz
+"""
+
+
+def heating_notice_eml() -> bytes:
+    """An e-mail saved as .eml (RFC 5322, MIME): a plain-text body and one attachment."""
+    boundary = "quillfern-0302"
+    lines = [
+        "From: Tomasz Quenby <tomasz.quenby@quillfern.example>",
+        "To: Branch staff <staff@quillfern.example>",
+        "Cc: Ines Catterick <ines.catterick@quillfern.example>",
+        "Subject: Lindle Cross closes early on Thursday: heating works",
+        "Date: Mon, 02 Mar 2026 08:45:00 +0000",
+        "Message-ID: <2026-03-02-heating@quillfern.example>",
+        "MIME-Version: 1.0",
+        f'Content-Type: multipart/mixed; boundary="{boundary}"',
+        "",
+        f"--{boundary}",
+        "Content-Type: text/plain; charset=utf-8",
+        "Content-Transfer-Encoding: 8bit",
+        "",
+        HEATING_NOTICE_BODY,
+        f"--{boundary}",
+        "Content-Type: text/markdown; charset=utf-8",
+        'Content-Disposition: attachment; filename="repair-budget-2026.md"',
+        "Content-Transfer-Encoding: 8bit",
+        "",
+        REPAIR_BUDGET,
+        f"--{boundary}--",
+        "",
+    ]
+    return "\n".join(lines).encode("utf-8")
 
 
 def _clear(out: Path, files: list[tuple[str, bytes]]) -> None:

@@ -20,7 +20,7 @@ import re
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
-from ..units import CODE, HEADING, PARAGRAPH, TABLE, Block
+from ..units import CODE, HEADING, PARAGRAPH, TABLE, Block, Member
 
 if TYPE_CHECKING:
     from .step import ExtractParams
@@ -29,13 +29,15 @@ if TYPE_CHECKING:
 @dataclass
 class ReaderInput:
     """What the step hands a format reader: the file's bytes, its decoded text (for text
-    formats, as sniffing decoded it), the encoding, the step's parameters and the path."""
+    formats, as sniffing decoded it), the encoding, the step's parameters and the path;
+    `depth` is how many containers the document sits in (0: a file of the drive)."""
 
     data: bytes
     text: str | None
     encoding: str
     params: "ExtractParams"
     source_path: str = ""
+    depth: int = 0
 
 
 class DocumentFailure(Exception):
@@ -72,6 +74,8 @@ class PagePart:
     # A navigation page's kind ("contents", "index", "figures", "tables"), else "".
     navigation: str = ""
     duration_ms: float | None = None  # the page's own read time, when measured per page
+    # Values for the extract table's format-specific columns (an e-mail's mail_from...).
+    fields: dict = field(default_factory=dict)
 
 
 @dataclass
@@ -85,6 +89,13 @@ class ReadResult:
     encoding: str = ""
     page_count: int = 1
     warnings: list[str] = field(default_factory=list)
+    # Documents inside this one (archive members, attachments), read as documents of
+    # their own by the flows layer.
+    members: list[Member] = field(default_factory=list)
+    # A container that gives no pages of its own (an archive) says why here; its one
+    # unit is then `skipped` with this reason, and `removed` lists what it left out.
+    skipped: str = ""
+    removed: list[dict] = field(default_factory=list)
 
 
 # --- block helpers ---------------------------------------------------------------

@@ -29,6 +29,10 @@ READERS: dict[str, tuple[str, str, str]] = {
     "epub": ("epub", "read_epub", "epub"),
     "rtf": ("rtf", "read_rtf", "rtf"),
     "image": ("image", "read_image", "ocr"),
+    "zip": ("archive", "read_zip", "archive"),
+    "tar": ("archive", "read_tar", "archive"),
+    "email": ("mail", "read_eml", "email"),
+    "mbox": ("mail", "read_mbox", "mbox"),
 }
 
 # Formats that LibreOffice converts first (office_convert.py), and the format whose

@@ -53,6 +53,10 @@ EXTENSION_FORMATS = {
     "markdown": "markdown",
     "txt": "text",
     "text": "text",
+    "eml": "email",
+    "mbox": "mbox",
+    "zip": "zip",
+    "tar": "tar",
 }
 
 # Signatures of binary formats we do not read; the name goes into the reason.
@@ -60,14 +64,17 @@ _IMAGE_SIGNATURES = (
     b"\x89PNG\r\n\x1a\n", b"\xff\xd8\xff", b"GIF87a", b"GIF89a", b"II*\x00", b"MM\x00*",
 )
 _BINARY_SIGNATURES = (
-    (b"\x1f\x8b", "gzip archive"),
-    (b"BZh", "bzip2 archive"),
-    (b"\xfd7zXZ\x00", "xz archive"),
     (b"7z\xbc\xaf\x27\x1c", "7-Zip archive"),
     (b"Rar!\x1a\x07", "RAR archive"),
     (b"\x7fELF", "ELF executable"),
     (b"PAR1", "Parquet file"),
     (b"SQLite format 3\x00", "SQLite database"),
+)
+# Compressed single files (RFC 1952 gzip; bzip2; the xz format): read as the file inside.
+_COMPRESSED_SIGNATURES = (
+    (b"\x1f\x8b", "gzip"),
+    (b"BZh", "bzip2"),
+    (b"\xfd7zXZ\x00", "xz"),
 )
 _OLE2 = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
 # An encrypted .docx/.xlsx is an OLE2 file holding a stream with this name (MS-OFFCRYPTO).
@@ -374,7 +381,7 @@ def _zip_kind(data: bytes, ext: str) -> Sniffed:
                               f"({mimetype.decode('ascii', 'replace')})")
     if mimetype == EPUB_MIMETYPE:
         return Sniffed(format="epub")
-    return Sniffed(reason="unsupported format: zip archive without word/document.xml (not a .docx)")
+    return Sniffed(format="zip")  # any other zip: an archive whose members are documents
 
 
 def _utf16(name: str) -> bytes:
@@ -400,6 +407,8 @@ def _ole_kind(data: bytes, ext: str) -> Sniffed:
             if _legacy_encrypted(data, kind):
                 return Sniffed(reason="password protected")
             return Sniffed(format=kind)
+    if _utf16("__substg1.0_") in data:  # MAPI property streams ([MS-OXMSG] 2.1)
+        return Sniffed(reason="unsupported format: Outlook message (.msg); save it as .eml to have it read")
     if ext in ("doc", "xls", "ppt"):
         return Sniffed(reason=f"unreadable {ext.upper()}: the compound file names no Word, "
                               "Excel or PowerPoint stream (damaged or truncated)")
@@ -466,6 +475,14 @@ def sniff(data: bytes, source_path: str) -> Sniffed:
         return _with_extension_note(_zip_kind(data, ext), ext)
     if data.startswith(_OLE2):
         return _with_extension_note(_ole_kind(data, ext), ext)
+    for magic, fmt in _COMPRESSED_SIGNATURES:
+        if data.startswith(magic):
+            return Sniffed(format=fmt)
+    if data[257:262] == b"ustar":  # POSIX and GNU tar headers (POSIX.1-2001 ustar magic)
+        return Sniffed(format="tar")
+    mail = _mail_kind(data, ext)
+    if mail:
+        return Sniffed(format=mail)
     if data.startswith(b"{\\rtf"):
         return _with_extension_note(Sniffed(format="rtf"), ext)
     if data.startswith(_IMAGE_SIGNATURES) or _webp_or_bmp(data):
@@ -510,6 +527,37 @@ def sniff(data: bytes, source_path: str) -> Sniffed:
         fmt = "text"
     found = Sniffed(format=fmt, text=text, encoding=decoded.encoding, warnings=decoded.warnings)
     return _with_extension_note(found, ext)
+
+
+_HEADER_LINE = re.compile(rb"^[A-Za-z0-9-]+:[ \t]")
+# Header fields of which a message has several near its top (RFC 5322, RFC 5321's trace fields).
+_MAIL_HEADERS = {b"from", b"to", b"cc", b"subject", b"date", b"message-id", b"mime-version", b"received",
+                 b"return-path", b"delivered-to", b"reply-to", b"in-reply-to", b"references", b"content-type"}
+
+
+def _mail_kind(data: bytes, ext: str) -> str:
+    """"email" for an RFC 5322 message, "mbox" for a mailbox, "" otherwise.
+
+    A message starts with a header field and holds at least three of the usual ones
+    (From, Date, Subject...) before its first empty line, or two with Content-Type (a
+    MIME entity), or one when named .eml; an mbox starts with a "From " line followed
+    by such a message. Markdown and HTML files are never taken for mail (our rules).
+    """
+    if ext in ("md", "markdown", "html", "htm", "xhtml"):
+        return ""
+    head = data[:SAMPLE].replace(b"\r\n", b"\n")
+    kind = "email"
+    if head.startswith(b"From "):
+        head = head.split(b"\n", 1)[1] if b"\n" in head else b""
+        kind = "mbox"
+    if not _HEADER_LINE.match(head):
+        return ""
+    block = head.split(b"\n\n", 1)[0]
+    names = {line.split(b":", 1)[0].lower() for line in block.split(b"\n") if _HEADER_LINE.match(line)}
+    known = names & _MAIL_HEADERS
+    if ext == "eml":
+        return kind if known else ""
+    return kind if len(known) >= 3 or (b"content-type" in known and len(known) >= 2) else ""
 
 
 def _looks_html(text: str, ext: str) -> bool:

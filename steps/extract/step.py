@@ -18,13 +18,14 @@ from typing import Any
 from pydantic import Field, field_validator
 
 from ..spec import StepContext, StepParams, StepSpec
-from ..units import BLOCK_SEP, DOCUMENT_LOCATOR, TABLE, Block, Page, Source, page_locator
+from ..units import BLOCK_SEP, DOCUMENT_LOCATOR, SKIPPED, TABLE, Block, Page, Source, page_locator
 from .blocks import DocumentFailure, DocumentSkipped, ReaderInput, file_stem, first_heading
 from .nondocs import KINDS as NONDOC_KINDS
 from .nondocs import kind_of as nondoc_kind
 from .nondocs import reason as nondoc_reason
 from .registry import CONVERTED, METHODS, reader_for
 from .sniff import extension, sniff, unprintable_count
+from .unpack import COMPRESSED_FORMATS, decompress
 
 # Bytes in a megabyte for the file-size guard (SI megabyte, as file managers show it).
 MB = 1_000_000
@@ -43,6 +44,10 @@ PAYLOAD_KEYS = (
     "encoding",
     "byte_size",
     "modified_at",
+    "mail_from",
+    "mail_to",
+    "mail_cc",
+    "mail_date",
 )
 
 
@@ -96,6 +101,17 @@ class ExtractParams(StepParams):
             "tables: column `navigation`) instead of passing them on to be chunked"
         ),
     )
+    max_members: int = Field(
+        10_000, gt=0, description="an archive or mailbox with more documents inside fails without being unpacked")
+    max_unpacked_mb: float = Field(
+        500, gt=0,
+        description="an archive, mailbox or compressed file that unpacks to more fails (members are held in memory)")
+    max_compression_ratio: float = Field(
+        100, gt=1,
+        description=("an archive or compressed file unpacking to more than this many times its packed size "
+                     "(once past 1 MB) fails as a decompression bomb"))
+    max_nesting: int = Field(
+        3, ge=1, description="archives or e-mails inside more containers than this are not opened")
 
 
 def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
@@ -181,6 +197,31 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
     if found.reason:
         return failed_document(source, found.reason, fmt=found.format)
 
+    # A compressed single file (manual.pdf.gz, minutes.tar.gz) is read as the file
+    # inside: same document, the content sniffed again. Layers count towards max_nesting.
+    inner_path, layers = source.source_path, 0
+    while found.format in COMPRESSED_FORMATS:
+        layers += 1
+        if layers > params.max_nesting:
+            return failed_document(source, f"nested too deep: more than {params.max_nesting} layers of "
+                                           "compression (max_nesting)", fmt=found.format)
+        try:
+            inner = decompress(data, found.format, inner_path, int(params.max_unpacked_mb * MB),
+                               params.max_compression_ratio)
+        except DocumentFailure as failure:
+            return failed_document(source, failure.reason, failure.cause, fmt=found.format)
+        data, inner_path = inner.data, inner.name
+        inner_ext = extension(inner_path)
+        kind = nondoc_kind(inner_path, inner_ext, data[:4096])
+        if kind and kind not in params.read_kinds:  # a compressed stylesheet, say
+            return skipped_document(source, nondoc_reason(kind, inner_ext) + " (inside the compressed file)")
+        if len(data) > params.max_file_mb * MB:
+            return failed_document(source, f"file too large: {_mb(len(data) / MB)} MB once decompressed, over "
+                                           f"the limit of {params.max_file_mb:g} MB", fmt=found.format)
+        found = sniff(data, inner_path)
+        if found.reason:
+            return failed_document(source, f"{found.reason} (inside the compressed file)", fmt=found.format)
+
     fmt, read_data, method_prefix = found.format, data, ""
     try:
         if fmt in CONVERTED:
@@ -191,7 +232,8 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
             # flows layer's kill at the limit would not reach.
             read_data = convert(data, fmt, 0.9 * params.time_limit_seconds)
             fmt, method_prefix = CONVERTED[fmt], "libreoffice+"
-        result = reader_for(fmt)(ReaderInput(read_data, found.text, found.encoding, params, source.source_path))
+        result = reader_for(fmt)(ReaderInput(read_data, found.text, found.encoding, params, inner_path,
+                                                  source.depth))
         if method_prefix:
             result.format, result.method = found.format, method_prefix + result.method
     except DocumentSkipped as skipped:
@@ -206,8 +248,17 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
             fmt=found.format,
         )
 
-    title = result.title.strip() or first_heading(result.pages) or file_stem(source.source_path)
+    title = result.title.strip() or first_heading(result.pages) or file_stem(inner_path)
     doc_warnings = found.warnings + result.warnings
+    if layers:
+        doc_warnings = doc_warnings + [f"read as {inner_path}, decompressed from {layers} layer(s)"]
+    if not result.pages:  # a container without pages of its own: one unit says what it held
+        page = Page(locator=page_locator(None), page=None, blocks=[], title=title, format=result.format,
+                    parents=[], payload=payload([], result.method, 0, "", source, removed=result.removed),
+                    members=result.members)
+        page.status, page.reason = SKIPPED, result.skipped or "no pages"
+        page.warnings = doc_warnings
+        return [page]
     pages: list[Page] = []
     for part in result.pages:
         page = Page(
@@ -219,7 +270,7 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
             parents=[],
             payload=payload(part.blocks, part.method or result.method, result.page_count,
                             result.encoding, source, part.columns, part.removed,
-                            part.navigation),
+                            part.navigation) | part.fields,
             duration_ms=None if part.duration_ms is None else round(part.duration_ms, 3),
         )
         page.warnings = doc_warnings + part.warnings
@@ -229,6 +280,7 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
             page.drop(f"navigation page ({part.navigation}): its lines are entries with "
                       "page references; set extract drop_navigation: false to keep it")
         pages.append(page)
+    pages[0].members = result.members
     return pages
 
 
@@ -253,6 +305,7 @@ EXTRACT = StepSpec(
     summary=(
         "Reads a source file (PDF, HTML, Markdown, plain text, Word, OpenDocument, RTF, "
         "EPUB, slide decks, spreadsheets; format sniffed from content) into pages of "
-        "heading, paragraph, table and code blocks."
+        "heading, paragraph, table and code blocks; archives and e-mails hand documents inside "
+        "them back as documents of their own, compressed files are read as the file inside."
     ),
 )
