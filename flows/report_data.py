@@ -166,6 +166,9 @@ class DocumentView:
     status: str = "ok"
     first_problem: str = ""  # "stage: reason" of the first failed (else dropped) unit
     anchor: str = ""
+    # A document inside a document: (container doc_id, container path, name inside it).
+    container: tuple[str, str, str] | None = None
+    holds: list[tuple[str, str]] = field(default_factory=list)  # (doc_id, path) of documents inside it
 
     @property
     def page_count(self) -> int:
@@ -362,10 +365,32 @@ class StoreView:
     view: Store
     catalog: dict[str, list[dict[str, Any]]]
     stages: list[StageInfo]
+    _held: dict[str, list[tuple[str, str]]] | None = field(default=None, repr=False)
 
     @property
     def doc_ids(self) -> list[str]:
         return sorted(self.catalog)
+
+    def held_by(self) -> dict[str, list[tuple[str, str]]]:
+        """container doc_id -> (doc_id, path) of the live documents found inside it."""
+        if self._held is None:
+            self._held = {}
+            for d, rows in self.catalog.items():
+                for r in rows:
+                    if r.get("container_doc_id"):
+                        self._held.setdefault(r["container_doc_id"], []).append((d, r["source_path"]))
+            for v in self._held.values():
+                v.sort(key=lambda t: t[1])
+        return self._held
+
+
+def _container_of(sv: "StoreView", rows: list[dict[str, Any]]) -> tuple[str, str, str] | None:
+    """The container of a document found inside another (its first such path), if live."""
+    for r in sorted(rows, key=lambda r: r["source_path"]):
+        cid = r.get("container_doc_id")
+        if cid and cid in sv.catalog:
+            return cid, _canonical_path(sv.catalog[cid]), r.get("member_name") or ""
+    return None
 
 
 def open_view(store: Store, run_id: str | None = None) -> StoreView:
@@ -387,7 +412,7 @@ def gather_documents(sv: StoreView, doc_ids: list[str], light: bool = False, cou
         docs[d] = DocumentView(
             doc_id=d, path=path, other_paths=[r["source_path"] for r in rows if r["source_path"] != path],
             size=first.get("size"), first_run=first.get("first_run"), last_run=first.get("last_run"),
-            anchor=f"d-{d}",
+            anchor=f"d-{d}", container=_container_of(sv, rows), holds=sv.held_by().get(d, []),
         )
     stages = sv.stages
     pages: dict[tuple[str, str], PageView] = {}

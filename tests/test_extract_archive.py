@@ -172,3 +172,10 @@ def test_bz2_and_xz_files_and_their_bombs():
         bomb = subprocess.run([tool, "-c"], input=bytes(30_000_000), capture_output=True, check=True).stdout
         page = run(bomb, f"zeros.txt.{suffix}")[0]
         assert page.status == FAILED and page.reason.startswith("compression ratio "), tool
+
+
+def test_a_compressed_non_document_is_skipped_by_the_name_inside():
+    packed = subprocess.run(["gzip", "-c"], input=b"body { margin: 0 }\n" * 50, capture_output=True, check=True).stdout
+    page = run(packed, "site.css.gz")[0]
+    assert page.status == SKIPPED
+    assert page.reason.startswith("not a document: stylesheet (.css)") and page.reason.endswith("(inside the compressed file)")

@@ -588,3 +588,19 @@ def test_screenshot_shows_a_drawn_page_and_the_dom_has_every_part(review, tmp_pa
     shot = tmp_path / "doc.png"
     _browse(page, tmp_path / "shot-doc", f"--screenshot={shot}", "--window-size=1280,900")
     assert (0x24, 0x32, 0x4a) in {c for _, c in Image.open(shot).convert("RGB").getcolors(maxcolors=1 << 20)}
+
+
+def test_documents_inside_documents_link_to_their_container_and_back(review):
+    # The demo drive's e-mail holds an attachment, read as a document of its own.
+    catalog = review["store"].catalog().to_pylist()
+    mail = next(r for r in catalog if r["source_path"] == "mail/2026-03-02-lindle-cross-heating.eml")
+    attached = next(r for r in catalog if r["container_doc_id"] == mail["doc_id"])
+    assert attached["source_path"] == "mail/2026-03-02-lindle-cross-heating.eml/attachments/1-repair-budget-2026.md"
+    page = _doc_page(review["folder"], attached["doc_id"])
+    inside = page.get_element_by_id("container")
+    assert inside.xpath(".//a/@href") == [f"{mail['doc_id']}.html"]
+    assert "mail/2026-03-02-lindle-cross-heating.eml" in inside.text_content()
+    assert "attachments/1-repair-budget-2026.md" in inside.text_content()
+    holds = _doc_page(review["folder"], mail["doc_id"]).get_element_by_id("holds")
+    assert holds.xpath(".//a/@href") == [f"{attached['doc_id']}.html"]
+    assert (review["folder"] / f"{attached['doc_id']}.html").exists()
