@@ -9,7 +9,7 @@ import importlib
 import sys
 
 BENCHES = ["orchestration", "incremental", "scale", "chunking", "extract", "dedup", "retrieval", "deliver",
-           "formats", "store_growth"]
+           "formats", "store_growth", "report"]
 
 
 def main(argv: list[str]) -> int:
