@@ -63,6 +63,15 @@ def _write(path: Path, text: str) -> None:
         raise
 
 
+def _batch_order(doc_ids: list[str], parts: dict[str, dict[str, list[str]]]) -> list[str]:
+    """Documents in the order of the part files that hold them, so a batch read with the
+    doc_id filter opens a few files, not every file of the store."""
+    key = {}
+    for d in doc_ids:
+        key[d] = tuple(ps[d][-1] if d in ps else "" for ps in parts.values())
+    return sorted(doc_ids, key=lambda d: (key[d], d))
+
+
 def _fingerprints(sv: StoreView, targets_of: dict[str, list[str]], targets: dict[str, dict]) -> dict[str, str]:
     """Per document, a digest of everything its page shows: the runs that wrote it at
     each stage, its catalog rows, the chunks it links to, and the report's own version."""
@@ -100,9 +109,11 @@ def write_report(store: Store, out_path: str | os.PathLike[str], run_id: str | N
     ov = Overview(scope=sv.scope, stages=sv.stages, store_root=store.root, href=lambda d: f"{d}.html",
                   budget_tokens=budget_tokens(sv.stages))
     doc_ids = sv.doc_ids
+    parts = {st.name: sv.view.doc_parts(st.name) for st in sv.stages}
+    in_order = _batch_order(doc_ids, parts)
     targets_of: dict[str, list[str]] = {}
-    for i in range(0, len(doc_ids), SUMMARY_BATCH):
-        for doc in gather_documents(sv, doc_ids[i:i + SUMMARY_BATCH], light=True):
+    for i in range(0, len(in_order), SUMMARY_BATCH):
+        for doc in gather_documents(sv, in_order[i:i + SUMMARY_BATCH], light=True):
             ov.add(doc)
             dups = sorted({c.duplicate_of for c in doc.chunks if c.duplicate_of})
             if dups:
@@ -117,7 +128,7 @@ def write_report(store: Store, out_path: str | os.PathLike[str], run_id: str | N
     try:
         folder.mkdir(parents=True, exist_ok=True)
         before = _read_state(folder)
-        changed = [d for d in doc_ids if before.get(d) != fingerprints[d] or not (folder / f"{d}.html").exists()]
+        changed = [d for d in in_order if before.get(d) != fingerprints[d] or not (folder / f"{d}.html").exists()]
         summary_href = f"../{out.name}"
         # The list's first page, not the one holding the document: a page kept as it is
         # must not point at a list page that now holds other rows.

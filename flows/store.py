@@ -627,6 +627,22 @@ class Store:
                 out.setdefault(doc_id, []).append(r.run_id)
         return out
 
+    def doc_parts(self, stage: str) -> dict[str, list[str]]:
+        """doc_id -> the part files of `stage` that hold it (compacted ones first), from
+        the ledgers: a reader that wants a few documents can group them by file."""
+        out: dict[str, list[str]] = {}
+        covered = set((self.compaction(stage) or {}).get("runs", []))
+        compacted = self._compacted_ledger(stage)
+        if compacted is not None:
+            for doc_id, entries in compacted.files.items():
+                out[doc_id] = [f for _, f in entries]
+        for r in self.runs():
+            if r.run_id in covered:
+                continue
+            for doc_id, files in self._ledger(stage, r.run_id).files.items():
+                out.setdefault(doc_id, []).extend(files)
+        return out
+
     def _read(self, files: list[str], sch: pa.Schema, columns: list[str] | None,
               flt: ds.Expression | None, tolerant: bool) -> pa.Table:
         """Rows of these part files; a file that cannot be read raises StoreDamaged
