@@ -230,8 +230,8 @@ def test_status_chart_matches_the_runs_own_counts(review):
     assert got == review["manifest"]["current"]
     assert list(got) == [s["name"] for s in review["manifest"]["definition"]["steps"]]  # chain order
     svg = dom.get_element_by_id("chart-status").find(".//svg")
-    assert "extract" in svg.findtext("desc") and "4 failed" in svg.findtext("desc")
-    assert "1 skipped" in svg.findtext("desc")  # the PNG named .txt is a non-document, skipped
+    # 4 broken files fail; the PNG named .txt is skipped as an image, the zip as a container
+    assert "extract" in svg.findtext("desc") and "4 failed, 0 dropped, 2 skipped" in svg.findtext("desc")
 
 
 def test_tokens_languages_and_chunk_sizes_agree_with_the_handoff(review):
