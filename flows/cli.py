@@ -651,12 +651,12 @@ def cmd_verify(args: argparse.Namespace) -> int:
 
 @contextmanager
 def _locked(store):
-    from thresher.flows.store import StoreLocked, new_run_id
+    from thresher.flows.store import StoreError, new_run_id
 
     holder = "housekeeping-" + new_run_id()
     try:
         store.acquire_lock(holder)
-    except StoreLocked as exc:
+    except StoreError as exc:  # held by a run, or a store that cannot be written
         raise UsageError(str(exc)) from None
     try:
         store.recover()
