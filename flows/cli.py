@@ -242,7 +242,8 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
     from thresher.flows.store import StoreError
 
     try:
-        manifest = pipeline.run(definition, source, store_root, quiet=args.quiet, **options)
+        manifest = pipeline.run(definition, source, store_root, quiet=args.quiet,
+                                live=not getattr(args, "json", False), **options)
     except (StoreError, RerunError) as exc:
         raise UsageError(str(exc)) from None
     if args.json:

@@ -30,10 +30,11 @@ from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import run_corpus_step
 from thresher.flows.discover import scan
-from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob
+from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, unit_kind
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff
 from thresher.flows.plan import Plan, add_members, make_plan
+from thresher.flows.progress import for_run as progress_for_run
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
 from thresher.flows.summary import STATUS_ORDER, counts_by_stage_and_document, document_rows
@@ -66,8 +67,13 @@ def _emit(progress: Callable[[str], None] | None, line: str) -> None:
         progress(line)
 
 
-def _default_progress(line: str) -> None:
-    print(line, file=sys.stderr, flush=True)
+def _live(progress: Callable[[str], None] | None, event: str, *args: Any) -> bool:
+    """Pass a segment event to a live progress sink; False when the sink draws none."""
+    fn = getattr(progress, event, None)
+    if fn is None:
+        return False
+    fn(*args)
+    return True
 
 
 def make_batches(jobs: list[DocJob], batch_size: int, workers: int = 1,
@@ -258,6 +264,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                     add_members(plan, [])  # members of removed containers leave
                 _emit(progress, f"{label}: nothing to do")
                 continue
+            _live(progress, "segment", label, len(seg_jobs), unit_kind(definition.steps[first]))
             futures = []
             for n, batch in enumerate(batches):
                 job = BatchJob(run_id, store_root, indices, f"s{first:02d}-b{n:05d}", batch, force)
@@ -274,8 +281,10 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 acc.failures.extend(res.failures)
                 for stage, by_status in res.counts.items():
                     acc.add(stage, by_status)
-                _emit(progress, f"{label}: batch {done}/{len(batches)} done, {res.documents} documents "
-                                f"({res.seconds:.1f} s)")
+                units = sum(res.counts.get(names[first], {}).values())
+                if not _live(progress, "advance", label, res.documents, units):
+                    _emit(progress, f"{label}: batch {done}/{len(batches)} done, {res.documents} documents "
+                                    f"({res.seconds:.1f} s)")
                 if not first_batch_done:
                     first_batch_done = True
                     _fault("after-first-batch")
@@ -288,6 +297,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 if found:
                     _emit(progress, f"{label}: {len(found)} documents found inside documents, "
                                     f"{len(inside)} of them read")
+            _live(progress, "finish", label)
         timings[label] = time.perf_counter() - t0
     return acc
 
@@ -462,13 +472,19 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
 def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store_root: str,
            run_id: str | None = None, force: bool = False, quiet: bool = False,
            rerun: dict[str, Any] | None = None, workers: int | None = None,
-           probes: str | None = None, verify: bool = False) -> dict[str, Any]:
+           probes: str | None = None, verify: bool = False, live: bool = False) -> dict[str, Any]:
     """One run of the chain over the source root (or a re-run of chosen units), then the
-    delivery of its change set to the definition's targets when it asks for that."""
+    delivery of its change set to the definition's targets when it asks for that.
+
+    `live`: on a terminal, one live progress line per segment instead of plain lines."""
     definition = _definition(json.dumps(definition_data, sort_keys=True), origin)
-    outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(),
-                          None if quiet else _default_progress, force=force, rerun=rerun, workers=workers,
-                          probes=probes, verify=verify)
+    progress = progress_for_run(quiet, live)
+    try:
+        outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(), progress,
+                              force=force, rerun=rerun, workers=workers, probes=probes, verify=verify)
+    finally:
+        if hasattr(progress, "close"):
+            progress.close()
     result = dict(outcome.manifest)
     deliver_section = definition.model.deliver
     if deliver_section.after_run and deliver_section.targets:
@@ -502,7 +518,7 @@ def build_flow(definition: FlowDefinition, workers: int | None = None, name: str
 
 def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
         force: bool = False, quiet: bool = False, rerun: dict[str, Any] | None = None,
-        probes: str | None = None, verify: bool = False) -> dict[str, Any]:
+        probes: str | None = None, verify: bool = False, live: bool = False) -> dict[str, Any]:
     """Run the flow (embedded Prefect unless PREFECT_API_URL is set).
 
     The store's lock is taken before Prefect starts, so a second run on the same
@@ -517,6 +533,6 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
             return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
                             run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers, probes=probes,
-                            verify=verify)
+                            verify=verify, live=live)
     finally:
         store.release_lock(run_id)
