@@ -5,7 +5,12 @@ Measured side by side in one run:
      pypdfium2 `get_text_range()` on the same PDFs, first in this process (one
      worker: wall and CPU time), then with a process pool of every core; each
      with its word agreement against poppler's pdftotext (precision, recall);
-  2. every other format on the demo drive (and libxslt's HTML site when installed):
+  2. ruled tables: on every page with ruling lines of Debian PDFs that hold tables
+     (debian-policy's FHS, zlib1g-dev's CRC paper, the Debian FAQ, the installation
+     guide) and the demo handbook, our PDFium grid (pdf_grid) against pdfplumber's
+     table finder it replaced: time per ruled page, three rounds, and whether both
+     find the same tables;
+  3. every other format on the demo drive (and libxslt's HTML site when installed):
      pages (files) per second through the extract step.
 
 PDFs: the ones Debian documentation packages install and the tests read
@@ -37,6 +42,12 @@ BASE_PDFS = [
     "/usr/share/doc/fontconfig/fontconfig-user.pdf.gz",
 ]
 BULLETS = {"-", "\u2022"}
+RULED_PDFS = [
+    "/usr/share/doc/debian-policy/fhs/fhs-3.0.pdf.gz",
+    "/usr/share/doc/zlib1g-dev/crc-doc.1.0.pdf.gz",
+    "/usr/share/doc/debian/FAQ/debian-faq.en.pdf.gz",
+    "/usr/share/doc/installation-guide-amd64/en/install.en.pdf.gz",
+]
 
 
 def _plain(path: str, into: Path) -> Path:
@@ -135,6 +146,71 @@ def agreement(texts: dict[str, list[str]], reference: dict[str, str]) -> tuple[f
     return common / max(1, ours_n), common / max(1, ref_n)
 
 
+def ruled_tables(tmp: Path, rounds: int = 3) -> None:
+    """PDFium grid against pdfplumber's table finder on every ruled page, side by side.
+
+    CPU time, not wall time: both run in this one thread, and on a machine shared with
+    other work the CPU time of the same code moves far less than its wall time.
+    """
+    import io
+    import statistics
+
+    import pdfplumber
+    import pypdfium2 as pdfium
+
+    from thresher.steps.extract import pdf_text
+    from thresher.steps.extract.pdf_grid import find_tables
+    from thresher.steps.extract.pdf_tables import tables_on
+
+    paths = [_plain(p, tmp) for p in RULED_PDFS if Path(p).exists()]
+    paths.append(SAMPLE / "operations" / "branch-operations-handbook.pdf")
+    grid_s: list[float] = []
+    plumber_s: list[float] = []
+    read_s: list[float] = []
+    pages = tables = same = 0
+    for path in paths:
+        data = Path(path).read_bytes()
+        doc = pdfium.PdfDocument(data)
+        pdf = pdfplumber.open(io.BytesIO(data))
+        for i in range(len(doc)):
+            t0 = time.process_time()
+            with pdf_text.LOCK:
+                facts = pdf_text.read_page(doc, i)
+            read = time.process_time() - t0
+            if not facts.ruled:
+                continue
+            pages += 1
+            g, p = [], []
+            for _ in range(rounds):
+                t0 = time.process_time()
+                ours = find_tables(facts.edges, facts.words)
+                g.append(time.process_time() - t0)
+                page = pdf.pages[i]
+                t0 = time.process_time()
+                theirs = tables_on(page)
+                p.append(time.process_time() - t0)
+                page.close()
+            grid_s.append(min(g))
+            plumber_s.append(min(p))
+            read_s.append(read)
+            tables += len(theirs)
+            norm = [[["".join((c or "").split()) for c in r] for r in t.rows] for t in theirs]
+            same += len(ours) == len(theirs) and norm == [
+                [["".join((c or "").split()) for c in r] for r in t.rows] for t in ours]
+        pdf.close()
+        doc.close()
+    if not pages:
+        print("no ruled pages found (install debian-policy, zlib1g-dev, debian-faq)")
+        return
+    print(f"ruled pages: {pages} in {len(paths)} PDFs, {tables} tables (pdfplumber); "
+          f"same tables and cell text on {same}/{pages} pages")
+    print(f"{'table finder':32s} {'ms/ruled page (median)':>22s} {'total s':>8s}  (CPU time of this process, best of {rounds} rounds: steadier than wall time on a shared machine)")
+    for name, xs in (("pdfplumber find_tables+extract", plumber_s), ("PDFium grid (pdf_grid)", grid_s),
+                     ("PDFium page read (words, edges)", read_s)):
+        print(f"{name:32s} {statistics.median(xs) * 1000:22.2f} {sum(xs):8.2f}")
+    print(f"grid vs pdfplumber: {sum(plumber_s) / max(sum(grid_s), 1e-9):.0f}x less time on the ruled pages")
+
+
 def main() -> None:
     cores = os.cpu_count() or 1
     tmp = Path(tempfile.mkdtemp(prefix="thresher-bench-"))
@@ -174,6 +250,9 @@ def main() -> None:
             print("(no pdftotext: install poppler-utils for the agreement columns)")
         print("(pages/s: '1 worker' is wall time in this process, 'per CPU s' its CPU time, "
               f"'{cores} workers' a process pool over documents)")
+
+        print()
+        ruled_tables(tmp)
 
         # Other formats through the extract step.
         from thresher.steps.extract import ExtractParams, extract
