@@ -79,7 +79,7 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     r = _cli("run", "--source", str(drive), "--store", str(store), cwd=tmp_path, env=env, offline=True)
     assert r.returncode == 0, r.stderr
     # Progress while it works (stderr), a summary at the end (stdout).
-    assert "batch 1/" in r.stderr and "found 23 files (22 distinct documents)" in r.stderr
+    assert "batch 1/" in r.stderr and "found 25 files (24 distinct documents)" in r.stderr
     # the zip of old minutes holds 2, the e-mail 1 attachment
     assert "3 documents found inside documents, 3 of them read" in r.stderr
     out = r.stdout
@@ -90,7 +90,7 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
 
     s = _cli("status", "--store", str(store), cwd=tmp_path)
     assert s.returncode == 0
-    assert "1 committed run(s), 25 live documents" in s.stdout
+    assert "1 committed run(s), 27 live documents" in s.stdout
     assert "current view by stage:" in s.stdout
     lang_line = next(line for line in s.stdout.splitlines() if line.strip().startswith("by language:"))
     assert "en " in lang_line and "de " in lang_line and "fr " in lang_line

@@ -50,6 +50,9 @@ from reportlab.platypus import (  # noqa: E402
 from PIL import Image, ImageDraw, ImageFilter, ImageFont  # noqa: E402
 import docx  # noqa: E402
 from docx.shared import Pt  # noqa: E402
+import openpyxl  # noqa: E402
+import pptx  # noqa: E402
+from pptx.util import Inches  # noqa: E402
 
 REPO = Path(__file__).resolve().parent.parent
 DEFAULT_OUT = REPO / "sample_inputs"
@@ -1060,7 +1063,7 @@ the branch computers.
 
 How the folders are organised
 
-  operations/   the Branch Operations Handbook and other day-to-day guidance
+  operations/   the Branch Operations Handbook, the opening hours, day-to-day guidance
   policies/     policies approved by the Board, one file per yearly revision
   board/        minutes of Board meetings (the confidential minutes are kept elsewhere)
   intranet/     copies of the staff intranet pages, exported each month
@@ -1069,7 +1072,7 @@ How the folders are organised
   events/       programmes and posters for events
   finance/      scanned receipts and invoices waiting to be filed
   hr/           HR documents; files here are password protected
-  volunteers/   volunteer rotas and notes for volunteer coordinators
+  volunteers/   volunteer rotas, the welcome slides, notes for volunteer coordinators
   it/           exports and logs from the library systems
   archive/      earlier editions kept for reference, by year; old minutes zipped by year
   mail/         e-mails worth keeping, saved as .eml with their attachments
@@ -1143,6 +1146,125 @@ def _logo_png() -> bytes:
 # The drive
 # ---------------------------------------------------------------------------------------
 
+# ---------------------------------------------------------------------------------------
+# Slide deck and spreadsheet
+# ---------------------------------------------------------------------------------------
+
+OFFICE_STAMP = dt.datetime(2026, 1, 19, 10, 0, 0)
+
+
+def _stable_core(data: bytes) -> bytes:
+    """Re-zip (fixed timestamps) with the core properties' dates pinned: the writer
+    libraries stamp the time of saving there."""
+    src = zipfile.ZipFile(io.BytesIO(data))
+    out = io.BytesIO()
+    with zipfile.ZipFile(out, "w") as dst:
+        for name in sorted(src.namelist(), key=lambda n: (n != "[Content_Types].xml", n)):
+            body = src.read(name)
+            if name == "docProps/core.xml":
+                import re
+
+                body = re.sub(rb"(<dcterms:(?:created|modified)[^>]*>)[^<]*(<)",
+                              rb"\g<1>2026-01-19T10:00:00Z\2", body)
+            info = zipfile.ZipInfo(name, date_time=DOCX_STAMP)
+            info.compress_type = zipfile.ZIP_DEFLATED
+            info.create_system = 0
+            info.external_attr = 0
+            dst.writestr(info, body, compresslevel=6)
+    return out.getvalue()
+
+
+def volunteer_welcome_deck() -> bytes:
+    """Slides for new volunteers: a title slide, bullets with speaker notes, a table
+    and a group of two boxes, and a hidden draft slide."""
+    deck = pptx.Presentation()
+    props = deck.core_properties
+    props.title = "Welcome, new volunteers"
+    props.author = ORG
+    props.last_modified_by = "Ines Catterick"
+    props.revision = 2
+    props.created = props.modified = OFFICE_STAMP
+    title, content, blank = deck.slide_layouts[0], deck.slide_layouts[1], deck.slide_layouts[6]
+    s = deck.slides.add_slide(title)
+    s.shapes.title.text = "Welcome, new volunteers"
+    s.placeholders[1].text = "%s - induction, spring 2026" % ORG
+    s = deck.slides.add_slide(content)
+    s.shapes.title.text = "Your first shift"
+    body = s.placeholders[1].text_frame
+    body.text = "Sign in at the front desk and collect your badge"
+    for text, level in (("The duty coordinator hands out the keys", 1),
+                        ("Check the returns trolley", 0), ("Tidy the children's corner", 0)):
+        p = body.add_paragraph()
+        p.text, p.level = text, level
+    s.notes_slide.notes_text_frame.text = (
+        "Show where the fire exits are before anything else, and where the first aid box is kept.")
+    s = deck.slides.add_slide(blank)
+    box = s.shapes.add_textbox(Inches(0.8), Inches(0.5), Inches(8), Inches(0.8))
+    box.text_frame.text = "Who to ask at each branch"
+    rows = [["Branch", "Coordinator", "Shift starts"], ["Lindle Cross", "Ada Penhallow", "09:00"],
+            ["Sorrel Wharf", "Tomasz Quenby", "12:30"], ["Tansywell", "Ines Catterick", "09:00"]]
+    table = s.shapes.add_table(4, 3, Inches(0.8), Inches(1.6), Inches(8), Inches(2)).table
+    for r, row in enumerate(rows):
+        for c, text in enumerate(row):
+            table.cell(r, c).text = text
+    group = s.shapes.add_group_shape()
+    left = group.shapes.add_textbox(Inches(0.8), Inches(4.4), Inches(3.8), Inches(1))
+    left.text_frame.text = "Wear the green lanyard on the public floor"
+    right = group.shapes.add_textbox(Inches(5), Inches(4.4), Inches(3.8), Inches(1))
+    right.text_frame.text = "Never give out a borrower's details"
+    s = deck.slides.add_slide(content)
+    s.shapes.title.text = "Draft: new rota rules"
+    s.placeholders[1].text = "Not agreed yet - do not present"
+    s._element.set("show", "0")
+    buf = io.BytesIO()
+    deck.save(buf)
+    return _stable_core(buf.getvalue())
+
+
+def opening_hours_workbook() -> bytes:
+    """Branch opening hours: a title row, a header row, times as times; a second
+    sheet of holiday closures with dates; a hidden sheet of key holders."""
+    wb = openpyxl.Workbook()
+    wb.properties.creator = ORG
+    wb.properties.title = "Branch opening hours 2026"
+    wb.properties.created = wb.properties.modified = OFFICE_STAMP
+    ws = wb.active
+    ws.title = "Opening hours"
+    ws.append(["Branch opening hours from 1 January 2026"])
+    ws.append([])
+    ws.append(["Branch", "Day", "Opens", "Closes"])
+    for branch, weekday, saturday, sunday in (
+        ("Quillfern Central", ("09:00", "19:00"), ("09:00", "17:00"), ("11:00", "15:00")),
+        ("Tansywell", ("09:30", "17:30"), ("09:30", "13:00"), None),
+        ("Brackenmoor", ("10:00", "18:00"), ("10:00", "16:00"), None),
+        ("Lindle Cross", ("09:30", "18:30"), ("09:30", "16:00"), None),
+        ("Sorrel Wharf", ("13:00", "19:00"), ("10:00", "14:00"), None),
+    ):
+        for day, hours in (("Monday to Friday", weekday), ("Saturday", saturday), ("Sunday", sunday)):
+            if hours is None:
+                ws.append([branch, day, "Closed", None])
+                continue
+            opens, closes = (dt.time(*map(int, h.split(":"))) for h in hours)
+            ws.append([branch, day, opens, closes])
+            ws.cell(ws.max_row, 3).number_format = ws.cell(ws.max_row, 4).number_format = "hh:mm"
+    closures = wb.create_sheet("Holiday closures")
+    closures.append(["Date", "Branches", "Reason"])
+    for date, branches, reason in ((dt.date(2026, 4, 3), "All branches", "Good Friday"),
+                                   (dt.date(2026, 4, 6), "All branches", "Easter Monday"),
+                                   (dt.date(2026, 5, 4), "All except Quillfern Central", "Early May bank holiday"),
+                                   (dt.date(2026, 8, 31), "All branches", "Summer bank holiday")):
+        closures.append([date, branches, reason])
+        closures.cell(closures.max_row, 1).number_format = "yyyy-mm-dd"
+    keys = wb.create_sheet("Key holders")
+    keys.append(["Branch", "Key holder", "Phone"])
+    keys.append(["Lindle Cross", "Ada Penhallow", "01632 960123"])
+    keys.append(["Sorrel Wharf", "Tomasz Quenby", "01632 960456"])
+    keys.sheet_state = "hidden"
+    buf = io.BytesIO()
+    wb.save(buf)
+    return _stable_core(buf.getvalue())
+
+
 def build_drive() -> list[tuple[str, bytes]]:
     """Every file of the drive as (relative path, bytes), in a fixed order."""
     handbook = render_pdf(
@@ -1206,6 +1328,8 @@ def build_drive() -> list[tuple[str, bytes]]:
         # Windows-1252), the same text -- a copy only deduplication can recognise.
         ("volunteers/windows-export/volunteer-rota-spring-2026.txt",
          VOLUNTEER_ROTA.replace("\n", "\r\n").encode("cp1252")),
+        ("volunteers/welcome-new-volunteers.pptx", volunteer_welcome_deck()),
+        ("operations/branch-opening-hours-2026.xlsx", opening_hours_workbook()),
         ("it/scanner-log.txt", b""),
         ("it/label-printer-logo.txt", _logo_png()),
         ("archive/2024-minutes.zip", minutes_zip()),
