@@ -140,3 +140,8 @@ class Overview:
     @property
     def failed_docs(self) -> int:
         return sum(1 for r in self.rows if r.status == "failed")
+
+    @property
+    def skipped_docs(self) -> int:
+        """Files skipped as not documents (images without OCR, web assets...)."""
+        return sum(1 for r in self.rows if r.status == "skipped")

@@ -75,6 +75,7 @@ def summary_context(ov: Overview) -> dict[str, Any]:
         (_n(upsert), "chunks to upsert"),
         (_n(delete), "chunks to delete"),
         (_n(ov.failed_docs), "documents with a failure"),
+        (_n(ov.skipped_docs), "files skipped (not documents)"),
     ]
     runs = []
     for r in scope.runs:

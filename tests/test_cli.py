@@ -83,7 +83,7 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     # the zip of old minutes holds 2, the e-mail 1 attachment
     assert "3 documents found inside documents, 3 of them read" in r.stderr
     out = r.stdout
-    assert "documents  23 files, 25 distinct (3 inside other documents); 25 processed" in out
+    assert "documents  25 files, 27 distinct (3 inside other documents); 27 processed" in out
     for stage in ("extract", "clean", "language", "split", "dedup", "tokens"):
         assert f"\n  {stage} " in out
     assert f"store      {store}" in out

@@ -215,6 +215,8 @@ def test_summary_states_the_runs_figures(review):
     assert cards["chunks handed off"] == f"{m['chunks']:,}"
     assert cards["tokens"] == f"{m['tokens']:,}"
     assert cards["chunks to upsert"] == str(m["changes"]["upsert"])
+    # The demo drive's image named .txt: skipped (not a document), not a failure.
+    assert cards["files skipped (not documents)"] == "1"
     for component in ("prefect", "pyarrow", "tiktoken"):
         assert m["versions"][component] in summary
 
