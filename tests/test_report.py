@@ -215,8 +215,9 @@ def test_summary_states_the_runs_figures(review):
     assert cards["chunks handed off"] == f"{m['chunks']:,}"
     assert cards["tokens"] == f"{m['tokens']:,}"
     assert cards["chunks to upsert"] == str(m["changes"]["upsert"])
-    # The demo drive's image named .txt: skipped (not a document), not a failure.
-    assert cards["files skipped (not documents)"] == "1"
+    # The demo drive's image named .txt and the zip of minutes (its members are the
+    # documents): skipped, not failures.
+    assert cards["files skipped (not documents)"] == "2"
     for component in ("prefect", "pyarrow", "tiktoken"):
         assert m["versions"][component] in summary
 
