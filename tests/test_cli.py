@@ -97,9 +97,10 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     assert "by folder:" in s.stdout and "policies" in s.stdout
     js = json.loads(_cli("status", "--store", str(store), "--json", cwd=tmp_path).stdout)
     assert js["stages"]["extract"]["failed"] >= 4
-    # The image named .txt is not a document: skipped, counted apart from failures.
-    assert js["stages"]["extract"]["skipped"] == 1
-    assert "1 skipped" in s.stdout
+    # The image named .txt and the zip of minutes (a container: its members are the
+    # documents) are skipped, counted apart from failures.
+    assert js["stages"]["extract"]["skipped"] == 2
+    assert "2 skipped" in s.stdout
     handoff = pq.read_table(store / "handoff" / "chunks.parquet")
     assert js["tokens"]["total"] == sum(handoff.column("token_count").to_pylist())
     assert sum(js["tokens"]["by_folder"].values()) == js["tokens"]["total"]
