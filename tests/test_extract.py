@@ -96,7 +96,7 @@ def test_every_format_gives_the_same_shape(fmt):
     assert set(page.payload) == {"method", "page_count", "char_count", "word_count",
                                  "unprintable_share", "table_share", "table_count", "columns",
                                  "removed", "navigation", "encoding", "byte_size",
-                                 "modified_at"}
+                                 "modified_at", "mail_from", "mail_to", "mail_cc", "mail_date"}
     assert page.payload["byte_size"] == len(data)
     assert page.payload["modified_at"] == datetime(2026, 1, 14, 9, 30, tzinfo=timezone.utc)
     assert page.payload["table_count"] == 0 and page.payload["columns"] == 1

@@ -137,6 +137,8 @@ def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
         "byte_size": size,
         "modified_at": (datetime.fromtimestamp(source.mtime, timezone.utc)
                         if source is not None and source.mtime else None),
+        # an e-mail reader fills these (PagePart.fields); other formats leave them null
+        "mail_from": None, "mail_to": None, "mail_cc": None, "mail_date": None,
     }
 
 
