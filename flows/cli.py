@@ -297,6 +297,13 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
                 f"full load of {t['upserts']} chunks" if t["mode"] == "full load" else
                 f"{len(t['runs'])} run(s): {t['upserts']} upserted, {t['deletes']} deleted")
         lines.append(f"  delivered  {t['target']}: {what}" + (f"; holds {t['rows']} chunks" if t["rows"] is not None else ""))
+    withheld = m.get("withheld") or {}
+    if withheld:
+        lines.append(f"  {len(withheld)} document(s) left out of the hand-off:")
+        for path, why in sorted(withheld.items())[:10]:
+            lines.append(f"    {path}  {why}")
+        if len(withheld) > 10:
+            lines.append(f"    ... and {len(withheld) - 10} more")
     if m.get("failures"):
         lines.append(f"  {m['failures']} unit(s) failed this run; `thresher trail PATH` shows each one's way:")
         shown = m.get("failed_units", [])[:10]
@@ -311,7 +318,8 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
 # ----------------------------------------------------------------------------- status
 
 def cmd_status(args: argparse.Namespace) -> int:
-    from thresher.flows.summary import format_stage_counts, live_doc_ids, stage_counts, stages_of, token_totals
+    from thresher.flows.summary import (chunks_by_label, format_stage_counts, live_doc_ids, stage_counts, stages_of,
+                                        token_totals)
 
     definition = _definition(args)
     store = _open_store(args, definition)
@@ -321,6 +329,7 @@ def cmd_status(args: argparse.Namespace) -> int:
     counts = stage_counts(store, stages_of(latest), docs)
     recent = runs[-args.runs:][::-1]
     tokens = token_totals(store)
+    labels = chunks_by_label(store)
     if args.json:
         print(json.dumps({
             "store": store.root,
@@ -335,6 +344,7 @@ def cmd_status(args: argparse.Namespace) -> int:
             "tokens": None if tokens is None else {
                 "encoding": tokens.encoding, "total": tokens.total, "chunks": tokens.chunks,
                 "documents": tokens.documents, "by_language": tokens.by_language, "by_folder": tokens.by_folder},
+            "chunks_by_label": labels,
         }, indent=2, default=str))
         return 0
     print(f"store {store.base}: {len(runs)} committed run(s), {len(docs)} live documents")
@@ -358,6 +368,8 @@ def cmd_status(args: argparse.Namespace) -> int:
 
         print(f"  by language: {share(tokens.by_language)}")
         print(f"  by folder:   {share(tokens.by_folder)}")
+        if labels:
+            print(f"  by label:    {share(labels)}")
     probed = next((r.manifest["probes"] for r in reversed(runs) if r.manifest.get("probes")), None)
     if probed:
         print(f"probes: {probed['count']} questions, {probed['hit_at_1']:.0%} answered first, "
@@ -451,6 +463,8 @@ def cmd_trail(args: argparse.Namespace) -> int:
                   + (f" and {len(inside) - 10} more" if len(inside) > 10 else ""))
     else:
         print("  removed from the source folder (no present path)")
+    for line in _access_lines(present):
+        print(line)
     limited = {s["name"]: s.get("formats") or [] for s in store.latest_run().manifest["definition"]["steps"]}
     fmt = next((r.get("format") for rows in per_stage.values() for r in rows if r.get("format")), None)
     for n, (name, unit) in enumerate(stages):
@@ -477,7 +491,53 @@ def cmd_trail(args: argparse.Namespace) -> int:
             if args.text and row.get("text"):
                 for t in row["text"].splitlines():
                     print(f"    | {t}")
+            for line in _finding_lines(row, stages, per_stage, name):
+                print(line)
     return 0
+
+
+def _access_lines(present: list[dict[str, Any]]) -> list[str]:
+    """Who may read the document, which rule said so, and the file system's facts."""
+    from thresher.flows.access import document_access
+    from thresher.flows.config import AccessSection
+
+    if not present or present[0].get("access_rule") is None:
+        return []
+    readers, label, rule = document_access(present, AccessSection())[present[0]["doc_id"]]
+    lines = [f"  access: {', '.join(readers) if readers else 'nobody (left out of the hand-off)'}"
+             f"{'; label ' + label if label else ''} (from {rule})"]
+    for r in present:
+        if r.get("mode") is not None:
+            acl = f"; ACL {', '.join(r['acl'])}" if r.get("acl") else ""
+            lines.append(f"    {r['source_path']}: owner {r['owner']} ({r['owner_uid']}), group {r['group']} "
+                         f"({r['group_gid']}), mode {r['mode']:04o}{acl}; gives {', '.join(r['readers']) or 'nobody'}"
+                         f" by {r['access_rule']}")
+    return lines
+
+
+def _finding_lines(row: dict[str, Any], stages, per_stage, name: str) -> list[str]:
+    """Each personal-data finding's page and offsets; the value only here, on the terminal."""
+    from thresher.flows.findings import place
+
+    findings = row.get("personal_findings")
+    if not findings:
+        return []
+    names = [s for s, _ in stages]
+    at = names.index(name)
+    # The page stage split read, and the chunk's original text as split cut it.
+    page_stage = next((s for s, unit in reversed(stages[:at]) if unit == "pages"), None)
+    split_rows = next((per_stage[s] for s, unit in stages[:at] if unit == "chunks"), [])
+    original = next((r.get("text") or "" for r in split_rows if r.get("chunk_id") == row.get("chunk_id")), "")
+    pages = sorted(((r.get("page"), r.get("text") or "") for r in per_stage.get(page_stage, []) if r["status"] == "ok"),
+                   key=lambda p: p[0] or 0)
+    lines = []
+    for f, raw in zip(place(findings, row, pages), findings):
+        where = "file" if f.page is None else f"page {f.page}"
+        if f.in_prefix:
+            where += " (repeated table header)"
+        value = original[raw["start"]:raw["end"]]
+        lines.append(f"    {f.kind}: {where} chars {f.start}-{f.end}: {value}")
+    return lines
 
 
 # ----------------------------------------------------------------------------- failures

@@ -148,6 +148,51 @@ class HousekeepingSection(_Strict):
     compact_parts: int = Field(default=200, ge=0)
 
 
+class AccessRule(_Strict):
+    """One access rule: source paths (globs) -> the readers allowed, and a label."""
+
+    paths: list[str] = Field(min_length=1)
+    readers: list[str]  # group or user names of the organisation; [] = nobody
+    label: str | None = None
+
+    @field_validator("paths", mode="before")
+    @classmethod
+    def _one_or_many(cls, v: Any) -> Any:
+        return [v] if isinstance(v, str) else v
+
+    @field_validator("readers")
+    @classmethod
+    def _names(cls, v: list[str]) -> list[str]:
+        if any(not r.strip() for r in v):
+            raise ValueError("a reader is a non-empty name (an empty list means nobody)")
+        return sorted(set(v))
+
+
+class AccessDefault(_Strict):
+    readers: list[str] = Field(default_factory=list)
+    label: str | None = None
+
+
+class AccessSection(_Strict):
+    """Who may read each document: not a step parameter, so it re-runs no step."""
+
+    # combine: the file system's readers (owner, group, others, ACL entries) join the
+    # rule's; ignore: only the rules count.
+    file_system: Literal["combine", "ignore"] = "combine"
+    rules: list[AccessRule] = Field(default_factory=list)
+    # What matches no rule. "nobody" fails closed: such documents stay out of the hand-off.
+    default: AccessDefault = Field(default_factory=lambda: AccessDefault(readers=["everyone"]))
+
+    @field_validator("default", mode="before")
+    @classmethod
+    def _nobody(cls, v: Any) -> Any:
+        if v == "nobody":
+            return {"readers": []}
+        if isinstance(v, str):
+            raise ValueError("the default is 'nobody' or a mapping with readers (and optionally label)")
+        return v
+
+
 class StepEntry(_Strict):
     step: str
     params: dict[str, Any] = Field(default_factory=dict)
@@ -164,6 +209,7 @@ class FlowDefinitionModel(_Strict):
     probes: str | None = None
     housekeeping: HousekeepingSection = Field(default_factory=HousekeepingSection)
     steps: list[StepEntry]
+    access: AccessSection = Field(default_factory=AccessSection)
 
 
 @dataclass(frozen=True)

@@ -9,6 +9,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
+from typing import Any
 
 HASH_CHUNK = 1 << 20
 # Stat and hash run in a few threads: on a network share each call waits on the server,
@@ -30,6 +31,7 @@ class SourceFile:
     device: int = 0
     ctime_ns: int = 0
     hashed: bool = True  # False: doc_id reused from the catalog, the bytes were not read
+    facts: Any = None  # access.FileFacts: owner, group, mode bits, ACL entries
 
 
 @dataclass(frozen=True)
@@ -82,6 +84,8 @@ def stat_record(st: os.stat_result) -> dict[str, int]:
 
 def _look(full: Path, rel: str, known: dict | None, verify: bool) -> SourceFile | ScanProblem | None:
     """Stat one file; hash it unless the catalog's stat record for its path still matches."""
+    from thresher.flows.access import read_facts  # access imports this module's globs
+
     try:
         st = full.stat()
         if not full.is_file():
@@ -89,12 +93,13 @@ def _look(full: Path, rel: str, known: dict | None, verify: bool) -> SourceFile 
         rec = stat_record(st)
         if not verify and known is not None and known.get("doc_id") and all(known.get(k) == rec[k] for k in STAT_FIELDS):
             return SourceFile(rel, str(full), st.st_size, st.st_mtime, known["doc_id"], rec["mtime_ns"],
-                              rec["inode"], rec["device"], rec["ctime_ns"], hashed=False)
+                              rec["inode"], rec["device"], rec["ctime_ns"], hashed=False,
+                              facts=read_facts(str(full), st))
         doc_id = file_doc_id(full)
     except OSError as exc:
         return ScanProblem(rel, f"cannot read file: {exc.strerror or exc}")
     return SourceFile(rel, str(full), st.st_size, st.st_mtime, doc_id, rec["mtime_ns"], rec["inode"],
-                      rec["device"], rec["ctime_ns"])
+                      rec["device"], rec["ctime_ns"], facts=read_facts(str(full), st))
 
 
 def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],

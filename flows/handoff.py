@@ -42,6 +42,11 @@ class HandoffResult:
     upserts: int
     deletes: int
     per_doc: dict[str, tuple[int, int]] = field(default_factory=dict)  # doc_id -> (chunks, tokens)
+    # Documents left out because their access allows nobody: source path -> reason.
+    withheld: dict[str, str] = field(default_factory=dict)
+
+
+Access = dict[str, tuple[list[str], "str | None", str]]  # doc_id -> (readers, label, rule key)
 
 
 def _chunk_stages(definition: FlowDefinition) -> list[tuple[str, bool]]:
@@ -66,7 +71,7 @@ def _plain_hash(text: str) -> str:
 
 
 def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: list[str],
-                live: dict[str, tuple[int, str]]) -> list[dict[str, Any]]:
+                live: dict[str, tuple[int, str]], access: Access) -> list[dict[str, Any]]:
     """Hand-off rows of one group of documents, in (path, chunk index) order.
 
     A chunk is live when every chunk stage holds it as ok, except that a stage limited
@@ -91,6 +96,7 @@ def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: lis
     for r in latest.values():
         if r["chunk_id"] not in keep or r["doc_id"] not in live:
             continue
+        readers, label, _ = access[r["doc_id"]]
         counts = r.get("token_counts")
         if counts is None:
             counts = {r["encoding"]: r["token_count"]} if r.get("encoding") and r.get("token_count") is not None else {}
@@ -104,7 +110,7 @@ def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: lis
             "prefix_chars": r.get("prefix_chars") or 0, "language": r.get("language"),
             "text": r.get("text"), "token_count": r.get("token_count"), "encoding": r.get("encoding"),
             "token_counts": counts, "content_hash": hashes.get(r["chunk_id"]) or _plain_hash(r.get("text") or ""),
-            "run_id": r["run_id"],
+            "readers": readers, "label": label, "run_id": r["run_id"],
         })
     out.sort(key=lambda r: (r["source_path"], r["chunk_index"] or 0, r["chunk_id"]))
     return out
@@ -125,15 +131,20 @@ def previous_digests(store: Store) -> pa.Table:
 
 
 def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str]],
-                  chunks_rel: str, digests_rel: str, changes_rel: str) -> HandoffResult:
-    """Write the hand-off, its digests and the change set to the given (staged) paths."""
-    order = sorted(live, key=lambda d: live[d][1])
+                  access: Access, chunks_rel: str, digests_rel: str, changes_rel: str) -> HandoffResult:
+    """Write the hand-off, its digests and the change set to the given (staged) paths.
+
+    Access is joined on here, from the catalog: a document whose access allows nobody
+    is left out (fail closed), so its chunks leave the index through the change set.
+    """
+    withheld = {live[d][1]: f"access allows nobody ({access[d][2]})" for d in live if not access[d][0]}
+    order = sorted((d for d in live if access[d][0]), key=lambda d: live[d][1])
     digest_parts: list[pa.Table] = []
     per_doc: dict[str, tuple[int, int]] = {}
     total_chunks = total_tokens = 0
     with store.parquet_writer(chunks_rel, schema.HANDOFF, run_id=run_id) as writer:
         for start in range(0, len(order), GROUP_DOCS):
-            rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live)
+            rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live, access)
             if not rows:
                 continue
             writer.write_table(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
@@ -173,4 +184,4 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     changes = pa.concat_tables([_changes(upserts, "upsert"), _changes(gone, "delete")])
     changes = changes.sort_by([("action", "ascending"), ("source_path", "ascending"), ("chunk_id", "ascending")])
     store.write_table(changes_rel, changes, run_id=run_id)
-    return HandoffResult(total_chunks, total_tokens, upserts.num_rows, gone.num_rows, per_doc)
+    return HandoffResult(total_chunks, total_tokens, upserts.num_rows, gone.num_rows, per_doc, withheld)

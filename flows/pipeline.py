@@ -356,7 +356,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
 
         t0 = time.perf_counter()
         staged = f"runs/{run_id}/staged"
-        handoff = build_handoff(definition, store, run_id, plan.live, f"{staged}/chunks.parquet",
+        handoff = build_handoff(definition, store, run_id, plan.live, plan.access, f"{staged}/chunks.parquet",
                                 f"{staged}/digests.parquet", f"{staged}/changes.parquet")
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
                    "staged/digests.parquet": "handoff/digests.parquet",
@@ -413,6 +413,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "tokens": tokens,
             "changes": {"upsert": handoff.upserts, "delete": handoff.deletes},
             "probes": probe_summary,
+            "withheld": handoff.withheld,
             "failures": len(acc.failures),
             # The first ones, for the summary; every one is in the stage tables.
             "failed_units": [{"source_path": p, "stage": s, "reason": r} for p, s, r in sorted(acc.failures)[:50]],
@@ -465,7 +466,7 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
         path = live[doc_id][1] if doc_id in live else doc_id
         targets = [target_for_document(definition, store, doc_id, path, rerun.get("page"), rerun.get("step"))]
     rerun["_described"] = describe(targets)
-    return make_rerun_plan(store, targets, source_root, live, copies)
+    return make_rerun_plan(store, targets, source_root, live, copies, definition.model.access)
 
 
 @flow(name="thresher-run", log_prints=False, persist_result=False)

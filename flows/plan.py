@@ -8,11 +8,13 @@ stage whose stored rows were made with a different step version or parameters.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 from datetime import datetime, timezone
 
 import pyarrow as pa
 
 from thresher.flows import schema
+from thresher.flows.access import catalog_columns, document_access, inherit_container_access
 from thresher.flows.config import FlowDefinition
 from thresher.flows.discover import SourceFile
 from thresher.flows.execute import DocJob, MemberInfo
@@ -35,6 +37,9 @@ class Plan:
     # Catalog rows (by path) of members of containers read again in this run: removed
     # unless the run finds them again, or finds their container unchanged.
     awaited: dict[str, dict] = field(default_factory=dict)
+    # doc_id -> (readers, label, rule key); readers [] = nobody (left out of the hand-off)
+    access: dict[str, tuple[list[str], str | None, str]] = field(default_factory=dict)
+    access_section: Any = None  # the definition's access section, for members found later
 
 
 def _ts(epoch: float) -> datetime:
@@ -118,6 +123,7 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
             "mtime_ns": f.mtime_ns, "inode": f.inode, "device": f.device, "ctime_ns": f.ctime_ns,
             "first_run": prev["first_run"] if same else run_id, "last_run": run_id, "present": True,
             "canonical_path": None, "chain_digest": None,
+            **catalog_columns(definition.model.access, f.source_path, f.facts),
         })
         seen_paths.add(f.source_path)
     drive_docs = {f.doc_id for f in files}
@@ -182,11 +188,13 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
             r["canonical_path"] = canonical[r["doc_id"]]
             r["chain_digest"] = chain
     rows.sort(key=lambda r: r["source_path"])
+    inherit_container_access(rows)
     deleted = sorted({r["doc_id"] for r in old if r["present"]} - set(canonical)
                      - {r["doc_id"] for r in awaited.values()})
     catalog = pa.Table.from_pylist(rows, schema=schema.CATALOG)
     return Plan(catalog=catalog, jobs=jobs, skipped=skipped, deleted=deleted, live=live, copies=copies,
-                seq_of=seq_of, sequence=sequence, run_id=run_id, chain=chain, awaited=awaited)
+                seq_of=seq_of, sequence=sequence, run_id=run_id, chain=chain, awaited=awaited,
+                access=document_access(rows, definition.model.access), access_section=definition.model.access)
 
 
 def member_chain(row_at: dict[str, dict], canonical: dict[str, str], path: str) -> tuple[str, tuple[str, ...]]:
@@ -238,8 +246,10 @@ def add_members(plan: Plan, found: list[MemberInfo]) -> list[DocJob]:
         if r["present"]:
             r["canonical_path"] = canonical[r["doc_id"]]
             r["chain_digest"] = plan.chain
+    inherit_container_access(all_rows)
     plan.catalog = pa.Table.from_pylist(all_rows, schema=schema.CATALOG)
     plan.live, plan.copies = live, copies
+    plan.access = document_access(all_rows, plan.access_section)
     plan.deleted = sorted((set(plan.deleted) | awaited_ids) - set(live))
     jobs = []
     seen = {j.doc_id for j in plan.jobs}

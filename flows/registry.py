@@ -10,6 +10,7 @@ BUILTIN_STEPS: dict[str, tuple[str, str]] = {
     "clean": ("thresher.steps.clean", "CLEAN"),
     "language": ("thresher.steps.language", "LANGUAGE"),
     "split": ("thresher.steps.split", "SPLIT"),
+    "personal": ("thresher.steps.personal", "PERSONAL"),
     "dedup": ("thresher.steps.dedup", "DEDUP"),
     "tokens": ("thresher.steps.tokens", "TOKENS"),
 }

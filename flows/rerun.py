@@ -10,7 +10,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from thresher.flows.config import FlowDefinition
+from thresher.flows.access import document_access
+from thresher.flows.config import AccessSection, FlowDefinition
 from thresher.flows.discover import file_doc_id
 from thresher.flows.execute import DocJob
 from thresher.flows.plan import Plan, member_chain
@@ -88,7 +89,7 @@ def targets_for_failed(definition: FlowDefinition, store: Store, live: dict[str,
 
 
 def make_rerun_plan(store: Store, targets: list[RerunTarget], source_root: str,
-                    live: dict[str, tuple[int, str]], copies: dict[str, list[str]]) -> Plan:
+                    live: dict[str, tuple[int, str]], copies: dict[str, list[str]], access: AccessSection | None = None) -> Plan:
     """A plan for just these targets; `live` and `copies` as plan.live_documents gives them."""
     catalog = store.catalog()
     size_of = {r["source_path"]: r for r in catalog.to_pylist()}
@@ -113,7 +114,9 @@ def make_rerun_plan(store: Store, targets: list[RerunTarget], source_root: str,
         mtime = entry["mtime"].timestamp() if entry.get("mtime") else 0.0
         jobs.append(DocJob(t.doc_id, path, abs_path, int(entry.get("size") or 0), mtime, t.step, True, t.locators,
                            member_of=inside))
-    return Plan(catalog=catalog, jobs=jobs, skipped=[], deleted=[], live=live, copies=copies)
+    return Plan(catalog=catalog, jobs=jobs, skipped=[], deleted=[], live=live, copies=copies,
+                access=document_access(catalog.to_pylist(), access or AccessSection()),
+                access_section=access or AccessSection())
 
 
 def describe(targets: list[RerunTarget]) -> list[str]:

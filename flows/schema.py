@@ -131,6 +131,12 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
         pa.field("merged_sections", pa.int32()),
         pa.field("overlap_chars", pa.int32()),
     ],
+    "personal": [
+        pa.field("personal_counts", pa.map_(pa.string(), pa.int32())),  # kind -> findings; never values
+        pa.field("personal_findings", pa.list_(pa.struct([
+            pa.field("kind", pa.string()), pa.field("start", pa.int32()), pa.field("end", pa.int32())]))),
+        pa.field("masked", pa.int32()),  # findings replaced by a marker in this stage's text
+    ],
     "dedup": [
         pa.field("content_hash", pa.string()),  # SHA-256 of the normalised text
         pa.field("document_hash", pa.string()),  # SHA-256 of the document's normalised text
@@ -182,6 +188,16 @@ CATALOG = pa.schema(
         # doc_id and its name there; null for a file of the drive.
         pa.field("container_doc_id", pa.string()),
         pa.field("member_name", pa.string()),
+        # Access (flows/access.py): file-system facts at scan time, then the rules' result.
+        pa.field("owner_uid", pa.int64()),
+        pa.field("owner", pa.string()),
+        pa.field("group_gid", pa.int64()),
+        pa.field("group", pa.string()),
+        pa.field("mode", pa.int32()),
+        pa.field("acl", STR_LIST),
+        pa.field("readers", STR_LIST),
+        pa.field("label", pa.string()),
+        pa.field("access_rule", pa.string()),
     ]
 )
 
@@ -204,6 +220,8 @@ HANDOFF = pa.schema(
         pa.field("encoding", pa.string()),
         pa.field("token_counts", pa.map_(pa.string(), pa.int32())),
         pa.field("content_hash", pa.string()),
+        pa.field("readers", STR_LIST, nullable=False),
+        pa.field("label", pa.string()),
         pa.field("run_id", pa.string()),
     ]
 )
@@ -227,6 +245,8 @@ HANDOFF_DOC = {
     "encoding": "Name of the primary tiktoken encoding.",
     "token_counts": "Tokens per configured encoding.",
     "content_hash": "SHA-256 of the chunk's normalised text (the exact-duplicate key).",
+    "readers": "Who may read the chunk: the access rule's readers for its document (plus the file system's \"user:NAME\", \"group:NAME\", \"everyone\" when access.file_system is combine), sorted. Never null; an empty list would mean nobody, and such documents are left out.",
+    "label": "The access rule's label for the document (e.g. confidential), null when the rule gives none.",
     "run_id": "The run that produced this version of the chunk.",
 }
 

@@ -105,3 +105,11 @@ def format_stage_counts(counts: list[StageCounts]) -> list[str]:
         unit = "pages" if c.unit == "pages" else "chunks"
         lines.append(f"  {c.stage:<10} {c.total:>6} {unit:<6}  " + (", ".join(parts) or "none"))
     return lines
+
+
+def chunks_by_label(store: Store) -> dict[str, int]:
+    """Hand-off chunks per access label ("(no label)" for none), most first."""
+    table = store.handoff()
+    if table is None or "label" not in table.column_names:
+        return {}
+    return dict(Counter(label or "(no label)" for label in table.column("label").to_pylist()).most_common())

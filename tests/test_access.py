@@ -1,0 +1,193 @@
+"""Who may read each chunk: file-system facts, rules, and a change of access alone.
+
+The drive is built here on a file system with POSIX ACLs (a tmpfs mounted by the test
+when it runs as root; tmpfs supports ACLs), with owners, groups, modes and ACL
+entries set by chown/chmod and Debian's `setfacl` (package `acl`, installed by
+`make test`'s system-deps). Outside references: getfacl's own listing of the same
+files (Debian `acl`), and acl(5) for how the mask limits named entries.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+import yaml
+
+from thresher.flows import pipeline
+from thresher.flows.access import ACL_XATTR, acl_text, decide, file_readers, parse_acl, read_facts
+from thresher.flows.config import ConfigError, build_definition, default_config_text
+from thresher.flows.store import Store
+
+OUTSIDER_UID, OUTSIDER_GID, AUDIT_GID = 4101, 4200, 4300  # ids with no name on this system
+
+
+def _mount_acl_fs(where: Path) -> Path:
+    """A folder whose file system keeps POSIX ACLs, or a skip saying why there is none."""
+    if shutil.which("setfacl") is None or shutil.which("getfacl") is None:
+        pytest.skip("setfacl/getfacl missing: `make system-deps` installs Debian's acl package")
+    if os.geteuid() != 0:
+        pytest.skip("the test drive needs files of other owners (chown), which only root may set")
+    where.mkdir()
+    mounted = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=16m", "tmpfs", str(where)],
+                             capture_output=True, text=True).returncode == 0
+    probe = where / ".probe"
+    probe.write_text("x")
+    ok = subprocess.run(["setfacl", "-m", "u:1:r", str(probe)], capture_output=True).returncode == 0
+    probe.unlink()
+    if not ok:
+        if mounted:
+            subprocess.run(["umount", str(where)])
+        pytest.skip(f"no file system with POSIX ACLs here (tmpfs mount {'worked' if mounted else 'refused'}, "
+                    f"setfacl refused on {where})")
+    return where if mounted else where
+
+
+@pytest.fixture()
+def acl_drive(tmp_path: Path):
+    root = _mount_acl_fs(tmp_path / "acl-fs")
+    drive = root / "drive"
+    for rel, text in {
+        "public/opening-times.txt": "The Quillfern reading room opens at nine on weekdays and at ten on Saturdays.",
+        "hr/appraisal-notes.txt": "Appraisal notes for the Quillfern cataloguing team, spring round.",
+        "board/budget-draft.txt": "Draft budget of the Quillfern board for the coming year, not yet agreed.",
+        "scratch/loose-notes.txt": "Loose notes that no rule covers, left on the drive by someone.",
+    }.items():
+        p = drive / rel
+        p.parent.mkdir(parents=True, exist_ok=True)
+        p.write_text(text + "\n")
+    os.chmod(drive / "public/opening-times.txt", 0o644)
+    os.chmod(drive / "scratch/loose-notes.txt", 0o644)
+    hr = drive / "hr/appraisal-notes.txt"
+    os.chown(hr, OUTSIDER_UID, OUTSIDER_GID)
+    os.chmod(hr, 0o640)
+    subprocess.run(["setfacl", "-m", f"u:daemon:r,g:{AUDIT_GID}:r,g:adm:rw", str(hr)], check=True)
+    board = drive / "board/budget-draft.txt"
+    os.chown(board, 0, 4)  # root, adm
+    os.chmod(board, 0o600)
+    yield drive
+    subprocess.run(["umount", str(root)], capture_output=True)
+
+
+def _definition(access: dict):
+    data = yaml.safe_load(default_config_text())
+    data["access"] = access
+    data["runner"] = {"kind": "threads", "workers": 1}
+    return build_definition(data, "test")
+
+
+RULES = {
+    "file_system": "combine",
+    "rules": [
+        {"paths": ["hr/**"], "readers": ["hr-team"], "label": "confidential"},
+        {"paths": "board/**", "readers": ["board"], "label": "restricted"},
+        {"paths": "public/**", "readers": ["everyone"]},
+    ],
+    "default": "nobody",
+}
+
+
+def test_acl_entries_read_from_the_attribute_match_getfacl(acl_drive):
+    hr = acl_drive / "hr/appraisal-notes.txt"
+    facts = read_facts(str(hr), hr.stat())
+    # Reference: getfacl (Debian acl) lists the same entries; -c leaves out its header,
+    # -E the "#effective:" remarks.
+    listing = subprocess.run(["getfacl", "-c", "-E", str(hr)], capture_output=True, text=True, check=True).stdout
+    expected = [line for line in listing.splitlines() if line.strip()]
+    assert acl_text(facts.acl) == expected
+    assert f"group:{AUDIT_GID}:r--" in expected and "user:daemon:r--" in expected
+    assert (facts.uid, facts.gid) == (OUTSIDER_UID, OUTSIDER_GID)
+    # A file without an ACL has no attribute: the mode bits say it all.
+    plain = acl_drive / "public/opening-times.txt"
+    assert read_facts(str(plain), plain.stat()).acl == ()
+
+
+def test_the_acl_mask_limits_named_readers(acl_drive):
+    """acl(5): the mask entry bounds named users, named groups and the owning group."""
+    hr = acl_drive / "hr/appraisal-notes.txt"
+    before = file_readers(read_facts(str(hr), hr.stat()))
+    assert before == sorted([f"user:{OUTSIDER_UID}", f"group:{OUTSIDER_GID}", "user:daemon",
+                             f"group:{AUDIT_GID}", "group:adm"])
+    subprocess.run(["setfacl", "-m", "m::---", str(hr)], check=True)
+    assert file_readers(read_facts(str(hr), hr.stat())) == [f"user:{OUTSIDER_UID}"]
+
+
+def test_a_broken_acl_attribute_is_a_clear_error():
+    with pytest.raises(ValueError, match="version 1"):
+        parse_acl(b"\x01\x00\x00\x00")
+    with pytest.raises(ValueError, match="8-byte entries"):
+        parse_acl(b"\x02\x00\x00\x00\x01\x00")
+    assert ACL_XATTR == "system.posix_acl_access"
+
+
+def test_access_rules_are_validated_with_the_key_named():
+    with pytest.raises(ConfigError, match=r"access\.rules\[0\]\.readers"):
+        _definition({"rules": [{"paths": "hr/**"}]})
+    with pytest.raises(ConfigError, match=r"access\.file_system"):
+        _definition({"file_system": "sometimes"})
+    with pytest.raises(ConfigError, match=r"access\.default"):
+        _definition({"default": "somebody"})
+    with pytest.raises(ConfigError, match=r"access\.rules\[0\]\.readers"):
+        _definition({"rules": [{"paths": "hr/**", "readers": [" "]}]})
+
+
+def _handoff(store_dir: Path) -> dict[str, dict]:
+    rows = Store(store_dir).handoff().to_pylist()
+    return {r["source_path"]: r for r in rows}
+
+
+def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect_harness, acl_drive, tmp_path):
+    store_dir = tmp_path / "store"
+    first = pipeline.run(_definition(RULES), str(acl_drive), str(store_dir), quiet=True)
+    out = _handoff(store_dir)
+    assert set(out) == {"public/opening-times.txt", "hr/appraisal-notes.txt", "board/budget-draft.txt"}
+    # Fail closed: what no rule covers is left out, with the rule that decided.
+    assert first["withheld"] == {"scratch/loose-notes.txt": "access allows nobody (access.default)"}
+    hr = out["hr/appraisal-notes.txt"]
+    assert hr["readers"] == sorted(["hr-team", f"user:{OUTSIDER_UID}", f"group:{OUTSIDER_GID}", "user:daemon",
+                                    f"group:{AUDIT_GID}", "group:adm"])
+    assert hr["label"] == "confidential"
+    assert out["board/budget-draft.txt"]["readers"] == ["board", "user:root"]
+    assert out["public/opening-times.txt"]["readers"] == ["everyone", "group:root", "user:root"]
+    assert out["public/opening-times.txt"]["label"] is None
+    catalog = {r["source_path"]: r for r in Store(store_dir).catalog().to_pylist()}
+    assert catalog["hr/appraisal-notes.txt"]["access_rule"] == "access.rules[0]"
+    # acl(5): with an ACL the mode's group bits show the mask (rw- here, from g:adm:rw).
+    assert catalog["hr/appraisal-notes.txt"]["mode"] == 0o660 and catalog["board/budget-draft.txt"]["group"] == "adm"
+
+    # Only access changes: the board file's group and mode, the hr rule's label, and a
+    # default that now lets staff read what no rule covers.
+    os.chown(acl_drive / "board/budget-draft.txt", 0, 0)
+    os.chmod(acl_drive / "board/budget-draft.txt", 0o640)
+    edited = {**RULES, "rules": [{**RULES["rules"][0], "label": "personnel"}] + RULES["rules"][1:],
+              "default": {"readers": ["staff"]}}
+    stage_files = sorted(p.relative_to(store_dir) for p in (store_dir / "stages").rglob("*.parquet"))
+    second = pipeline.run(_definition(edited), str(acl_drive), str(store_dir), quiet=True)
+    assert second["documents"]["processed"] == 0 and second["withheld"] == {}
+    assert sorted(p.relative_to(store_dir) for p in (store_dir / "stages").rglob("*.parquet")) == stage_files
+    store = Store(store_dir)
+    assert store.stage_rows("extract", "pages").column("run_id").unique().to_pylist() == [first["run_id"]]
+    changes = pq.read_table(store_dir / "handoff" / "changes" / f"{second['run_id']}.parquet").to_pylist()
+    # Exactly the affected chunks (one per file here): the public file's is not among them.
+    assert sorted((c["source_path"], c["action"]) for c in changes) == [
+        ("board/budget-draft.txt", "upsert"), ("hr/appraisal-notes.txt", "upsert"),
+        ("scratch/loose-notes.txt", "upsert")]
+    out = _handoff(store_dir)
+    assert out["board/budget-draft.txt"]["readers"] == ["board", "group:root", "user:root"]
+    assert out["hr/appraisal-notes.txt"]["label"] == "personnel"
+    assert out["scratch/loose-notes.txt"]["readers"] == ["everyone", "group:root", "staff", "user:root"]
+
+
+def test_ignoring_the_file_system_leaves_the_rules_readers(acl_drive):
+    hr = acl_drive / "hr/appraisal-notes.txt"
+    facts = read_facts(str(hr), hr.stat())
+    section = _definition({**RULES, "file_system": "ignore"}).model.access
+    a = decide(section, "hr/appraisal-notes.txt", facts)
+    assert (a.readers, a.label, a.rule) == (["hr-team"], "confidential", "access.rules[0]")
+    # A rule allowing nobody wins over the file system's readers (fail closed).
+    closed = _definition({**RULES, "rules": [{"paths": "hr/**", "readers": []}]}).model.access
+    assert decide(closed, "hr/appraisal-notes.txt", facts).readers == []
