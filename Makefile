@@ -14,14 +14,14 @@ STAMP  := $(VENV)/.thresher-installed
 # files of python-odf-doc, debian-policy and developers-reference (ODF, EPUB) for the
 # office-format readers' tests; PostgreSQL for the delivery target's tests; PDFs with
 # ruled tables (debian-policy's FHS, zlib1g-dev's CRC paper, the Debian FAQ) for the
-# table grid against pdfplumber; Python's test suite for its real archives and e-mail messages.
+# table grid against pdfplumber; Python's test suite for its real archives and e-mail messages; acl (setfacl/getfacl) for the access tests.
 DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
                         bzip2-doc fontconfig libxslt1-dev locales \
                         unicode-data manpages manpages-de manpages-fr manpages-es \
                         tesseract-ocr tesseract-ocr-eng libreoffice-writer-nogui \
                         libreoffice-calc-nogui libreoffice-impress-nogui \
                         python-odf-doc debian-policy developers-reference fonts-dejavu-core \
-                        chromium postgresql zlib1g-dev debian-faq libpython3.11-testsuite
+                        chromium postgresql zlib1g-dev debian-faq libpython3.11-testsuite acl
 
 # Manuals Debian ships as both PDF and HTML: the retrieval benchmark (bench/retrieval.py)
 # takes its questions from the HTML edition and ranks chunks of the PDF edition.

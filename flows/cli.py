@@ -39,7 +39,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub.required = True
 
     p = sub.add_parser("run", help="run the flow over the source folder", description=(
-        "Run the chain (extract, clean, language, split, dedup, tokens) over the source folder, "
+        "Run the chain (extract, clean, language, split, personal, dedup, tokens) over the source folder, "
         "skipping documents already processed with the same steps and parameters."))
     _common(p)
     p.add_argument("--source", metavar="DIR", help="source folder (default: from the flow definition)")

@@ -53,7 +53,8 @@ def acl_drive(tmp_path: Path):
     drive = root / "drive"
     for rel, text in {
         "public/opening-times.txt": "The Quillfern reading room opens at nine on weekdays and at ten on Saturdays.",
-        "hr/appraisal-notes.txt": "Appraisal notes for the Quillfern cataloguing team, spring round.",
+        "hr/appraisal-notes.txt": "Appraisal notes for the Quillfern cataloguing team, spring round. "
+                                  "Questions to the team lead on 0113 496 0214 or lead@quillfern.example.",
         "board/budget-draft.txt": "Draft budget of the Quillfern board for the coming year, not yet agreed.",
         "scratch/loose-notes.txt": "Loose notes that no rule covers, left on the drive by someone.",
     }.items():
@@ -140,7 +141,8 @@ def _handoff(store_dir: Path) -> dict[str, dict]:
     return {r["source_path"]: r for r in rows}
 
 
-def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect_harness, acl_drive, tmp_path):
+def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect_harness, acl_drive, tmp_path,
+                                                                           capsys):
     store_dir = tmp_path / "store"
     first = pipeline.run(_definition(RULES), str(acl_drive), str(store_dir), quiet=True)
     out = _handoff(store_dir)
@@ -180,6 +182,33 @@ def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect
     assert out["board/budget-draft.txt"]["readers"] == ["board", "group:root", "user:root"]
     assert out["hr/appraisal-notes.txt"]["label"] == "personnel"
     assert out["scratch/loose-notes.txt"]["readers"] == ["everyone", "group:root", "staff", "user:root"]
+
+    # trail shows the access, the rule that gave it and the facts; where each finding
+    # is (page text offsets) with its value on the terminal; status counts by label.
+    config = tmp_path / "flow.yaml"
+    data = yaml.safe_load(default_config_text())
+    data.update(access=edited, store=str(store_dir))
+    data["source"]["root"] = str(acl_drive)
+    config.write_text(yaml.safe_dump(data))
+    doc_id = out["hr/appraisal-notes.txt"]["doc_id"]
+    trail = _cli(capsys, "trail", doc_id[:12], "--config", str(config))
+    assert "access: " + ", ".join(out["hr/appraisal-notes.txt"]["readers"]) + "; label personnel (from access.rules[0])" \
+        in trail
+    assert f"owner {OUTSIDER_UID} ({OUTSIDER_UID}), group {OUTSIDER_GID} ({OUTSIDER_GID}), mode 0660" in trail
+    page = Store(store_dir).current("language", "pages", [doc_id]).column("text").to_pylist()[0]
+    for kind, value in (("phone", "0113 496 0214"), ("email", "lead@quillfern.example")):
+        start = page.index(value)
+        assert f"{kind}: file chars {start}-{start + len(value)}: {value}" in trail
+    status = _cli(capsys, "status", "--config", str(config))
+    assert "by label:    (no label) 2, restricted 1, personnel 1" in status
+
+
+def _cli(capsys, *argv: str) -> str:
+    from thresher.flows.cli import main
+
+    capsys.readouterr()
+    assert main(list(argv)) == 0
+    return capsys.readouterr().out
 
 
 def test_ignoring_the_file_system_leaves_the_rules_readers(acl_drive):

@@ -1265,6 +1265,47 @@ def opening_hours_workbook() -> bytes:
     return _stable_core(buf.getvalue())
 
 
+# Personal data for the personal-data step to find. All invented: e-mail addresses
+# under the reserved .example domain (RFC 2606), phone numbers from the ranges Ofcom
+# keeps for drama (0113 496 0xxx, 020 7946 0xxx), IBANs of a bank code that does not
+# exist ("QUIL") with correct check digits.
+STAFF_CONTACTS = """# Staff contact list - central team
+
+Confidential: for the central team and branch supervisors only. Keep it in the HR folder.
+
+| Name | Role | E-mail | Phone |
+|---|---|---|---|
+| Tomasz Quenby | Operations coordinator | tomasz.quenby@quillfern.example | 0113 496 0214 |
+| Priya Haldane-Moss | Finance and payroll | priya.haldane-moss@quillfern.example | 0113 496 0227 |
+| Ines Catterick | Stock librarian | ines.catterick@quillfern.example | 0113 496 0231 |
+| Rowan Pellifer | Brackenmoor branch supervisor | rowan.pellifer@quillfern.example | 020 7946 0583 |
+
+## Out of hours
+
+The duty supervisor's phone is +44 113 496 0999. Building alarms go to the keyholder
+on 020 7946 0112.
+"""
+
+EXPENSE_CLAIM = """Quillfern Library Cooperative - expense claim
+
+Claimant: Rowan Pellifer, Brackenmoor branch supervisor
+Claim number: EC-2026-0217
+Period: 1 to 14 February 2026
+
+Item                                   Date         Amount
+Train to the Quillfern Central meeting  03.02.2026   GBP 18.40
+Craft materials for story time          09.02.2026   GBP 26.15
+Total                                                GBP 44.55
+
+Please pay to: GB34 QUIL 4051 2712 3456 78 (account of R. Pellifer)
+Questions about this claim: Priya Haldane-Moss, finance, 0113 496 0227 or
+priya.haldane-moss@quillfern.example
+
+Approved by Tomasz Quenby on 16.02.2026. Refunds of overpaid claims go to the
+cooperative's account GB73 QUIL 4051 2787 6543 21.
+"""
+
+
 def build_drive() -> list[tuple[str, bytes]]:
     """Every file of the drive as (relative path, bytes), in a fixed order."""
     handbook = render_pdf(
@@ -1323,6 +1364,8 @@ def build_drive() -> list[tuple[str, bytes]]:
         ("finance/2026-01-14-receipt-stationery-scan.pdf", receipt_pdf()),
         ("events/spring-reading-programme-2026.pdf", programme[: int(len(programme) * TRUNCATE_FRACTION)]),
         ("hr/salary-review-2026-protected.pdf", salary),
+        ("hr/staff-contact-list.md", STAFF_CONTACTS.encode("utf-8")),
+        ("finance/2026-02-expense-claim-pellifer.txt", EXPENSE_CLAIM.encode("utf-8")),
         ("volunteers/volunteer-rota-spring-2026.txt", VOLUNTEER_ROTA.encode("utf-8")),
         # The same rota saved again from a Windows program: other bytes (CRLF line ends,
         # Windows-1252), the same text -- a copy only deduplication can recognise.
