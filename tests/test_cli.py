@@ -79,18 +79,19 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     r = _cli("run", "--source", str(drive), "--store", str(store), cwd=tmp_path, env=env, offline=True)
     assert r.returncode == 0, r.stderr
     # Progress while it works (stderr), a summary at the end (stdout).
-    assert "batch 1/" in r.stderr and "found 25 files (24 distinct documents)" in r.stderr
+    assert "batch 1/" in r.stderr and "found 27 files (26 distinct documents)" in r.stderr
     # the zip of old minutes holds 2, the e-mail 1 attachment
     assert "3 documents found inside documents, 3 of them read" in r.stderr
     out = r.stdout
-    assert "documents  25 files, 27 distinct (3 inside other documents); 27 processed" in out
+    assert "documents  27 files, 29 distinct (3 inside other documents); 29 processed" in out
     for stage in ("extract", "clean", "language", "split", "dedup", "tokens"):
         assert f"\n  {stage} " in out
     assert f"store      {store}" in out
 
     s = _cli("status", "--store", str(store), cwd=tmp_path)
     assert s.returncode == 0
-    assert "1 committed run(s), 27 live documents" in s.stdout
+    assert "1 committed run(s), 29 live documents" in s.stdout
+    assert "by label:    internal " in s.stdout and "confidential 1" in s.stdout
     assert "current view by stage:" in s.stdout
     lang_line = next(line for line in s.stdout.splitlines() if line.strip().startswith("by language:"))
     assert "en " in lang_line and "de " in lang_line and "fr " in lang_line
@@ -109,6 +110,7 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     assert t.returncode == 0, t.stderr
     assert t.stdout.startswith("board/2025-11-18-board-minutes.md")
     assert "extract: 1 page unit(s): 1 ok" in t.stdout and "tokens" in t.stdout and "Board" in t.stdout
+    assert "access: board, management; label restricted (from access.rules[1])" in t.stdout
 
     bad = _cli("trail", "hr/salary-review-2026-protected.pdf", "--store", str(store), cwd=tmp_path)
     assert bad.returncode == 0 and "reason: password protected" in bad.stdout

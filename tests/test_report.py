@@ -608,3 +608,30 @@ def test_documents_inside_documents_link_to_their_container_and_back(review):
     holds = _doc_page(review["folder"], mail["doc_id"]).get_element_by_id("holds")
     assert holds.xpath(".//a/@href") == [f"{attached['doc_id']}.html"]
     assert (review["folder"] / f"{attached['doc_id']}.html").exists()
+
+
+def test_access_and_personal_data_section_counts_kinds_without_values(review):
+    dom = _doc(review["html"])
+    section = dom.get_element_by_id("access")
+    # Chunks by label agree with the hand-off.
+    labels = {}
+    for r in review["store"].handoff().to_pylist():
+        labels[r["label"] or "(no label)"] = labels.get(r["label"] or "(no label)", 0) + 1
+    got = {row[0]: int(row[1].replace(",", "")) for row in _figure_table(dom, "chart-labels")}
+    assert {k: v for k, v in got.items() if v} == labels
+    # Documents by kind: the demo drive's contact list (4 e-mail addresses, 6 phone
+    # numbers) and expense claim (2 IBANs), counted, never shown.
+    by_kind = {}
+    for h in section.xpath(".//h4"):
+        rows = h.getnext().xpath("./tbody/tr")
+        by_kind[h.get("id")] = {r.xpath("./td")[0].text_content(): r.xpath("./td")[1].text_content() for r in rows}
+    assert by_kind["personal-iban"]["finance/2026-02-expense-claim-pellifer.txt"] == "2"
+    assert by_kind["personal-phone"]["hr/staff-contact-list.md"] == "6"
+    assert by_kind["personal-email"]["hr/staff-contact-list.md"] == "4"
+    html = review["html"]
+    for value in ("GB34", "0113 496 0214", "tomasz.quenby@quillfern.example"):
+        assert value not in html
+    access = {r.xpath("./td")[0].text_content(): [c.text_content() for c in r.xpath("./td")[1:]]
+              for r in dom.get_element_by_id("access-table").xpath("./tbody/tr")}
+    assert access["hr/staff-contact-list.md"] == ["hr", "confidential", "access.rules[0]"]
+    assert access["README.txt"] == ["staff", "internal", "access.default"]
