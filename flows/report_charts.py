@@ -185,6 +185,30 @@ def chart_languages(chunks: Counter, tokens: Counter, docs: Counter) -> Chart:
     return c
 
 
+def chart_labels(chunks: Counter, docs: Counter) -> Chart:
+    """Live chunks per access label (the hand-off's `label`)."""
+    order = sorted(chunks, key=lambda k: (-chunks[k], k))
+    label_w, bar_w, row_h = 130, 300, 26
+    height = 10 + row_h * max(len(order), 1) + 8
+    peak = max(chunks.values(), default=1) or 1
+    desc = "; ".join(f"{k}: {chunks[k]} chunks in {docs[k]} documents" for k in order) or "no documents"
+    c = Chart("chart-labels", "Chunks by access label", label_w + bar_w + 200, height, "Live chunks per access label",
+              "Horizontal bars of live chunks per access label. " + desc)
+    for i, k in enumerate(order):
+        y = 6 + i * row_h
+        c.text(label_w - 8, y + 17, k, anchor="end", weight="bold")
+        w = bar_w * chunks[k] / peak
+        c.rect(label_w, y + 4, w, row_h - 9, LANGUAGE_PALETTE[i % len(LANGUAGE_PALETTE)], f"{k}: {chunks[k]} chunks")
+        c.text(label_w + w + 6, y + 18, f"{chunks[k]:,} chunks, {docs[k]:,} documents", size=12)
+    if not order:
+        c.text(10, 22, "No documents.")
+    c.head = ["label", "chunks", "documents"]
+    c.rows = [[k, f"{chunks[k]:,}", f"{docs[k]:,}"] for k in order]
+    c.numeric = {1, 2}
+    c.note = "The label comes from the access rule that matched the document (access.rules, access.default)."
+    return c
+
+
 def chart_chunk_sizes(sizes: Counter, budget: int | None) -> Chart:
     """Histogram of tokens per live chunk; `sizes` counts chunks by token count."""
     largest = max(sizes, default=0)

@@ -18,6 +18,8 @@ from typing import Any
 import pyarrow.dataset as ds
 
 from thresher.flows import schema
+from thresher.flows.access import document_access
+from thresher.flows.config import AccessSection
 from thresher.flows.store import RunInfo, Store
 
 # Worst first: a document's status is its worst unit's.
@@ -126,6 +128,7 @@ class ChunkView:
     duplicate_of: str | None = None
     similarity: float | None = None
     duplicate_kind: str | None = None
+    personal: dict[str, int] = field(default_factory=dict)  # personal-data kind -> findings (never values)
 
     @property
     def status(self) -> str:
@@ -169,6 +172,19 @@ class DocumentView:
     # A document inside a document: (container doc_id, container path, name inside it).
     container: tuple[str, str, str] | None = None
     holds: list[tuple[str, str]] = field(default_factory=list)  # (doc_id, path) of documents inside it
+    # Access as the catalog holds it (flows/access.py); None when the catalog predates it.
+    readers: list[str] | None = None
+    label: str | None = None
+    access_rule: str | None = None
+
+    @property
+    def personal(self) -> dict[str, int]:
+        """Personal-data findings per kind over all its chunks (dropped ones too)."""
+        out: dict[str, int] = {}
+        for c in self.chunks:
+            for k, n in c.personal.items():
+                out[k] = out.get(k, 0) + n
+        return dict(sorted(out.items()))
 
     @property
     def page_count(self) -> int:
@@ -353,7 +369,8 @@ def _canonical_path(rows: list[dict[str, Any]]) -> str:
 # are read only for the document pages being written.
 LIGHT_COLUMNS = ("doc_id", "unit_id", "locator", "page", "status", "reason", "error_type", "format", "title",
                  "language", "doc_language", "chunk_id", "chunk_index", "token_count", "heading_path",
-                 "page_start", "page_end", "duplicate_of", "duplicate_kind", "similarity", "run_id", "attempt")
+                 "page_start", "page_end", "duplicate_of", "duplicate_kind", "similarity", "run_id", "attempt",
+                 "personal_counts")
 
 
 @dataclass
@@ -414,6 +431,9 @@ def gather_documents(sv: StoreView, doc_ids: list[str], light: bool = False, cou
             size=first.get("size"), first_run=first.get("first_run"), last_run=first.get("last_run"),
             anchor=f"d-{d}", container=_container_of(sv, rows), holds=sv.held_by().get(d, []),
         )
+        access = document_access(rows, AccessSection()).get(d)
+        if access is not None and any(r.get("access_rule") for r in rows):
+            docs[d].readers, docs[d].label, docs[d].access_rule = access
     stages = sv.stages
     pages: dict[tuple[str, str], PageView] = {}
     chunks: dict[str, ChunkView] = {}
@@ -472,6 +492,8 @@ def gather_documents(sv: StoreView, doc_ids: list[str], light: bool = False, cou
                     cv.language = row["language"]
                 if row.get("text"):
                     cv.text = row["text"]
+                if row.get("personal_counts"):
+                    cv.personal = dict(row["personal_counts"])
                 if "duplicate_of" in row and row.get("duplicate_of"):
                     cv.duplicate_of = row["duplicate_of"]
                     cv.similarity = row.get("similarity")

@@ -85,6 +85,10 @@ class Overview:
     lang_tokens: Counter = field(default_factory=Counter)
     lang_docs: Counter = field(default_factory=Counter)
     chunk_sizes: Counter = field(default_factory=Counter)
+    label_chunks: Counter = field(default_factory=Counter)  # access label -> live chunks
+    label_docs: Counter = field(default_factory=Counter)
+    access: list[tuple[DocRow, list[str] | None, str | None, str | None]] = field(default_factory=list)
+    personal: dict[str, list[tuple[DocRow, int]]] = field(default_factory=dict)  # kind -> documents, findings
     list_pages: list[dict] = field(default_factory=list)  # set by the writer (report_sections.list_pages)
     probes: list[dict] = field(default_factory=list)  # the last covered run's probe rows (set by the writer)
     targets: list[dict] = field(default_factory=list)  # delivery targets and how far behind (set by the writer)
@@ -112,6 +116,12 @@ class Overview:
                 self.chunk_sizes[c.tokens] += 1
         for lang in langs:
             self.lang_docs[lang] += 1
+        label = doc.label or "(no label)"
+        self.label_chunks[label] += len(doc.live_chunks)
+        self.label_docs[label] += 1
+        self.access.append((row, doc.readers, doc.label, doc.access_rule))
+        for kind, n in doc.personal.items():
+            self.personal.setdefault(kind, []).append((row, n))
         found = {(u.status, u.stage, reason_kind(u, None)) for p in doc.pages for u in p.stages if u.status != "ok"}
         found |= {(u.status, u.stage, reason_kind(u, c)) for c in doc.chunks for u in c.stages if u.status != "ok"}
         for key in found:

@@ -13,7 +13,8 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Callable
 
-from thresher.flows.report_charts import MAX_DOC_BARS, chart_chunk_sizes, chart_languages, chart_status, chart_tokens
+from thresher.flows.report_charts import (MAX_DOC_BARS, chart_chunk_sizes, chart_labels, chart_languages, chart_status,
+                                          chart_tokens)
 from thresher.flows.report_data import SEVERITY
 from thresher.flows.report_overview import Overview
 
@@ -188,11 +189,27 @@ def delivery_context(ov: Overview) -> dict[str, Any]:
     return {"targets": ov.targets}
 
 
+def access_context(ov: Overview) -> dict[str, Any]:
+    """Who may read each document, chunks by label, and documents by personal-data kind.
+
+    Kinds and counts only: the values stay in the store (and `thresher trail`).
+    """
+    kinds = []
+    for kind in sorted(ov.personal):
+        docs = sorted(ov.personal[kind], key=lambda t: (-t[1], t[0].path))
+        kinds.append({"kind": kind, "documents": len(docs), "findings": sum(n for _, n in docs),
+                      "rows": docs[:MAX_SUMMARY_ROWS], "more": len(docs) > MAX_SUMMARY_ROWS})
+    access = sorted(ov.access, key=lambda t: t[0].path)
+    return {"chart": chart_labels(ov.label_chunks, ov.label_docs), "kinds": kinds,
+            "access": access[:MAX_SUMMARY_ROWS], "more": len(access) > MAX_SUMMARY_ROWS, "total": len(access)}
+
+
 SECTIONS: list[Section] = [
     Section("summary", "Summary", "sections/summary.html", summary_context),
     Section("charts", "Charts", "sections/charts.html", charts_context),
     Section("problems", "Problems", "sections/problems.html", problems_context),
     Section("documents", "Documents", "sections/documents.html", documents_context),
+    Section("access", "Access and personal data", "sections/access.html", access_context),
     Section("probes", "Probes", "sections/probes.html", probes_context),
     Section("delivery", "Delivery", "sections/delivery.html", delivery_context),
 ]
