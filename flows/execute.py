@@ -165,8 +165,8 @@ def _call_step(step: ResolvedStep, inputs: Any, ctx: StepContext,
             raise TypeError(f"step {step.name} returned {type(out).__name__}, expected a list of units")
         return out
     except TimeLimitExceeded as exc:
-        reason = (f"time limit: {step.name} was stopped after {exc.seconds:g} s "
-                  "(raise the step's time limit if the document is just large)")
+        reason = (f"time limit: {step.name} was stopped after {exc.taken:.2f} s, over its limit of "
+                  f"{exc.seconds:g} s (raise the step's time limit if the document is just large)")
         return [_failed_document_unit(kind, reason, exc, parents)]
     except ChildCrashed as exc:
         return [_failed_document_unit(kind, f"{step.name} crashed: {exc}", exc, parents)]
@@ -301,6 +301,8 @@ class BatchRunner:
             caller = self._caller_for(step)
             out = _call_step(step, inputs, ctx, caller)
             ms = (time.perf_counter() - t0) * 1000.0
+            if caller is not None and caller.last_seconds is not None:
+                ms = caller.last_seconds * 1000.0  # the document's own work, not the child's start
             if caller is None and step.spec.time_limit is not None and step.spec.time_limit(step.params):
                 for u in out:  # say so rather than pretend the guard was there
                     u.warnings.append("time limit not enforced: this worker process may not start child "

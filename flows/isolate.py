@@ -6,6 +6,11 @@ passes its time limit the child is killed and a new one is started for the next
 document. Children come from a fork server (not a plain fork of this process, whose
 Prefect threads may hold locks) with the step modules preloaded, so a new child
 costs milliseconds, not an interpreter start.
+
+The time limit measures the document's own work: the child says when it has the
+document in hand and starts on it, and only then does the clock start. A replacement
+child getting ready (or a large document's bytes crossing the pipe) under load is not
+charged to the document.
 """
 
 from __future__ import annotations
@@ -18,26 +23,32 @@ from multiprocessing.connection import Connection
 from typing import Any, Callable
 
 from thresher.steps.extract.registry import reader_modules
+from thresher.steps.extract.sniff import codec_modules
 
 # Modules the fork server imports once, so children start warm.
-PRELOAD = ["thresher.steps.extract", *reader_modules()]
+PRELOAD = ["thresher.steps.extract", *reader_modules(), *codec_modules()]
 
 # A child is replaced after this many calls, so a leak in a parser stays bounded.
 CALLS_PER_CHILD = 200
+
+# How long a child may take to receive a document and start on it before it counts as
+# broken. Generous: it is not the document's time, only a guard against a stuck start.
+START_SECONDS = 120.0
 
 _context_lock = threading.Lock()
 _context: Any = None
 
 
 class TimeLimitExceeded(Exception):
-    def __init__(self, seconds: float):
-        super().__init__(f"stopped after the time limit of {seconds:g} s")
-        self.seconds = seconds
+    def __init__(self, seconds: float, taken: float):
+        super().__init__(f"stopped after {taken:.2f} s, over the time limit of {seconds:g} s")
+        self.seconds = seconds  # the limit
+        self.taken = taken  # the time the document's work actually ran before it was stopped
 
 
 class ChildCrashed(Exception):
-    def __init__(self, exitcode: int | None):
-        super().__init__(f"the parser process died (exit code {exitcode})")
+    def __init__(self, exitcode: int | None, message: str | None = None):
+        super().__init__(message or f"the parser process died (exit code {exitcode})")
         self.exitcode = exitcode
 
 
@@ -74,6 +85,7 @@ def _child_main(conn: Connection) -> None:
         if msg is None:
             return
         fn, args = msg
+        conn.send(("started",))  # the document is unpacked here: its clock starts now
         try:
             conn.send(("ok", fn(*args)))
         except BaseException as exc:  # noqa: BLE001 - reported to the parent as data
@@ -88,6 +100,7 @@ class IsolatedCaller:
         self._proc: Any = None
         self._conn: Connection | None = None
         self._calls = 0
+        self.last_seconds: float | None = None
 
     def _start(self) -> None:
         ctx = _get_context()
@@ -117,39 +130,56 @@ class IsolatedCaller:
             self._proc, self._conn = None, None
 
     def call(self, fn: Callable[..., Any], args: tuple, seconds: float) -> Any:
+        """fn(*args) in the child; `last_seconds` is then the time the call ran there."""
+        self.last_seconds = None
         if self._proc is None or not self._proc.is_alive() or self._calls >= CALLS_PER_CHILD:
             self._stop(kill=self._proc is not None and not self._proc.is_alive())
             self._start()
         self._calls += 1
         assert self._conn is not None
-        self._conn.send((fn, args))
-        deadline = time.monotonic() + seconds
+        try:
+            self._conn.send((fn, args))
+        except (OSError, ValueError):
+            raise self._crashed() from None
+        reply = self._receive(START_SECONDS, None)
+        if reply is None:
+            self._stop(kill=True)
+            raise ChildCrashed(None, f"the parser process did not start the document within {START_SECONDS:g} s")
+        started = time.monotonic()
+        reply = self._receive(seconds, started)
+        self.last_seconds = time.monotonic() - started
+        if reply is None:
+            self._stop(kill=True)
+            raise TimeLimitExceeded(seconds, self.last_seconds)
+        if reply[0] == "ok":
+            return reply[1]
+        _, type_name, message, tb = reply
+        raise RemoteError(type_name, message, tb)
+
+    def _receive(self, seconds: float, started: float | None) -> tuple | None:
+        """The child's next message, or None when `seconds` passed without one."""
+        begun = time.monotonic() if started is None else started
         while True:
-            remaining = deadline - time.monotonic()
+            remaining = begun + seconds - time.monotonic()
             if remaining <= 0:
-                self._stop(kill=True)
-                raise TimeLimitExceeded(seconds)
+                return None
             try:
                 ready = self._conn.poll(min(remaining, 0.5))
             except (EOFError, OSError):
                 ready = True
             if ready:
                 try:
-                    reply = self._conn.recv()
+                    return self._conn.recv()
                 except (EOFError, OSError):
-                    self._proc.join(timeout=5)  # the pipe closes a moment before the exit code is known
-                    code = self._proc.exitcode
-                    self._stop(kill=True)
-                    raise ChildCrashed(code) from None
-                break
+                    raise self._crashed() from None
             if not self._proc.is_alive():
-                code = self._proc.exitcode
-                self._stop(kill=True)
-                raise ChildCrashed(code)
-        if reply[0] == "ok":
-            return reply[1]
-        _, type_name, message, tb = reply
-        raise RemoteError(type_name, message, tb)
+                raise self._crashed()
+
+    def _crashed(self) -> ChildCrashed:
+        self._proc.join(timeout=5)  # the pipe closes a moment before the exit code is known
+        code = self._proc.exitcode
+        self._stop(kill=True)
+        return ChildCrashed(code)
 
     def close(self) -> None:
         self._stop(kill=False)

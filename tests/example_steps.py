@@ -92,3 +92,29 @@ def drop_shared_blocks(docs, params, ctx):
 
 SHARED_BLOCKS = StepSpec(name="shared_blocks", version="1", consumes="pages", produces="pages",
                          scope="corpus", params=NoParams, run=drop_shared_blocks)
+
+
+# --- Helpers for the child-process tests (tests/test_isolate.py) -------------------
+
+def _sleep_then(seconds: float, value):
+    time.sleep(seconds)
+    return value
+
+
+class SlowToUnpack:
+    """An argument that takes `seconds` to unpickle in the child, as a large document's
+    bytes or a fresh child's start can under load: time before the document's work."""
+
+    def __init__(self, seconds: float, value: str):
+        self.seconds, self.value = seconds, value
+
+    def __reduce__(self):
+        return (_sleep_then, (self.seconds, self.value))
+
+
+def echo(value):
+    return value
+
+
+def hang(value):
+    time.sleep(3600)

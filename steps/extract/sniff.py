@@ -28,6 +28,18 @@ import charset_normalizer
 
 
 SAMPLE = 64 * 1024
+
+
+def codec_modules() -> list[str]:
+    """The codec modules charset-normalizer may import while it probes legacy bytes.
+
+    A process that imports them ahead (the parser processes' fork server) saves about
+    0.2 s on its first legacy-encoded file, time that is not that file's work.
+    """
+    from charset_normalizer.constant import IANA_SUPPORTED
+
+    return [f"encodings.{name}" for name in IANA_SUPPORTED]
+
 CONTROL_SHARE_LIMIT = 0.05
 UNPRINTABLE_SHARE_LIMIT = 0.10
 
