@@ -47,6 +47,7 @@ def _venv_with_deps(where: Path) -> Path:
     return py
 
 
+@pytest.mark.timeout(900)  # builds a wheel and installs into a fresh venv, twice
 @pytest.mark.parametrize("editable", [False, True], ids=["pip-install", "pip-install-editable"])
 def test_install_maps_flows_and_steps_under_thresher(tmp_path, editable):
     import json
