@@ -129,7 +129,7 @@ def test_a_second_run_on_the_same_store_is_refused_while_the_first_works(harness
     store = Store(store_dir)
     assert len(store.runs()) == 1
     slow = [r for r in store.current("extract", "pages").to_pylist() if r["source_path"] == "slow.txt"]
-    assert slow[0]["reason"].startswith("time limit: extract was stopped after 8 s")
+    assert slow[0]["reason"].startswith("time limit: extract was stopped after 8.") and "over its limit of 8 s" in slow[0]["reason"]
     assert not (store_dir / ".lock").exists()
 
 
