@@ -9,6 +9,7 @@ Layout under the store root:
   stages/<stage>/_compacted.json             which runs' rows a compaction rewrote, and where
   stages/<stage>/_compacted/<gen>/...        those rows in few large files, sorted by document
   .lock                                      held by the one run writing to the store
+  .lock-guard                                flocked while a run checks or takes over .lock
 
 Every manifest records the size and SHA-256 of each file its run wrote (under the
 name the file is published at), so `thresher verify` can prove them intact.
@@ -20,6 +21,7 @@ a reader could take for output.
 
 from __future__ import annotations
 
+import fcntl
 import hashlib
 import json
 import os
@@ -244,6 +246,7 @@ class Store:
     # ----------------------------------------------------------------- the lock
 
     LOCK = ".lock"
+    LOCK_GUARD = ".lock-guard"
     # An object-store lock is advisory and expires, since a killed run cannot remove it
     # and there is no exclusive create to rely on.
     OBJECT_LOCK_HOURS = 12
@@ -286,21 +289,42 @@ class Store:
         """Take the store's write lock, or raise StoreLocked saying who holds it.
 
         On a local or shared file system the lock file is created exclusively
-        (O_EXCL). On object storage the lock is advisory: thresher writes it, reads
-        it back after a pause and gives way if another run's lock replaced it.
+        (O_EXCL), and the check-remove-create of a stale lock's takeover runs under
+        an flock on a guard file, so two runs that both find a dead holder's lock
+        cannot both take it over (one would remove the other's new lock). On object
+        storage the lock is advisory: thresher writes it, reads it back after a
+        pause and gives way if another run's lock replaced it.
         """
         deadline = time.monotonic() + wait_seconds
         while True:
-            holder = self.lock_holder()
-            if holder is not None and not self._holder_alive(holder):
-                self._remove_lock()  # left by a killed run
-                holder = None
-            if holder is None and self._create_lock(run_id):
-                return
+            with self._takeover_guard():
+                holder = self.lock_holder()
+                if holder is not None and not self._holder_alive(holder):
+                    self._remove_lock()  # left by a killed run
+                    holder = None
+                if holder is None and self._create_lock(run_id):
+                    return
             if time.monotonic() < deadline:
                 time.sleep(0.5)
                 continue
             raise self._refuse(self.lock_holder()) from None
+
+    @contextmanager
+    def _takeover_guard(self):
+        """An exclusive flock on `.lock-guard` (local stores); released when the process dies."""
+        if not self._is_local():
+            yield
+            return
+        Path(self.base).mkdir(parents=True, exist_ok=True)
+        try:
+            fd = os.open(Path(self.base) / self.LOCK_GUARD, os.O_CREAT | os.O_RDWR, 0o644)
+        except OSError as exc:  # a read-only or full file system: say so, in one line
+            raise StoreError(f"cannot write to store {self.root}: {exc.strerror or exc}") from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX)
+            yield
+        finally:
+            os.close(fd)  # closing releases the flock
 
     def _create_lock(self, run_id: str) -> bool:
         data = json.dumps(self._lock_info(run_id))
@@ -316,7 +340,7 @@ class Store:
             except OSError as exc:  # a read-only or full file system: say so, in one line
                 raise StoreError(f"cannot write to store {self.root}: {exc.strerror or exc}") from None
             with os.fdopen(fd, "w") as f:
-                f.write(data)
+                f.write(data)  # under the guard: no reader sees it half-written and takes it for stale
             return True
         with self.fs.open_output_stream(self.path(self.LOCK)) as out:
             out.write(data.encode())

@@ -7,6 +7,7 @@ import os
 import subprocess
 import sys
 from datetime import datetime, timezone
+from pathlib import Path
 
 import pyarrow as pa
 import pytest
@@ -109,6 +110,46 @@ def test_lock_left_by_a_dead_process_is_taken_over(tmp_path):
     assert holder["run_id"] == "dead"
     Store(root).acquire_lock("alive")
     assert json.loads((root / ".lock").read_text())["pid"] == os.getpid()
+
+
+def _racer(name: str, roots: list[str], barrier, results) -> None:
+    wins = []
+    for i, root in enumerate(roots):
+        barrier.wait()  # both processes go for the same lock at the same moment
+        try:
+            Store(root).acquire_lock(f"{name}-{i}")
+            wins.append(i)
+        except StoreLocked:
+            pass
+    results.put((name, wins))
+
+
+@pytest.mark.parametrize("left_by_a_dead_run", [False, True], ids=["fresh", "stale"])
+def test_two_processes_racing_for_the_lock_never_both_get_it(tmp_path, left_by_a_dead_run):
+    import multiprocessing as mp
+    import socket
+
+    rounds = 150
+    roots = [str(tmp_path / f"s{i}") for i in range(rounds)]
+    if left_by_a_dead_run:
+        dead = subprocess.Popen([sys.executable, "-c", "pass"])
+        dead.wait()
+        for root in roots:
+            os.makedirs(root)
+            (Path(root) / ".lock").write_text(json.dumps({"run_id": "dead", "pid": dead.pid,
+                                                          "host": socket.gethostname()}))
+    ctx = mp.get_context("spawn")
+    barrier, results = ctx.Barrier(2), ctx.Queue()
+    procs = [ctx.Process(target=_racer, args=(name, roots, barrier, results)) for name in ("a", "b")]
+    for p in procs:
+        p.start()
+    wins = dict(results.get(timeout=240) for _ in procs)
+    for p in procs:
+        p.join(timeout=60)
+    for i, root in enumerate(roots):
+        winners = [name for name, won in wins.items() if i in won]
+        assert len(winners) == 1, f"round {i}: {winners or 'nobody'} took the lock"
+        assert json.loads((Path(root) / ".lock").read_text())["run_id"] == f"{winners[0]}-{i}"
 
 
 def test_run_killed_after_commit_but_before_publishing_is_read_from_staging(tmp_path):
