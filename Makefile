@@ -1,11 +1,14 @@
 # thresher: two commands do all the set-up.
-#   make demo   creates .venv if missing, installs, runs the default flow on sample_inputs/
-#   make test   creates .venv if missing, installs with test extras, runs the whole suite
+#   make demo   creates .venv if missing, installs what running needs, runs the default flow on sample_inputs/
+#   make test   creates .venv if missing, installs with the test extras, runs the whole suite
 
 PYTHON ?= $(shell command -v python3.11 2>/dev/null || command -v python3)
 VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.thresher-installed
+# The test extras (an S3 emulator, reference libraries, the demo drive's PDF writer...)
+# only for the targets that need them: `make demo` installs what running needs.
+TEST_STAMP := $(VENV)/.thresher-test-installed
 
 # Debian packages the tests read as outside references: PDFs and HTML manuals that
 # Debian ships, poppler's pdftotext/pdfinfo (the reference PDF extractor), the Unicode
@@ -52,8 +55,12 @@ $(BIN)/python:
 
 # Reinstall when the project's metadata changes.
 $(STAMP): pyproject.toml | $(BIN)/python
-	$(BIN)/python -m pip install --quiet -e '.[test]'
+	$(BIN)/python -m pip install --quiet -e .
 	@touch $@
+
+$(TEST_STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	@touch $@ $(STAMP)
 
 demo: $(STAMP)
 	$(BIN)/thresher run --probes config/demo-probes.yaml
@@ -62,7 +69,7 @@ demo: $(STAMP)
 	@echo
 	@echo "next: $(BIN)/thresher trail operations/branch-operations-handbook.pdf"
 
-test: $(STAMP) system-deps
+test: $(TEST_STAMP) system-deps
 	$(BIN)/python -m pytest
 
 # Installs only what is missing; needs root (as on CI) or sudo.
@@ -86,17 +93,17 @@ apt-install:
 	  $$SUDO apt-get update -qq && $$SUDO env DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends $$missing; \
 	fi
 
-bench: $(STAMP) bench-deps
+bench: $(TEST_STAMP) bench-deps
 	$(BIN)/python -m bench
 
 bench-deps:
 	@$(MAKE) --no-print-directory apt-install PACKAGES="$(BENCH_PACKAGES)"
 
 # Long fuzzing of extraction; THRESHER_FUZZ_SEED picks another sequence of mutations.
-fuzz: $(STAMP)
+fuzz: $(TEST_STAMP)
 	THRESHER_FUZZ_CASES=$${THRESHER_FUZZ_CASES:-5000} $(BIN)/python -m pytest -q tests/test_fuzz.py
 
-sample: $(STAMP)
+sample: $(TEST_STAMP)
 	$(BIN)/python tools/make_sample_drive.py
 
 clean-store:
