@@ -20,7 +20,20 @@ class UsageError(Exception):
 
 
 class _Parser(argparse.ArgumentParser):
+    _seen: list[str] = []
+
+    def parse_known_args(self, args=None, namespace=None):  # type: ignore[override]
+        self._seen = list(sys.argv[1:] if args is None else args)  # for error() below
+        return super().parse_known_args(args, namespace)
+
     def error(self, message: str) -> NoReturn:  # one line, not argparse's usage dump
+        if message.startswith(("the following arguments are required", "one of the arguments")):
+            # argparse checks required options before unknown ones; a mistyped flag is
+            # the likelier cause, so name it.
+            unknown = [a for a in self._seen if a.startswith("-") and not a[1:2].isdigit() and a not in ("-", "--")
+                       and a.split("=")[0] not in self._option_string_actions]
+            if unknown:
+                message = f"unrecognized arguments: {' '.join(unknown)}"
         self.exit(EXIT_USAGE, f"{self.prog}: {message} (see {self.prog} --help)\n")
 
 
@@ -226,6 +239,7 @@ def cmd_run(args: argparse.Namespace) -> int:
             raise UsageError(str(exc)) from None
     elif args.fail_on_regression:
         raise UsageError("--fail-on-regression needs probes: --probes FILE or `probes:` in the definition")
+    _need_prefect_api()
     if not args.quiet:
         print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
               "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
@@ -241,6 +255,7 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
     from thresher.flows.rerun import RerunError
     from thresher.flows.store import StoreError
 
+    _need_prefect_api()
     try:
         manifest = pipeline.run(definition, source, store_root, quiet=args.quiet,
                                 live=not getattr(args, "json", False), **options)
@@ -262,6 +277,14 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
               file=sys.stderr)
         return 3
     return 0
+
+
+def _need_prefect_api() -> None:
+    """Fail at once, in one line, where embedded Prefect cannot start."""
+    from thresher.flows.runtime import NO_LOCAL_PORT, embedded_server_possible
+
+    if not os.environ.get("PREFECT_API_URL") and not embedded_server_possible():
+        raise UsageError(NO_LOCAL_PORT)
 
 
 def run_summary_lines(m: dict[str, Any]) -> list[str]:
@@ -559,9 +582,19 @@ def cmd_failures(args: argparse.Namespace) -> int:
     total = sum(len(g.units) for g in groups)
     print(f"{total} unit(s) in {len(groups)} group(s); `thresher trail PATH` shows a document's way, "
           "`thresher rerun --failed` re-runs every failed unit")
+    # One header per stage and status; under it one entry per kind of reason.
+    last = None
     for g in groups:
-        print(f"\n{g.status} at {g.stage}: {len(g.units)} unit(s) in {len(g.documents)} document(s)")
-        print(f"  reason: {g.units[0]['reason'] if len(g.units) == 1 else g.kind}")
+        if (g.stage, g.status) != last:
+            last = (g.stage, g.status)
+            same = [h for h in groups if (h.stage, h.status) == last]
+            docs = {d for h in same for d in h.documents}
+            print(f"\n{g.status} at {g.stage}: {sum(len(h.units) for h in same)} unit(s) in {len(docs)} document(s)")
+        reasons = {u["reason"] for u in g.units}
+        if len(reasons) == 1:
+            print(f"  reason: {g.units[0]['reason']}")
+        else:  # the same kind of reason with different ids, paths or numbers: show the first in full
+            print(f"  {len(g.units)} units with reasons like: {g.units[0]['reason']}")
         for u in g.units[:8]:
             print(f"    {u['source_path']}  {u['locator']}")
         if len(g.units) > 8:
@@ -629,6 +662,8 @@ def cmd_export(args: argparse.Namespace) -> int:
         raise UsageError("only --format jsonl can be written to standard output")
     try:
         n = export_chunks(table, args.format, args.out)
+    except BrokenPipeError:
+        raise  # `export --out - | head`: the reader has what it wanted (see main)
     except OSError as exc:
         raise UsageError(f"cannot write {args.out}: {exc.strerror or exc}") from None
     if args.out != "-":
@@ -781,6 +816,7 @@ def cmd_schedule(args: argparse.Namespace) -> int:
     store_root = _store_root(args, definition)
     from thresher.flows import schedule
 
+    _need_prefect_api()
     sched = definition.model.schedule
     api = os.environ.get("PREFECT_API_URL") or "the embedded Prefect server (set PREFECT_API_URL for your own)"
     print(f"thresher: serving deployment {schedule.deployment_name(definition)} on {api}; "
@@ -798,6 +834,9 @@ COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail, "failures"
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
+    if not (sys.argv[1:] if argv is None else argv):  # plain `thresher`: show what it can do
+        parser.print_help()
+        return 0
     args = parser.parse_args(argv)
     try:
         return COMMANDS[args.verb](args)

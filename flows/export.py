@@ -30,7 +30,9 @@ def export_chunks(table: pa.Table, fmt: str, out_path: str) -> int:
     if out_path == "-":
         if fmt != "jsonl":
             raise ValueError("only jsonl can be written to standard output")
-        return _jsonl(table, sys.stdout)
+        n = _jsonl(table, sys.stdout)
+        sys.stdout.flush()  # a closed pipe shows here, where the caller can end quietly
+        return n
     target = Path(out_path)
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", dir=target.parent)

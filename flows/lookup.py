@@ -9,6 +9,10 @@ from typing import Any
 from thresher.flows.store import Store
 
 
+# Shorter prefixes of a SHA-256 collide too easily to name one document.
+PREFIX_MIN = 6
+
+
 class NotFound(LookupError):
     """No document (or more than one) matches; the message says which and why."""
 
@@ -24,7 +28,7 @@ def resolve_document(store: Store, ref: str, source_roots: list[str]) -> tuple[s
     for r in catalog:
         by_doc.setdefault(r["doc_id"], []).append(r)
     ref_l = ref.lower()
-    if len(ref_l) >= 6 and all(c in "0123456789abcdef" for c in ref_l):
+    if len(ref_l) >= PREFIX_MIN and all(c in "0123456789abcdef" for c in ref_l):
         hits = [d for d in by_doc if d.startswith(ref_l)]
         if len(hits) == 1:
             return hits[0], by_doc[hits[0]]
@@ -47,7 +51,11 @@ def resolve_document(store: Store, ref: str, source_roots: list[str]) -> tuple[s
     suffix = [r for r in catalog if r["source_path"].endswith("/" + candidates[0])]
     if len({r["doc_id"] for r in suffix}) == 1:
         return suffix[0]["doc_id"], by_doc[suffix[0]["doc_id"]]
-    raise NotFound(f"no document {ref!r} in the store's catalog (give a doc_id or a path relative to the source folder)")
+    if ref_l and len(ref_l) < PREFIX_MIN and all(c in "0123456789abcdef" for c in ref_l):
+        raise NotFound(f"no document at path {ref!r}, and a doc_id prefix needs at least {PREFIX_MIN} characters "
+                       f"({ref!r} has {len(ref_l)})")
+    raise NotFound(f"no document {ref!r} in the store's catalog (give a doc_id, a doc_id prefix of at least "
+                   f"{PREFIX_MIN} characters, or a path relative to the source folder)")
 
 
 def source_roots(store: Store, configured: str) -> list[str]:

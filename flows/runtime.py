@@ -33,6 +33,28 @@ PREFECT_DEFAULTS = {
     "PREFECT_CLI_PROMPT": "false",
 }
 
+NO_LOCAL_PORT = ("needs a local port on 127.0.0.1 for thresher's embedded Prefect server (is the loopback "
+                 "interface up?), or PREFECT_API_URL set to a Prefect server")
+
+
+def embedded_server_possible() -> bool:
+    """Whether this process can serve and reach a port on 127.0.0.1, as embedded Prefect must.
+
+    Without loopback, Prefect waits for its temporary server until the start-up timeout
+    and then fails with a traceback; this answers at once.
+    """
+    import socket
+
+    try:
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as server:
+            server.bind(("127.0.0.1", 0))
+            server.listen(1)
+            with socket.create_connection(server.getsockname(), timeout=5):
+                return True
+    except OSError:
+        return False
+
+
 def apply_defaults() -> None:
     for key, value in PREFECT_DEFAULTS.items():
         os.environ.setdefault(key, value)

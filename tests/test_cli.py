@@ -41,6 +41,10 @@ def test_every_verb_has_help(verb):
     (["run", "--config", "/no/such/flow.yaml"], "flow definition not found"),
     (["sing"], "invalid choice: 'sing'"),
     (["run", "--colour"], "unrecognized arguments: --colour"),
+    # A mistyped flag is named even where a required option is missing too.
+    (["rerun", "--bogus"], "thresher rerun: unrecognized arguments: --bogus"),
+    (["export", "--out", "-", "--formt", "jsonl"], "unrecognized arguments: --formt"),
+    (["rerun"], "one of the arguments --doc --path --failed is required"),
 ])
 def test_bad_input_gets_one_line_and_exit_code_2(args, message, tmp_path):
     extra = ["--store", str(tmp_path / "s")] if args[0] == "run" else []
@@ -50,6 +54,39 @@ def test_bad_input_gets_one_line_and_exit_code_2(args, message, tmp_path):
     assert len(lines) == 1, r.stderr
     assert message in lines[0]
     assert not (tmp_path / "s").exists()  # nothing was created
+
+
+@pytest.mark.parametrize("verb", ["run", "schedule"])
+def test_without_loopback_the_flow_verbs_fail_at_once_in_one_line(verb, tmp_path):
+    # A network namespace whose loopback interface is down (unshare's default): the
+    # embedded Prefect server would have no address to listen on.
+    probe = subprocess.run(["unshare", "--net", "true"], capture_output=True, text=True)
+    assert probe.returncode == 0, f"this test needs `unshare --net` (root or user namespaces): {probe.stderr}"
+    env = dict(os.environ)
+    env.pop("PREFECT_API_URL", None)
+    env["PREFECT_HOME"] = str(tmp_path / "prefect")
+    r = subprocess.run(["unshare", "--net", THRESHER, verb, "--source", str(SAMPLE), "--store", str(tmp_path / "s")],
+                       capture_output=True, text=True, cwd=tmp_path, env=env, timeout=60)
+    assert r.returncode == 2, r.stderr
+    assert r.stderr.strip().splitlines() == [
+        f"thresher {verb}: needs a local port on 127.0.0.1 for thresher's embedded Prefect server (is the "
+        "loopback interface up?), or PREFECT_API_URL set to a Prefect server"]
+
+
+def test_plain_thresher_prints_the_help():
+    r = _cli()
+    assert r.returncode == 0 and r.stderr == ""
+    assert r.stdout.startswith("usage: thresher") and "rerun" in r.stdout and "export" in r.stdout
+
+
+def test_a_short_doc_id_prefix_is_told_the_minimum(tmp_path):
+    from thresher.flows.lookup import NotFound, resolve_document
+    from thresher.flows.store import Store
+
+    with pytest.raises(NotFound, match="a doc_id prefix needs at least 6 characters \\('59ea' has 4\\)"):
+        resolve_document(Store(tmp_path / "store"), "59ea", [])
+    with pytest.raises(NotFound, match="a doc_id prefix of at least 6 characters"):
+        resolve_document(Store(tmp_path / "store"), "nowhere/x.pdf", [])
 
 
 def test_bad_flow_definition_names_the_key(tmp_path):
@@ -121,6 +158,18 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     assert "Run summary" in page and "hr/<wbr>salary-review-2026-protected.pdf" in page and "<script" not in page
     pages = tmp_path / "review-pages"  # the documents' pages, beside the summary
     assert f"document pages in {pages}" in rep.stderr and (pages / "list-1.html").is_file()
+
+    # `export --out - | head`: a reader that closes the pipe early ends the export quietly.
+    read_end, write_end = os.pipe()
+    os.close(read_end)  # closed before anything is written: the first write meets a broken pipe
+    with os.fdopen(write_end, "wb") as closed:
+        e = subprocess.run([THRESHER, "export", "--format", "jsonl", "--out", "-", "--store", str(store)],
+                           stdout=closed, stderr=subprocess.PIPE, text=True, cwd=tmp_path, timeout=120)
+    assert (e.returncode, e.stderr) == (0, "")
+    head = subprocess.run(f"'{THRESHER}' export --format jsonl --out - --store '{store}' | head -2", shell=True,
+                          capture_output=True, text=True, cwd=tmp_path, timeout=120)
+    assert len(head.stdout.splitlines()) == 2 and json.loads(head.stdout.splitlines()[0])["chunk_id"]
+    assert head.stderr == ""
 
     missing = _cli("trail", "nowhere/nothing.pdf", "--store", str(store), cwd=tmp_path)
     assert missing.returncode == 2 and "no document 'nowhere/nothing.pdf'" in missing.stderr

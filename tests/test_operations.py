@@ -102,6 +102,12 @@ def test_failures_are_grouped_by_reason_kind(prefect_harness, sample_drive, tmp_
     assert r.returncode == 0
     assert "failed at extract" in r.stdout and "password protected" in r.stdout
     assert "dropped at" not in r.stdout
+    # One header per stage and status, each kind of reason under it, reasons in full.
+    assert r.stdout.count("failed at extract:") == 1
+    assert f"failed at extract: {sum(len(g.units) for g in failed)} unit(s)" in r.stdout
+    r = subprocess.run([THRESHER, "failures", "--store", str(store_dir)], capture_output=True, text=True)
+    assert "dropped at dedup" in r.stdout and "copy of document volunteers/volunteer-rota-spring-2026.txt" in r.stdout
+    assert "<path>" not in r.stdout and "<id>" not in r.stdout and "…" not in r.stdout
 
 
 def test_a_second_run_on_the_same_store_is_refused_while_the_first_works(harness_api, sample_drive, tmp_path):
