@@ -101,7 +101,7 @@ def test_a_hung_parser_is_stopped_at_the_time_limit_and_the_batch_goes_on(tmp_pa
     # or take the parent's polling (0.5 s covers a loaded machine).
     taken = float(reason.split("stopped after ")[1].split(" s")[0])
     assert 1.5 <= taken < 2.0
-    assert abs(rows["hangs.txt"]["duration_ms"] / 1000.0 - taken) < 0.01
+    assert abs(rows["hangs.txt"]["document_ms"] / 1000.0 - taken) < 0.01
     assert rows["hangs.txt"]["error_type"] == "TimeLimitExceeded"
     assert rows["dies.txt"]["status"] == "failed"
     assert rows["dies.txt"]["reason"] == "extract crashed: the parser process died (exit code 70)"
