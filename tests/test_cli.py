@@ -44,7 +44,7 @@ def test_every_verb_has_help(verb):
     # A mistyped flag is named even where a required option is missing too.
     (["rerun", "--bogus"], "thresher rerun: unrecognized arguments: --bogus"),
     (["export", "--out", "-", "--formt", "jsonl"], "unrecognized arguments: --formt"),
-    (["rerun"], "one of the arguments --doc --path --failed is required"),
+    (["rerun"], "thresher rerun: one of the arguments --doc --path --failed"),
 ])
 def test_bad_input_gets_one_line_and_exit_code_2(args, message, tmp_path):
     extra = ["--store", str(tmp_path / "s")] if args[0] == "run" else []
