@@ -254,6 +254,23 @@ def test_a_document_with_the_same_normalised_text_is_a_copy_of_the_earlier_one()
     assert out["other-c0"].payload["duplicate_kind"] == "exact" and out["other-c1"].status == OK
 
 
+def test_a_copy_whose_counterpart_is_itself_a_duplicate_names_both_and_the_kept_chunk():
+    # The policy's first paragraph also opens the older notice; the policy's copy then
+    # has a counterpart (policy-c0) that is itself dropped, and the kept chunk is elsewhere.
+    notice = doc("notice", 0, "Return books to the desk.", "The notice board is by the door.")
+    policy = doc("policy", 1, "Return books to the desk.", "Fines are charged daily.")
+    copy = doc("policy-copy", 2, "Return books to the desk.", "Fines are charged daily.")
+    out = {c.chunk_id: c for c in deduplicate([notice, policy, copy], DedupParams())}
+    first = out["policy-copy-c0"]
+    assert first.status == DROPPED and first.payload["duplicate_kind"] == "document"
+    assert first.payload["duplicate_of"] == "notice-c0"
+    assert first.reason.startswith("copy of document policy.md: the whole text is the same")
+    assert first.reason.endswith("its counterpart there (chunk policy-c0) is itself a duplicate; "
+                                 "kept: chunk notice-c0 in notice.md")
+    assert out["policy-copy-c1"].reason.endswith("this chunk is kept there as chunk policy-c1")
+    assert out["policy-c0"].payload["duplicate_of"] == "notice-c0" and out["policy-c1"].status == OK
+
+
 def test_a_copy_split_differently_still_counts_as_a_copy():
     first = " ".join(BASE[:150])
     second = " ".join(BASE[150:])
