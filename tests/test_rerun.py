@@ -13,6 +13,8 @@ from thresher.flows.config import build_definition, default_config_text
 from thresher.flows.rerun import RerunError, make_rerun_plan, target_for_document
 from thresher.flows.store import Store
 
+from conftest import SAMPLE
+
 HANDBOOK = "archive/2025/branch-operations-handbook.pdf"
 COMPILATION = "books/handbook-compilation.pdf"
 
@@ -161,7 +163,8 @@ def test_one_scanned_page_is_rerun_alone_after_turning_ocr_on(prefect_harness, s
     m = pipeline.run(with_ocr, str(sample_drive), str(store_dir), quiet=True,
                      rerun={"doc_id": doc, "page": 2, "step": None})
     store = Store(store_dir)
-    # Only page 2 was extracted again; pages 1 and 3 keep their rows from the first run.
+    # The whole PDF was read again (running lines and headings need every page), but only
+    # page 2's row was written; pages 1 and 3 keep their rows from the first run.
     written = [r for r in store.stage_rows("extract", "pages", [doc]).to_pylist() if r["run_id"] == m["run_id"]]
     assert [r["page"] for r in written] == [2]
     pages = {r["page"]: r for r in store.current("extract", "pages", [doc]).to_pylist()}
@@ -198,3 +201,32 @@ def test_rerun_failed_redoes_every_failed_unit_and_nothing_else(prefect_harness,
         for r in before:
             if r["doc_id"] not in failed_before and stage in ("extract", "clean", "language", "split"):
                 assert after[r["unit_id"]] == r  # documents that had not failed are as they were
+
+
+def test_a_page_rerun_hands_the_next_step_every_page_when_no_corpus_step_follows(prefect_harness, tmp_path):
+    # Without the boilerplate step after extract the re-run page goes straight on to clean
+    # in the same batch: clean must get it merged with the document's stored other pages.
+    drive = tmp_path / "drive"
+    (drive / "operations").mkdir(parents=True)
+    name = "operations/branch-operations-handbook.pdf"
+    (drive / name).write_bytes((SAMPLE / name).read_bytes())
+    data = yaml.safe_load(default_config_text())
+    data["steps"] = [s for s in data["steps"] if s["step"] != "boilerplate"]
+    definition = build_definition(data, "no-corpus-page-step")
+    assert [s.name for s in definition.steps][:2] == ["extract", "clean"]
+    store_dir = tmp_path / "store"
+    pipeline.run(definition, str(drive), str(store_dir), workers=1, quiet=True)
+    store = Store(store_dir)
+    doc = store.catalog().to_pylist()[0]["doc_id"]
+    before = {r["page"]: r["text"] for r in store.current("clean", "pages", [doc]).to_pylist()}
+    chunks_before = sorted((r["chunk_id"], r["text"]) for r in store.handoff().to_pylist())
+    assert sorted(before) == list(range(1, 8))
+
+    m = pipeline.run(definition, str(drive), str(store_dir), quiet=True, rerun={"doc_id": doc, "page": 2, "step": None})
+    store = Store(store_dir)
+    extract = [r for r in store.stage_rows("extract", "pages", [doc]).to_pylist() if r["run_id"] == m["run_id"]]
+    assert [r["page"] for r in extract] == [2]
+    clean = {r["page"]: r for r in store.current("clean", "pages", [doc]).to_pylist()}
+    assert sorted(clean) == list(range(1, 8)) and {p: r["text"] for p, r in clean.items()} == before
+    assert all(r["run_id"] == m["run_id"] for r in clean.values())  # clean saw the whole document again
+    assert sorted((r["chunk_id"], r["text"]) for r in store.handoff().to_pylist()) == chunks_before
