@@ -171,14 +171,25 @@ def test_a_second_run_reuses_everything_and_hands_off_no_changes(prefect_harness
     assert files_after == files_before  # nothing recomputed, nothing rewritten
 
     # An edited file is a new document: its old chunks are deleted, new ones upserted.
+    # A removed file's chunks are deleted too, in the same change set.
     minutes = sample_drive / "board" / "2026-01-20-board-minutes.md"
+    gone = "board/2025-11-18-board-minutes.md"
+    before = {}
+    for r in Store(store_dir).handoff().to_pylist():
+        before.setdefault(r["source_path"], set()).add(r["chunk_id"])
     minutes.write_text(minutes.read_text() + "\n\n## Any other business\n\nThe chair thanked the volunteers of "
                        "the Brackenmoor branch for running the winter reading hour.\n")
+    (sample_drive / gone).unlink()
     third = _run(sample_drive, store_dir)
-    assert third["documents"]["processed"] == 1 and third["documents"]["removed"] == 1
-    assert third["changes"]["upsert"] >= 1 and third["changes"]["delete"] >= 1
+    assert third["documents"]["processed"] == 1 and third["documents"]["removed"] == 2
     changes = pq.read_table(store_dir / "handoff" / "changes" / f"{third['run_id']}.parquet").to_pylist()
-    assert {c["source_path"] for c in changes} == {"board/2026-01-20-board-minutes.md"}
+    deleted = {c["chunk_id"] for c in changes if c["action"] == "delete"}
+    assert deleted == before["board/2026-01-20-board-minutes.md"] | before[gone]
+    upserted = {c["chunk_id"] for c in changes if c["action"] == "upsert"}
+    now = {r["chunk_id"] for r in Store(store_dir).handoff().to_pylist()
+           if r["source_path"] == "board/2026-01-20-board-minutes.md"}
+    assert upserted == now and not now & deleted
+    assert third["changes"] == {"upsert": len(upserted), "delete": len(deleted)}
     texts = Store(store_dir).handoff().column("text").to_pylist()
     assert any("winter reading hour" in t for t in texts)
 
