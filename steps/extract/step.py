@@ -163,6 +163,9 @@ def failed_document(
     return [page]
 
 
+_NAME_DECIDES = ("text", "html", "markdown", "")
+
+
 def skipped_document(source: Source, reason: str, fmt: str = "") -> list[Page]:
     """The single unit that stands for a file that is not a document to read."""
     page = failed_document(source, reason, fmt=fmt)[0]
@@ -191,11 +194,12 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
 
     name = source.source_path.replace("\\", "/").rsplit("/", 1)[-1]
     ext = extension(source.source_path)
-    kind = nondoc_kind(name, ext, data[:4096])
-    if kind and kind not in params.read_kinds:
-        return skipped_document(source, nondoc_reason(kind, ext))
-
     found = sniff(data, source.source_path)
+    kind = nondoc_kind(name, ext, data[:4096])
+    # Bytes that name a document format (a PDF saved as .bin) make it that document; the
+    # name decides only for text-like or unreadable content, where it is the best evidence.
+    if kind and kind not in params.read_kinds and (found.reason or found.format in _NAME_DECIDES):
+        return skipped_document(source, nondoc_reason(kind, ext))
     if found.reason:
         return failed_document(source, found.reason, fmt=found.format)
 
