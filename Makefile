@@ -34,6 +34,9 @@ DEBIAN_TEST_PACKAGES += debian-faq
 # Reference cards in many scripts (one with a mis-mapped text layer) and Tesseract's
 # Hindi data to read that card's page: tests/test_extract_text_layer.py.
 DEBIAN_TEST_PACKAGES += debian-refcard tesseract-ocr-hin
+# A UTF-8 decoder stress-test file (SDL's copy of Markus Kuhn's) for stray control
+# bytes in text: tests/test_extract_text.py.
+DEBIAN_TEST_PACKAGES += libsdl2-tests
 
 # Optional OCR of scanned PDF pages (extract: ocr: true): Tesseract and its English data.
 OCR_PACKAGES := tesseract-ocr tesseract-ocr-eng

@@ -101,6 +101,8 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
         pa.field("removed", pa.list_(REMOVAL)),
         # A navigation page's kind (contents, index, figures, tables), else empty.
         pa.field("navigation", pa.string()),
+        # Stray control bytes removed from a text file before decoding (its first page).
+        pa.field("control_bytes", pa.int32()),
         pa.field("encoding", pa.string()),
         pa.field("byte_size", pa.int64()),
         pa.field("modified_at", TS),

@@ -6,6 +6,9 @@ import codecs
 import io
 import random
 import zipfile
+from pathlib import Path
+
+import pytest
 
 from thresher.steps.extract import ExtractParams, extract
 from thresher.steps.extract.sniff import decode, sniff
@@ -129,6 +132,68 @@ def test_control_heavy_bytes_without_nul_are_not_text():
     page = one(data, "log.txt")
     assert page.status == FAILED
     assert page.reason.startswith("not text: ") and page.reason.endswith("control bytes (binary content)")
+
+
+# Markus Kuhn's "UTF-8 decoder capability and stress test" as Debian ships it in the
+# package libsdl2-tests (SDL's testiconv reads it): 21,535 bytes, 379 malformed sequences
+# on purpose, one DEL (its test line 2.2.1). SDL's copy dropped the NUL of line 2.1.1 and
+# notes "there's a null added at the end of the test", so the test adds that one NUL.
+KUHN_UTF8_TEST = Path("/usr/libexec/installed-tests/SDL2/utf8.txt")
+
+
+def _debian_file(path: Path, package: str) -> bytes:
+    if not path.is_file():
+        pytest.fail(f"{path} is missing: install the Debian package {package} (make system-deps)")
+    return path.read_bytes()
+
+
+@pytest.mark.parametrize("extra", [b"", b"\x00"], ids=["as shipped", "with its NUL"])
+def test_utf8_stress_test_file_with_stray_controls_is_text(extra):
+    data = _debian_file(KUHN_UTF8_TEST, "libsdl2-tests") + extra
+    page = one(data, "UTF-8-test.txt")
+    assert page.status == OK, page.reason
+    removed = 1 + len(extra)  # the DEL, and the NUL when present
+    assert page.payload["control_bytes"] == removed
+    names = "1 x NUL, 1 x DEL" if extra else "1 x DEL"
+    assert f"{removed} stray control byte(s) removed ({names}): too few for binary content" in page.warnings
+    assert "\x00" not in page.text and "\x7f" not in page.text
+    # The prose around the test lines comes through whole, first line to last.
+    assert page.blocks[0].text == "UTF-8 decoder capability and stress test"
+    assert "THE END" in page.blocks[-1].text
+    assert "Markus Kuhn" in page.text
+
+
+def _first_bytes(paths, n):
+    return [p.read_bytes()[:65536] for p in sorted(paths)[:n]]
+
+
+def test_stray_control_limit_keeps_debian_binaries_out_and_its_texts_in():
+    # The limit (sniff.STRAY_CONTROL_LIMIT) against files Debian ships: gettext message
+    # catalogues (.mo, from many packages) and terminfo entries (ncurses-base) carry
+    # words but are binary, and no signature names them; the licence texts
+    # (base-files' common-licenses) are text. The binary with the fewest control bytes
+    # measured was Python's compiled pydoc topics (0.32 %; Debian byte-compiles
+    # libpython3.11-stdlib when installing it), the closest case to the limit.
+    catalogues = _first_bytes(Path("/usr/share/locale").glob("*/LC_MESSAGES/*.mo"), 150)
+    terminfo = _first_bytes(Path("/lib/terminfo").glob("*/*"), 40)
+    topics = _first_bytes(Path("/usr/lib/python3.11/pydoc_data/__pycache__").glob("topics.*.pyc"), 1)
+    assert len(catalogues) >= 50 and len(terminfo) >= 10 and topics
+    for data in catalogues + terminfo + topics:
+        found = sniff(data, "notes.txt")
+        assert found.reason.startswith("not text: "), data[:40]
+    licences = _first_bytes(Path("/usr/share/common-licenses").glob("*"), 40)
+    assert len(licences) >= 10
+    for data in licences:
+        found = sniff(data, "licence.txt")
+        assert found.format == "text" and found.control_bytes == 0
+
+
+def test_one_stray_nul_in_text_is_removed_with_a_warning():
+    data = FRENCH.encode() + b"\x00" + FRENCH.encode()
+    page = one(data)
+    assert page.status == OK and page.payload["control_bytes"] == 1
+    assert "\x00" not in page.text and page.text.count("Le café") == 2
+    assert page.warnings == ["1 stray control byte(s) removed (1 x NUL): too few for binary content"]
 
 
 def test_known_binary_signatures_name_the_format():

@@ -41,6 +41,7 @@ PAYLOAD_KEYS = (
     "columns",
     "removed",
     "navigation",
+    "control_bytes",
     "encoding",
     "byte_size",
     "modified_at",
@@ -133,6 +134,7 @@ def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
         "columns": int(columns),
         "removed": [dict(r) for r in (removed or [])],
         "navigation": navigation,
+        "control_bytes": 0,  # set on a text file's first page (sniff.STRAY_CONTROL_LIMIT)
         "encoding": encoding,
         "byte_size": size,
         "modified_at": (datetime.fromtimestamp(source.mtime, timezone.utc)
@@ -287,6 +289,7 @@ def extract(source: Source, params: ExtractParams, ctx: StepContext) -> list[Pag
                       "page references; set extract drop_navigation: false to keep it")
         pages.append(page)
     pages[0].members = result.members
+    pages[0].payload["control_bytes"] = found.control_bytes  # once per file, so sums count bytes
     return pages
 
 
@@ -300,7 +303,7 @@ def _time_limit(params: ExtractParams) -> float:
 
 EXTRACT = StepSpec(
     name="extract",
-    version="3",
+    version="4",
     consumes="source",
     produces="pages",
     scope="document",
