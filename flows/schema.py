@@ -128,6 +128,8 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
         pa.field("doc_language", pa.string()),
         pa.field("doc_mixed", pa.bool_()),
         pa.field("doc_languages", pa.map_(pa.string(), pa.float64())),
+        # Blocks left out of the language vote: mostly identifiers, commands, paths, numbers.
+        pa.field("unvoted_blocks", pa.int32()),
     ],
     "split": [
         pa.field("merged_sections", pa.int32()),

@@ -9,7 +9,13 @@ results change between runs. We keep a private factory (so nobody else's seed
 setting leaks in) and create each detector under a lock with our seed set.
 
 Text used: headings, paragraphs and tables; CODE blocks are left out because program
-text says nothing about the language of the prose around it.
+text says nothing about the language of the prose around it, and so is a block that is
+mostly identifiers, commands, options, paths or numbers (`technical`): a synopsis line,
+a list of files or of cross-references, a table of figures. Such blocks are not judged
+and do not vote for their page's, chunk's or document's language; each page counts them
+in `unvoted_blocks`. On translated manual pages (tests/test_language_reference.py) they
+were judged as some language with full confidence ("at.allow(5), at.deny(5), atd(8)"
+as English) and outvoted short translated pages.
 
 What is judged, and what "unknown" means:
 - A block (heading, paragraph, table) of at least `min_chars` characters is judged:
@@ -38,8 +44,10 @@ What is judged, and what "unknown" means:
   only the first 10,000 characters of a text (its max_text_length), so a long page
   judged whole is judged on its start.
 
-Document language: the language holding most characters among the pages with a
-detected language ("unknown" pages do not vote). It is called mixed when a second
+Document language: the language holding most characters among the judged text with a
+detected language: a page judged whole votes with its characters, a page judged from its
+blocks votes with each block's (so a page left "unknown" because it holds two languages
+still gives the document both; "unknown" text does not vote). It is called mixed when a second
 language holds at least MIXED_SHARE of those characters -- our own choice, so that a
 glossary page or a quoted passage does not make a document mixed but a bilingual
 document (roughly one part in five or more) does. `doc_languages` gives every detected
@@ -51,6 +59,7 @@ the reason (it stays in the table for audit); "unknown" pages are kept.
 
 from __future__ import annotations
 
+import re
 import threading
 from collections import defaultdict
 from dataclasses import replace
@@ -65,6 +74,15 @@ MIXED_SHARE = 0.20
 # Share of a page's characters its judged blocks must hold for the page to take its
 # language from them (ours: most of the text has then been read once already).
 BLOCKS_COVER_PAGE = 0.8
+# A block whose technical words (below) hold at least this share of its non-space
+# characters does not vote (ours: half, so a sentence that names a command or a path
+# still votes, a synopsis or a list of paths does not).
+TECHNICAL_SHARE = 0.5
+# A technical word: holds a digit or a character prose words do not (paths, options,
+# placeholders, markup, operators), starts with an option dash, or joins word parts with
+# a dot, parenthesis or colon (at.allow(5), os.path, std::vector), or is camelCase or
+# snake_case. Letters with an apostrophe or hyphen inside stay prose (l'été, e-mail).
+_TECHNICAL = re.compile(r"[\d/\\_=<>{}\[\]$@#%&|*~^+`]|^[-\u2010-\u2015]|\w[.(:]\w|[a-z][A-Z]")
 
 
 class LanguageParams(StepParams):
@@ -102,8 +120,21 @@ def _detector(seed: int):
         return _factory.create()
 
 
+def technical(text: str) -> bool:
+    """Is the text mostly identifiers, commands, options, paths or numbers?"""
+    words = text.split()
+    if not words:
+        return False
+    tech = sum(len(w) for w in words if _TECHNICAL.search(w))
+    return tech >= TECHNICAL_SHARE * sum(len(w) for w in words)
+
+
+def _votes(block) -> bool:
+    return block.kind != CODE and not technical(block.text)
+
+
 def detection_text(page: Page) -> str:
-    return "\n".join(b.text for b in page.blocks if b.kind != CODE).strip()
+    return "\n".join(b.text for b in page.blocks if _votes(b)).strip()
 
 
 def detect_text(text: str, params: LanguageParams) -> tuple[str, float | None]:
@@ -169,7 +200,7 @@ def language_shares(weights: dict[str, int]) -> dict[str, float]:
 
 def _judged_blocks(page: Page, params: LanguageParams) -> list[int]:
     return [i for i, b in enumerate(page.blocks)
-            if b.kind != CODE and len(b.text.strip()) >= params.min_chars]
+            if len(b.text.strip()) >= params.min_chars and _votes(b)]
 
 
 def detect_language(pages: list[Page], params: LanguageParams, ctx=None) -> list[Page]:
@@ -200,10 +231,13 @@ def detect_language(pages: list[Page], params: LanguageParams, ctx=None) -> list
                 lang = UNKNOWN
             elif prob < params.min_probability:
                 lang = UNKNOWN
+            for b in blocks:  # the blocks vote for the document, each with its language
+                if b.language is not None:
+                    weights[b.language] += len(b.text)
         else:
             lang, prob = detect_text(text, params)
+            weights[lang] += len(text)
         results.append((lang, prob, blocks))
-        weights[lang] += len(text)
     doc_lang, doc_mixed = document_language(weights)
     shares = language_shares(weights)
 
@@ -220,7 +254,8 @@ def detect_language(pages: list[Page], params: LanguageParams, ctx=None) -> list
             language_prob=prob,
             parents=[page.locator],
             payload={"doc_language": doc_lang, "doc_mixed": doc_mixed,
-                     "doc_languages": dict(shares)},
+                     "doc_languages": dict(shares),
+                     "unvoted_blocks": sum(1 for b in page.blocks if b.kind != CODE and technical(b.text))},
         )
         if kept and lang != UNKNOWN and lang not in kept:
             new.drop(f"language {lang} not in kept languages [{', '.join(params.keep)}]")
@@ -230,7 +265,7 @@ def detect_language(pages: list[Page], params: LanguageParams, ctx=None) -> list
 
 LANGUAGE = StepSpec(
     name="language",
-    version="3",
+    version="4",
     consumes="pages",
     produces="pages",
     scope="document",

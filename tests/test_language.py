@@ -37,7 +37,8 @@ def test_detects_english_german_french(text, code):
     assert out.language == code
     assert out.language_prob >= 0.80
     assert out.status == OK
-    assert out.payload == {"doc_language": code, "doc_mixed": False, "doc_languages": {code: 1.0}}
+    assert out.payload == {"doc_language": code, "doc_mixed": False, "doc_languages": {code: 1.0},
+                           "unvoted_blocks": 0}
     # One judged block: the page takes its answer.
     assert out.blocks[0].language == out.language
     assert out.blocks[0].language_prob == pytest.approx(out.language_prob)
