@@ -90,6 +90,7 @@ from pydantic import Field, model_validator
 
 from .language import UNKNOWN, weighted_language
 from .spec import StepParams, StepSpec
+from .token_offsets import SliceCounter
 from .units import BLOCK_SEP, CODE, HEADING, TABLE, Block, Chunk, Page, chunk_locator
 
 
@@ -302,9 +303,15 @@ class _Splitter:
         self.overlap = params.overlap_tokens
         self.doc = doc
         self._sep_cache: dict[str, int] = {}
+        # The document is encoded once; counts of its slices come from that encoding.
+        self._slices = SliceCounter(encoding, doc)
 
     def count(self, text: str) -> int:
         return len(self.enc.encode_ordinary(text))
+
+    def span(self, start: int, end: int) -> int:
+        """Tokens of doc[start:end], exactly as count(doc[start:end])."""
+        return self._slices.count(start, end)
 
     # -- cutting ---------------------------------------------------------------
 
@@ -363,7 +370,7 @@ class _Splitter:
         for s, e in spans:
             s, e = start + s, start + e
             text = self.doc[s:e]
-            n = self.count(text)
+            n = self.span(s, e)
             if (n + lead if not prefix else self.count(prefix + text)) <= self.max:
                 atoms.append(_Atom(s, e, n, prefix))
                 continue
@@ -374,7 +381,7 @@ class _Splitter:
             room = lead if prefix else self.overlap
             budget = max(1, self.max - room)
             for ps, pe in self.token_pieces(s, e, fits, budget):
-                atoms.append(_Atom(ps, pe, self.count(self.doc[ps:pe]), prefix))
+                atoms.append(_Atom(ps, pe, self.span(ps, pe), prefix))
         return atoms
 
     def block_atoms(self, block: Block, start: int, force_split: bool = False) -> list[_Atom]:
@@ -382,7 +389,7 @@ class _Splitter:
         text = block.text
         # A block far longer than the budget in characters is not counted whole.
         if not force_split and len(text) <= self.max * _CHARS_PER_TOKEN_LIMIT:
-            n = self.count(text)
+            n = self.span(start, end)
             if n <= self.max:
                 return [_Atom(start, end, n, heading=block.kind == HEADING)]
         if block.kind == TABLE:
@@ -431,13 +438,13 @@ class _Splitter:
             if k >= prev_end:
                 k = ws
                 continue
-            if self.count(doc[k:prev_end]) > limit:
+            if self.span(k, prev_end) > limit:
                 break
             starts.append(k)
             k = ws
         # The longest of them with which the chunk's first piece still fits.
         for k in reversed(starts):
-            if self.count(doc[k:first_end]) <= self.max:
+            if self.span(k, first_end) <= self.max:
                 return k
         # No word start qualifies: the earliest char-aligned token boundary within limit.
         text = doc[prev_start:prev_end]
@@ -450,7 +457,7 @@ class _Splitter:
                 cand += 1
             if cand >= prev_end:
                 return None
-            if self.count(doc[cand:prev_end]) <= limit and self.count(doc[cand:first_end]) <= self.max:
+            if self.span(cand, prev_end) <= limit and self.span(cand, first_end) <= self.max:
                 return cand
         return None
 
@@ -476,12 +483,14 @@ class _Splitter:
                 prev_start, prev_end = out[-1][0], out[-1][1]
                 candidate = self.overlap_start(prev_start, prev_end, atom.end)
                 if candidate is not None and candidate < start:
-                    lead = self.count(doc[candidate:start])
+                    lead = self.span(candidate, start)
                     overlap = prev_end - candidate
                     start = candidate
 
             def tokens(j: int) -> int:
-                return self.count(prefix + doc[start:atoms[j].end])
+                if prefix:
+                    return self.count(prefix + doc[start:atoms[j].end])
+                return self.span(start, atoms[j].end)
 
             def estimate(j: int) -> int:
                 return lead + cum[j + 1] - cum[i] - seps[i]
@@ -511,7 +520,7 @@ class _Splitter:
                     if longer > self.max:
                         break
                     j, n = j + 1, longer
-            moved = _keep_introduction(doc, atoms, i, j, lambda s: self.count(s) <= self.max)
+            moved = _keep_introduction(doc, atoms, i, j, lambda s, e: self.span(s, e) <= self.max)
             if moved != j:
                 j, n = moved, tokens(moved)
             # Do not end a chunk on a heading when text follows; give it to the next
@@ -536,7 +545,7 @@ class _Splitter:
     def section_chunks(self, section: _Section) -> list[tuple[int, int, str, int, int]]:
         start, end = self.section_span(section)
         if end - start <= self.max * _CHARS_PER_TOKEN_LIMIT:
-            n = self.count(self.doc[start:end])
+            n = self.span(start, end)
             if n <= self.max:
                 return [(start, end, "", 0, n)]
         atoms: list[_Atom] = []
@@ -551,22 +560,21 @@ class _Splitter:
             if heading_run and heading_start is not None:
                 # The first block under the heading(s): split it if that is what it
                 # takes to keep the heading with some of its text.
-                together = self.doc[heading_start:offset + len(block.text)]
-                force = self.count(together) > self.max
+                force = self.span(heading_start, offset + len(block.text)) > self.max
             heading_run = False
             atoms.extend(self.block_atoms(block, offset, force_split=force))
         return self.pack(atoms)
 
 
 def _keep_introduction(doc: str, atoms: list[_Atom], i: int, j: int,
-                       fits: Callable[[str], bool]) -> int:
+                       fits: Callable[[int, int], bool]) -> int:
     """Where a chunk of atoms i..j ends when a sentence ending in a colon would close it
     while more follows: that sentence introduces what comes next (a list, a command),
     so it starts the next chunk instead -- when the two fit one chunk together and the
     sentence is not the chunk's only atom (common practice; rule ours)."""
     if (j > i and j + 1 < len(atoms) and not atoms[j - 1].heading
             and doc[atoms[j].start:atoms[j].end].rstrip().endswith(":")
-            and fits(doc[atoms[j].start:atoms[j + 1].end])):
+            and fits(atoms[j].start, atoms[j + 1].end)):
         return j - 1
     return j
 
@@ -596,7 +604,7 @@ def _pieces(splitter: _Splitter, sections: list[_Section], params: SplitParams) 
             under = path[:len(anchor)] == anchor and len(path) > len(anchor)
             small = min(tokens, run_tokens) < params.merge_below_tokens
             if under and small:
-                joined = splitter.count(splitter.doc[piece.start:end])
+                joined = splitter.span(piece.start, end)
                 if joined <= params.max_tokens:
                     piece.end = end
                     piece.heading_path = _common_prefix(piece.heading_path, path)
