@@ -341,8 +341,10 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
 # ----------------------------------------------------------------------------- status
 
 def cmd_status(args: argparse.Namespace) -> int:
-    from thresher.flows.summary import (chunks_by_label, format_stage_counts, live_doc_ids, stage_counts, stages_of,
-                                        token_totals)
+    from dataclasses import asdict
+
+    from thresher.flows.summary import (chunks_by_label, format_judgements, format_stage_counts, judgements,
+                                        live_doc_ids, stage_counts, stages_of, token_totals)
 
     definition = _definition(args)
     store = _open_store(args, definition)
@@ -353,6 +355,7 @@ def cmd_status(args: argparse.Namespace) -> int:
     recent = runs[-args.runs:][::-1]
     tokens = token_totals(store)
     labels = chunks_by_label(store)
+    judged = judgements(store, stages_of(latest), docs)
     if args.json:
         print(json.dumps({
             "store": store.root,
@@ -368,6 +371,7 @@ def cmd_status(args: argparse.Namespace) -> int:
                 "encoding": tokens.encoding, "total": tokens.total, "chunks": tokens.chunks,
                 "documents": tokens.documents, "by_language": tokens.by_language, "by_folder": tokens.by_folder},
             "chunks_by_label": labels,
+            "judgements": asdict(judged),
         }, indent=2, default=str))
         return 0
     print(f"store {store.base}: {len(runs)} committed run(s), {len(docs)} live documents")
@@ -380,6 +384,8 @@ def cmd_status(args: argparse.Namespace) -> int:
               f"{m.get('chunks', 0)} chunks, {m.get('tokens', 0):,} tokens, {m.get('failures', 0)} failed units")
     print("current view by stage:")
     print("\n".join(format_stage_counts(counts)))
+    print("judgements (see the README's 'Judgements' for how to overrule each):")
+    print("\n".join(format_judgements(judged)))
     if tokens is not None and tokens.chunks:
         print(f"hand-off: {tokens.chunks} chunks from {tokens.documents} documents, {tokens.total:,} tokens "
               f"({tokens.encoding})")

@@ -101,6 +101,8 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
         pa.field("removed", pa.list_(REMOVAL)),
         # A navigation page's kind (contents, index, figures, tables), else empty.
         pa.field("navigation", pa.string()),
+        # Why a PDF page's text layer was judged unreadable (read by OCR or failed), else empty.
+        pa.field("layer_problem", pa.string()),
         # Stray control bytes removed from a text file before decoding (its first page).
         pa.field("control_bytes", pa.int32()),
         pa.field("encoding", pa.string()),

@@ -113,3 +113,61 @@ def chunks_by_label(store: Store) -> dict[str, int]:
     if table is None or "label" not in table.column_names:
         return {}
     return dict(Counter(label or "(no label)" for label in table.column("label").to_pylist()).most_common())
+
+
+@dataclass
+class Judgements:
+    """The content judgements of the page steps, counted over the current view: each is
+    a column of a stage table (extract: navigation, layer_problem, control_bytes;
+    language: unvoted_blocks), so a reviewer can find the units and overrule the rule."""
+
+    navigation_pages: dict[str, int] = field(default_factory=dict)  # kind -> pages
+    navigation_dropped: int = 0
+    layer_pages: int = 0
+    layer_ocr: int = 0
+    layer_failed: int = 0
+    control_bytes: int = 0
+    control_files: int = 0
+    unvoted_blocks: int = 0
+    unvoted_pages: int = 0
+
+
+def judgements(store: Store, stages: list[tuple[str, str]], doc_ids: list[str]) -> Judgements:
+    j = Judgements()
+    names = {name for name, _ in stages}
+    if "extract" in names:
+        t = store.current("extract", "pages", doc_ids,
+                          columns=["status", "method", "navigation", "layer_problem", "control_bytes"]).to_pylist()
+        nav: Counter = Counter()
+        for r in t:
+            if r["navigation"]:
+                nav[r["navigation"]] += 1
+                j.navigation_dropped += r["status"] == "dropped"
+            if r["layer_problem"]:
+                j.layer_pages += 1
+                j.layer_ocr += r["method"] == "ocr"
+                j.layer_failed += r["status"] == "failed"
+            if r["control_bytes"]:
+                j.control_bytes += r["control_bytes"]
+                j.control_files += 1
+        j.navigation_pages = dict(sorted(nav.items()))
+    if "language" in names:
+        for n in store.current("language", "pages", doc_ids, columns=["unvoted_blocks"]).column(
+                "unvoted_blocks").to_pylist():
+            if n:
+                j.unvoted_blocks += n
+                j.unvoted_pages += 1
+    return j
+
+
+def format_judgements(j: Judgements) -> list[str]:
+    kinds = ", ".join(f"{k} {n}" for k, n in j.navigation_pages.items())
+    nav = sum(j.navigation_pages.values())
+    return [
+        f"  navigation pages        {nav}" + (f" ({kinds}), {j.navigation_dropped} dropped" if nav else ""),
+        f"  unreadable text layers  {j.layer_pages} page(s)"
+        + (f": {j.layer_ocr} read by OCR, {j.layer_failed} failed" if j.layer_pages else ""),
+        f"  stray control bytes     {j.control_bytes} removed from {j.control_files} file(s)",
+        f"  language not voted      {j.unvoted_blocks} block(s) of commands, paths, numbers on "
+        f"{j.unvoted_pages} page(s)",
+    ]

@@ -58,7 +58,7 @@ METHODS = {"pdf": "text-layer", "docx": "docx", "html": "html", "markdown": "mar
 
 
 def test_spec_names_the_step():
-    assert EXTRACT.name == "extract" and EXTRACT.version == "4"
+    assert EXTRACT.name == "extract" and EXTRACT.version == "5"
     assert (EXTRACT.consumes, EXTRACT.produces, EXTRACT.scope) == ("source", "pages", "document")
     assert EXTRACT.params is ExtractParams and EXTRACT.run is extract
     assert EXTRACT.summary
@@ -95,7 +95,7 @@ def test_every_format_gives_the_same_shape(fmt):
     assert tuple(page.payload) == PAYLOAD_KEYS
     assert set(page.payload) == {"method", "page_count", "char_count", "word_count",
                                  "unprintable_share", "table_share", "table_count", "columns",
-                                 "removed", "navigation", "control_bytes", "encoding", "byte_size",
+                                 "removed", "navigation", "layer_problem", "control_bytes", "encoding", "byte_size",
                                  "modified_at", "mail_from", "mail_to", "mail_cc", "mail_date"}
     assert page.payload["byte_size"] == len(data)
     assert page.payload["modified_at"] == datetime(2026, 1, 14, 9, 30, tzinfo=timezone.utc)

@@ -35,6 +35,7 @@ def _pages(lang: str, **params):
 def test_good_text_layers_pass(lang):
     pages = _pages(lang)
     assert [p.status for p in pages] == [OK] * len(pages)
+    assert all(p.payload["layer_problem"] == "" for p in pages)
 
 
 def test_the_hindi_card_is_unreadable_with_the_reason():
@@ -42,6 +43,9 @@ def test_the_hindi_card_is_unreadable_with_the_reason():
     assert pages and all(p.status == FAILED for p in pages)
     assert "devanagari" in pages[0].reason and "cyrillic" in pages[0].reason
     assert "OCR is not enabled" in pages[0].reason
+    # The judgement has its own column, for `thresher status` to count.
+    assert all("cyrillic" in p.payload["layer_problem"] for p in pages)
+    assert pages[0].payload["layer_problem"] in pages[0].reason
 
 
 def test_ocr_reads_the_hindi_card_and_disagrees_with_its_text_layer():

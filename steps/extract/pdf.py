@@ -813,7 +813,7 @@ def read_pdf(inp: ReaderInput) -> ReadResult:
         part = PagePart(page=scan.number, warnings=scan.warnings, failure=scan.failure,
                         error=scan.error, method=scan.method, columns=scan.columns,
                         removed=scan.removed, navigation=scan.navigation,
-                        duration_ms=scan.duration_ms)
+                        duration_ms=scan.duration_ms, fields={"layer_problem": scan.layer_reason})
         if not scan.failure:
             try:
                 part.blocks = scan.ocr_blocks if scan.method == "ocr" else page_blocks(scan, vocab)

@@ -41,6 +41,7 @@ PAYLOAD_KEYS = (
     "columns",
     "removed",
     "navigation",
+    "layer_problem",
     "control_bytes",
     "encoding",
     "byte_size",
@@ -134,6 +135,7 @@ def payload(blocks: list[Block], method: str, page_count: int, encoding: str,
         "columns": int(columns),
         "removed": [dict(r) for r in (removed or [])],
         "navigation": navigation,
+        "layer_problem": "",  # why a PDF page's text layer was judged unreadable (text_layer.py)
         "control_bytes": 0,  # set on a text file's first page (sniff.STRAY_CONTROL_LIMIT)
         "encoding": encoding,
         "byte_size": size,
@@ -303,7 +305,7 @@ def _time_limit(params: ExtractParams) -> float:
 
 EXTRACT = StepSpec(
     name="extract",
-    version="4",
+    version="5",
     consumes="source",
     produces="pages",
     scope="document",
