@@ -120,12 +120,19 @@ def _detector(seed: int):
         return _factory.create()
 
 
+# Scripts written without spaces between words (Thai, Lao, Myanmar, Khmer, CJK, kana,
+# Yi, Hangul, full-width forms): a "word" there is a whole phrase, so only its other
+# characters can be technical ("设置(locale)" is Chinese prose naming a term).
+_UNSPACED = re.compile("[\u0e00-\u0eff\u1000-\u109f\u1780-\u17ff\u2e80-\u9fff"
+                       "\ua000-\ua4cf\uac00-\ud7af\uf900-\ufaff\uff00-\uffef]")
+
+
 def technical(text: str) -> bool:
     """Is the text mostly identifiers, commands, options, paths or numbers?"""
     words = text.split()
     if not words:
         return False
-    tech = sum(len(w) for w in words if _TECHNICAL.search(w))
+    tech = sum(len(w) - len(_UNSPACED.findall(w)) for w in words if _TECHNICAL.search(w))
     return tech >= TECHNICAL_SHARE * sum(len(w) for w in words)
 
 
@@ -265,7 +272,7 @@ def detect_language(pages: list[Page], params: LanguageParams, ctx=None) -> list
 
 LANGUAGE = StepSpec(
     name="language",
-    version="4",
+    version="5",
     consumes="pages",
     produces="pages",
     scope="document",

@@ -154,3 +154,21 @@ def test_synopsis_and_file_lists_do_not_vote_and_are_counted(corpus):
 ])
 def test_technical_words(text, expected):
     assert technical(text) is expected
+
+
+def test_translated_prose_in_31_languages_is_never_technical():
+    # The debconf questions of Debian's `locales` package in its 31 translations (the
+    # Description-xx.UTF-8 fields dpkg keeps in locales.templates): prose that names
+    # terms such as "UTF-8" and "(locale)", in scripts with and without spaces between
+    # words. Chinese writes "区域设置(locale)" without a space; that phrase stays prose.
+    path = "/var/lib/dpkg/info/locales.templates"
+    try:
+        text = open(path, encoding="utf-8").read()
+    except FileNotFoundError:
+        pytest.fail(f"{path} is missing: install the Debian package locales (make system-deps)")
+    paragraphs = []
+    for lang, body in re.findall(r"^Description-([\w]+)\.UTF-8: (.*(?:\n .*)*)", text, re.M):
+        lines = [line[1:] if line.startswith(" ") else line for line in body.split("\n")]
+        paragraphs += [(lang, p.strip()) for p in "\n".join(lines).split("\n.\n") if p.strip()]
+    assert len({lang for lang, _ in paragraphs}) >= 25 and len(paragraphs) >= 100
+    assert [(lang, p[:60]) for lang, p in paragraphs if technical(p)] == []
