@@ -4,10 +4,18 @@ Built in groups of documents, so memory holds one group's chunks at a time, not 
 drive's: each group's chunk stages are read with a doc_id filter, its live chunks
 appended to the staged hand-off file, and a digest per chunk kept (a small Arrow
 table) to compare with the previous hand-off's digests for the change set.
+
+A run that changed only access (no stage rows written, the same live paths and chain
+as the previous hand-off, which records that basis in its file metadata) does not
+rebuild: it streams the previous file batch by batch, replacing only `readers` and
+`label` (see rewrite_access). A chunk's digest is the digest of its body (every
+column but run_id, readers and label) combined with its access, so the new digests
+come from the stored body digests without reading any stage.
 """
 
 from __future__ import annotations
 
+import bisect
 import hashlib
 import json
 from collections import Counter
@@ -16,6 +24,7 @@ from typing import Any
 
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from thresher.flows import schema
 from thresher.flows.config import FlowDefinition
@@ -32,7 +41,14 @@ DIGESTS = pa.schema([
     pa.field("doc_id", pa.string()),
     pa.field("source_path", pa.string()),
     pa.field("content_hash", pa.string()),
+    pa.field("body_digest", pa.string()),  # every column but run_id, readers and label
 ])
+
+# File metadata of the hand-off: what it was built from, access aside (see handoff_basis).
+BASIS_KEY = b"thresher.handoff_basis"
+ACCESS_COLUMNS = ("readers", "label")
+# Rows per batch of the streamed access rewrite: a few MB of chunk text in memory.
+REWRITE_BATCH = 4096
 
 
 @dataclass
@@ -44,6 +60,9 @@ class HandoffResult:
     per_doc: dict[str, tuple[int, int]] = field(default_factory=dict)  # doc_id -> (chunks, tokens)
     # Documents left out because their access allows nobody: source path -> reason.
     withheld: dict[str, str] = field(default_factory=dict)
+    # True: only the access columns were rewritten (no stage was read but for
+    # documents the previous hand-off did not hold).
+    access_only: bool = False
 
 
 Access = dict[str, tuple[list[str], "str | None", str]]  # doc_id -> (readers, label, rule key)
@@ -54,15 +73,40 @@ def _chunk_stages(definition: FlowDefinition) -> list[tuple[str, bool]]:
     return [(s.name, bool(s.spec.formats)) for s in definition.steps if s.spec.produces == "chunks"]
 
 
-def _row_digest(row: dict[str, Any]) -> str:
-    """What an index holds of a chunk: every hand-off column but the producing run."""
-    body = {k: v for k, v in row.items() if k != "run_id"}
+def _body_digest(row: dict[str, Any]) -> str:
+    """Every hand-off column but the producing run and the access columns."""
+    body = {k: v for k, v in row.items() if k != "run_id" and k not in ACCESS_COLUMNS}
     counts = body.get("token_counts")
     if isinstance(counts, dict):
         body["token_counts"] = sorted(counts.items())
     elif isinstance(counts, list):
         body["token_counts"] = sorted(map(tuple, counts))
     return hashlib.sha256(json.dumps(body, sort_keys=True, default=str).encode()).hexdigest()
+
+
+def _access_bytes(readers: list[str], label: str | None) -> bytes:
+    return json.dumps([list(readers), label]).encode()
+
+
+def _digest(body_digest: str, access_bytes: bytes) -> str:
+    """What an index holds of a chunk: its body and its access (not the producing run)."""
+    return hashlib.sha256(body_digest.encode() + access_bytes).hexdigest()
+
+
+def _digest_row(r: dict[str, Any]) -> dict[str, Any]:
+    body = _body_digest(r)
+    return {"chunk_id": r["chunk_id"], "digest": _digest(body, _access_bytes(r["readers"], r["label"])),
+            "doc_id": r["doc_id"], "source_path": r["source_path"], "content_hash": r["content_hash"],
+            "body_digest": body}
+
+
+def handoff_basis(definition: FlowDefinition, live: dict[str, tuple[int, str]],
+                  copies: dict[str, list[str]]) -> str:
+    """What a hand-off holds besides its access columns, given unchanged stage rows:
+    the chain, the hand-off's columns, and every live document's paths."""
+    body = {"chain": definition.chain_digest, "columns": str(schema.HANDOFF),
+            "paths": sorted((d, p, sorted(copies.get(d, []))) for d, (_, p) in live.items())}
+    return hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()
 
 
 def _plain_hash(text: str) -> str:
@@ -117,55 +161,154 @@ def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: lis
 
 
 def previous_digests(store: Store) -> pa.Table:
-    """Digests of the hand-off now published (computed from it if it has none stored)."""
+    """Digests of the hand-off now published (computed from it if it has none stored,
+    or none of the current form: body and access digested apart)."""
     rel = store.published("handoff/digests.parquet")
     if rel is not None:
-        return store.read_table(rel)
+        stored = store.read_table(rel)
+        if stored.schema.names == DIGESTS.names:
+            return stored
     previous = store.published("handoff/chunks.parquet")
     if previous is None:
         return DIGESTS.empty_table()
-    rows = [{"chunk_id": r["chunk_id"], "digest": _row_digest(r), "doc_id": r["doc_id"],
-             "source_path": r["source_path"], "content_hash": r["content_hash"]}
-            for r in store.read_table(previous).to_pylist()]
+    rows = [_digest_row(r) for r in store.read_table(previous).to_pylist()]
     return pa.Table.from_pylist(rows, schema=DIGESTS)
 
 
+def _previous_basis(store: Store) -> tuple[str | None, str | None]:
+    """(published hand-off's store path, the basis recorded in its metadata)."""
+    rel = store.published("handoff/chunks.parquet")
+    if rel is None:
+        return None, None
+    with store.fs.open_input_file(store.path(rel)) as f:
+        meta = pq.read_schema(f).metadata or {}
+    basis = meta.get(BASIS_KEY)
+    return rel, basis.decode() if basis else None
+
+
+def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str]],
+             access: Access, order: list[str], writer) -> tuple[pa.Table, Counter, Counter]:
+    """Every live chunk read from the chunk stages, a group of documents at a time."""
+    digest_parts: list[pa.Table] = []
+    counts: Counter = Counter()
+    tokens: Counter = Counter()
+    for start in range(0, len(order), GROUP_DOCS):
+        rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live, access)
+        if not rows:
+            continue
+        writer.write_table(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
+        digest_parts.append(pa.Table.from_pylist([_digest_row(r) for r in rows], schema=DIGESTS))
+        for r in rows:
+            counts[r["doc_id"]] += 1
+            tokens[r["doc_id"]] += r["token_count"] or 0
+    new = pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
+    return new, counts, tokens
+
+
+def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previous_rel: str, old: pa.Table,
+                   live: dict[str, tuple[int, str]], access: Access, order: list[str],
+                   writer) -> tuple[pa.Table, Counter, Counter]:
+    """The previous hand-off streamed batch by batch with only `readers` and `label`
+    replaced; documents now withheld left out, documents now allowed (not in it) read
+    from the stages and merged in at their place in path order.
+
+    Only for a run whose stage rows and live paths are those of the previous hand-off
+    (build_handoff checks the basis): then every other column is what a rebuild gives.
+    """
+    doc_arr = pa.array(order, pa.string())
+    readers_type = schema.HANDOFF.field("readers").type
+    readers_arr = pa.array([access[d][0] for d in order], readers_type)
+    label_arr = pa.array([access[d][1] for d in order], pa.string())
+    in_old = set(pc.unique(old.column("doc_id")).to_pylist())
+    fresh = [d for d in order if d not in in_old]  # path order
+    pending: list[dict[str, Any]] = []
+    for start in range(0, len(fresh), GROUP_DOCS):
+        pending += _group_rows(definition, store, run_id, fresh[start:start + GROUP_DOCS], live, access)
+    pending_digests = [_digest_row(r) for r in pending]
+    counts: Counter = Counter()
+    tokens: Counter = Counter()
+    readers_at = schema.HANDOFF.get_field_index("readers")
+    label_at = schema.HANDOFF.get_field_index("label")
+
+    def write(t: pa.Table) -> None:
+        writer.write_table(t)
+        agg = t.group_by("doc_id").aggregate([("chunk_id", "count"), ("token_count", "sum")])
+        for d, n, k in zip(agg.column("doc_id").to_pylist(), agg.column("chunk_id_count").to_pylist(),
+                           agg.column("token_count_sum").to_pylist()):
+            counts[d] += n
+            tokens[d] += k or 0
+
+    def rows_table(rows: list[dict[str, Any]]) -> pa.Table:
+        return pa.Table.from_pylist(rows, schema=schema.HANDOFF)
+
+    with store.fs.open_input_file(store.path(previous_rel)) as f:
+        for batch in pq.ParquetFile(f).iter_batches(batch_size=REWRITE_BATCH):
+            t = pa.Table.from_batches([batch])
+            t = t.filter(pc.is_in(t.column("doc_id"), value_set=doc_arr))
+            if not t.num_rows:
+                continue
+            at = pc.index_in(t.column("doc_id"), value_set=doc_arr)
+            columns = t.columns
+            columns[readers_at] = readers_arr.take(at)
+            columns[label_at] = label_arr.take(at)
+            t = pa.Table.from_arrays(columns, schema=schema.HANDOFF)
+            # Documents are contiguous and in path order: a new one goes before the
+            # first row whose path sorts after its own.
+            paths = t.column("source_path").to_pylist()
+            pieces, cut = [], 0
+            while pending and pending[0]["source_path"] < paths[-1]:
+                doc, path = pending[0]["doc_id"], pending[0]["source_path"]
+                k = 0
+                while k < len(pending) and pending[k]["doc_id"] == doc:
+                    k += 1
+                pos = bisect.bisect_left(paths, path)
+                pieces += [t.slice(cut, pos - cut), rows_table(pending[:k])]
+                cut, pending = pos, pending[k:]
+            if pieces:
+                t = pa.concat_tables(pieces + [t.slice(cut)])
+            write(t)
+    if pending:
+        write(rows_table(pending))
+
+    kept = old.filter(pc.is_in(old.column("doc_id"), value_set=doc_arr))
+    access_bytes = {d: _access_bytes(access[d][0], access[d][1]) for d in order}
+    digests = [_digest(b, access_bytes[d])
+               for b, d in zip(kept.column("body_digest").to_pylist(), kept.column("doc_id").to_pylist())]
+    kept = kept.set_column(kept.schema.get_field_index("digest"), DIGESTS.field("digest"),
+                           pa.array(digests, pa.string()))
+    new = pa.concat_tables([kept, pa.Table.from_pylist(pending_digests, schema=DIGESTS)])
+    return new, counts, tokens
+
+
 def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str]],
-                  access: Access, chunks_rel: str, digests_rel: str, changes_rel: str) -> HandoffResult:
+                  access: Access, chunks_rel: str, digests_rel: str, changes_rel: str,
+                  basis: str = "", stages_unchanged: bool = False) -> HandoffResult:
     """Write the hand-off, its digests and the change set to the given (staged) paths.
 
     Access is joined on here, from the catalog: a document whose access allows nobody
     is left out (fail closed), so its chunks leave the index through the change set.
+
+    `basis` (handoff_basis) is recorded in the file; when `stages_unchanged` (the run
+    wrote no stage rows) and the published hand-off has the same basis, only its
+    access columns are rewritten (rewrite_access) instead of reading every stage.
     """
     withheld = {live[d][1]: f"access allows nobody ({access[d][2]})" for d in live if not access[d][0]}
     order = sorted((d for d in live if access[d][0]), key=lambda d: live[d][1])
-    digest_parts: list[pa.Table] = []
-    per_doc: dict[str, tuple[int, int]] = {}
-    total_chunks = total_tokens = 0
-    with store.parquet_writer(chunks_rel, schema.HANDOFF, run_id=run_id) as writer:
-        for start in range(0, len(order), GROUP_DOCS):
-            rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live, access)
-            if not rows:
-                continue
-            writer.write_table(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
-            digest_parts.append(pa.Table.from_pylist(
-                [{"chunk_id": r["chunk_id"], "digest": _row_digest(r), "doc_id": r["doc_id"],
-                  "source_path": r["source_path"], "content_hash": r["content_hash"]} for r in rows],
-                schema=DIGESTS))
-            counts: Counter = Counter()
-            tokens: Counter = Counter()
-            for r in rows:
-                counts[r["doc_id"]] += 1
-                tokens[r["doc_id"]] += r["token_count"] or 0
-            per_doc.update({d: (counts[d], tokens[d]) for d in counts})
-            total_chunks += len(rows)
-            total_tokens += sum(tokens.values())
+    old = previous_digests(store)
+    previous_rel, previous_basis = _previous_basis(store) if stages_unchanged and basis else (None, None)
+    access_only = previous_rel is not None and previous_basis == basis
+    sch = schema.HANDOFF.with_metadata({BASIS_KEY: basis.encode()}) if basis else schema.HANDOFF
+    with store.parquet_writer(chunks_rel, sch, run_id=run_id) as writer:
+        if access_only:
+            new, counts, tokens = rewrite_access(definition, store, run_id, previous_rel, old, live, access,
+                                                 order, writer)
+        else:
+            new, counts, tokens = _rebuild(definition, store, run_id, live, access, order, writer)
+    per_doc = {d: (counts[d], tokens[d]) for d in counts}
     fault("handoff-chunks-staged")
-    new = pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
     store.write_table(digests_rel, new, run_id=run_id)
     fault("handoff-digests-staged")
 
-    old = previous_digests(store)
     # Upsert: new chunk ids, or any column an index holds changed. Delete: ids gone.
     joined = new.join(old.select(["chunk_id", "digest"]).rename_columns(["chunk_id", "old_digest"]),
                       keys="chunk_id", join_type="left outer")
@@ -184,4 +327,5 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     changes = pa.concat_tables([_changes(upserts, "upsert"), _changes(gone, "delete")])
     changes = changes.sort_by([("action", "ascending"), ("source_path", "ascending"), ("chunk_id", "ascending")])
     store.write_table(changes_rel, changes, run_id=run_id)
-    return HandoffResult(total_chunks, total_tokens, upserts.num_rows, gone.num_rows, per_doc, withheld)
+    return HandoffResult(sum(counts.values()), sum(tokens.values()), upserts.num_rows, gone.num_rows, per_doc,
+                         withheld, access_only)

@@ -32,7 +32,7 @@ from thresher.flows.corpus import run_corpus_step
 from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, unit_kind
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
-from thresher.flows.handoff import build_handoff
+from thresher.flows.handoff import build_handoff, handoff_basis
 from thresher.flows.plan import Plan, add_members, make_plan
 from thresher.flows.progress import for_run as progress_for_run
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
@@ -356,8 +356,13 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
 
         t0 = time.perf_counter()
         staged = f"runs/{run_id}/staged"
+        # A run that wrote no stage rows changed at most access: the hand-off's access
+        # columns are rewritten, not rebuilt, when its basis matches the published one.
+        stages_unchanged = not any(store.files_under(f"stages/{s.name}/{run_id}") for s in definition.steps)
         handoff = build_handoff(definition, store, run_id, plan.live, plan.access, f"{staged}/chunks.parquet",
-                                f"{staged}/digests.parquet", f"{staged}/changes.parquet")
+                                f"{staged}/digests.parquet", f"{staged}/changes.parquet",
+                                basis=handoff_basis(definition, plan.live, plan.copies),
+                                stages_unchanged=stages_unchanged)
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
                    "staged/digests.parquet": "handoff/digests.parquet",
                    "staged/changes.parquet": f"handoff/changes/{run_id}.parquet"}
@@ -412,6 +417,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "chunks": handoff.chunks,
             "tokens": tokens,
             "changes": {"upsert": handoff.upserts, "delete": handoff.deletes},
+            "handoff": "access columns rewritten" if handoff.access_only else "rebuilt",
             "probes": probe_summary,
             "withheld": handoff.withheld,
             "failures": len(acc.failures),

@@ -56,13 +56,13 @@ def acl_drive(tmp_path: Path):
         "hr/appraisal-notes.txt": "Appraisal notes for the Quillfern cataloguing team, spring round. "
                                   "Questions to the team lead on 0113 496 0214 or lead@quillfern.example.",
         "board/budget-draft.txt": "Draft budget of the Quillfern board for the coming year, not yet agreed.",
-        "scratch/loose-notes.txt": "Loose notes that no rule covers, left on the drive by someone.",
+        "drafts/loose-notes.txt": "Loose notes that no rule covers, left on the drive by someone.",
     }.items():
         p = drive / rel
         p.parent.mkdir(parents=True, exist_ok=True)
         p.write_text(text + "\n")
     os.chmod(drive / "public/opening-times.txt", 0o644)
-    os.chmod(drive / "scratch/loose-notes.txt", 0o644)
+    os.chmod(drive / "drafts/loose-notes.txt", 0o644)
     hr = drive / "hr/appraisal-notes.txt"
     os.chown(hr, OUTSIDER_UID, OUTSIDER_GID)
     os.chmod(hr, 0o640)
@@ -148,7 +148,7 @@ def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect
     out = _handoff(store_dir)
     assert set(out) == {"public/opening-times.txt", "hr/appraisal-notes.txt", "board/budget-draft.txt"}
     # Fail closed: what no rule covers is left out, with the rule that decided.
-    assert first["withheld"] == {"scratch/loose-notes.txt": "access allows nobody (access.default)"}
+    assert first["withheld"] == {"drafts/loose-notes.txt": "access allows nobody (access.default)"}
     hr = out["hr/appraisal-notes.txt"]
     assert hr["readers"] == sorted(["hr-team", f"user:{OUTSIDER_UID}", f"group:{OUTSIDER_GID}", "user:daemon",
                                     f"group:{AUDIT_GID}", "group:adm"])
@@ -176,12 +176,19 @@ def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect
     changes = pq.read_table(store_dir / "handoff" / "changes" / f"{second['run_id']}.parquet").to_pylist()
     # Exactly the affected chunks (one per file here): the public file's is not among them.
     assert sorted((c["source_path"], c["action"]) for c in changes) == [
-        ("board/budget-draft.txt", "upsert"), ("hr/appraisal-notes.txt", "upsert"),
-        ("scratch/loose-notes.txt", "upsert")]
+        ("board/budget-draft.txt", "upsert"), ("drafts/loose-notes.txt", "upsert"),
+        ("hr/appraisal-notes.txt", "upsert")]
     out = _handoff(store_dir)
     assert out["board/budget-draft.txt"]["readers"] == ["board", "group:root", "user:root"]
     assert out["hr/appraisal-notes.txt"]["label"] == "personnel"
-    assert out["scratch/loose-notes.txt"]["readers"] == ["everyone", "group:root", "staff", "user:root"]
+    assert out["drafts/loose-notes.txt"]["readers"] == ["everyone", "group:root", "staff", "user:root"]
+    # The hand-off was not rebuilt: its access columns were rewritten in a streamed copy
+    # (the drafts file, withheld before, read from the stages and merged in between
+    # the board's and hr's rows), and the result is what a rebuild from every stage
+    # gives, row for row.
+    assert second["handoff"] == "access columns rewritten" and first["handoff"] == "rebuilt"
+    assert Store(store_dir).handoff().equals(_rebuilt(store_dir, _definition(edited)))
+
 
     # trail shows the access, the rule that gave it and the facts; where each finding
     # is (page text offsets) with its value on the terminal; status counts by label.
@@ -201,6 +208,34 @@ def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect
         assert f"{kind}: file chars {start}-{start + len(value)}: {value}" in trail
     status = _cli(capsys, "status", "--config", str(config))
     assert "by label:    (no label) 2, restricted 1, personnel 1" in status
+
+    # A rule that now allows nobody withholds the board's file: its chunk is deleted,
+    # nothing else changes, and still no step runs.
+    closed = {**edited, "rules": edited["rules"][:1] + [{"paths": "board/**", "readers": []}] + edited["rules"][2:]}
+    third = pipeline.run(_definition(closed), str(acl_drive), str(store_dir), quiet=True)
+    assert third["documents"]["processed"] == 0 and third["handoff"] == "access columns rewritten"
+    assert third["withheld"] == {"board/budget-draft.txt": "access allows nobody (access.rules[1])"}
+    changes = pq.read_table(store_dir / "handoff" / "changes" / f"{third['run_id']}.parquet").to_pylist()
+    assert [(c["source_path"], c["action"]) for c in changes] == [("board/budget-draft.txt", "delete")]
+    assert Store(store_dir).handoff().equals(_rebuilt(store_dir, _definition(closed)))
+    assert sorted(p.relative_to(store_dir) for p in (store_dir / "stages").rglob("*.parquet")) == stage_files
+
+
+def _rebuilt(store_dir: Path, definition):
+    """The hand-off rebuilt from every stage for the store's current catalog."""
+    from thresher.flows.access import document_access
+    from thresher.flows.handoff import build_handoff
+    from thresher.flows.plan import live_documents
+
+    store = Store(store_dir)
+    catalog = store.catalog().to_pylist()
+    _, live, _ = live_documents(catalog, {r.run_id: r.sequence for r in store.runs()}, store.next_sequence())
+    scratch = "runs/rebuild-check"
+    build_handoff(definition, store, "rebuild-check", live, document_access(catalog, definition.model.access),
+                  f"{scratch}/chunks.parquet", f"{scratch}/digests.parquet", f"{scratch}/changes.parquet")
+    table = store.read_table(f"{scratch}/chunks.parquet")
+    store.delete_dir(scratch)
+    return table
 
 
 def _cli(capsys, *argv: str) -> str:
