@@ -196,6 +196,16 @@ def test_one_stray_nul_in_text_is_removed_with_a_warning():
     assert page.warnings == ["1 stray control byte(s) removed (1 x NUL): too few for binary content"]
 
 
+def test_short_random_blobs_are_no_more_often_text_than_before_the_allowance():
+    # The allowance of a few stray bytes starts at 256 bytes (STRAY_CONTROL_MIN_BYTES):
+    # below that it would pass most 16-byte blobs as text.
+    as_text = {size: sum(not sniff(random.Random(size * 1000 + i).randbytes(size), "x.txt").reason
+                         for i in range(100)) for size in (16, 64, 256, 4096)}
+    assert as_text[16] <= 20 and as_text[64] <= 1 and as_text[256] == as_text[4096] == 0, as_text
+    # A short note with one NUL is below the allowance's size: binary, as it always was.
+    assert sniff(b"Returns desk open at nine\x00", "x.txt").reason.startswith("not text: 1 NUL bytes")
+
+
 def test_known_binary_signatures_name_the_format():
     png = b"\x89PNG\r\n\x1a\n" + b"\x00\x00\x00\rIHDR" + bytes(40)
     assert one(b"\x7fELF" + bytes(60), "tool.txt").reason == "not a document: executable (.txt); add 'executable' to extract's read_kinds to read such files"

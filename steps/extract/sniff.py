@@ -54,9 +54,12 @@ def codec_modules() -> list[str]:
 # about three times from each side. tests/test_extract_text.py checks it on Debian's
 # .mo catalogues and terminfo entries, and on a UTF-8 stress-test file. A short file
 # may hold STRAY_CONTROL_FEW whatever its length: the fewest control bytes among those
-# binaries was 28 (the 308-byte terminfo entry "dumb").
+# binaries was 28 (the 308-byte terminfo entry "dumb"). Not below STRAY_CONTROL_MIN_BYTES:
+# of 100 random 16-byte blobs 65 would then pass as text (17 with no allowance), of 100
+# random blobs of 64 bytes 1 (1), of 256 bytes or more none (measured, seeded blobs).
 STRAY_CONTROL_LIMIT = 0.001
 STRAY_CONTROL_FEW = 4
+STRAY_CONTROL_MIN_BYTES = 256
 UNPRINTABLE_SHARE_LIMIT = 0.10
 
 # Format names the extension suggests, to warn when the content disagrees.
@@ -538,7 +541,8 @@ def sniff(data: bytes, source_path: str) -> Sniffed:
     stray, stray_warning = 0, ""
     if not _bom(data) and not _utf16_without_bom(sample):
         controls = _control_count(sample)
-        if controls > max(STRAY_CONTROL_FEW, STRAY_CONTROL_LIMIT * len(sample)):
+        few = STRAY_CONTROL_FEW if len(sample) >= STRAY_CONTROL_MIN_BYTES else 0
+        if controls > max(few, STRAY_CONTROL_LIMIT * len(sample)):
             nuls = sample.count(0)
             what = f"{nuls} NUL bytes and " if nuls else ""
             return Sniffed(reason=f"not text: {what}{controls / len(sample):.1%} of the first {len(sample)} "

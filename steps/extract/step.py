@@ -305,7 +305,7 @@ def _time_limit(params: ExtractParams) -> float:
 
 EXTRACT = StepSpec(
     name="extract",
-    version="5",
+    version="6",
     consumes="source",
     produces="pages",
     scope="document",
