@@ -29,6 +29,7 @@ import pyarrow.parquet as pq
 
 from thresher.flows import schema
 from thresher.flows.faults import fault
+from thresher.flows.probes import probes_rel
 from thresher.flows.store import COMPACTED, Store
 from thresher.flows.summary import stages_of
 
@@ -281,15 +282,21 @@ def retention_plan(store: Store, keep_runs: int | None, since: datetime | None,
             plan.changes.append(f"handoff/changes/{info.base_name}")
             plan.bytes_freed += info.size or 0
     # A run's manifest stays while a row, the catalog's ranks (first_run) or a published
-    # file needs it.
+    # file needs it. A run's own probe results are its history, not a shared file: they
+    # go with the run, except the newest, which the next run compares against.
     needed = set(holding)
     needed |= {r["first_run"] for r in store.catalog().to_pylist()}
+    newest_probes = next((r.run_id for r in reversed(runs) if probes_rel(r.run_id) in
+                          r.manifest.get("publish", {}).values()), None)
+    needed.add(newest_probes)
     for r in runs:
         for final in r.manifest.get("publish", {}).values():
-            if not final.startswith("handoff/changes/"):
+            if not final.startswith(("handoff/changes/", "probes/")):
                 needed.add(_publisher(runs, final))
     plan.runs_removed = [r for r in old if r not in needed]
     plan.bytes_freed += sum(_run_bytes(store, r) for r in plan.runs_removed)
+    for run_id in plan.runs_removed:
+        plan.bytes_freed += store.fs.get_file_info(store.path(probes_rel(run_id))).size or 0
     return plan
 
 
@@ -332,6 +339,7 @@ def retain(store: Store, keep_runs: int | None, since: datetime | None = None,
         store.sweep_uncommitted()
         fault("retain-run-swept")
         store.delete_file(f"handoff/changes/{run_id}.parquet")
+        store.delete_file(probes_rel(run_id))
     store.runs(refresh=True)
     plan.bytes_freed = max(0, before - _store_bytes(store))
     plan.done = True

@@ -183,3 +183,21 @@ def test_a_compacted_stage_is_sorted_so_one_document_read_prunes_row_groups(tmp_
     assert all(a[1] <= b[0] for a, b in zip(ranges, ranges[1:]))  # disjoint: a lookup reads 1-2 groups
     assert sum(1 for lo, hi in ranges if lo <= "doc017" <= hi) <= 2
     assert Store(tmp_path / "s").current("extract", "pages", ["doc017"]).to_pylist() == want
+
+
+def test_retention_removes_the_probe_results_of_the_runs_it_removes(store_dir, drive):
+    probes = str(Path(__file__).resolve().parents[1] / "config" / "demo-probes.yaml")
+    for n in (7, 8):
+        _edit(drive, n)
+        pipeline.run(load_definition(), str(drive), str(store_dir), workers=1, quiet=True, probes=probes)
+    runs = [r.run_id for r in Store(store_dir).runs()]
+    assert (store_dir / "probes" / f"{runs[-2]}.parquet").exists()
+    r = subprocess.run([THRESHER, "retain", "--store", str(store_dir), "--keep-runs", "1"],
+                       capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    left = [x.run_id for x in Store(store_dir).runs()]
+    # The fourth run's only rows were an edit the fifth replaced: it goes, and its
+    # probe results with it; the newest results stay for the next run to compare.
+    assert runs[-2] not in left and runs[-1] in left
+    assert sorted(p.stem for p in (store_dir / "probes").glob("*.parquet")) == [runs[-1]]
+    assert verify(Store(store_dir)) == []
