@@ -5,7 +5,8 @@ The runs are written the way a run writes (one part file per batch per stage, a
 ledger per part, a manifest) with synthetic rows, so 100 runs take seconds rather
 than hours of extraction; what is measured is the store's read path, which does not
 care where the rows came from. Figures: median time of `Store.current` for one
-document at every stage (what `thresher trail` reads), and part files on disk.
+document at every stage (what `thresher trail` reads) by a reader with nothing
+cached, as a new `thresher trail` process is, and part files on disk.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from pathlib import Path
 
 from thresher.flows.housekeeping import compact
 from thresher.flows.rows import RowContext, rows_to_table, to_row
+from thresher.flows import store as store_module
 from thresher.flows.store import Store
 from thresher.steps.units import Block, Page
 
@@ -59,9 +61,17 @@ def _trail_ms(root: Path, probes: list[str]) -> float:
     return min(_round(root, probes) for _ in range(3))
 
 
+def _cold() -> None:
+    """Forget what this process cached of the store (ledgers), as a new `thresher
+    trail` process starts with nothing."""
+    for cache in (store_module._LEDGERS, store_module._LEDGER_FILES, store_module._COMPACTED):
+        cache.clear()
+
+
 def _round(root: Path, probes: list[str]) -> float:
     times = []
     for d in probes:
+        _cold()
         store = Store(root)  # a fresh reader, as `thresher trail` is
         t0 = time.perf_counter()
         for stage in STAGES:

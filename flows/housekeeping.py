@@ -151,7 +151,7 @@ def rewrite_stage(store: Store, stage: str, unit: str,
         if r in holding or latest_full[d][1] == r:
             ledger.add((r, d, "document", ""))
     fault(f"{point}-parts-written")
-    rows = sorted(ledger)
+    rows = sorted(ledger, key=lambda e: (e[1], e[0], e[2], e[3]))  # by doc_id: a lookup skips row groups
     table = pa.table({c: [row[i] for row in rows] for i, c in enumerate(("run_id", "doc_id", "scope", "part"))},
                      schema=schema.COMPACTED_LEDGER)
     store.write_table(f"{folder}/ledger.parquet", table)

@@ -57,6 +57,9 @@ _LEDGERS: dict[tuple[str, str, str], "Ledger"] = {}
 _LEDGER_FILES: dict[str, list[tuple[str, str]]] = {}
 _LEDGERS_LOCK = threading.Lock()
 _COMPACTED: dict[tuple[str, str, str], "CompactedLedger"] = {}
+# Up to this many documents, a read of a compacted stage looks up only their ledger
+# entries instead of loading the whole ledger (a trail, a page re-run).
+LEDGER_LOOKUP_DOCS = 64
 COMPRESSION = "zstd"
 COMPACTED = "_compacted"
 
@@ -124,6 +127,7 @@ class Store:
         self.fs, self.base = _filesystem(self.root)
         self._runs_cache: list[RunInfo] | None = None
         self._compaction_cache: dict[str, dict | None] = {}
+        self._ledger_lookup: tuple | None = None  # the last few-document compacted ledger read
 
     # ----------------------------------------------------------------- paths and files
 
@@ -493,7 +497,10 @@ class Store:
             self.delete_dir(rel)
         return removed
 
-    def _compacted_ledger(self, stage: str) -> CompactedLedger | None:
+    def _compacted_ledger(self, stage: str, doc_ids: set[str] | None = None) -> CompactedLedger | None:
+        """The compacted generation's ledger; with a few doc_ids and nothing cached, only
+        their entries, read by a filter that skips row groups (the ledger is sorted by
+        doc_id), so one document's trail does not parse the whole drive's ledger."""
         rec = self.compaction(stage)
         if rec is None:
             return None
@@ -503,7 +510,20 @@ class Store:
         if cached is not None:
             return cached
         folder = f"stages/{stage}/{COMPACTED}/{rec['generation']}"
+        if doc_ids is not None and len(doc_ids) <= LEDGER_LOOKUP_DOCS:
+            look = (key, frozenset(doc_ids))
+            if self._ledger_lookup is None or self._ledger_lookup[0] != look:
+                t = ds.dataset(self.path(f"{folder}/ledger.parquet"), format="parquet", filesystem=self.fs) \
+                    .to_table(filter=ds.field("doc_id").isin(sorted(doc_ids)))
+                self._ledger_lookup = (look, self._compacted_from(folder, t))
+            return self._ledger_lookup[1]
         t = self.read_table(f"{folder}/ledger.parquet")
+        ledger = self._compacted_from(folder, t)
+        with _LEDGERS_LOCK:
+            _COMPACTED[key] = ledger
+        return ledger
+
+    def _compacted_from(self, folder: str, t: pa.Table) -> CompactedLedger:
         files: dict[str, list[tuple[str, str]]] = {}
         full: list[tuple[str, str]] = []
         for run_id, doc_id, scope, part in zip(*(t.column(c).to_pylist() for c in ("run_id", "doc_id", "scope", "part"))):
@@ -511,10 +531,7 @@ class Store:
                 files.setdefault(doc_id, []).append((run_id, self.path(f"{folder}/{part}")))
             if scope == "document":
                 full.append((doc_id, run_id))
-        ledger = CompactedLedger(files, full)
-        with _LEDGERS_LOCK:
-            _COMPACTED[key] = ledger
-        return ledger
+        return CompactedLedger(files, full)
 
     def part_files(self, stage: str) -> int:
         """How many part files a stage's rows are spread over now."""
@@ -613,7 +630,7 @@ class Store:
         wanted = None if doc_ids is None else set(doc_ids)
         floors = floors or {}
         files: list[str] = []
-        compacted = self._compacted_ledger(stage)
+        compacted = self._compacted_ledger(stage, wanted)
         covered = set((self.compaction(stage) or {}).get("runs", []))
         if compacted is not None:
             found = set()
@@ -730,7 +747,7 @@ class Store:
         """Per document, the sequence of the latest run that rewrote it whole here."""
         floors: dict[str, int] = {}
         covered = set((self.compaction(stage) or {}).get("runs", []))
-        compacted = self._compacted_ledger(stage)
+        compacted = self._compacted_ledger(stage, doc_ids)
         if compacted is not None:
             for d in doc_ids:
                 for run_id in compacted.full_by_doc.get(d, ()):

@@ -172,6 +172,7 @@ def test_a_compacted_stage_is_sorted_so_one_document_read_prunes_row_groups(tmp_
         store.commit(run_id, {"run_id": run_id, "sequence": r + 1, "publish": {},
                               "definition": {"steps": [{"name": "extract", "unit": "pages"}]}})
     want = store.current("extract", "pages", ["doc017"]).to_pylist()
+    wanted = {d: store.current("extract", "pages", [d]).to_pylist() for d in ("doc000", "doc023", "doc039")}
     housekeeping.compact(store)
     rec = store.compaction("extract")
     part = next(p for p in rec["files"] if p.endswith("part-00000.parquet"))
@@ -183,6 +184,16 @@ def test_a_compacted_stage_is_sorted_so_one_document_read_prunes_row_groups(tmp_
     assert all(a[1] <= b[0] for a, b in zip(ranges, ranges[1:]))  # disjoint: a lookup reads 1-2 groups
     assert sum(1 for lo, hi in ranges if lo <= "doc017" <= hi) <= 2
     assert Store(tmp_path / "s").current("extract", "pages", ["doc017"]).to_pylist() == want
+    # A new reader (nothing cached, as a `thresher trail` process) looks up only the
+    # documents' own entries of the compacted ledger, which is sorted by doc_id.
+    ledger = pq.read_table(tmp_path / "s" / next(p for p in rec["files"] if p.endswith("ledger.parquet")))
+    assert ledger.column("doc_id").to_pylist() == sorted(ledger.column("doc_id").to_pylist())
+    from thresher.flows import store as store_module
+
+    for d, rows in wanted.items():
+        store_module._COMPACTED.clear()
+        assert Store(tmp_path / "s").current("extract", "pages", [d]).to_pylist() == rows
+        assert not store_module._COMPACTED  # the whole ledger was not loaded
 
 
 def test_retention_removes_the_probe_results_of_the_runs_it_removes(store_dir, drive):
