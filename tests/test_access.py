@@ -74,9 +74,11 @@ def acl_drive(tmp_path: Path):
     subprocess.run(["umount", str(root)], capture_output=True)
 
 
-def _definition(access: dict):
+def _definition(access: dict, policy: dict | None = None):
     data = yaml.safe_load(default_config_text())
     data["access"] = access
+    if policy is not None:
+        next(s for s in data["steps"] if s["step"] == "personal")["params"]["policy"] = policy
     data["runner"] = {"kind": "threads", "workers": 1}
     return build_definition(data, "test")
 
@@ -219,6 +221,41 @@ def test_readers_reach_every_chunk_and_a_change_of_access_reruns_nothing(prefect
     assert [(c["source_path"], c["action"]) for c in changes] == [("board/budget-draft.txt", "delete")]
     assert Store(store_dir).handoff().equals(_rebuilt(store_dir, _definition(closed)))
     assert sorted(p.relative_to(store_dir) for p in (store_dir / "stages").rglob("*.parquet")) == stage_files
+    # The index delivered after each run (the default SQLite target) holds the new
+    # access; its keyword index still holds each chunk's text once.
+    index = _index(store_dir)
+    assert index == _held(store_dir) and index["hr/appraisal-notes.txt"][0][1] == "personnel"
+
+    # Masking phones changes the hr chunk's text under the same chunk id: the personal
+    # step runs again, the hand-off is rebuilt, and the keyword index gets the new text.
+    masked = pipeline.run(_definition(closed, {"phone": "mask"}), str(acl_drive), str(store_dir), quiet=True)
+    assert masked["handoff"] == "rebuilt"
+    index = _index(store_dir)
+    assert index == _held(store_dir) and "0113 496 0214" not in index["hr/appraisal-notes.txt"][0][3]
+
+
+def _held(store_dir: Path) -> dict[str, list[tuple]]:
+    """Per path: (chunk_id, label, readers, text) of the hand-off's chunks."""
+    out: dict[str, list[tuple]] = {}
+    for r in Store(store_dir).handoff().to_pylist():
+        out.setdefault(r["source_path"], []).append((r["chunk_id"], r["label"], r["readers"], r["text"]))
+    return out
+
+
+def _index(store_dir: Path) -> dict[str, list[tuple]]:
+    """The same from the delivered SQLite index: table columns, and the text its
+    keyword index holds for the chunk (every indexed row, so a copy would show)."""
+    import json
+    import sqlite3
+
+    con = sqlite3.connect(store_dir / "index.sqlite")
+    out: dict[str, list[tuple]] = {}
+    for cid, path, label, readers in con.execute("SELECT chunk_id, source_path, label, readers FROM chunks"):
+        texts = [t for (t,) in con.execute("SELECT text FROM chunks_fts WHERE chunk_id = ?", (cid,))]
+        out.setdefault(path, []).append((cid, label, json.loads(readers), texts[0] if len(texts) == 1 else texts))
+    assert con.execute("SELECT count(*) FROM chunks_fts").fetchone()[0] == sum(map(len, out.values()))
+    con.close()
+    return out
 
 
 def _rebuilt(store_dir: Path, definition):

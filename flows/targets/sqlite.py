@@ -142,10 +142,26 @@ class SqliteTarget:
         sql = (f"INSERT INTO {self.table} ({quoted}) VALUES ({marks}) "
                f"ON CONFLICT(chunk_id) DO UPDATE SET {updates}")
         ids = table.column("chunk_id").to_pylist()
+        texts = [t or "" for t in table.column("text").to_pylist()]
+        held = self._texts(ids)
         for start in range(0, table.num_rows, 5000):
             part = table.slice(start, 5000)
             rows = [tuple(_value(r[n]) for n in names) for r in row_values(part)]
             self.db.executemany(sql, rows)
-        self.db.executemany(f"DELETE FROM {self.table}_fts WHERE chunk_id = ?", [(c,) for c in ids])
-        self.db.executemany(f"INSERT INTO {self.table}_fts (chunk_id, text) VALUES (?, ?)",
-                            zip(ids, (t or "" for t in table.column("text").to_pylist())))
+        # The keyword index is rewritten only where the text changed: a change of access
+        # alone (readers, label) leaves it as it is. (Deleting from it by chunk_id reads
+        # the whole index, so this is most of an access-only delivery's cost otherwise.)
+        stale = [(c, t) for c, t in zip(ids, texts) if held.get(c) != t]
+        self.db.executemany(f"DELETE FROM {self.table}_fts WHERE chunk_id = ?",
+                            [(c,) for c, _ in stale if c in held])
+        self.db.executemany(f"INSERT INTO {self.table}_fts (chunk_id, text) VALUES (?, ?)", stale)
+
+    def _texts(self, chunk_ids: list[str]) -> dict[str, str]:
+        """The text the target holds now for these chunk ids (absent ids left out)."""
+        out: dict[str, str] = {}
+        for start in range(0, len(chunk_ids), 500):  # under SQLite's bound-parameter limit
+            part = chunk_ids[start:start + 500]
+            marks = ", ".join("?" for _ in part)
+            out.update((c, t or "") for c, t in self.db.execute(
+                f"SELECT chunk_id, text FROM {self.table} WHERE chunk_id IN ({marks})", part))
+        return out
