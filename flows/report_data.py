@@ -74,6 +74,7 @@ class UnitAtStage:
     run_id: str = ""
     attempt: int = 1
     removed: list[dict[str, Any]] = field(default_factory=list)  # lines a stage took out, and why
+    judged: list[str] = field(default_factory=list)  # JUDGEMENTS that hold for an ok unit
 
     @property
     def removed_kinds(self) -> str:
@@ -263,6 +264,7 @@ def _unit_at(stage: str, row: dict[str, Any], own: list[str]) -> UnitAtStage:
         error_type=row.get("error_type") or "", traceback=row.get("traceback") or "",
         warnings=warnings, facts=facts, text=row.get("text"),
         run_id=row.get("run_id") or "", attempt=row.get("attempt") or 1, removed=removed,
+        judged=[what for col, what in JUDGEMENTS.items() if row.get(col)] if row.get("status") == "ok" else [],
     )
 
 
@@ -367,10 +369,18 @@ def _canonical_path(rows: list[dict[str, Any]]) -> str:
 
 # What the summary needs of each unit; the text, tracebacks and a stage's own columns
 # are read only for the document pages being written.
+# Content judgements on units left ok (summary.Judgements counts the same columns): the
+# summary's problem list names them, so a reviewer can find and overrule them.
+JUDGEMENTS = {
+    "control_bytes": "stray control bytes removed from the text",
+    "layer_problem": "text layer unreadable: read by OCR instead",
+    "unvoted_blocks": "blocks of commands, paths or numbers left out of the language vote",
+}
+JUDGEMENT_COLUMNS = tuple(JUDGEMENTS)
 LIGHT_COLUMNS = ("doc_id", "unit_id", "locator", "page", "status", "reason", "error_type", "format", "title",
                  "language", "doc_language", "chunk_id", "chunk_index", "token_count", "heading_path",
                  "page_start", "page_end", "duplicate_of", "duplicate_kind", "similarity", "run_id", "attempt",
-                 "personal_counts")
+                 "personal_counts", *JUDGEMENT_COLUMNS)
 
 
 @dataclass

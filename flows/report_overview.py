@@ -124,6 +124,7 @@ class Overview:
             self.personal.setdefault(kind, []).append((row, n))
         found = {(u.status, u.stage, reason_kind(u, None)) for p in doc.pages for u in p.stages if u.status != "ok"}
         found |= {(u.status, u.stage, reason_kind(u, c)) for c in doc.chunks for u in c.stages if u.status != "ok"}
+        found |= {("judged", u.stage, what) for p in doc.pages for u in p.stages for what in u.judged}
         for key in found:
             group = self.problems.get(key)
             if group is None:

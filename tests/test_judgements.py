@@ -66,3 +66,19 @@ def test_status_prints_and_answers_the_judgements(judged_store, capsys):
     js = json.loads(capsys.readouterr().out)
     assert js["judgements"]["navigation_pages"] == {"contents": 1, "index": 2}
     assert js["judgements"]["control_bytes"] == 1
+
+
+def test_the_review_page_lists_the_judged_pages(judged_store, tmp_path):
+    out = tmp_path / "review.html"
+    assert cli.main(["report", "--store", str(judged_store), "--out", str(out)]) == 0
+    html = out.read_text(encoding="utf-8")
+    problems = html[html.index('<section id="problems">'):]
+    problems = problems[:problems.index("</section>")]
+    rows = problems.split("<tr>")
+    control = next(r for r in rows if "stray control bytes removed from the text" in r)
+    assert ">judged<" in control and "UTF-8-test.txt" in control and "extract" in control
+    unvoted = next(r for r in rows if "left out of the language vote" in r)
+    assert ">judged<" in unvoted and "libtasn1.pdf" in unvoted
+    # Dropped navigation pages and failed text layers stay listed by their reasons.
+    assert any("navigation page (contents)" in r and ">dropped<" in r for r in rows)
+    assert any("wrong characters" in r and ">failed<" in r for r in rows)
