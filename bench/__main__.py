@@ -9,7 +9,7 @@ import importlib
 import sys
 
 BENCHES = ["orchestration", "incremental", "scale", "chunking", "extract", "dedup", "retrieval", "deliver",
-           "formats", "store_growth", "report", "access"]
+           "formats", "store_growth", "report", "access", "memory"]
 
 
 def main(argv: list[str]) -> int:

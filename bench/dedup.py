@@ -36,10 +36,11 @@ import tempfile
 import time
 from pathlib import Path
 
+from thresher.flows.corpus import DOCS_PER_BATCH  # as the flow loads them
+
 REPO = Path(__file__).resolve().parents[1]
 SIZES = (10_000, 100_000, 1_000_000)
 CHUNKS_PER_DOC = 10
-DOCS_PER_BATCH = 1000  # as flows.corpus.DOCS_PER_BATCH
 VOCAB = 20_000
 SEED = 2026
 
