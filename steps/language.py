@@ -13,7 +13,7 @@ text says nothing about the language of the prose around it, and so is a block t
 mostly identifiers, commands, options, paths or numbers (`technical`): a synopsis line,
 a list of files or of cross-references, a table of figures. Such blocks are not judged
 and do not vote for their page's, chunk's or document's language; each page counts them
-in `unvoted_blocks`. On translated manual pages (tests/test_language_reference.py) they
+in `unvoted_blocks`. On translated manual pages (tests/test_language_mixed.py) they
 were judged as some language with full confidence ("at.allow(5), at.deny(5), atd(8)"
 as English) and outvoted short translated pages.
 

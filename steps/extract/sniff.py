@@ -45,14 +45,15 @@ def codec_modules() -> list[str]:
 
     return [f"encodings.{name}" for name in IANA_SUPPORTED]
 
-# Stray control bytes a text file may hold, as a share of the first 64 KiB. Measured on
-# this Debian 12 machine (first 64 KiB of each file, script in the test): of 1,486 text
+# Stray control bytes a text file may hold, as a share of the first 64 KiB. Measured once
+# on a Debian 12 machine (first 64 KiB of each file, a one-off script): of 1,486 text
 # files (common-licenses, copyright files, Perl modules, Python sources, /etc *.conf) the
 # highest share was 0.03 % (diagnostics.pm: 6 bytes); of the binaries that no signature
 # names (300 gettext .mo catalogues, 200 .pyc files, 42 terminfo entries, 23 fonts) the
 # lowest was 0.32 % (pydoc topics .pyc), then 4.6 %, 8.4 % (.mo). 0.1 % sits between,
-# about three times from each side. tests/test_extract_text.py checks it on Debian's
-# .mo catalogues and terminfo entries, and on a UTF-8 stress-test file. A short file
+# about three times from each side. tests/test_extract_text.py re-checks it on Debian's
+# .mo catalogues, terminfo entries, the pydoc topics .pyc and licence texts, and on a
+# UTF-8 stress-test file. A short file
 # may hold STRAY_CONTROL_FEW whatever its length: the fewest control bytes among those
 # binaries was 28 (the 308-byte terminfo entry "dumb"). Not below STRAY_CONTROL_MIN_BYTES:
 # of 100 random 16-byte blobs 65 would then pass as text (17 with no allowance), of 100
