@@ -10,6 +10,7 @@ it writes no rows for them, and the next step reads the stage before it.
 from __future__ import annotations
 
 import hashlib
+import threading
 import time
 from collections import defaultdict
 from dataclasses import dataclass, field
@@ -19,9 +20,10 @@ from typing import Any
 
 from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
-from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, RemoteError, TimeLimitExceeded,
+from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, RemoteError, TimeLimitExceeded,
                                     isolation_available)
 from thresher.flows.rows import RowContext, row_to_unit, rows_to_table, to_row
+from thresher.flows.segment import StepCall, StepDone, failed_document_unit, order_key, run_segment
 from thresher.flows.store import Store
 from thresher.steps.spec import StepContext
 from thresher.steps.units import DOCUMENT_LOCATOR, OK, Chunk, Page, Source
@@ -98,10 +100,22 @@ def unit_kind(step: ResolvedStep) -> str:
     return step.spec.produces
 
 
-def _order_key(unit: Unit) -> tuple:
-    if isinstance(unit, Chunk):
-        return (unit.index, unit.locator)
-    return (unit.page or 0, unit.locator)
+_order_key = order_key
+
+# Warm workers: child processes kept between batches (one per batch running at once),
+# so a worker's imports, encodings and language profiles are loaded once per run.
+_idle: list[IsolatedCaller] = []
+_idle_lock = threading.Lock()
+
+
+def _take_worker() -> IsolatedCaller:
+    with _idle_lock:
+        return _idle.pop() if _idle else IsolatedCaller()
+
+
+def _give_back(caller: IsolatedCaller) -> None:
+    with _idle_lock:
+        _idle.append(caller)
 
 
 def applies_to(step: ResolvedStep, units: list[Unit]) -> bool:
@@ -140,10 +154,21 @@ def load_units(store: Store, definition: FlowDefinition, before: int, doc_ids: l
     return out
 
 
-def _failed_document_unit(kind: str, reason: str, exc: BaseException | None, parents: list[str]) -> Unit:
-    unit: Unit = Page(locator=DOCUMENT_LOCATOR) if kind == "pages" else Chunk(locator=DOCUMENT_LOCATOR)
-    unit.parents = parents
-    unit.fail(reason, exc)
+_failed_document_unit = failed_document_unit
+
+
+def _worker_failure(step: ResolvedStep, exc: Exception, parents: list[str]) -> Unit:
+    """The unit a step's document gets when its worker stopped it, died or failed."""
+    kind = unit_kind(step)
+    if isinstance(exc, TimeLimitExceeded):
+        reason = (f"time limit: {step.name} was stopped after {exc.taken:.2f} s, over its limit of "
+                  f"{exc.seconds:g} s (raise the step's time limit if the document is just large)")
+        return _failed_document_unit(kind, reason, exc, parents)
+    if isinstance(exc, ChildCrashed):
+        return _failed_document_unit(kind, f"{step.name} crashed: {exc}", exc, parents)
+    assert isinstance(exc, RemoteError)
+    unit = _failed_document_unit(kind, f"{step.name} failed: {exc.type_name}: {exc}", None, parents)
+    unit.error_type, unit.traceback = exc.type_name, exc.remote_traceback
     return unit
 
 
@@ -164,16 +189,8 @@ def _call_step(step: ResolvedStep, inputs: Any, ctx: StepContext,
         if not isinstance(out, list):
             raise TypeError(f"step {step.name} returned {type(out).__name__}, expected a list of units")
         return out
-    except TimeLimitExceeded as exc:
-        reason = (f"time limit: {step.name} was stopped after {exc.taken:.2f} s, over its limit of "
-                  f"{exc.seconds:g} s (raise the step's time limit if the document is just large)")
-        return [_failed_document_unit(kind, reason, exc, parents)]
-    except ChildCrashed as exc:
-        return [_failed_document_unit(kind, f"{step.name} crashed: {exc}", exc, parents)]
-    except RemoteError as exc:
-        unit = _failed_document_unit(kind, f"{step.name} failed: {exc.type_name}: {exc}", None, parents)
-        unit.error_type, unit.traceback = exc.type_name, exc.remote_traceback
-        return [unit]
+    except (TimeLimitExceeded, ChildCrashed, RemoteError) as exc:
+        return [_worker_failure(step, exc, parents)]
     except Exception as exc:  # noqa: BLE001 - a bad document is data, not a crash
         return [_failed_document_unit(kind, f"{step.name} failed: {type(exc).__name__}: {exc}", exc, parents)]
 
@@ -242,7 +259,7 @@ class BatchRunner:
                                    rows, writes, result)
         finally:
             if self._caller is not None:
-                self._caller.close()
+                _give_back(self._caller)
                 self._caller = None
         for stage, stage_rows in rows.items():
             unit = unit_kind(self.definition.step(stage))
@@ -288,6 +305,16 @@ class BatchRunner:
             if stored is None or not stored.units:
                 return  # nothing upstream is ok: the trail ends at the earlier stage
             inputs, prev = stored.units, stored.stage
+        if isolation_available():
+            self._run_in_worker(doc, indices, inputs, prev, rows, writes, result)
+        else:
+            self._run_here(doc, indices, inputs, prev, rows, writes, result)
+
+    def _run_here(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
+                  rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
+                  result: BatchResult) -> None:
+        """The document's steps in this process (a step with a time limit in a child)."""
+        steps = self.definition.steps
         for i in indices:
             step = steps[i]
             if i > 0 and not applies_to(step, inputs):
@@ -320,6 +347,72 @@ class BatchRunner:
             if not inputs:
                 return
             prev = step.name
+
+    def _step_call(self, i: int) -> StepCall:
+        step = self.definition.steps[i]
+        spec = step.spec
+        limit = spec.time_limit(step.params) if spec.time_limit is not None else None
+        return StepCall(i, step.name, spec.produces, spec.run, step.params, frozenset(spec.formats or ()), limit)
+
+    def _run_in_worker(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
+                       rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
+                       result: BatchResult) -> None:
+        """The document's steps in a warm worker process (flows/segment.py): each step
+        still within its own time limit, its rows stored here as soon as it is done."""
+        steps = self.definition.steps
+        if self._caller is None:
+            self._caller = _take_worker()
+        caller = self._caller
+        pos = 0
+        while pos < len(indices):
+            calls = [self._step_call(i) for i in indices[pos:]]
+            last: tuple[StepDone, list[Unit], str] | None = None
+            first_out: list[Unit] | None = None
+            step_inputs = inputs
+            t_mark = time.perf_counter()
+            try:
+                for done in caller.stream(run_segment, (calls, inputs, doc.doc_id, doc.source_path,
+                                                        doc.only is not None and pos == 0)):
+                    step = steps[done.index]
+                    out, scope = done.units, "document"
+                    if doc.only is not None and done.index == indices[0]:
+                        out, scope = self._keep_chosen(doc, out), "units"
+                    n, head = len(out), out[0] if out else None
+                    self._record(doc, step, prev, out, done.started, done.ms, rows, writes, result, scope)
+                    prev, last = step.name, (done, out, scope)
+                    if done.index == 0:
+                        first_out = out
+                    step_inputs = sorted((u for u in out if u.ok), key=_order_key)
+                    t_mark = time.perf_counter()
+                    if len(out) != n or (out and out[0] is not head):
+                        break  # its rows could not be stored: the worker's next steps are moot
+            except NotSendable:
+                if last is not None:
+                    raise  # cannot happen: nothing is sent after the first step
+                # A step that cannot be sent to a worker (a function made at run time)
+                # runs here instead.
+                self._run_here(doc, indices[pos:], inputs, prev, rows, writes, result)
+                return
+            except (TimeLimitExceeded, ChildCrashed, RemoteError) as exc:
+                index = caller.current if isinstance(caller.current, int) else calls[0].index
+                step = steps[index]
+                parents = [] if isinstance(step_inputs, Source) else [u.locator for u in step_inputs]
+                ms = (exc.taken if isinstance(exc, TimeLimitExceeded) else time.perf_counter() - t_mark) * 1000.0
+                self._record(doc, step, prev, [_worker_failure(step, exc, parents)], now_utc(), ms,
+                             rows, writes, result)
+                return
+            if first_out is not None:
+                self._run_members(doc, first_out, indices, rows, writes, result)
+            if last is None or not last[0].paused:
+                return
+            done, out, scope = last
+            if scope == "units":
+                inputs = self._merged_with_stored(doc, done.index, out)
+            else:
+                inputs = sorted((u for u in out if u.ok), key=_order_key)
+            if not inputs:
+                return
+            pos = indices.index(done.index) + 1
 
     def _run_members(self, container: DocJob, out: list[Unit], indices: list[int],
                      rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],

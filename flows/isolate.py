@@ -11,22 +11,32 @@ The time limit measures the document's own work: the child says when it has the
 document in hand and starts on it, and only then does the clock start. A replacement
 child getting ready (or a large document's bytes crossing the pipe) under load is not
 charged to the document.
+
+A streamed call (`stream`) runs a generator in the child: a document's steps one after
+the other (flows/segment.py). The child sends each step's result as soon as it is
+ready, and before each step a Clock with that step's own limit, so each step is timed
+from its own start. The preload also loads the default token encoding and the
+language profiles (flows/warm.py), so a new child starts warm.
 """
 
 from __future__ import annotations
 
+import inspect
 import multiprocessing as mp
+import pickle
 import threading
 import time
 import traceback
+from dataclasses import dataclass
 from multiprocessing.connection import Connection
+from multiprocessing.reduction import ForkingPickler
 from typing import Any, Callable
 
 from thresher.steps.extract.registry import reader_modules
 from thresher.steps.extract.sniff import codec_modules
 
 # Modules the fork server imports once, so children start warm.
-PRELOAD = ["thresher.steps.extract", *reader_modules(), *codec_modules()]
+PRELOAD = ["thresher.steps.extract", *reader_modules(), *codec_modules(), "thresher.flows.warm"]
 
 # A child is replaced after this many calls, so a leak in a parser stays bounded.
 CALLS_PER_CHILD = 200
@@ -39,11 +49,25 @@ _context_lock = threading.Lock()
 _context: Any = None
 
 
+@dataclass
+class Clock:
+    """Yielded by a streamed call: the next piece of work starts now and may take
+    `seconds` (None: no limit). `tag` says which piece (a step index)."""
+
+    seconds: float | None
+    tag: object = None
+
+
 class TimeLimitExceeded(Exception):
     def __init__(self, seconds: float, taken: float):
         super().__init__(f"stopped after {taken:.2f} s, over the time limit of {seconds:g} s")
         self.seconds = seconds  # the limit
         self.taken = taken  # the time the document's work actually ran before it was stopped
+
+
+class NotSendable(Exception):
+    """The call cannot be sent to a child (a function defined inside another one, an
+    open handle); nothing was sent, so the child is still ready."""
 
 
 class ChildCrashed(Exception):
@@ -87,7 +111,13 @@ def _child_main(conn: Connection) -> None:
         fn, args = msg
         conn.send(("started",))  # the document is unpacked here: its clock starts now
         try:
-            conn.send(("ok", fn(*args)))
+            result = fn(*args)
+            if inspect.isgenerator(result):
+                for item in result:
+                    conn.send(("item", item))
+                conn.send(("end",))
+            else:
+                conn.send(("ok", result))
         except BaseException as exc:  # noqa: BLE001 - reported to the parent as data
             conn.send(("error", type(exc).__name__, str(exc),
                        "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))))
@@ -101,6 +131,7 @@ class IsolatedCaller:
         self._conn: Connection | None = None
         self._calls = 0
         self.last_seconds: float | None = None
+        self.current: object = None  # the tag of the streamed piece of work under way
 
     def _start(self) -> None:
         ctx = _get_context()
@@ -129,22 +160,63 @@ class IsolatedCaller:
                 self._conn.close()
             self._proc, self._conn = None, None
 
-    def call(self, fn: Callable[..., Any], args: tuple, seconds: float) -> Any:
-        """fn(*args) in the child; `last_seconds` is then the time the call ran there."""
+    def _send(self, fn: Callable[..., Any], args: tuple) -> None:
+        """Hand fn(*args) to a ready child and wait until it has started on it."""
         self.last_seconds = None
+        self.current = None
         if self._proc is None or not self._proc.is_alive() or self._calls >= CALLS_PER_CHILD:
             self._stop(kill=self._proc is not None and not self._proc.is_alive())
             self._start()
         self._calls += 1
         assert self._conn is not None
         try:
-            self._conn.send((fn, args))
+            data = ForkingPickler.dumps((fn, args))  # what Connection.send would send
+        except (pickle.PicklingError, AttributeError, TypeError) as exc:
+            raise NotSendable(str(exc)) from exc
+        try:
+            self._conn.send_bytes(data)
         except (OSError, ValueError):
             raise self._crashed() from None
         reply = self._receive(START_SECONDS, None)
         if reply is None:
             self._stop(kill=True)
             raise ChildCrashed(None, f"the parser process did not start the document within {START_SECONDS:g} s")
+
+    def stream(self, fn: Callable[..., Any], args: tuple):
+        """Run the generator fn(*args) in the child and yield what it yields, except
+        Clocks: each starts the clock for the work after it, within its limit. Leaving
+        the loop early kills the child (the next call gets a fresh one)."""
+        self._send(fn, args)
+        limit: float | None = None
+        started = time.monotonic()
+        finished = False
+        try:
+            while True:
+                reply = self._receive(limit, started)
+                if reply is None:
+                    self.last_seconds = time.monotonic() - started
+                    self._stop(kill=True)
+                    finished = True
+                    raise TimeLimitExceeded(limit, self.last_seconds)
+                if reply[0] == "item":
+                    if isinstance(reply[1], Clock):
+                        limit, started, self.current = reply[1].seconds, time.monotonic(), reply[1].tag
+                        continue
+                    yield reply[1]
+                elif reply[0] == "end":
+                    finished = True
+                    return
+                else:
+                    finished = True
+                    _, type_name, message, tb = reply
+                    raise RemoteError(type_name, message, tb)
+        finally:
+            if not finished:
+                self._stop(kill=True)
+
+    def call(self, fn: Callable[..., Any], args: tuple, seconds: float) -> Any:
+        """fn(*args) in the child; `last_seconds` is then the time the call ran there."""
+        self._send(fn, args)
         started = time.monotonic()
         reply = self._receive(seconds, started)
         self.last_seconds = time.monotonic() - started
@@ -156,11 +228,12 @@ class IsolatedCaller:
         _, type_name, message, tb = reply
         raise RemoteError(type_name, message, tb)
 
-    def _receive(self, seconds: float, started: float | None) -> tuple | None:
-        """The child's next message, or None when `seconds` passed without one."""
+    def _receive(self, seconds: float | None, started: float | None) -> tuple | None:
+        """The child's next message, or None when `seconds` (None: no limit) passed
+        without one."""
         begun = time.monotonic() if started is None else started
         while True:
-            remaining = begun + seconds - time.monotonic()
+            remaining = 0.5 if seconds is None else begun + seconds - time.monotonic()
             if remaining <= 0:
                 return None
             try:

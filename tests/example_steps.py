@@ -118,3 +118,14 @@ def echo(value):
 
 def hang(value):
     time.sleep(3600)
+
+
+def timed_pieces(pieces):
+    """A streamed call: for each (limit, seconds) piece, a Clock, then `seconds` of
+    work, then the piece's number and this worker's process id."""
+    from thresher.flows.isolate import Clock
+
+    for n, (limit, seconds) in enumerate(pieces):
+        yield Clock(limit, n)
+        time.sleep(seconds)
+        yield (n, os.getpid())

@@ -27,3 +27,26 @@ def test_a_hung_call_is_stopped_within_a_small_margin_of_the_limit_and_says_how_
         assert "stopped after 1.0" in str(info.value) and "time limit of 1 s" in str(info.value)
         # The next call gets a fresh child, and the kill is not charged to it.
         assert caller.call(echo, ("next",), 1.0) == "next"
+
+
+def test_a_streamed_call_times_each_piece_from_its_own_start_and_a_stopped_worker_is_replaced():
+    from example_steps import timed_pieces
+
+    with IsolatedCaller() as caller:
+        # Three pieces of 0.4 s each, each within its own 0.8 s limit, 1.2 s in all:
+        # the limit is per piece, never the stream's total.
+        got = list(caller.stream(timed_pieces, ([(0.8, 0.4), (0.8, 0.4), (0.8, 0.4)],)))
+        assert [n for n, _ in got] == [0, 1, 2]
+        worker = got[0][1]
+        # The same warm worker takes the next call.
+        assert [pid for _, pid in caller.stream(timed_pieces, ([(None, 0.0)],))] == [worker]
+        # The second piece runs over its 0.5 s: the worker is stopped and the error names it.
+        seen = []
+        with pytest.raises(TimeLimitExceeded) as info:
+            for item in caller.stream(timed_pieces, ([(5.0, 0.0), (0.5, 3600), (5.0, 0.0)],)):
+                seen.append(item[0])
+        assert seen == [0] and caller.current == 1 and 0.5 <= info.value.taken < 1.0
+        # A fresh worker takes the next call, and its start is not charged to it: a
+        # 0.3 s limit holds for 0.1 s of work however long the new worker takes to start.
+        again = list(caller.stream(timed_pieces, ([(0.3, 0.1)],)))
+        assert again[0][1] != worker

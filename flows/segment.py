@@ -1,0 +1,109 @@
+"""A document's steps in order, in one process: what a warm worker runs.
+
+The parent (execute.BatchRunner) sends a document's input and the steps of a segment;
+`run_segment` runs them one after the other in the worker and yields each step's
+units as soon as they are ready, so the parent stores rows while the next step runs.
+Before each step it yields a Clock with that step's time limit: the parent times each
+step from its own start. No Prefect and no store here.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from typing import Any, Callable
+
+from thresher.flows.encodings import get_encoding
+from thresher.flows.isolate import Clock
+from thresher.flows.rows import unit_id
+from thresher.steps.spec import StepContext, StepParams
+from thresher.steps.units import DOCUMENT_LOCATOR, Chunk, Page, Source
+
+Unit = Page | Chunk
+
+
+@dataclass
+class StepCall:
+    """One step as a worker needs it."""
+
+    index: int
+    name: str
+    produces: str  # "pages" | "chunks"
+    run: Callable[..., list]
+    params: StepParams
+    formats: frozenset[str]
+    limit: float | None
+
+
+@dataclass
+class StepDone:
+    """One step's output for the document."""
+
+    index: int
+    units: list
+    started: datetime
+    ms: float
+    paused: bool = False  # the worker stopped here so the parent can act first
+
+
+def order_key(unit: Unit) -> tuple:
+    if isinstance(unit, Chunk):
+        return (unit.index, unit.locator)
+    return (unit.page or 0, unit.locator)
+
+
+def failed_document_unit(kind: str, reason: str, exc: BaseException | None, parents: list[str]) -> Unit:
+    unit: Unit = Page(locator=DOCUMENT_LOCATOR) if kind == "pages" else Chunk(locator=DOCUMENT_LOCATOR)
+    unit.parents = parents
+    unit.fail(reason, exc)
+    return unit
+
+
+def call_here(name: str, kind: str, run: Callable[..., list], params: StepParams, inputs: Any,
+              ctx: StepContext) -> list[Unit]:
+    """Run one step for one document in this process; an exception fails the document's units."""
+    parents = [] if isinstance(inputs, Source) else [u.locator for u in inputs]
+    try:
+        out = run(inputs, params, ctx)
+        if not isinstance(out, list):
+            raise TypeError(f"step {name} returned {type(out).__name__}, expected a list of units")
+        return out
+    except Exception as exc:  # noqa: BLE001 - a bad document is data, not a crash
+        return [failed_document_unit(kind, f"{name} failed: {type(exc).__name__}: {exc}", exc, parents)]
+
+
+def passes_by(call: StepCall, units: Any) -> bool:
+    """A format-limited step writes nothing for a document of other formats."""
+    return call.index > 0 and bool(call.formats) and not any(u.format in call.formats for u in units)
+
+
+def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: str, pause_first: bool):
+    """Yield Clock, StepDone, Clock, StepDone... for the steps in `calls`.
+
+    The worker stops after the first step when `pause_first` (a re-run of chosen units:
+    the parent merges them with the stored ones) or when extraction found documents
+    inside the document (the parent runs those first, as their own documents)."""
+    for k, call in enumerate(calls):
+        if passes_by(call, inputs):
+            continue
+        if call.index > 0:
+            for u in inputs:  # a time the previous step measured is not this step's
+                u.duration_ms = None
+        ctx = StepContext(doc_id=doc_id, source_path=source_path, encoding=get_encoding)
+        yield Clock(call.limit, call.index)
+        started = datetime.now(timezone.utc)
+        t0 = time.perf_counter()
+        out = call_here(call.name, call.produces, call.run, call.params, inputs, ctx)
+        ms = (time.perf_counter() - t0) * 1000.0
+        if call.produces == "chunks":
+            for u in out:  # named where born, as the stored row names it (rows.chunk_row)
+                u.chunk_id = u.chunk_id or unit_id(doc_id, call.name, u.locator)
+        members = call.index == 0 and any(isinstance(u, Page) and u.members for u in out)
+        paused = k == 0 and (pause_first or members) and k + 1 < len(calls)
+        yield StepDone(call.index, out, started, ms, paused)
+        if paused:
+            return
+        inputs = sorted((u for u in out if u.ok), key=order_key)
+        if not inputs:
+            return
