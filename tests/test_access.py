@@ -292,3 +292,65 @@ def test_ignoring_the_file_system_leaves_the_rules_readers(acl_drive):
     # A rule allowing nobody wins over the file system's readers (fail closed).
     closed = _definition({**RULES, "rules": [{"paths": "hr/**", "readers": []}]}).model.access
     assert decide(closed, "hr/appraisal-notes.txt", facts).readers == []
+
+
+def test_documents_inside_documents_take_their_containers_access(prefect_harness, tmp_path):
+    """An archive member (and a member of an archive inside it) and an e-mail attachment
+    carry their container's readers and label, even where their own path would match
+    no rule; a chmod/chgrp of the container changes theirs on the next run, no step runs."""
+    from test_flow_containers import BUDGET, HOURS, MARCH, NOTICE, OLDER, sha, zip_of
+
+    drive, store_dir = tmp_path / "drive", tmp_path / "store"
+    (drive / "hr").mkdir(parents=True)
+    (drive / "public").mkdir()
+    archive = drive / "hr" / "2024-minutes.zip"
+    archive.write_bytes(zip_of({"march/minutes.md": MARCH, "old/2019.zip": zip_of({"notes-2019.txt": OLDER})}))
+    mail = drive / "hr" / "2026-03-notice.eml"
+    mail.write_bytes(NOTICE)
+    (drive / "public" / "hours.txt").write_bytes(HOURS)
+    os.chown(archive, OUTSIDER_UID, OUTSIDER_GID)
+    os.chmod(archive, 0o640)
+    os.chown(mail, 0, 0)
+    os.chmod(mail, 0o600)
+    os.chmod(drive / "public" / "hours.txt", 0o600)
+    # "hr/*.zip" does not reach "hr/2024-minutes.zip/march/minutes.md" ('*' stays within
+    # one folder): on its own path a member would fall to the default, nobody.
+    rules = {"file_system": "combine", "default": "nobody", "rules": [
+        {"paths": ["hr/*.zip", "hr/*.eml"], "readers": ["hr-team"], "label": "confidential"},
+        {"paths": "public/**", "readers": ["everyone"]}]}
+    first = pipeline.run(_definition(rules), str(drive), str(store_dir), quiet=True)
+    assert first["withheld"] == {}
+
+    def access_by_doc() -> dict[str, tuple]:
+        out = {}
+        for r in Store(store_dir).handoff().to_pylist():
+            assert out.setdefault(r["doc_id"], (r["readers"], r["label"])) == (r["readers"], r["label"])
+        return out
+
+    zipped = sorted([f"group:{OUTSIDER_GID}", "hr-team", f"user:{OUTSIDER_UID}"])
+    got = access_by_doc()
+    assert got[sha(MARCH)] == got[sha(OLDER)] == (zipped, "confidential")
+    assert got[sha(BUDGET)] == got[sha(NOTICE)] == (["hr-team", "user:root"], "confidential")
+    assert got[sha(HOURS)] == (["everyone", "user:root"], None)
+    catalog = {r["source_path"]: r for r in Store(store_dir).catalog().to_pylist()}
+    assert catalog["hr/2024-minutes.zip/old/2019.zip/notes-2019.txt"]["access_rule"] == "access.rules[0]"
+    assert catalog["hr/2026-03-notice.eml/attachments/1-budget.md"]["owner"] == "root"
+
+    # The archive loses its group's read bit; the message gains group adm.
+    os.chmod(archive, 0o600)
+    os.chown(mail, 0, 4)
+    os.chmod(mail, 0o640)
+    extract_before = Store(store_dir).stage_rows("extract", "pages").num_rows
+    second = pipeline.run(_definition(rules), str(drive), str(store_dir), quiet=True)
+    assert second["documents"]["processed"] == 0 and second["handoff"] == "access columns rewritten"
+    assert Store(store_dir).stage_rows("extract", "pages").num_rows == extract_before
+    got = access_by_doc()
+    assert got[sha(MARCH)] == got[sha(OLDER)] == (["hr-team", f"user:{OUTSIDER_UID}"], "confidential")
+    assert got[sha(BUDGET)] == got[sha(NOTICE)] == (["group:adm", "hr-team", "user:root"], "confidential")
+    # Exactly the chunks of the members and of the message: the public file's are not there.
+    handoff = Store(store_dir).handoff().to_pylist()
+    changes = pq.read_table(store_dir / "handoff" / "changes" / f"{second['run_id']}.parquet").to_pylist()
+    assert {c["action"] for c in changes} == {"upsert"}
+    assert sorted(c["chunk_id"] for c in changes) == sorted(
+        r["chunk_id"] for r in handoff if r["doc_id"] in {sha(MARCH), sha(OLDER), sha(BUDGET), sha(NOTICE)})
+    assert Store(store_dir).handoff().equals(_rebuilt(store_dir, _definition(rules)))
