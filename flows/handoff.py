@@ -47,8 +47,9 @@ DIGESTS = pa.schema([
 # File metadata of the hand-off: what it was built from, access aside (see handoff_basis).
 BASIS_KEY = b"thresher.handoff_basis"
 ACCESS_COLUMNS = ("readers", "label")
-# Rows per batch of the streamed access rewrite: a few MB of chunk text in memory.
-REWRITE_BATCH = 4096
+# Rows per batch of the streamed access rewrite: tens of MB of chunk text in memory,
+# and row groups not so small that writing them costs more than the rows.
+REWRITE_BATCH = 32768
 
 
 @dataclass
@@ -220,7 +221,11 @@ def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previo
     readers_arr = pa.array([access[d][0] for d in order], readers_type)
     label_arr = pa.array([access[d][1] for d in order], pa.string())
     in_old = set(pc.unique(old.column("doc_id")).to_pylist())
-    fresh = [d for d in order if d not in in_old]  # path order
+    # Documents to read from the stages: those the previous run withheld (by its
+    # manifest), not every one without chunks in it (containers, failed files).
+    latest = store.latest_run()
+    before = latest.manifest.get("withheld") if latest is not None else None
+    fresh = [d for d in order if d not in in_old and (before is None or live[d][1] in before)]  # path order
     pending: list[dict[str, Any]] = []
     for start in range(0, len(fresh), GROUP_DOCS):
         pending += _group_rows(definition, store, run_id, fresh[start:start + GROUP_DOCS], live, access)
