@@ -354,3 +354,31 @@ def test_documents_inside_documents_take_their_containers_access(prefect_harness
     assert sorted(c["chunk_id"] for c in changes) == sorted(
         r["chunk_id"] for r in handoff if r["doc_id"] in {sha(MARCH), sha(OLDER), sha(BUDGET), sha(NOTICE)})
     assert Store(store_dir).handoff().equals(_rebuilt(store_dir, _definition(rules)))
+
+
+def test_digests_of_the_older_form_are_computed_again_from_the_handoff(tmp_path):
+    """A store whose digests predate the body/access split (no body_digest) gets them
+    computed from its hand-off, equal to what a rebuild computes, so the first run
+    after an upgrade upserts nothing that did not change."""
+    import pyarrow as pa
+
+    from thresher.flows import schema
+    from thresher.flows.handoff import DIGESTS, _digest_row, previous_digests
+
+    row = {"chunk_id": "c1", "doc_id": "d1", "source_path": "hr/a.txt", "title": "A", "heading_path": ["A"],
+           "chunk_index": 0, "page_start": None, "page_end": None, "char_start": 0, "char_end": 5,
+           "prefix_chars": 0, "language": "en", "text": "Hello", "token_count": 1, "encoding": "cl100k_base",
+           "token_counts": [("cl100k_base", 1)], "content_hash": "h1", "readers": ["hr"], "label": None,
+           "run_id": "r1"}
+    store = Store(tmp_path / "store")
+    store.write_table("handoff/chunks.parquet", pa.Table.from_pylist([row], schema=schema.HANDOFF))
+    store.write_table("handoff/digests.parquet", pa.table({"chunk_id": ["c1"], "digest": ["old-form"],
+                                                           "doc_id": ["d1"], "source_path": ["hr/a.txt"],
+                                                           "content_hash": ["h1"]}))
+    got = previous_digests(store)
+    assert got.schema.names == DIGESTS.names
+    stored = Store(tmp_path / "store").handoff().to_pylist()[0]
+    assert got.to_pylist() == [_digest_row(stored)]
+    # The access is part of the digest: another reader gives another digest, same body.
+    other = _digest_row({**stored, "readers": ["hr", "board"]})
+    assert other["body_digest"] == got.to_pylist()[0]["body_digest"] and other["digest"] != got.to_pylist()[0]["digest"]
