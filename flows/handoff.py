@@ -177,10 +177,18 @@ def previous_digests(store: Store) -> pa.Table:
 
 
 def _previous_basis(store: Store) -> tuple[str | None, str | None]:
-    """(published hand-off's store path, the basis recorded in its metadata)."""
+    """(published hand-off's store path, the basis recorded in its metadata), or Nones
+    when it is not the file its run recorded (size and SHA-256): a damaged or altered
+    hand-off is rebuilt from the stages, never copied forward."""
     rel = store.published("handoff/chunks.parquet")
-    if rel is None:
+    latest = store.latest_run()
+    if rel is None or latest is None:
         return None, None
+    recorded = latest.manifest.get("files", {})
+    for name in ("handoff/chunks.parquet", "handoff/digests.parquet"):
+        here = store.published(name)
+        if here is None or recorded.get(name) != store.file_record(here):
+            return None, None
     with store.fs.open_input_file(store.path(rel)) as f:
         meta = pq.read_schema(f).metadata or {}
     basis = meta.get(BASIS_KEY)

@@ -14,6 +14,7 @@ import shutil
 import subprocess
 from pathlib import Path
 
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import yaml
@@ -353,6 +354,19 @@ def test_documents_inside_documents_take_their_containers_access(prefect_harness
     assert {c["action"] for c in changes} == {"upsert"}
     assert sorted(c["chunk_id"] for c in changes) == sorted(
         r["chunk_id"] for r in handoff if r["doc_id"] in {sha(MARCH), sha(OLDER), sha(BUDGET), sha(NOTICE)})
+    assert Store(store_dir).handoff().equals(_rebuilt(store_dir, _definition(rules)))
+
+    # A hand-off altered since its run recorded it is rebuilt from the stages, not
+    # copied forward, even by a run with nothing to change.
+    chunks = store_dir / "handoff" / "chunks.parquet"
+    altered = pq.read_table(chunks)
+    texts = altered.column("text").to_pylist()
+    texts[0] = "altered by hand"
+    pq.write_table(altered.set_column(altered.schema.get_field_index("text"), "text",
+                                      pa.array(texts, pa.string())), chunks)
+    third = pipeline.run(_definition(rules), str(drive), str(store_dir), quiet=True)
+    assert third["handoff"] == "rebuilt" and third["documents"]["processed"] == 0
+    assert "altered by hand" not in Store(store_dir).handoff().column("text").to_pylist()
     assert Store(store_dir).handoff().equals(_rebuilt(store_dir, _definition(rules)))
 
 
