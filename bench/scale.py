@@ -1,8 +1,8 @@
 """One worker against N threads, N processes and a local Dask cluster of N workers, on a
 drive of a few large PDFs and many small files.
 
-Threads are in the list because extraction runs in a child process per batch (for
-its time limit), so even a thread pool extracts on several cores at once.
+Threads are in the list because every document step runs in a warm worker process
+(flows/segment.py), so even a thread pool runs the steps on several cores at once.
 
 Each configuration runs as its own `thresher run` process against one Prefect server
 started here first (so no configuration pays for a server start), and is measured
@@ -109,6 +109,15 @@ def main() -> None:
         # Step time is summed over workers; spread over n of them it is the steps' share of wall time.
         outside = max(0.0, 1 - m["step_seconds"] / n / wall)
         print(f"{label:<28} {wall:7.2f} {base / wall:8.2f} {peak / 2**20:8.0f} {outside:13.0%}")
+    # Where the flow's time went, per part of the run (the manifest's timings), side by side.
+    parts = list(first["timings"])
+    print("flow time per part, s: " + "; ".join(
+        f"{label}: " + ", ".join(f"{k} {m['timings'].get(k, 0):.1f}" for k in parts)
+        for label, (_, _, m) in results.items()))
+    segs = [k for k in parts if k not in ("plan", "handoff", "boilerplate", "dedup")]
+    print("document segments (" + ", ".join(segs) + ") against one worker: " + "; ".join(
+        f"{label} {sum(first['timings'][k] for k in segs) / max(1e-9, sum(m['timings'].get(k, 0) for k in segs)):.2f}x"
+        for label, (_, _, m) in results.items()))
 
 
 def _default_steps() -> list:
