@@ -506,6 +506,9 @@ def cmd_trail(args: argparse.Namespace) -> int:
             if all(not per_stage[s] for s in rest):
                 print(f"{', '.join(rest)}: no units (nothing ok reached {'them' if len(rest) > 1 else 'it'})")
                 break
+        if unit == "chunks":  # the chunk stages follow one another: each chunk once, with every decision
+            _print_chunks([s for s, u in stages[n:] if u == "chunks"], stages, per_stage, args.text)
+            break
         by_status = Counter(r["status"] for r in rows)
         summary = ", ".join(f"{by_status[s]} {s}" for s in STATUS_ORDER if by_status.get(s))
         print(f"{name}: {len(rows)} {'page' if unit == 'pages' else 'chunk'} unit(s){': ' + summary if summary else ''}")
@@ -542,6 +545,46 @@ def _access_lines(present: list[dict[str, Any]]) -> list[str]:
                          f"({r['group_gid']}), mode {r['mode']:04o}{acl}; gives {', '.join(r['readers']) or 'nobody'}"
                          f" by {r['access_rule']}")
     return lines
+
+
+def _print_chunks(names: list[str], stages, per_stage: dict[str, list[dict[str, Any]]], show_text: bool) -> None:
+    """Each chunk once: what every chunk stage decided, the latest stage's details, all reasons."""
+    from collections import Counter
+
+    from thresher.flows.summary import STATUS_ORDER
+
+    def counts(rows: list[dict[str, Any]]) -> str:
+        c = Counter(r["status"] for r in rows)
+        return ", ".join(f"{c[s]} {s}" for s in STATUS_ORDER if c.get(s)) or "none"
+
+    chunks: dict[str, dict[str, dict[str, Any]]] = {}
+    for name in names:
+        for r in per_stage[name]:
+            chunks.setdefault(r["locator"], {})[name] = r
+    print(f"chunks: {len(chunks)} through {', '.join(names)} "
+          f"({'; '.join(f'{name} {counts(per_stage[name])}' for name in names)})")
+    for loc, by_stage in chunks.items():
+        reached = [name for name in names if name in by_stage]
+        if all(by_stage[name]["status"] == "ok" for name in reached):
+            decided = "ok"
+        else:
+            decided = ", ".join(f"{name} {by_stage[name]['status']}" for name in reached)
+        last = by_stage[reached[-1]]
+        print(f"  {loc:<12} {decided:<8}  {_unit_detail(reached[-1], last)}".rstrip())
+        for name in reached:
+            r = by_stage[name]
+            if r.get("reason"):
+                print(f"    {name} reason: {r['reason']}")
+            for w in r.get("warnings") or []:
+                print(f"    {name} warning: {w}")
+        # Findings once, from the first stage that recorded them (later stages carry them on).
+        found = next((name for name in reached if by_stage[name].get("personal_findings")), None)
+        if found:
+            for line in _finding_lines(by_stage[found], stages, per_stage, found):
+                print(line)
+        if show_text and last.get("text"):
+            for t in last["text"].splitlines():
+                print(f"    | {t}")
 
 
 def _finding_lines(row: dict[str, Any], stages, per_stage, name: str) -> list[str]:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -148,6 +149,19 @@ def test_run_offline_then_status_then_trail_answer_from_the_store(tmp_path):
     assert t.stdout.startswith("board/2025-11-18-board-minutes.md")
     assert "extract: 1 page unit(s): 1 ok" in t.stdout and "tokens" in t.stdout and "Board" in t.stdout
     assert "access: board, management; label restricted (from access.rules[1])" in t.stdout
+    # Each chunk once, with what every chunk stage decided, not one list per stage.
+    header = re.search(r"^chunks: (\d+) through split, personal, dedup, tokens "
+                       r"\(split \1 ok; personal \1 ok; dedup \1 ok; tokens \1 ok\)$", t.stdout, re.M)
+    assert header, t.stdout
+    listed = re.findall(r"^  (chunk/\d{5}) ", t.stdout, re.M)
+    assert len(listed) == int(header.group(1)) == len(set(listed))
+    copy = _cli("trail", "volunteers/windows-export/volunteer-rota-spring-2026.txt", "--store", str(store),
+                cwd=tmp_path)
+    assert re.search(r"^  chunk/00000  split ok, personal ok, dedup dropped  ", copy.stdout, re.M), copy.stdout
+    assert "    dedup reason: copy of document" in copy.stdout
+    contacts = _cli("trail", "hr/staff-contact-list.md", "--store", str(store), cwd=tmp_path).stdout
+    found = re.findall(r"^    (email|phone): file (chars \d+-\d+): (.+)$", contacts, re.M)
+    assert found and len(found) == len(set(found))  # each finding once, not once per chunk stage
 
     bad = _cli("trail", "hr/salary-review-2026-protected.pdf", "--store", str(store), cwd=tmp_path)
     assert bad.returncode == 0 and "reason: password protected" in bad.stdout
