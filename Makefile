@@ -66,6 +66,7 @@ $(TEST_STAMP): pyproject.toml | $(BIN)/python
 	@touch $@ $(STAMP)
 
 demo: $(STAMP)
+	$(BIN)/python tools/sample_times.py sample_inputs
 	$(BIN)/thresher run --probes config/demo-probes.yaml
 	@echo
 	$(BIN)/thresher status

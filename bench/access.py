@@ -141,7 +141,7 @@ def rewrite_cost(chunks: int = 200_000, per_doc: int = 10) -> None:
     rng = random.Random(3)
     definition = load_definition()
     docs = [f"{i:064x}" for i in range(chunks // per_doc)]
-    live = {d: (i, f"notes/{i:07d}.md") for i, d in enumerate(docs)}
+    live = {d: (i, f"notes/{i:07d}.md", 0) for i, d in enumerate(docs)}
     old_access = {d: (["staff"], "internal", "access.default") for d in docs}
     new_access = {d: (["staff", "volunteers"], "everyone-internal", "access.default") for d in docs}
     basis = handoff_basis(definition, live, {})
@@ -150,7 +150,8 @@ def rewrite_cost(chunks: int = 200_000, per_doc: int = 10) -> None:
     ids = [f"{i:064x}" for i in range(n)]
     texts = [_paragraph(rng, 12) for _ in range(n)]  # about 1,000 characters each, all different
     table = pa.table({
-        "chunk_id": ids, "doc_id": doc_of, "source_path": [live[d][1] for d in doc_of], "title": ["Branch note"] * n,
+        "chunk_id": ids, "doc_id": doc_of, "source_path": [live[d][1] for d in doc_of],
+        "source_paths": [[live[d][1]] for d in doc_of], "title": ["Branch note"] * n,
         "heading_path": [["Branch note", "Section"]] * n, "chunk_index": [i % per_doc for i in range(n)],
         "page_start": [None] * n, "page_end": [None] * n, "char_start": [0] * n,
         "char_end": [len(t) for t in texts], "prefix_chars": [0] * n, "language": ["en"] * n, "text": texts,

@@ -472,14 +472,17 @@ def cmd_trail(args: argparse.Namespace) -> int:
         print(json.dumps({"doc_id": doc_id, "catalog": cat_rows, "stages": slim}, indent=2, default=str))
         return 0
     present = [r for r in cat_rows if r["present"]]
-    paths = ", ".join(r["source_path"] for r in (present or cat_rows))
-    print(f"{paths}")
+    print((present or cat_rows)[0]["source_path"])
     print(f"  doc_id {doc_id}")
     if present:
         r = present[0]
         print(f"  {r['size']:,} bytes, first seen in run {r['first_run']}, last seen in run {r['last_run']}")
         if len(present) > 1:
-            print(f"  the same bytes sit at {len(present)} paths; {r['canonical_path']} stands for all of them")
+            others = ", ".join(x["source_path"] for x in present[1:])
+            live = r["canonical_path"]
+            print(f"  the same bytes sit at {len(present)} paths; also at {others}")
+            print(f"  the hand-off names {'this path' if live == r['source_path'] else live} for all of them "
+                  f"(source.archive_folders, source.copies_by)")
         catalog = store.catalog().to_pylist()
         for c in present:
             if c.get("container_doc_id"):
@@ -693,7 +696,8 @@ def cmd_rerun(args: argparse.Namespace) -> int:
                 raise UsageError(f"{rows[0]['source_path']} has no pages (only PDFs do); leave out --page")
             if count and args.page > count:
                 raise UsageError(f"page {args.page}: {rows[0]['source_path']} has {count} pages")
-        rerun = {"doc_id": doc_id, "page": args.page, "step": args.step}
+        # Answers name the path the user gave, even where another copy is the live path.
+        rerun = {"doc_id": doc_id, "page": args.page, "step": args.step, "path": rows[0]["source_path"]}
     return _run_and_report(args, definition, source, _store_root(args, definition), rerun=rerun)
 
 

@@ -37,6 +37,13 @@ class SourceSection(_Strict):
     exclude: list[str] = Field(default_factory=list)
     # True: hash every file's bytes on every run instead of trusting an unchanged stat record.
     verify: bool = False
+    # Folders of superseded copies (globs, case-insensitive): when the same bytes sit in
+    # such a folder and elsewhere, the hand-off names the copy elsewhere. Folder names
+    # that mean "old" on shared drives; common practice, no source.
+    archive_folders: list[str] = Field(default_factory=lambda: ["**/archive/**", "**/archives/**", "**/old/**"])
+    # Which of several copies of the same bytes (outside archive folders) is named:
+    # newest = the one modified last; path = the first in path order. Ties go to path order.
+    copies_by: Literal["newest", "path"] = "newest"
 
 
 class RunnerSection(_Strict):

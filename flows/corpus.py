@@ -67,7 +67,7 @@ def _decision(row: dict[str, Any], payload_names: list[str]) -> tuple:
 
 
 def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index: int,
-                    live_docs: dict[str, tuple[int, str]], rewrite_docs: set[str]) -> CorpusResult:
+                    live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str]) -> CorpusResult:
     """Run the corpus-wide step at `index` over all live documents.
 
     live_docs maps doc_id -> (rank, source path). Documents in rewrite_docs get every
@@ -83,7 +83,8 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
                         run_id)
     loaded = {d: v for d, v in loaded.items() if d in live_docs and v.units and applies_to(step, v.units)}
     if kind == "chunks":
-        docs: list[Any] = [DocChunks(d, live_docs[d][1], live_docs[d][0], list(v.units)) for d, v in loaded.items()]
+        docs: list[Any] = [DocChunks(d, live_docs[d][1], live_docs[d][0], list(v.units), live_docs[d][2])
+                           for d, v in loaded.items()]
     else:
         docs = [DocPages(d, live_docs[d][1], live_docs[d][0], list(v.units)) for d, v in loaded.items()]
     docs.sort(key=lambda d: (d.rank, d.source_path))
@@ -153,7 +154,7 @@ def _batches(items: list[str], size: int) -> list[list[str]]:
 
 
 def _load_docs(store: Store, definition: FlowDefinition, index: int, doc_ids: list[str],
-               live_docs: dict[str, tuple[int, str]], run_id: str) -> tuple[list[DocChunks], dict[str, str]]:
+               live_docs: dict[str, tuple[int, str, int]], run_id: str) -> tuple[list[DocChunks], dict[str, str]]:
     """These documents' ok chunks from the stage before, and which stage each came from."""
     step = definition.steps[index]
     loaded = load_units(store, definition, index, doc_ids, run_id)
@@ -162,7 +163,7 @@ def _load_docs(store: Store, definition: FlowDefinition, index: int, doc_ids: li
         got = loaded.get(d)
         if got is None or not got.units or not applies_to(step, got.units):
             continue
-        docs.append(DocChunks(d, live_docs[d][1], live_docs[d][0], list(got.units)))
+        docs.append(DocChunks(d, live_docs[d][1], live_docs[d][0], list(got.units), live_docs[d][2]))
         stages[d] = got.stage
     return docs, stages
 
@@ -180,11 +181,13 @@ def _check_sketch(step: ResolvedStep, table: pa.Table, docs: list[DocChunks]) ->
     return table.select(need).cast(pa.schema([sch.field(c) for c in need]))
 
 
-def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str]], fresh: bool) -> pa.Table:
-    """Add each row's document rank and current path, and whether it is fresh."""
+def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str, int]], fresh: bool) -> pa.Table:
+    """Add each row's document rank, current path and its modification time, and
+    whether it is fresh."""
     ids = table.column("doc_id").to_pylist()
     return table.append_column("rank", pa.array([live_docs[d][0] for d in ids], pa.int64())) \
         .append_column("source_path", pa.array([live_docs[d][1] for d in ids], pa.string())) \
+        .append_column("modified", pa.array([live_docs[d][2] for d in ids], pa.int64())) \
         .append_column("fresh", pa.array([fresh] * len(ids), pa.bool_()))
 
 
@@ -196,7 +199,7 @@ def _rows_by_doc(table: pa.Table) -> dict[str, list[int]]:
 
 
 def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, index: int,
-                     live_docs: dict[str, tuple[int, str]], rewrite_docs: set[str]) -> CorpusResult:
+                     live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str]) -> CorpusResult:
     t0 = time.perf_counter()
     step = definition.steps[index]
     spec: IncrementalCorpusSpec = step.spec  # type: ignore[assignment]

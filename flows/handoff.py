@@ -101,12 +101,12 @@ def _digest_row(r: dict[str, Any]) -> dict[str, Any]:
             "body_digest": body}
 
 
-def handoff_basis(definition: FlowDefinition, live: dict[str, tuple[int, str]],
+def handoff_basis(definition: FlowDefinition, live: dict[str, tuple[int, str, int]],
                   copies: dict[str, list[str]]) -> str:
     """What a hand-off holds besides its access columns, given unchanged stage rows:
     the chain, the hand-off's columns, and every live document's paths."""
     body = {"chain": definition.chain_digest, "columns": str(schema.HANDOFF),
-            "paths": sorted((d, p, sorted(copies.get(d, []))) for d, (_, p) in live.items())}
+            "paths": sorted((d, p, sorted(copies.get(d, []))) for d, (_, p, _) in live.items())}
     return hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()
 
 
@@ -116,7 +116,8 @@ def _plain_hash(text: str) -> str:
 
 
 def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: list[str],
-                live: dict[str, tuple[int, str]], access: Access) -> list[dict[str, Any]]:
+                live: dict[str, tuple[int, str, int]], access: Access,
+                copies: dict[str, list[str]]) -> list[dict[str, Any]]:
     """Hand-off rows of one group of documents, in (path, chunk index) order.
 
     A chunk is live when every chunk stage holds it as ok, except that a stage limited
@@ -149,6 +150,7 @@ def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: lis
             counts = dict(counts)
         out.append({
             "chunk_id": r["chunk_id"], "doc_id": r["doc_id"], "source_path": live[r["doc_id"]][1],
+            "source_paths": [live[r["doc_id"]][1], *copies.get(r["doc_id"], [])],
             "title": r.get("title"), "heading_path": r.get("heading_path") or [],
             "chunk_index": r.get("chunk_index"), "page_start": r.get("page_start"), "page_end": r.get("page_end"),
             "char_start": r.get("char_start"), "char_end": r.get("char_end"),
@@ -195,14 +197,15 @@ def _previous_basis(store: Store) -> tuple[str | None, str | None]:
     return rel, basis.decode() if basis else None
 
 
-def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str]],
-             access: Access, order: list[str], writer) -> tuple[pa.Table, Counter, Counter]:
+def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
+             access: Access, order: list[str], writer, copies: dict[str, list[str]]
+             ) -> tuple[pa.Table, Counter, Counter]:
     """Every live chunk read from the chunk stages, a group of documents at a time."""
     digest_parts: list[pa.Table] = []
     counts: Counter = Counter()
     tokens: Counter = Counter()
     for start in range(0, len(order), GROUP_DOCS):
-        rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live, access)
+        rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live, access, copies)
         if not rows:
             continue
         writer.write_table(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
@@ -215,8 +218,8 @@ def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[s
 
 
 def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previous_rel: str, old: pa.Table,
-                   live: dict[str, tuple[int, str]], access: Access, order: list[str],
-                   writer) -> tuple[pa.Table, Counter, Counter]:
+                   live: dict[str, tuple[int, str, int]], access: Access, order: list[str],
+                   writer, copies: dict[str, list[str]]) -> tuple[pa.Table, Counter, Counter]:
     """The previous hand-off streamed batch by batch with only `readers` and `label`
     replaced; documents now withheld left out, documents now allowed (not in it) read
     from the stages and merged in at their place in path order.
@@ -236,7 +239,7 @@ def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previo
     fresh = [d for d in order if d not in in_old and (before is None or live[d][1] in before)]  # path order
     pending: list[dict[str, Any]] = []
     for start in range(0, len(fresh), GROUP_DOCS):
-        pending += _group_rows(definition, store, run_id, fresh[start:start + GROUP_DOCS], live, access)
+        pending += _group_rows(definition, store, run_id, fresh[start:start + GROUP_DOCS], live, access, copies)
     pending_digests = [_digest_row(r) for r in pending]
     counts: Counter = Counter()
     tokens: Counter = Counter()
@@ -293,10 +296,13 @@ def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previo
     return new, counts, tokens
 
 
-def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str]],
+def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
                   access: Access, chunks_rel: str, digests_rel: str, changes_rel: str,
-                  basis: str = "", stages_unchanged: bool = False) -> HandoffResult:
+                  basis: str = "", stages_unchanged: bool = False,
+                  copies: dict[str, list[str]] | None = None) -> HandoffResult:
     """Write the hand-off, its digests and the change set to the given (staged) paths.
+
+    `copies` (doc_id -> the document's other paths) fills each chunk's source_paths.
 
     Access is joined on here, from the catalog: a document whose access allows nobody
     is left out (fail closed), so its chunks leave the index through the change set.
@@ -314,9 +320,9 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     with store.parquet_writer(chunks_rel, sch, run_id=run_id) as writer:
         if access_only:
             new, counts, tokens = rewrite_access(definition, store, run_id, previous_rel, old, live, access,
-                                                 order, writer)
+                                                 order, writer, copies or {})
         else:
-            new, counts, tokens = _rebuild(definition, store, run_id, live, access, order, writer)
+            new, counts, tokens = _rebuild(definition, store, run_id, live, access, order, writer, copies or {})
     per_doc = {d: (counts[d], tokens[d]) for d in counts}
     fault("handoff-chunks-staged")
     store.write_table(digests_rel, new, run_id=run_id)

@@ -116,7 +116,7 @@ def process_batch(job: BatchJob, data_json: str, origin: str) -> BatchResult:
 
 @task(name="corpus-step", cache_policy=NO_CACHE)
 def corpus_step(run_id: str, store_root: str, data_json: str, origin: str, index: int,
-                live: dict[str, tuple[int, str]], rewrite: set[str]):
+                live: dict[str, tuple[int, str, int]], rewrite: set[str]):
     result = run_corpus_step(_definition(data_json, origin), Store(store_root), run_id, index, live, rewrite)
     get_run_logger().info("%s: %s over the corpus, %d rows written", result.stage, result.counts, result.rows_written)
     return result
@@ -361,7 +361,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         stages_unchanged = not any(store.files_under(f"stages/{s.name}/{run_id}") for s in definition.steps)
         handoff = build_handoff(definition, store, run_id, plan.live, plan.access, f"{staged}/chunks.parquet",
                                 f"{staged}/digests.parquet", f"{staged}/changes.parquet",
-                                basis=handoff_basis(definition, plan.live, plan.copies),
+                                basis=handoff_basis(definition, plan.live, plan.copies), copies=plan.copies,
                                 stages_unchanged=stages_unchanged)
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
                    "staged/digests.parquet": "handoff/digests.parquet",
@@ -461,7 +461,7 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
     from thresher.flows.plan import live_documents
 
     _, live, copies = live_documents(store.catalog().to_pylist(), {r.run_id: r.sequence for r in store.runs()},
-                                     sequence)
+                                     sequence, definition.model.source)
     if rerun.get("failed"):
         targets = targets_for_failed(definition, store, live)
     elif rerun.get("damaged"):  # {doc_id: step name}: what `thresher verify` found damaged
@@ -469,10 +469,11 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
                    for d, step in sorted(rerun["damaged"].items()) if d in live]
     else:
         doc_id = rerun["doc_id"]
-        path = live[doc_id][1] if doc_id in live else doc_id
+        path = rerun.get("path") or (live[doc_id][1] if doc_id in live else doc_id)
         targets = [target_for_document(definition, store, doc_id, path, rerun.get("page"), rerun.get("step"))]
     rerun["_described"] = describe(targets)
-    return make_rerun_plan(store, targets, source_root, live, copies, definition.model.access)
+    return make_rerun_plan(store, targets, source_root, live, copies, definition.model.access,
+                           definition.model.source)
 
 
 @flow(name="thresher-run", log_prints=False, persist_result=False)

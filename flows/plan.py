@@ -15,8 +15,8 @@ import pyarrow as pa
 
 from thresher.flows import schema
 from thresher.flows.access import catalog_columns, document_access, inherit_container_access
-from thresher.flows.config import FlowDefinition
-from thresher.flows.discover import SourceFile
+from thresher.flows.config import FlowDefinition, SourceSection
+from thresher.flows.discover import SourceFile, matches
 from thresher.flows.execute import DocJob, MemberInfo
 from thresher.flows.store import Store
 
@@ -27,7 +27,7 @@ class Plan:
     jobs: list[DocJob]  # documents to process, largest first
     skipped: list[str]  # doc_ids reused as stored
     deleted: list[str]  # doc_ids no longer at any path
-    live: dict[str, tuple[int, str]]  # doc_id -> (rank, canonical path)
+    live: dict[str, tuple[int, str, int]]  # doc_id -> (rank, live path, its mtime in ns)
     copies: dict[str, list[str]] = field(default_factory=dict)  # doc_id -> other paths with the same bytes
     # For ranking documents found inside containers during the run (add_members).
     seq_of: dict[str, int] = field(default_factory=dict)
@@ -40,6 +40,7 @@ class Plan:
     # doc_id -> (readers, label, rule key); readers [] = nobody (left out of the hand-off)
     access: dict[str, tuple[list[str], str | None, str]] = field(default_factory=dict)
     access_section: Any = None  # the definition's access section, for members found later
+    source_section: Any = None  # the definition's source section (live path rule), likewise
 
 
 def _ts(epoch: float) -> datetime:
@@ -74,30 +75,50 @@ def start_stages(definition: FlowDefinition, store: Store, doc_ids: list[str]) -
     return start
 
 
-def live_documents(catalog_rows: list[dict], seq_of: dict[str, int], sequence: int
-                   ) -> tuple[dict[str, str], dict[str, tuple[int, str]], dict[str, list[str]]]:
-    """From catalog rows: canonical path per live document, ranks, and copies.
+def _modified_ns(row: dict) -> int:
+    """When the file at this catalog row was last modified, in ns (0 when unknown)."""
+    if row.get("mtime_ns") is not None:
+        return int(row["mtime_ns"])
+    m = row.get("mtime")
+    return int(m.timestamp() * 1_000_000_000) if m is not None else 0
 
-    A document's rank orders it for deterministic choices (the canonical chunk of a
-    duplicate cluster): first the run that first saw it, then its canonical path.
+
+def live_documents(catalog_rows: list[dict], seq_of: dict[str, int], sequence: int,
+                   source: SourceSection | None = None
+                   ) -> tuple[dict[str, str], dict[str, tuple[int, str, int]], dict[str, list[str]]]:
+    """From catalog rows: the live path of each document, ranks, and copies.
+
+    Where the same bytes sit at several paths, the live path (the one the hand-off
+    names and readers are sent to) is chosen by `source_path_key`. A document's rank
+    orders it for deterministic choices: first the run that first saw it, then its
+    live path. live maps doc_id -> (rank, live path, its modification time in ns).
     """
-    present_paths: dict[str, list[str]] = {}
-    inside: set[str] = set()  # paths of documents inside documents
+    source = source or SourceSection()
+    present: dict[str, list[dict]] = {}
     for r in catalog_rows:
         if r["present"]:
-            present_paths.setdefault(r["doc_id"], []).append(r["source_path"])
-            if r.get("container_doc_id"):
-                inside.add(r["source_path"])
+            present.setdefault(r["doc_id"], []).append(r)
     first_seq: dict[str, int] = {}
     for r in catalog_rows:
         s = seq_of.get(r["first_run"], sequence)
         first_seq[r["doc_id"]] = min(first_seq.get(r["doc_id"], s), s)
-    # A file of the drive stands for its copies inside archives or e-mails.
-    canonical = {d: min(paths, key=lambda p: (p in inside, p)) for d, paths in present_paths.items()}
+    chosen = {d: min(rows, key=lambda r: source_path_key(r, source)) for d, rows in present.items()}
+    canonical = {d: r["source_path"] for d, r in chosen.items()}
     order = sorted(canonical, key=lambda d: (first_seq[d], canonical[d]))
-    live = {d: (rank, canonical[d]) for rank, d in enumerate(order)}
-    copies = {d: sorted(p for p in paths if p != canonical[d]) for d, paths in present_paths.items() if len(paths) > 1}
+    live = {d: (rank, canonical[d], _modified_ns(chosen[d])) for rank, d in enumerate(order)}
+    copies = {d: sorted(r["source_path"] for r in rows if r["source_path"] != canonical[d])
+              for d, rows in present.items() if len(rows) > 1}
     return canonical, live, copies
+
+
+def source_path_key(row: dict, source: SourceSection) -> tuple:
+    """Lower sorts first among the paths of one document: a file of the drive before a
+    copy inside an archive or e-mail, a path outside the archive folders before one in
+    them, then (copies_by: newest) the most recently modified, then path order."""
+    path = row["source_path"]
+    archived = matches(path.lower(), [p.lower() for p in source.archive_folders])
+    newest = -_modified_ns(row) if source.copies_by == "newest" else 0
+    return (bool(row.get("container_doc_id")), archived, newest, path)
 
 
 def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile], run_id: str,
@@ -158,7 +179,7 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
     # Members of containers read again or gone: removed unless the run finds them again.
     awaited = {r["source_path"]: r for r in pending if r["present"]}
 
-    canonical, live, copies = live_documents(rows, seq_of, sequence)
+    canonical, live, copies = live_documents(rows, seq_of, sequence, definition.model.source)
 
     file_at = {f.source_path: f for f in files}
     row_at = {r["source_path"]: r for r in rows}
@@ -194,7 +215,8 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
     catalog = pa.Table.from_pylist(rows, schema=schema.CATALOG)
     return Plan(catalog=catalog, jobs=jobs, skipped=skipped, deleted=deleted, live=live, copies=copies,
                 seq_of=seq_of, sequence=sequence, run_id=run_id, chain=chain, awaited=awaited,
-                access=document_access(rows, definition.model.access), access_section=definition.model.access)
+                access=document_access(rows, definition.model.access), access_section=definition.model.access,
+                source_section=definition.model.source)
 
 
 def member_chain(row_at: dict[str, dict], canonical: dict[str, str], path: str) -> tuple[str, tuple[str, ...]]:
@@ -241,7 +263,7 @@ def add_members(plan: Plan, found: list[MemberInfo]) -> list[DocJob]:
             rows[r["source_path"]] = dict(r, present=True, last_run=plan.run_id)
             unopened.add(r["doc_id"])
     all_rows = sorted(rows.values(), key=lambda r: r["source_path"])
-    canonical, live, copies = live_documents(all_rows, plan.seq_of, plan.sequence)
+    canonical, live, copies = live_documents(all_rows, plan.seq_of, plan.sequence, plan.source_section)
     for r in all_rows:
         if r["present"]:
             r["canonical_path"] = canonical[r["doc_id"]]

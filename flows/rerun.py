@@ -11,7 +11,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from thresher.flows.access import document_access
-from thresher.flows.config import AccessSection, FlowDefinition
+from thresher.flows.config import AccessSection, FlowDefinition, SourceSection
 from thresher.flows.discover import file_doc_id
 from thresher.flows.execute import DocJob
 from thresher.flows.plan import Plan, member_chain
@@ -74,7 +74,7 @@ def target_for_document(definition: FlowDefinition, store: Store, doc_id: str, s
     return RerunTarget(doc_id, source_path, index, [page_locator(page)], f"{step.name} for page {page}")
 
 
-def targets_for_failed(definition: FlowDefinition, store: Store, live: dict[str, tuple[int, str]]) -> list[RerunTarget]:
+def targets_for_failed(definition: FlowDefinition, store: Store, live: dict[str, tuple[int, str, int]]) -> list[RerunTarget]:
     """Every live document with a failed unit: from its earliest failing step, those units."""
     targets = []
     for doc_id, units in sorted(_failed_units(definition, store, sorted(live)).items()):
@@ -89,11 +89,12 @@ def targets_for_failed(definition: FlowDefinition, store: Store, live: dict[str,
 
 
 def make_rerun_plan(store: Store, targets: list[RerunTarget], source_root: str,
-                    live: dict[str, tuple[int, str]], copies: dict[str, list[str]], access: AccessSection | None = None) -> Plan:
+                    live: dict[str, tuple[int, str, int]], copies: dict[str, list[str]], access: AccessSection | None = None,
+                    source: SourceSection | None = None) -> Plan:
     """A plan for just these targets; `live` and `copies` as plan.live_documents gives them."""
     catalog = store.catalog()
     size_of = {r["source_path"]: r for r in catalog.to_pylist()}
-    canonical = {d: p for d, (_, p) in live.items()}
+    canonical = {d: v[1] for d, v in live.items()}
     jobs = []
     for t in targets:
         if t.doc_id not in live:
@@ -116,7 +117,7 @@ def make_rerun_plan(store: Store, targets: list[RerunTarget], source_root: str,
                            member_of=inside))
     return Plan(catalog=catalog, jobs=jobs, skipped=[], deleted=[], live=live, copies=copies,
                 access=document_access(catalog.to_pylist(), access or AccessSection()),
-                access_section=access or AccessSection())
+                access_section=access or AccessSection(), source_section=source or SourceSection())
 
 
 def describe(targets: list[RerunTarget]) -> list[str]:

@@ -212,6 +212,7 @@ HANDOFF = pa.schema(
         pa.field("chunk_id", pa.string(), nullable=False),
         pa.field("doc_id", pa.string(), nullable=False),
         pa.field("source_path", pa.string(), nullable=False),
+        pa.field("source_paths", STR_LIST, nullable=False),
         pa.field("title", pa.string()),
         pa.field("heading_path", STR_LIST),
         pa.field("chunk_index", pa.int32()),
@@ -236,7 +237,8 @@ HANDOFF = pa.schema(
 HANDOFF_DOC = {
     "chunk_id": "Stable id of the chunk: hash of (doc_id, split, chunk locator). Same input and config give the same id.",
     "doc_id": "SHA-256 of the source file's bytes. A renamed file keeps it; an edited file gets a new one.",
-    "source_path": "Path of the file relative to the source root, as of the latest run (the first path in path order when the same bytes sit at several paths).",
+    "source_path": "Path of the file relative to the source root, as of the latest run. Where the same bytes sit at several paths, the one readers should be sent to: a file of the drive before a copy inside an archive or e-mail, a path outside the archive folders (source.archive_folders) before one in them, then the most recently modified (source.copies_by), then path order.",
+    "source_paths": "Every path where the document's bytes sit: source_path first, then the other copies in path order.",
     "title": "Document title: PDF metadata, HTML <title>, Word core property, else the first heading, else the file name.",
     "heading_path": "Headings from the top of the document down to the chunk's section.",
     "chunk_index": "Position of the chunk within its document, from 0.",

@@ -56,11 +56,11 @@ def counts_by_stage_and_document(store: Store, stages: list[tuple[str, str]], do
     return totals, by_doc, pages
 
 
-def document_rows(live: dict[str, tuple[int, str]], by_doc: dict[str, Counter], pages: Counter,
+def document_rows(live: dict[str, tuple[int, str, int]], by_doc: dict[str, Counter], pages: Counter,
                   handoff_docs: dict[str, tuple[int, int]]) -> list[dict[str, Any]]:
     """One row per live document (path order): pages, chunks, tokens, failed and dropped units."""
     rows = []
-    for d, (_, path) in sorted(live.items(), key=lambda kv: kv[1][1]):
+    for d, (_, path, _) in sorted(live.items(), key=lambda kv: kv[1][1]):
         c = by_doc.get(d, Counter())
         chunks, tokens = handoff_docs.get(d, (0, 0))
         rows.append({"document": path, "pages": pages[d], "chunks": chunks, "tokens": tokens,

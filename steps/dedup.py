@@ -26,9 +26,12 @@ whose true similarity is within a few hundredths of the threshold can fall eithe
 way; tests/test_dedup_quality.py measures what that costs against exact Jaccard.
 
 Clusters: exact groups, document copies and verified pairs are joined with
-union-find. Chunks are numbered in canonical order first (document rank, then path,
-then doc id, then chunk index; the flows rank documents by the run they were first
-seen in, then by path), so each cluster's root is its canonical chunk. Every other
+union-find. Chunks are numbered in canonical order first, so each cluster's root is
+its canonical chunk, the one kept. With `keep: newest` (the default) the order is the
+document's modification time, newest first, then its rank (the flows rank documents
+by the run they were first seen in, then by path), then path, doc id and chunk index:
+when this year's policy repeats last year's with a sentence changed, this year's
+wording is kept. With `keep: first_seen` the modification time is left out. Every other
 chunk of the cluster is dropped with duplicate_of = the canonical chunk id, the
 similarity (1.0 for exact copies, else the estimate against the canonical chunk) and
 a reason in words.
@@ -48,6 +51,7 @@ import math
 import unicodedata
 from dataclasses import replace
 from functools import lru_cache
+from typing import Literal
 
 import numpy as np
 import pyarrow as pa
@@ -94,6 +98,10 @@ class DedupParams(StepParams):
     # Weight of missed pairs against needless candidates when bands and rows are
     # chosen (minhash.choose_bands); candidates are verified, so misses cost more.
     false_negative_weight: float = Field(0.9, gt=0.0, lt=1.0)
+    # Which chunk of a duplicate group is kept: newest = the one of the most recently
+    # modified document (then first seen, then path); first_seen = the one of the
+    # document the store saw first (then path).
+    keep: Literal["newest", "first_seen"] = "newest"
 
     def bands_and_rows(self) -> tuple[int, int]:
         return minhash.choose_bands(self.min_similarity, self.signature_size, self.false_negative_weight)
@@ -324,6 +332,21 @@ def _matches(sig: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return out
 
 
+def _canonical_order(table: pa.Table, params: DedupParams, keep: np.ndarray | None) -> np.ndarray:
+    """Positions (within `keep`, or the whole table) in canonical order: see the module's docstring."""
+    names = ["rank", "source_path", "doc_id", "chunk_index"]
+    sort_keys = [(n, "ascending") for n in names]
+    if params.keep == "newest":
+        names = ["modified", *names]
+        sort_keys = [("modified", "descending"), *sort_keys]
+        if "modified" not in table.column_names:  # callers that know no times: all equal
+            table = table.append_column("modified", pa.array([0] * table.num_rows, pa.int64()))
+    keys = table.select(names)
+    if keep is not None:
+        keys = keys.take(pa.array(keep))
+    return pc.sort_indices(keys, sort_keys=sort_keys).to_numpy()
+
+
 def decide(table: pa.Table, params: DedupParams, ctx=None) -> pa.Table:
     """Cluster every live chunk and say which are dropped; see steps/incremental.py.
 
@@ -341,11 +364,7 @@ def decide(table: pa.Table, params: DedupParams, ctx=None) -> pa.Table:
         eligible = fresh_in | status_in.to_numpy(zero_copy_only=False).astype(bool)
         if not eligible.all():
             keep = np.flatnonzero(eligible)
-    keys = table.select(["rank", "source_path", "doc_id", "chunk_index"])
-    if keep is not None:
-        keys = keys.take(pa.array(keep))
-    order = pc.sort_indices(keys, sort_keys=[("rank", "ascending"), ("source_path", "ascending"),
-                                             ("doc_id", "ascending"), ("chunk_index", "ascending")]).to_numpy()
+    order = _canonical_order(table, params, keep)
     # Row numbers of the input in canonical order; only the columns needed are reordered.
     rows_in = order if keep is None else keep[order]
     take = pa.array(rows_in)
@@ -481,11 +500,13 @@ def decide(table: pa.Table, params: DedupParams, ctx=None) -> pa.Table:
 
 
 def fresh_table(sketches: pa.Table, docs: list[DocChunks]) -> pa.Table:
-    """The `decide` input for documents that are all new: sketches plus rank and path."""
-    where = {d.doc_id: (d.rank, d.source_path) for d in docs}
+    """The `decide` input for documents that are all new: sketches plus rank, path and
+    modification time."""
+    where = {d.doc_id: (d.rank, d.source_path, d.modified) for d in docs}
     ids = sketches.column("doc_id").to_pylist()
     return sketches.append_column("rank", pa.array([where[d][0] for d in ids], pa.int64())) \
         .append_column("source_path", pa.array([where[d][1] for d in ids], pa.string())) \
+        .append_column("modified", pa.array([where[d][2] for d in ids], pa.int64())) \
         .append_column("fresh", pa.array([True] * len(ids), pa.bool_()))
 
 
@@ -512,7 +533,7 @@ def deduplicate(docs: list[DocChunks], params: DedupParams, ctx=None) -> list[Ch
 
 DEDUP = IncrementalCorpusSpec(
     name="dedup",
-    version="2",
+    version="3",
     consumes="chunks",
     produces="chunks",
     scope="corpus",

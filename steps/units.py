@@ -180,13 +180,15 @@ class DocChunks:
     """A document's chunks as a corpus-wide step sees them.
 
     `rank` orders documents for deterministic choices (lower wins): the flows layer
-    sets it from when the document was first seen, then its path.
+    sets it from when the document was first seen, then its path. `modified` is when
+    the file at source_path was last modified (ns since the epoch; 0 when unknown).
     """
 
     doc_id: str
     source_path: str
     rank: int
     chunks: list[Chunk]
+    modified: int = 0
 
 
 @dataclass

@@ -14,6 +14,19 @@ REPO = Path(__file__).resolve().parents[1]
 SAMPLE = REPO / "sample_inputs"
 
 
+def _set_sample_times() -> None:
+    """The demo drive's modification times (git keeps none), before any test copies it."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("sample_times", REPO / "tools" / "sample_times.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    module.apply(SAMPLE)
+
+
+_set_sample_times()
+
+
 @pytest.fixture(scope="session")
 def prefect_harness():
     from prefect.testing.utilities import prefect_test_harness

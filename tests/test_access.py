@@ -267,10 +267,12 @@ def _rebuilt(store_dir: Path, definition):
 
     store = Store(store_dir)
     catalog = store.catalog().to_pylist()
-    _, live, _ = live_documents(catalog, {r.run_id: r.sequence for r in store.runs()}, store.next_sequence())
+    _, live, copies = live_documents(catalog, {r.run_id: r.sequence for r in store.runs()}, store.next_sequence(),
+                                     definition.model.source)
     scratch = "runs/rebuild-check"
     build_handoff(definition, store, "rebuild-check", live, document_access(catalog, definition.model.access),
-                  f"{scratch}/chunks.parquet", f"{scratch}/digests.parquet", f"{scratch}/changes.parquet")
+                  f"{scratch}/chunks.parquet", f"{scratch}/digests.parquet", f"{scratch}/changes.parquet",
+                  copies=copies)
     table = store.read_table(f"{scratch}/chunks.parquet")
     store.delete_dir(scratch)
     return table
@@ -379,7 +381,7 @@ def test_digests_of_the_older_form_are_computed_again_from_the_handoff(tmp_path)
     from thresher.flows import schema
     from thresher.flows.handoff import DIGESTS, _digest_row, previous_digests
 
-    row = {"chunk_id": "c1", "doc_id": "d1", "source_path": "hr/a.txt", "title": "A", "heading_path": ["A"],
+    row = {"chunk_id": "c1", "doc_id": "d1", "source_path": "hr/a.txt", "source_paths": ["hr/a.txt"], "title": "A", "heading_path": ["A"],
            "chunk_index": 0, "page_start": None, "page_end": None, "char_start": 0, "char_end": 5,
            "prefix_chars": 0, "language": "en", "text": "Hello", "token_count": 1, "encoding": "cl100k_base",
            "token_counts": [("cl100k_base", 1)], "content_hash": "h1", "readers": ["hr"], "label": None,

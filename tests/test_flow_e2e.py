@@ -104,7 +104,7 @@ def test_every_chunk_walks_back_to_a_page_and_a_file(first_run):
 def test_forward_from_a_page_to_its_chunks(first_run):
     store = first_run["store"]
     pages = [r for r in store.current("language", "pages").to_pylist()
-             if r["source_path"] == "archive/2025/branch-operations-handbook.pdf" and r["page"] == 2]
+             if r["source_path"] == "operations/branch-operations-handbook.pdf" and r["page"] == 2]
     assert len(pages) == 1
     splits = [r for r in store.current("split", "chunks").to_pylist() if pages[0]["unit_id"] in r["parent_ids"]]
     assert splits and all(r["page_start"] <= 2 <= r["page_end"] for r in splits)

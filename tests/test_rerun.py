@@ -15,7 +15,7 @@ from thresher.flows.store import Store
 
 from conftest import SAMPLE
 
-HANDBOOK = "archive/2025/branch-operations-handbook.pdf"
+HANDBOOK = "operations/branch-operations-handbook.pdf"
 COMPILATION = "books/handbook-compilation.pdf"
 
 
