@@ -342,6 +342,8 @@ def _canonical_order(table: pa.Table, params: DedupParams, keep: np.ndarray | No
         if "modified" not in table.column_names:  # callers that know no times: all equal
             table = table.append_column("modified", pa.array([0] * table.num_rows, pa.int64()))
     keys = table.select(names)
+    if "modified" in names:  # an unknown time is the oldest, not (as nulls sort) after every other
+        keys = keys.set_column(0, "modified", pc.fill_null(keys.column("modified"), 0))
     if keep is not None:
         keys = keys.take(pa.array(keep))
     return pc.sort_indices(keys, sort_keys=sort_keys).to_numpy()

@@ -1,5 +1,5 @@
 """Deduplication through the real Prefect flow on the demo drive: the two revisions of
-the lending policy, and what an incremental run does when the canonical one goes."""
+the lending policy, and what an incremental run does when the kept one goes."""
 
 from __future__ import annotations
 
@@ -17,6 +17,9 @@ from thresher.steps.dedup import DedupParams, normalise
 
 OLD = "policies/lending-policy-2025.pdf"
 NEW = "policies/lending-policy-2026.pdf"
+# dedup keeps the newest revision's chunks (keep: newest); the demo drive's times
+# (tools/sample_times.py) make 2026 the newer.
+KEPT, COPY = NEW, OLD
 # The revisions differ in a few paragraphs, so with the splitter's large chunks their
 # similar chunks sit around 0.5-0.75; this flow lowers the threshold to 0.6 to catch
 # them (the default 0.8 keeps both revisions of a paragraph that changed in substance).
@@ -69,12 +72,13 @@ def first(tmp_path_factory, prefect_harness):
     return {"base": base, "store": Store(base / "store"), "manifest": manifest}
 
 
-def test_near_duplicate_chunks_of_the_2026_revision_are_dropped_as_copies_of_2025(first):
+def test_near_duplicate_chunks_of_the_2025_revision_are_dropped_as_copies_of_the_newer_2026(first):
     store = first["store"]
-    old, new = _split_rows(store, OLD), _split_rows(store, NEW)
+    old, new = _split_rows(store, KEPT), _split_rows(store, COPY)
     dedup = _dedup_rows(store)
     old_ids = {r["chunk_id"] for r in old}
-    # Both were first seen in the same run, so path order makes 2025 canonical.
+    # Both were first seen in the same run (path order would make 2025 canonical); the
+    # newer modification time makes 2026 the one kept.
     assert all(dedup[r["chunk_id"]]["status"] == "ok" for r in old)
     near_drops = 0
     must_drop = 0
@@ -94,7 +98,7 @@ def test_near_duplicate_chunks_of_the_2026_revision_are_dropped_as_copies_of_202
             if row["duplicate_kind"] == "near":
                 near_drops += 1
                 assert row["reason"] == (f"near-duplicate (estimated Jaccard {row['similarity']:.2f} over 5-word "
-                                         f"shingles) of chunk {canon['chunk_id']} in {OLD}")
+                                         f"shingles) of chunk {canon['chunk_id']} in {KEPT}")
     assert must_drop >= 1, "the demo's policy revisions no longer share a chunk this similar; revisit THRESHOLD"
     assert near_drops >= 1
     # Dropped chunks are not handed off; their canonical chunks are.
@@ -122,11 +126,11 @@ def test_deleting_the_canonical_revision_brings_its_duplicates_back(first, tmp_p
     shutil.copytree(first["base"] / "drive", drive)
     shutil.copytree(first["base"] / "store", store_dir)
     before = _dedup_rows(Store(store_dir))
-    old_ids = {r["chunk_id"] for r in _split_rows(Store(store_dir), OLD)}
+    old_ids = {r["chunk_id"] for r in _split_rows(Store(store_dir), KEPT)}
     revived = {c for c, r in before.items() if r["status"] == "dropped" and r["duplicate_of"] in old_ids}
     assert revived
 
-    (drive / OLD).unlink()
+    (drive / KEPT).unlink()
     m = _run(drive, store_dir)
     store = Store(store_dir)
     assert m["documents"]["processed"] == 0 and m["documents"]["removed"] == 1
@@ -150,9 +154,9 @@ def test_deleting_the_canonical_revision_brings_its_duplicates_back(first, tmp_p
     _run(drive, scratch)
     assert _decisions(store) == _decisions(Store(scratch))
 
-    # The 2025 revision comes back. The catalog remembers that it was first seen in the
-    # first run, so it ranks before 2026 again: the same drive keeps the same chunks.
-    shutil.copy2(first["base"] / "drive" / OLD, drive / OLD)
+    # The 2026 revision comes back with its modification time (copy2 keeps it), so it
+    # is the newer again: the same drive keeps the same chunks.
+    shutil.copy2(first["base"] / "drive" / KEPT, drive / KEPT)
     m3 = _run(drive, store_dir)
     assert _decisions(Store(store_dir)) == _decisions(first["store"])
     changes = pq.read_table(store_dir / "handoff" / "changes" / f"{m3['run_id']}.parquet").to_pylist()
