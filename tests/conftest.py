@@ -4,6 +4,7 @@ test harness), started once per session because it costs 10-15 s."""
 from __future__ import annotations
 
 import shutil
+import sys
 from pathlib import Path
 
 import pytest
@@ -33,6 +34,26 @@ def prefect_harness():
 
     with prefect_test_harness(server_startup_timeout=90):
         yield
+
+
+@pytest.fixture(autouse=True)
+def no_prefect_event_stream():
+    """Every test starts with Prefect's event stream closed.
+
+    A flow run in this process opens a websocket to the API (Prefect's `EventsWorker`)
+    that stays open afterwards; its keepalive ping, every 20 s in Prefect's
+    GlobalEventLoopThread, draws its payload from the global `random` module
+    (`websockets` `Connection.ping`). A property test running at that moment sees the
+    global random state change under it, which Hypothesis reports as "Do not use the
+    random module inside strategies". Draining the worker delivers the queued events
+    and closes the socket; the next flow run opens a new one. Runs after the session's
+    and modules' fixtures, so flows run in their set-up are covered too.
+    """
+    if "prefect.events.worker" in sys.modules:
+        from prefect.events.worker import EventsWorker
+
+        EventsWorker.drain_all(timeout=30, at_exit=False)
+    yield
 
 
 @pytest.fixture()
