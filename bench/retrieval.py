@@ -37,7 +37,11 @@ and the ratio of thresher's top1 to the better window baseline's (goal: >= 1.15)
 
 `python -m bench retrieval` runs all manuals; `python -m bench.retrieval --quick` runs
 only the FAQ; `--set step.param=value` (repeatable) changes a parameter of the
-default definition, to measure what a rule contributes.
+default definition, to measure what a rule contributes; `--variant
+LABEL=step.param=value,...` (repeatable) adds a row of thresher's chunks with those
+changes on top, so settings are compared side by side in one run (the steps before the
+first changed one run once per manual). The summary line at the end gives each row's
+top1 and top3 averaged over the manuals run, each manual weighing the same.
 """
 
 from __future__ import annotations
@@ -166,14 +170,15 @@ def run_chain(chain, data: bytes, path: str, cache: dict):
     ctx = StepContext(doc_id=path, source_path=path, encoding=get_encoding)
     units = Source(doc_id=path, source_path=path, data=data, size=len(data), mtime=0.0)
     extracted = None
+    key: tuple = ()
     for step in chain:
-        key = (step.name, step.digest)
+        # A step's output depends on every step up to it: the key is that prefix.
+        key += ((step.name, step.digest),)
         if key in cache:
             out = cache[key]
         else:
             out = step.spec.run(units, step.params, ctx)
-            if step.name in ("extract", "clean"):
-                cache[key] = out
+            cache[key] = out
         if step.name == "extract":
             extracted = [u for u in out if u.ok or u.status == DROPPED]
         units = [u for u in out if u.ok]
@@ -255,19 +260,35 @@ def score(texts: list[str], token_counts: list[int], nav: list[bool], questions)
                   len(texts))
 
 
-def measure(manual: Manual, overrides: dict[str, dict], cache: dict) -> dict[str, Scores]:
+def measure(manual: Manual, overrides: dict[str, dict], cache: dict,
+            variants: dict[str, dict[str, dict]] | None = None) -> dict[str, Scores]:
+    """Scores per chunker: "thresher" (the definition with `overrides`), one row per
+    variant (its changes on top of `overrides`), then the window baselines."""
     from thresher.flows.encodings import get_encoding
 
     questions = truth(manual)
-    chain = document_chain(overrides)
-    split = next(s for s in chain if s.name == "split")
-    size, enc = split.params.max_tokens, get_encoding(split.params.encoding)
     data = pdf_bytes(manual.pdf)
     nav_pages = navigation_truth(data)
-    pages, dropped, chunks = run_chain(chain, data, str(manual.pdf), cache)
-    out = {"thresher": score(
-        [c.text for c in chunks], [len(enc.encode_ordinary(c.text)) for c in chunks],
-        [c.page_start in nav_pages and c.page_end in nav_pages for c in chunks], questions)}
+    out = {}
+    settings = {"thresher": overrides}
+    for label, changes in (variants or {}).items():
+        merged = {step: dict(params) for step, params in overrides.items()}
+        for step, params in changes.items():
+            merged.setdefault(step, {}).update(params)
+        settings[label] = merged
+    for label, these in settings.items():
+        chain = document_chain(these)
+        split = next(s for s in chain if s.name == "split")
+        enc = get_encoding(split.params.encoding)
+        run_pages, run_dropped, chunks = run_chain(chain, data, str(manual.pdf), cache)
+        if label == "thresher":
+            # The windows follow the definition's own budget and encoding.
+            size, win_enc = split.params.max_tokens, enc
+            pages, dropped = run_pages, run_dropped
+        out[label] = score(
+            [c.text for c in chunks], [len(enc.encode_ordinary(c.text)) for c in chunks],
+            [c.page_start in nav_pages and c.page_end in nav_pages for c in chunks],
+            questions)
     body = [p for p in pages if p.page not in dropped]
     for name, stride, these in (("windows", size, pages),
                                 ("windows+ovl", int(size * (1 - OVERLAP_SHARE)), pages),
@@ -281,8 +302,8 @@ def measure(manual: Manual, overrides: dict[str, dict], cache: dict) -> dict[str
         def page_at(char: int) -> int | None:
             return these[bisect.bisect_right(starts, char) - 1].page
 
-        wins = windows(text, enc, size, stride)
-        out[name] = score([w for w, _, _ in wins], [len(enc.encode_ordinary(w)) for w, _, _ in wins],
+        wins = windows(text, win_enc, size, stride)
+        out[name] = score([w for w, _, _ in wins], [len(win_enc.encode_ordinary(w)) for w, _, _ in wins],
                           [page_at(a) in nav_pages and page_at(b) in nav_pages for _, a, b in wins],
                           questions)
     out["_questions"] = len(questions)
@@ -305,8 +326,16 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--quick", action="store_true", help="the FAQ only")
     parser.add_argument("--set", action="append", default=[], metavar="STEP.PARAM=VALUE")
     parser.add_argument("--manual", action="append", default=[])
+    parser.add_argument("--variant", action="append", default=[],
+                        metavar="LABEL=STEP.PARAM=VALUE[,STEP.PARAM=VALUE...]")
     args = parser.parse_args([] if argv is None else argv)
     overrides = parse_overrides(args.set)
+    variants = {}
+    for item in args.variant:
+        label, _, changes = item.partition("=")
+        if not changes or label in ("thresher", "windows", "windows+ovl", "body-windows"):
+            parser.error(f"--variant {item!r}: give LABEL=STEP.PARAM=VALUE,... with a new label")
+        variants[label] = parse_overrides(changes.split(","))
     chosen = [m for m in manuals()
               if (not args.quick or m.name == "faq") and (not args.manual or m.name in args.manual)]
     missing = [m.package for m in chosen if not m.pdf.exists()]
@@ -315,13 +344,19 @@ def main(argv: list[str] | None = None) -> None:
         chosen = [m for m in chosen if m.pdf.exists()]
     if overrides:
         print(f"overrides: {overrides}")
-    print(f"{'manual':8} {'chunker':12} {'top1':>6} {'top3':>6} {'tokens':>7} {'nav':>6} {'chunks':>7}")
+    for label, changes in variants.items():
+        print(f"variant {label}: {changes}")
+    width = max([12] + [len(label) for label in variants])
+    print(f"{'manual':8} {'chunker':{width}} {'top1':>6} {'top3':>6} {'tokens':>7} {'nav':>6} "
+          f"{'chunks':>7}")
+    rows: dict[str, list[Scores]] = {}
     for manual in chosen:
         t0 = time.perf_counter()
-        result = measure(manual, overrides, {})
+        result = measure(manual, overrides, {}, variants)
         n = result.pop("_questions")
         for name, s in result.items():
-            print(f"{manual.name:8} {name:12} {s.top1:6.3f} {s.top3:6.3f} {s.tokens:7.1f} "
+            rows.setdefault(name, []).append(s)
+            print(f"{manual.name:8} {name:{width}} {s.top1:6.3f} {s.top3:6.3f} {s.tokens:7.1f} "
                   f"{s.nav:6.3f} {s.chunks:7d}")
         best = max(result["windows"].top1, result["windows+ovl"].top1)
         best3 = max(result["windows"].top3, result["windows+ovl"].top3)
@@ -330,6 +365,11 @@ def main(argv: list[str] | None = None) -> None:
               f"{result['thresher'].top3:.3f} vs {best3:.3f}; top1 ratio to body-windows "
               f"{result['thresher'].top1 / result['body-windows'].top1:.3f}  "
               f"[{time.perf_counter() - t0:.0f} s]")
+    if len(chosen) > 1:
+        print(f"mean of {len(chosen)} manuals, each weighing the same (top1 / top3):")
+        for name, scores in rows.items():
+            print(f"  {name:{width}} {sum(s.top1 for s in scores) / len(scores):.3f} / "
+                  f"{sum(s.top3 for s in scores) / len(scores):.3f}")
 
 
 if __name__ == "__main__":

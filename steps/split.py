@@ -41,18 +41,43 @@ How a document is cut:
 * A chunk that would end on a sentence (or paragraph) ending in a colon, with more
   after it, ends before it instead, when it fits one chunk with what follows: it
   introduces that (a list, a command).
-* Small sections merge (`merge_below_tokens`, 0 turns it off; on the retrieval
-  benchmark, bench/retrieval.py, merging under 100 tokens lowered the top-1 answer
-  share on the FAQ from 0.818 to 0.686 and on the developers' reference from 0.736 to
-  0.704, and raised it on the policy manual from 0.559 to 0.582): walking the sections
-  in order, a section that fits in one chunk joins the chunk before it when that
-  chunk is a run of whole sections too, the section lies under the same parent as
-  the run's first section (its heading path starts with the first section's parent
-  path), at least one of the two holds fewer than `merge_below_tokens` tokens, and
-  the joined span still fits `max_tokens`. The merged chunk's heading_path is the
-  longest common prefix of its sections' paths (their parent); payload
-  `merged_sections` says how many sections a chunk holds. A section that needs
-  several chunks never merges.
+* Packing sections together: three switches, all off by default, because the
+  retrieval benchmark (bench/retrieval.py: Debian's FAQ, developers' reference and
+  policy manual; BM25 over the chunks, answers from the HTML editions) ranks one
+  section per chunk, packed greedily, best. Measured side by side in one run
+  (`python -m bench.retrieval --variant ...`, the variants listed in DEVELOPERS.md),
+  top-1 answer-word share / top-3 answered share, FAQ, developers' reference, policy:
+
+    all three off (the defaults)    0.818/0.891  0.734/0.893  0.559/0.701
+    merge_below_tokens 100 (before) 0.686/0.844  0.702/0.855  0.582/0.692
+    merge_below_tokens 30           0.817/0.891  0.720/0.879  0.552/0.687
+    intro_below_tokens 30           0.818/0.891  0.739/0.893  0.560/0.706
+    intro_below_tokens 400          0.804/0.859  0.717/0.869  0.564/0.706
+    balance_tail_share 0.25         0.808/0.875  0.727/0.897  0.552/0.701
+
+  A rule is on by default only when it raises the mean top-1 of the three manuals
+  (each weighing the same) by at least 0.005, about three questions answered whole,
+  without lowering the mean top-3; intro_below_tokens 30 gains 0.001 (top-3 +0.002),
+  under that bar.
+* Small sections merge (`merge_below_tokens`, 0 = off): walking the sections in order,
+  a section that fits in one chunk joins the chunk before it when that chunk is a run
+  of whole sections too, the section lies under the same parent as the run's first
+  section (its heading path starts with the first section's parent path), at least
+  one of the two holds fewer than `merge_below_tokens` tokens, and the joined span
+  still fits `max_tokens`. The merged chunk's heading_path is the longest common
+  prefix of its sections' paths (their parent); payload `merged_sections` says how
+  many sections a chunk holds. A section that needs several chunks never merges.
+* An intro stays with its first subsection (`intro_below_tokens`, 0 = off): a section
+  that fits in one chunk with fewer than `intro_below_tokens` tokens and a heading,
+  directly followed by its first subsection that also fits in one chunk, makes one
+  chunk with it when the two fit `max_tokens`; its heading_path is the intro's.
+* A short tail is rebalanced (`balance_tail_share`, 0 = off): when a section needs
+  several chunks and the last holds fewer than `balance_tail_share` x `max_tokens`
+  tokens, the section is packed again to the lowest limit under the budget that needs
+  no more chunks, so its chunks come out about equal. Merging the tail back into the
+  chunk before it was measured too and never applied: greedy packing leaves that chunk
+  too full (0 of 30 tails under a quarter of the budget fitted, 0 of 63 under half, on
+  the three manuals).
 * Overlap (`overlap_tokens`): a chunk that continues a section (not the first of a
   section, not a table piece with a repeated header) starts inside the previous
   chunk. The shared text is the longest proper suffix of the previous chunk that
@@ -98,7 +123,9 @@ class SplitParams(StepParams):
     max_tokens: int = Field(400, gt=0)
     overlap_tokens: int = Field(0, ge=0)
     encoding: str = "cl100k_base"
-    merge_below_tokens: int = Field(100, ge=0)
+    merge_below_tokens: int = Field(0, ge=0)
+    intro_below_tokens: int = Field(0, ge=0)
+    balance_tail_share: float = Field(0.0, ge=0, le=1)
 
     @model_validator(mode="after")
     def _overlap_below_budget(self):
@@ -301,6 +328,7 @@ class _Splitter:
         self.enc = encoding
         self.max = params.max_tokens
         self.overlap = params.overlap_tokens
+        self.tail_below = params.balance_tail_share * params.max_tokens
         self.doc = doc
         self._sep_cache: dict[str, int] = {}
         # The document is encoded once; counts of its slices come from that encoding.
@@ -461,10 +489,14 @@ class _Splitter:
                 return cand
         return None
 
-    def pack(self, atoms: list[_Atom]) -> list[tuple[int, int, str, int, int]]:
+    def pack(self, atoms: list[_Atom], limit: int | None = None
+             ) -> list[tuple[int, int, str, int, int]]:
         """Greedy packing of atoms into (start, end, prefix, overlap, tokens) chunks
-        within the budget; `tokens` is the chunk text's exact count."""
+        of at most `limit` tokens (the budget when None; a single atom over a lower
+        limit still makes a chunk of its own); `tokens` is the chunk text's exact
+        count."""
         doc = self.doc
+        limit = self.max if limit is None else min(limit, self.max)
         seps = [0] + [self.sep_tokens(doc[atoms[k - 1].end:atoms[k].start])
                       for k in range(1, len(atoms))]
         cum = [0]
@@ -501,13 +533,13 @@ class _Splitter:
             # the budget; every chunk taken is counted exactly.
             def reach(error: int) -> int:
                 """The last atom whose estimate plus `error` fits the budget."""
-                target = self.max - error - lead + cum[i] + seps[i]
+                target = limit - error - lead + cum[i] + seps[i]
                 return min(max(i, bisect.bisect_right(cum, target) - 2), len(atoms) - 1)
 
             j = reach(0)
             n = tokens(j)
             moved_down = False
-            while j > i and n > self.max:
+            while j > i and n > limit:
                 # Too long: assume the estimate is off by as much further down.
                 k = min(j - 1, reach(max(1, n - estimate(j))))
                 j, n = k, tokens(k)
@@ -515,12 +547,12 @@ class _Splitter:
             if not moved_down:
                 # Longer while the estimate, corrected by its error at j, may still fit.
                 while (j + 1 < len(atoms)
-                       and estimate(j + 1) + n - estimate(j) <= self.max + _ESTIMATE_SLACK):
+                       and estimate(j + 1) + n - estimate(j) <= limit + _ESTIMATE_SLACK):
                     longer = tokens(j + 1)
-                    if longer > self.max:
+                    if longer > limit:
                         break
                     j, n = j + 1, longer
-            moved = _keep_introduction(doc, atoms, i, j, lambda s, e: self.span(s, e) <= self.max)
+            moved = _keep_introduction(doc, atoms, i, j, lambda s, e: self.span(s, e) <= limit)
             if moved != j:
                 j, n = moved, tokens(moved)
             # Do not end a chunk on a heading when text follows; give it to the next
@@ -563,7 +595,27 @@ class _Splitter:
                 force = self.span(heading_start, offset + len(block.text)) > self.max
             heading_run = False
             atoms.extend(self.block_atoms(block, offset, force_split=force))
-        return self.pack(atoms)
+        return self.short_tail(atoms, self.pack(atoms))
+
+    def short_tail(self, atoms: list[_Atom], out: list[tuple[int, int, str, int, int]]
+                   ) -> list[tuple[int, int, str, int, int]]:
+        """A section whose last chunk holds fewer than balance_tail_share of the budget
+        is packed again to the lowest limit that needs no more chunks, so its chunks
+        come out about equal (see the module docstring)."""
+        if len(out) < 2 or out[-1][4] >= self.tail_below:
+            return out
+        # The chunk count falls as the limit rises (packing is greedy): find the lowest
+        # limit that keeps it, starting from the mean chunk (no lower limit can do).
+        lo = max(1, sum(c[4] for c in out) // len(out) - self.overlap)
+        hi = self.max
+        while lo < hi:
+            mid = (lo + hi) // 2
+            if len(self.pack(atoms, mid)) <= len(out):
+                hi = mid
+            else:
+                lo = mid + 1
+        balanced = self.pack(atoms, lo)
+        return balanced if len(balanced) <= len(out) else out
 
 
 def _keep_introduction(doc: str, atoms: list[_Atom], i: int, j: int,
@@ -587,14 +639,16 @@ def _common_prefix(a: list[str], b: list[str]) -> list[str]:
 
 
 def _pieces(splitter: _Splitter, sections: list[_Section], params: SplitParams) -> list[_Piece]:
-    """Every chunk's span, with small sections merged (see the module docstring)."""
+    """Every chunk's span, with small sections merged and an intro kept with its first
+    subsection (see the module docstring)."""
     pieces: list[_Piece] = []
     # The open run of whole sections: its piece, its anchor (parent path), its tokens.
     run: tuple[_Piece, list[str], int] | None = None
+    joining = params.merge_below_tokens or params.intro_below_tokens
     for section in sections:
         cut = splitter.section_chunks(section)
         path = section.heading_path
-        if len(cut) != 1 or not params.merge_below_tokens:
+        if len(cut) != 1 or not joining:
             run = None
             pieces.extend(_Piece(s, e, p, list(path), n, overlap=o) for s, e, p, o, n in cut)
             continue
@@ -603,7 +657,11 @@ def _pieces(splitter: _Splitter, sections: list[_Section], params: SplitParams) 
             piece, anchor, run_tokens = run
             under = path[:len(anchor)] == anchor and len(path) > len(anchor)
             small = min(tokens, run_tokens) < params.merge_below_tokens
-            if under and small:
+            # The run is one small section and this one comes first under it.
+            intro = (piece.sections == 1 and run_tokens < params.intro_below_tokens
+                     and 0 < len(piece.heading_path) < len(path)
+                     and path[:len(piece.heading_path)] == piece.heading_path)
+            if (under and small) or intro:
                 joined = splitter.span(piece.start, end)
                 if joined <= params.max_tokens:
                     piece.end = end

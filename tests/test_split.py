@@ -25,8 +25,8 @@ from thresher.steps.units import (
 
 CTX = StepContext(doc_id="d1", source_path="handbook.pdf", encoding=get_encoding)
 ENC = get_encoding("cl100k_base")
-# Small sections merge by default; tests of merging say so, tests of the section
-# structure itself turn it off.
+# Small sections do not merge by default (the retrieval benchmark decided it); tests
+# of merging turn it on, tests of the section structure say it is off.
 NOMERGE = {"merge_below_tokens": 0}
 MERGE = {"merge_below_tokens": 100}
 
@@ -396,10 +396,13 @@ _pages = st.lists(st.lists(_block, min_size=0, max_size=6), min_size=1, max_size
 
 
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(_pages, st.integers(4, 200), st.integers(0, 20), st.sampled_from([0, 10, 100, 10_000]))
-def test_invariants_hold_for_random_documents(page_blocks, max_tokens, overlap, merge):
+@given(_pages, st.integers(4, 200), st.integers(0, 20), st.sampled_from([0, 10, 100, 10_000]),
+       st.sampled_from([0, 30, 10_000]), st.sampled_from([0.0, 0.5, 1.0]))
+def test_invariants_hold_for_random_documents(page_blocks, max_tokens, overlap, merge, intro,
+                                              tail):
     overlap = min(overlap, max_tokens - 1)
-    params = SplitParams(max_tokens=max_tokens, overlap_tokens=overlap, merge_below_tokens=merge)
+    params = SplitParams(max_tokens=max_tokens, overlap_tokens=overlap, merge_below_tokens=merge,
+                         intro_below_tokens=intro, balance_tail_share=tail)
     pages = [page(n + 1, *blocks) for n, blocks in enumerate(page_blocks)]
     chunks = split(pages, params, CTX)
     assert all(c.ok for c in chunks)  # every character fits in 4 tokens
@@ -481,6 +484,79 @@ def test_a_section_that_needs_several_chunks_does_not_merge():
     chunks = split(pages, params, CTX)
     assert chunks[0].text == "Intro\n\nShort." and chunks[0].payload["merged_sections"] == 1
     assert all(c.heading_path == ["Rules"] for c in chunks[1:])
+
+
+def test_by_default_sections_are_not_merged_joined_or_rebalanced():
+    # The defaults the retrieval benchmark chose (bench/retrieval.py; figures in the
+    # split docstring): every section its own chunks, packed greedily.
+    params = SplitParams()
+    assert (params.merge_below_tokens, params.intro_below_tokens,
+            params.balance_tail_share) == (0, 0, 0.0)
+    pages = [page(1, H("Guide", 1), P("About the guide."),
+                  H("Loans", 2), P("How loans work."), H("Fees", 2), P("No fees."))]
+    assert [c.heading_path for c in split(pages, params, CTX)] == [
+        ["Guide"], ["Guide", "Loans"], ["Guide", "Fees"]]
+
+
+# -- an intro with its first subsection ----------------------------------------------
+
+
+def test_a_small_intro_stays_with_its_first_subsection_only():
+    params = SplitParams(intro_below_tokens=30)
+    pages = [page(1, H("Loans", 1), P("Members borrow in three ways."),
+                  H("Books", 2), P("Three weeks, renewable twice."),
+                  H("Films", 2), P("One week."))]
+    chunks = split(pages, params, CTX)
+    assert [c.text for c in chunks] == [
+        "Loans\n\nMembers borrow in three ways.\n\nBooks\n\nThree weeks, renewable twice.",
+        "Films\n\nOne week."]
+    # The joined chunk sits under the intro's heading, the next under its subsection.
+    assert [c.heading_path for c in chunks] == [["Loans"], ["Loans", "Films"]]
+    assert [c.payload["merged_sections"] for c in chunks] == [2, 1]
+    check_invariants(pages, chunks, params)
+
+
+def test_an_intro_joins_only_when_small_and_within_the_budget():
+    intro = sentences(3)  # about 35 tokens
+    pages = [page(1, H("Loans", 1), P(intro), H("Books", 2), P(sentences(4, "books")))]
+    whole = count(pages[0].text)
+    # The intro is not under the threshold: no join.
+    assert len(split(pages, SplitParams(intro_below_tokens=20), CTX)) == 2
+    # Under it, and the two fit: one chunk.
+    assert len(split(pages, SplitParams(intro_below_tokens=100, max_tokens=whole), CTX)) == 1
+    # Under it, but the two need more than the budget: no join.
+    params = SplitParams(intro_below_tokens=100, max_tokens=whole - 1)
+    chunks = split(pages, params, CTX)
+    assert [c.heading_path for c in chunks] == [["Loans"], ["Loans", "Books"]]
+    check_invariants(pages, chunks, params)
+
+
+def test_text_before_the_first_heading_is_no_intro():
+    # It has no heading, so no section is under it.
+    params = SplitParams(intro_below_tokens=100)
+    pages = [page(1, P("Quillfern Library Cooperative."), H("Loans", 1), P("Three weeks."))]
+    assert len(split(pages, params, CTX)) == 2
+
+
+# -- a short last chunk --------------------------------------------------------------
+
+
+def test_a_short_tail_rebalances_the_sections_chunks():
+    pages = [page(1, H("Loans", 1), P(sentences(8)))]
+    budget = 100
+    greedy = split(pages, SplitParams(max_tokens=budget), CTX)
+    sizes = [c.token_count for c in greedy]
+    # Greedy packing leaves a short last chunk here (under 0.3 of the budget).
+    assert len(sizes) == 2 and sizes[-1] < budget * 0.3, sizes
+    params = SplitParams(max_tokens=budget, balance_tail_share=0.3)
+    balanced = split(pages, params, CTX)
+    # Same number of chunks, the same text, sizes about equal: no chunk is short.
+    assert len(balanced) == 2
+    assert min(c.token_count for c in balanced) > max(c.token_count for c in balanced) * 0.6
+    check_invariants(pages, balanced, params)
+    # A tail over the share is left as greedy packing made it.
+    loose = SplitParams(max_tokens=budget, balance_tail_share=(sizes[-1] - 1) / budget)
+    assert [c.token_count for c in split(pages, loose, CTX)] == sizes
 
 
 # -- sentences -----------------------------------------------------------------------
@@ -572,11 +648,12 @@ BYTES_CTX = StepContext(encoding=lambda name: BYTES if name == "bytes_only" else
 
 
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(_pages, st.integers(8, 300), st.integers(0, 30), st.sampled_from([0, 40, 1000]))
-def test_invariants_hold_in_a_byte_encoding(page_blocks, max_tokens, overlap, merge):
+@given(_pages, st.integers(8, 300), st.integers(0, 30), st.sampled_from([0, 40, 1000]),
+       st.sampled_from([0.0, 1.0]))
+def test_invariants_hold_in_a_byte_encoding(page_blocks, max_tokens, overlap, merge, tail):
     overlap = min(overlap, max_tokens - 1)
     params = SplitParams(max_tokens=max_tokens, overlap_tokens=overlap, encoding="bytes_only",
-                         merge_below_tokens=merge)
+                         merge_below_tokens=merge, balance_tail_share=tail)
     pages = [page(n + 1, *blocks) for n, blocks in enumerate(page_blocks)]
     chunks = split(pages, params, BYTES_CTX)
     assert all(c.ok and len(c.text.encode("utf-8")) <= max_tokens for c in chunks)
