@@ -18,6 +18,8 @@ Two calling conventions (steps/spec.py and steps/incremental.py):
 
 from __future__ import annotations
 
+import hashlib
+import json
 import time
 from collections import Counter, defaultdict
 from dataclasses import dataclass, replace
@@ -50,6 +52,15 @@ class CorpusResult:
     counts: dict[str, int]
     rows_written: int
     seconds: float
+
+
+def inputs_key(step: ResolvedStep, live_docs: dict[str, tuple[int, str, int]]) -> str:
+    """What a corpus step's decisions depend on besides its input rows: the step and
+    every step before it (its digest) and every live document's rank, path and
+    modification time. Recorded per run in the manifest (`corpus_inputs`)."""
+    h = hashlib.sha256(step.digest.encode())
+    h.update(json.dumps(sorted(live_docs.items()), separators=(",", ":")).encode())
+    return h.hexdigest()
 
 
 def _freeze(v: Any) -> Any:

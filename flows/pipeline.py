@@ -28,7 +28,7 @@ from prefect.futures import as_completed
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from thresher.flows.config import FlowDefinition, build_definition
-from thresher.flows.corpus import run_corpus_step
+from thresher.flows.corpus import CorpusResult, inputs_key, run_corpus_step
 from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, unit_kind
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
@@ -214,6 +214,7 @@ class _Progress:
     counts: dict[str, dict[str, int]] = field(default_factory=dict)
     failures: list[tuple[str, str, str]] = field(default_factory=list)
     step_seconds: float = 0.0
+    corpus_inputs: dict[str, str] = field(default_factory=dict)  # stage -> inputs_key
 
     def add(self, stage: str, by_status: dict[str, int]) -> None:
         bucket = self.counts.setdefault(stage, {})
@@ -223,8 +224,13 @@ class _Progress:
 
 def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: str, data_json: str,
                progress: Callable[[str], None] | None, timings: dict[str, float], workers: int = 1,
-               force: bool = False) -> _Progress:
-    """Every segment of the chain in order, for the documents the plan names."""
+               force: bool = False, previous: dict[str, Any] | None = None) -> _Progress:
+    """Every segment of the chain in order, for the documents the plan names.
+
+    `previous`: the latest committed run's manifest. A corpus step whose inputs are
+    as that run left them (no input row written this run, the same live documents
+    at the same paths, ranks and times, the same step digest) would decide the same:
+    it is not run, and its stored rows stand."""
     model = definition.model
     names = [s.name for s in definition.steps]
     acc = _Progress()
@@ -237,13 +243,23 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
         label = "+".join(names[i] for i in indices)
         if kind == "corpus":
             index = indices[0]
+            step = definition.steps[index]
             rewrite = set(processed) | {j.doc_id for j in plan.jobs if j.start <= index}
-            res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
-                                     plan.live, rewrite).result()
-            affected |= res.affected_docs
-            acc.add(res.stage, res.counts)
-            _emit(progress, f"{label}: {sum(res.counts.values())} units compared, "
-                            f"{res.rows_written} decisions written ({res.seconds:.1f} s)")
+            key = acc.corpus_inputs[step.name] = inputs_key(step, plan.live)
+            before = (previous or {}).get("corpus_inputs") or {}
+            if not rewrite and not affected and before.get(step.name) == key:
+                # Same inputs as the latest run decided on: the same decisions, stored.
+                res = CorpusResult(step.name, set(), dict((previous or {}).get("written", {}).get(step.name, {})),
+                                   0, 0.0)
+                acc.add(res.stage, res.counts)
+                _emit(progress, f"{label}: inputs unchanged since run {previous['run_id']}, nothing to decide")
+            else:
+                res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
+                                         plan.live, rewrite).result()
+                affected |= res.affected_docs
+                acc.add(res.stage, res.counts)
+                _emit(progress, f"{label}: {sum(res.counts.values())} units compared, "
+                                f"{res.rows_written} decisions written ({res.seconds:.1f} s)")
             _fault("after-corpus")
         else:
             first, last = indices[0], indices[-1]
@@ -351,8 +367,9 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         timings["plan"] = time.perf_counter() - t0
         logger.info("%s %s: %d documents to process", kind, run_id, len(plan.jobs))
 
+        latest = store.latest_run()
         acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings,
-                         workers or model.runner.workers, force)
+                         workers or model.runner.workers, force, latest.manifest if latest else None)
 
         t0 = time.perf_counter()
         staged = f"runs/{run_id}/staged"
@@ -412,6 +429,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
                           "copies": {d: p for d, p in plan.copies.items()}},
             "scan_problems": [asdict(p) for p in problems],
             "written": acc.counts,
+            "corpus_inputs": acc.corpus_inputs,
             "current": {c.stage: c.by_status for c in current},
             "pages": pages,
             "chunks": handoff.chunks,

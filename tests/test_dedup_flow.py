@@ -3,6 +3,7 @@ the lending policy, and what an incremental run does when the kept one goes."""
 
 from __future__ import annotations
 
+import os
 import shutil
 from pathlib import Path
 
@@ -169,3 +170,34 @@ def test_deleting_the_canonical_revision_brings_its_duplicates_back(first, tmp_p
     assert _decisions(Store(store_dir)) == _decisions(first["store"])
     changes = pq.read_table(store_dir / "handoff" / "changes" / f"{m3['run_id']}.parquet").to_pylist()
     assert {c["chunk_id"] for c in changes if c["action"] == "delete"} == revived
+
+
+def test_a_week_with_no_change_skips_the_corpus_steps_and_a_newer_time_alone_is_decided_again(first, tmp_path,
+                                                                                            capsys):
+    drive, store_dir = tmp_path / "drive", tmp_path / "store"
+    shutil.copytree(first["base"] / "drive", drive)
+    shutil.copytree(first["base"] / "store", store_dir)
+    before = _decisions(Store(store_dir))
+
+    # Nothing changed: neither corpus step loads the corpus, and the stored decisions stand.
+    capsys.readouterr()
+    m = pipeline.run(_definition(), str(drive), str(store_dir), workers=1)
+    out = capsys.readouterr().err
+    assert "dedup: inputs unchanged since run" in out and "boilerplate: inputs unchanged since run" in out
+    assert m["corpus_inputs"] == first["manifest"]["corpus_inputs"]
+    assert _written_rows(store_dir, "dedup", m["run_id"]) == [] and _decisions(Store(store_dir)) == before
+
+    # The 2025 revision touched to be the newer one: no byte changed, so no document is
+    # processed, but which revision dedup keeps (keep: newest) depends on that time, so
+    # dedup decides again: the 2026 revision's chunks become the copies.
+    newer = (drive / KEPT).stat().st_mtime + 86_400
+    os.utime(drive / COPY, (newer, newer))
+    m2 = pipeline.run(_definition(), str(drive), str(store_dir), workers=1)
+    out = capsys.readouterr().err
+    assert m2["documents"]["processed"] == 0 and "dedup: inputs unchanged" not in out
+    store = Store(store_dir)
+    after = _decisions(store)
+    new_ids = {r["chunk_id"] for r in _split_rows(store, KEPT)}
+    old_ids = {r["chunk_id"] for r in _split_rows(store, COPY)}
+    flipped = {c for c in new_ids if after[c][0] == "dropped" and after[c][2] in old_ids}
+    assert flipped and all(before[c][0] == "ok" for c in flipped)
