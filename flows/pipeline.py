@@ -37,7 +37,7 @@ from thresher.flows.plan import Plan, add_members, make_plan
 from thresher.flows.progress import for_run as progress_for_run
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
-from thresher.flows.summary import STATUS_ORDER, counts_by_stage_and_document, document_rows
+from thresher.flows.summary import STATUS_ORDER, carried_counts, counts_rel, document_rows
 
 # A batch holds at most this many bytes of source files besides its document count,
 # so one huge PDF does not share a task with many others (common practice: size
@@ -400,7 +400,10 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
 
         live_docs = sorted(plan.live)
         stages = [(s.name, s.spec.produces) for s in definition.steps]
-        current, by_doc, doc_pages = counts_by_stage_and_document(store, stages, live_docs, include_run=run_id)
+        t0 = time.perf_counter()
+        current, by_doc, doc_pages, doc_counts = carried_counts(store, stages, live_docs, run_id, latest)
+        store.write_table(counts_rel(run_id), doc_counts, run_id=run_id)
+        timings["counts"] = time.perf_counter() - t0
         tokens = handoff.tokens
         pages = next((c.total for c in current if c.stage == definition.steps[0].name), 0)
         per_doc = document_rows(plan.live, by_doc, doc_pages, handoff.per_doc)

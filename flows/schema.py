@@ -288,6 +288,18 @@ PROBES = pa.schema(
     ]
 )
 
+# Per live document and stage, its current units by status, as a run left them
+# (runs/<run_id>/counts.parquet): the next run counts afresh only the documents it
+# wrote or that joined the live set, and carries the rest (flows/summary.py).
+STAGE_COUNTS = pa.schema(
+    [
+        pa.field("doc_id", pa.string(), nullable=False),
+        pa.field("stage", pa.string(), nullable=False),
+        pa.field("status", pa.string(), nullable=False),
+        pa.field("units", pa.int64(), nullable=False),
+    ]
+)
+
 WRITES = pa.schema(
     [
         pa.field("stage", pa.string(), nullable=False),

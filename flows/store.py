@@ -619,6 +619,10 @@ class Store:
                 _LEDGERS[key] = ledger
         return ledger
 
+    def run_docs(self, stage: str, run_id: str) -> set[str]:
+        """The documents a run (running or committed) wrote rows of at a stage."""
+        return set(self._ledger(stage, run_id).files)
+
     def _stage_files(self, stage: str, seq: dict[str, int], doc_ids: Iterable[str] | None = None,
                      floors: dict[str, int] | None = None) -> list[str]:
         """Part files of a stage from these runs; with doc_ids, only files holding them.

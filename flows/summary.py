@@ -56,6 +56,75 @@ def counts_by_stage_and_document(store: Store, stages: list[tuple[str, str]], do
     return totals, by_doc, pages
 
 
+def counts_rel(run_id: str) -> str:
+    return f"runs/{run_id}/counts.parquet"
+
+
+def carried_counts(store: Store, stages: list[tuple[str, str]], live_docs: list[str], run_id: str,
+                   previous: Any = None) -> tuple[list[StageCounts], dict[str, Counter], Counter, Any]:
+    """counts_by_stage_and_document for a running run, from the latest committed run's
+    counts where they still hold.
+
+    A document's current units at a stage change only when a run writes rows of it
+    there (every write is in the run's ledger), so the previous run's per-document
+    counts stand for every live document this run wrote no row of at any stage. The
+    others (written this run, or live now and not counted then) are counted afresh.
+    Without a usable previous record (none, other stages, a file that does not match
+    its manifest's checksum) every stage is counted in full. Returns the counts and
+    this run's per-document table (schema.STAGE_COUNTS), to be stored for the next run.
+    """
+    import pyarrow as pa
+
+    from thresher.flows import schema
+
+    live = set(live_docs)
+    prev = _previous_counts(store, stages, previous)
+    if prev is None:
+        recount, kept = live, []
+    else:
+        written = set().union(*(store.run_docs(name, run_id) for name, _ in stages))
+        counted = set(prev.column("doc_id").to_pylist())
+        recount = live & (written | (live - counted))
+        kept = [r for r in prev.to_pylist() if r["doc_id"] in live and r["doc_id"] not in recount]
+    rows = kept
+    if recount:
+        ids = sorted(recount)
+        for name, unit in stages:
+            t = store.current(name, unit, ids, columns=["doc_id", "status"], include_run=run_id)
+            per = Counter(zip(t.column("doc_id").to_pylist(), t.column("status").to_pylist()))
+            rows += [{"doc_id": d, "stage": name, "status": st, "units": n} for (d, st), n in per.items()]
+    totals = {name: Counter() for name, _ in stages}
+    by_doc: dict[str, Counter] = {}
+    pages: Counter = Counter()
+    first = stages[0][0] if stages else None
+    for r in rows:
+        totals[r["stage"]][r["status"]] += r["units"]
+        by_doc.setdefault(r["doc_id"], Counter())[r["status"]] += r["units"]
+        if r["stage"] == first:
+            pages[r["doc_id"]] += r["units"]
+    rows.sort(key=lambda r: (r["doc_id"], r["stage"], r["status"]))
+    table = pa.Table.from_pylist(rows, schema=schema.STAGE_COUNTS)
+    out = [StageCounts(name, unit, {k: totals[name][k] for k in sorted(totals[name])}) for name, unit in stages]
+    return out, by_doc, pages, table
+
+
+def _previous_counts(store: Store, stages: list[tuple[str, str]], previous: Any):
+    """The previous run's per-document counts, if they can stand for this run's."""
+    if previous is None:
+        return None
+    manifest = previous.manifest
+    rel = counts_rel(previous.run_id)
+    record = (manifest.get("files") or {}).get(rel)
+    if record is None or stages_of(manifest) != stages:
+        return None
+    try:
+        if store.file_record(rel) != record:
+            return None
+        return store.read_table(rel)
+    except OSError:
+        return None
+
+
 def document_rows(live: dict[str, tuple[int, str, int]], by_doc: dict[str, Counter], pages: Counter,
                   handoff_docs: dict[str, tuple[int, int]]) -> list[dict[str, Any]]:
     """One row per live document (path order): pages, chunks, tokens, failed and dropped units."""

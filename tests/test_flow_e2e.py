@@ -4,6 +4,7 @@ failures as data, determinism and incremental reuse."""
 from __future__ import annotations
 
 import socket
+from collections import Counter
 from pathlib import Path
 
 import pyarrow.parquet as pq
@@ -340,3 +341,60 @@ def test_unit_timings_add_up_to_each_documents_time_once(first_run):
     assert sum(r["duration_ms"] for r in pdf) <= sum(r["document_ms"] or 0 for r in pdf)
     # Steps that time the document only leave the unit's own time empty.
     assert all(r["duration_ms"] is None for r in store.current("clean", "pages").to_pylist())
+
+
+def _recount(store: Store, manifest: dict) -> tuple[dict, Counter]:
+    """Per stage by status, and per (document, stage, status), counted from every stage
+    table in full."""
+    from thresher.flows.summary import counts_by_stage_and_document, live_doc_ids, stages_of
+
+    stages = stages_of(manifest)
+    live = live_doc_ids(store)
+    totals = {c.stage: c.by_status for c in counts_by_stage_and_document(store, stages, live)[0]}
+    per = Counter()
+    for name, unit in stages:
+        t = store.current(name, unit, live, columns=["doc_id", "status"])
+        per.update((d, name, s) for d, s in zip(t.column("doc_id").to_pylist(), t.column("status").to_pylist()))
+    return totals, per
+
+
+def test_the_manifests_counts_carried_from_the_last_run_equal_a_full_recount(first_run, tmp_path):
+    import shutil
+
+    drive, store_dir = tmp_path / "drive", tmp_path / "store"
+    shutil.copytree(first_run["drive"], drive)
+    shutil.copytree(first_run["store"].root, store_dir)
+    notes = sorted(drive.rglob("*.md"))
+    # The document whose chunks others' are dropped as copies of: its removal changes
+    # the counts of a document this run does not process (its chunks come back).
+    first = first_run["store"]
+    dedup = first.current("dedup", "chunks").to_pylist()
+    owner = {r["chunk_id"]: r["doc_id"] for r in dedup}
+    kept = {owner[r["duplicate_of"]] for r in dedup if r["status"] == "dropped"}
+    doomed = [drive / r["source_path"] for r in first.catalog().to_pylist()
+              if r["present"] and r["doc_id"] in kept and not r.get("container_doc_id")]
+    assert doomed
+
+    def check(m: dict) -> None:
+        store = Store(store_dir)
+        totals, per = _recount(store, m)
+        assert m["current"] == totals
+        assert m["pages"] == sum(totals[m["definition"]["steps"][0]["name"]].values())
+        stored = store.read_table(f"runs/{m['run_id']}/counts.parquet").to_pylist()
+        assert Counter({(r["doc_id"], r["stage"], r["status"]): r["units"] for r in stored}) == per
+
+    check(_run(drive, store_dir, workers=1))  # nothing changed
+    notes[0].write_text(notes[0].read_text(encoding="utf-8") + "\n\nOne more paragraph for the week.\n",
+                        encoding="utf-8")
+    m = _run(drive, store_dir, workers=1)  # one file changed
+    assert m["documents"]["processed"] >= 1
+    check(m)
+    for p in doomed:
+        p.unlink()
+    m = _run(drive, store_dir, workers=1)  # a document removed, its copies revived
+    assert m["documents"]["removed"] >= 1 and m["documents"]["processed"] == 0
+    check(m)
+    doc = next(r["doc_id"] for r in Store(store_dir).catalog().to_pylist()
+               if r["present"] and r["source_path"].endswith(".md"))
+    check(pipeline.run(load_definition(), str(drive), str(store_dir), workers=1, quiet=True,
+                       rerun={"doc_id": doc, "page": None, "step": "clean"}))  # a re-run
