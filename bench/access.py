@@ -121,7 +121,8 @@ def change_of_access() -> None:
         t = m["timings"]
         print(f"{name:<20} {secs:7.2f} s  {secs / full_s:6.3f} of full  ({m['documents']['processed']} processed, "
               f"{m['changes']['upsert']} upserts; hand-off {m['handoff']} in {t.get('handoff', 0):.2f} s; "
-              f"scan+plan {t.get('plan', 0):.2f} s; run body {m['seconds']:.2f} s)")
+              f"scan+plan {t.get('plan', 0):.2f} s; counts {t.get('counts', 0):.2f} s; run body {m['seconds']:.2f} s, "
+              f"outside it {secs - m['seconds']:.2f} s)")
 
 
 def rewrite_cost(chunks: int = 200_000, per_doc: int = 10) -> None:

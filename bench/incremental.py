@@ -51,3 +51,9 @@ def main() -> None:
     print(f"1% changed ({len(changed)} files) {one:7.2f} s   {one / full:.3f} of full  "
           f"({m_one['documents']['processed']} processed, {m_one['changes']['upsert']} upserts, "
           f"{m_one['changes']['delete']} deletes)")
+    # Where the time of the short runs goes: the run body's parts (the manifest's
+    # timings), and what lies outside the body (Prefect's flow start and end, the
+    # commit, the run's artifacts, delivery).
+    for name, secs, m in (("no changes", same, m_same), ("1% changed", one, m_one)):
+        parts = ", ".join(f"{k} {v:.2f}" for k, v in m["timings"].items())
+        print(f"  {name}: {parts}; run body {m['seconds']:.2f} s, outside it {secs - m['seconds']:.2f} s")
