@@ -553,11 +553,16 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     The store's lock is taken before Prefect starts, so a second run on the same
     store is refused at once with the holder's name, not after a server start.
     """
+    from prefect.settings import temporary_settings
+
+    from thresher.flows.runtime import embedded_overrides
+
     run_id = new_run_id()
     store = Store(store_root)
     store.acquire_lock(run_id)
+    overrides = embedded_overrides()  # before shared_api sets PREFECT_API_URL for its own server
     try:
-        with shared_api(definition.model.runner.kind):
+        with shared_api(definition.model.runner.kind), temporary_settings(updates=overrides):
             flow_obj = build_flow(definition, workers,
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
             return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,

@@ -61,3 +61,19 @@ def apply_defaults() -> None:
 
 
 apply_defaults()
+
+
+# Prefect's flow-run heartbeat feeds automations that mark a stopped run as crashed
+# (docs.prefect.io, "How to detect and respond to zombie flows"); it is only useful
+# to a server that outlives the run. On exit Prefect waits for the heartbeat thread's
+# one-second sleep to end, which made every short run up to a second longer (bench/
+# incremental.py: wall times of short runs fell on whole seconds past their work).
+HEARTBEAT_VARS = ("PREFECT_FLOWS_HEARTBEAT_FREQUENCY", "PREFECT_RUNNER_HEARTBEAT_FREQUENCY")
+
+
+def embedded_overrides(environ=os.environ) -> dict:
+    """Prefect settings for one embedded run: no heartbeat, unless the user asked for
+    one or a Prefect server of their own (PREFECT_API_URL) takes the run."""
+    if environ.get("PREFECT_API_URL") or any(environ.get(v) for v in HEARTBEAT_VARS):
+        return {}
+    return {"flows.heartbeat_frequency": None}

@@ -398,3 +398,16 @@ def test_the_manifests_counts_carried_from_the_last_run_equal_a_full_recount(fir
                if r["present"] and r["source_path"].endswith(".md"))
     check(pipeline.run(load_definition(), str(drive), str(store_dir), workers=1, quiet=True,
                        rerun={"doc_id": doc, "page": None, "step": "clean"}))  # a re-run
+
+
+def test_an_embedded_run_sends_no_heartbeat_but_a_server_of_ones_own_keeps_prefects_setting():
+    from prefect.settings import get_current_settings, temporary_settings
+
+    from thresher.flows.runtime import embedded_overrides
+
+    assert embedded_overrides({}) == {"flows.heartbeat_frequency": None}
+    assert embedded_overrides({"PREFECT_API_URL": "http://127.0.0.1:4200/api"}) == {}
+    assert embedded_overrides({"PREFECT_FLOWS_HEARTBEAT_FREQUENCY": "60"}) == {}
+    # The override is one Prefect accepts: the flow engine then starts no heartbeat thread.
+    with temporary_settings(updates=embedded_overrides({})):
+        assert get_current_settings().flows.heartbeat_frequency is None
