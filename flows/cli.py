@@ -708,11 +708,12 @@ def cmd_export(args: argparse.Namespace) -> int:
 
     definition = _definition(args)
     store = _open_store(args, definition)
+    # Arguments first: a refused export reads nothing (and starts no Arrow threads).
+    if args.out == "-" and args.format != "jsonl":
+        raise UsageError("only --format jsonl can be written to standard output")
     table = store.handoff()
     if table is None:
         raise UsageError("the store has no hand-off yet; run `thresher run` first")
-    if args.out == "-" and args.format != "jsonl":
-        raise UsageError("only --format jsonl can be written to standard output")
     try:
         n = export_chunks(table, args.format, args.out)
     except BrokenPipeError:
