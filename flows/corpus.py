@@ -36,7 +36,7 @@ from thresher.flows.rows import RowContext, rows_to_table, to_row
 from thresher.flows.store import Store
 from thresher.steps.incremental import IncrementalCorpusSpec
 from thresher.steps.spec import StepContext
-from thresher.steps.units import OK, DocChunks, DocPages
+from thresher.steps.units import OK, DocChunks, DocPages, clear_stale_count
 
 # Documents whose chunks (with text) are held in memory at once by an incremental
 # corpus step, when sketching and again when writing their rows. 250 rather than 1000:
@@ -106,7 +106,9 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     by_doc: dict[str, list[Unit]] = defaultdict(list)
     if kind == "chunks":
         owner = {c.chunk_id: d.doc_id for d in docs for c in d.chunks}
+        came_from = {c.chunk_id: c for d in docs for c in d.chunks}
         for chunk in out:
+            clear_stale_count(came_from.get(chunk.chunk_id), chunk)
             by_doc[owner[chunk.chunk_id]].append(chunk)
     else:
         for doc_pages in out:  # a page step returns DocPages: pages do not name their document

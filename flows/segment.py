@@ -18,7 +18,7 @@ from thresher.flows.encodings import get_encoding
 from thresher.flows.isolate import Clock
 from thresher.flows.rows import unit_id
 from thresher.steps.spec import StepContext, StepParams
-from thresher.steps.units import DOCUMENT_LOCATOR, Chunk, Page, Source
+from thresher.steps.units import DOCUMENT_LOCATOR, Chunk, Page, Source, clear_stale_count
 
 Unit = Page | Chunk
 
@@ -97,8 +97,11 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
         out = call_here(call.name, call.produces, call.run, call.params, inputs, ctx)
         ms = (time.perf_counter() - t0) * 1000.0
         if call.produces == "chunks":
+            came_from = {u.locator: u for u in inputs if isinstance(u, Chunk)} if call.index > 0 else {}
             for u in out:  # named where born, as the stored row names it (rows.chunk_row)
                 u.chunk_id = u.chunk_id or unit_id(doc_id, call.name, u.locator)
+                if len(u.parents) == 1:
+                    clear_stale_count(came_from.get(u.parents[0]), u)
         members = call.index == 0 and any(isinstance(u, Page) and u.members for u in out)
         paused = k == 0 and (pause_first or members) and k + 1 < len(calls)
         yield StepDone(call.index, out, started, ms, paused)

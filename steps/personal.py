@@ -314,7 +314,10 @@ def find_personal(chunks: list[Chunk], params: PersonalParams, ctx) -> list[Chun
         for kind, _, _ in findings:
             counts[kind] = counts.get(kind, 0) + 1
         text = mask(chunk.text, findings, masked_kinds) if masked_kinds & set(counts) else chunk.text
+        # A masked text has other tokens: its count is cleared (the tokens step counts it).
+        recount = {} if text == chunk.text else {"token_count": None, "encoding": None}
         new = replace(chunk, text=text, parents=[chunk.locator], heading_path=list(chunk.heading_path),
+                      **recount,
                       warnings=[], payload={
                           "personal_counts": dict(sorted(counts.items())),
                           "personal_findings": [{"kind": k, "start": s, "end": e} for k, s, e in findings],
@@ -329,7 +332,9 @@ def find_personal(chunks: list[Chunk], params: PersonalParams, ctx) -> list[Chun
 
 PERSONAL = StepSpec(
     name="personal",
-    version="1",
+    # 2: a masked chunk's token count is cleared (version 1 carried split's count of the
+    # unmasked text over, which the tokens step now reuses).
+    version="2",
     consumes="chunks",
     produces="chunks",
     scope="document",

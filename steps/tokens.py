@@ -37,7 +37,10 @@ def count_tokens(chunks: list[Chunk], params: TokensParams, ctx) -> list[Chunk]:
     encodings = [(name, ctx.encoding(name)) for name in params.encodings]
     out = []
     for chunk in chunks:
-        counts = {name: len(enc.encode_ordinary(chunk.text)) for name, enc in encodings}
+        counts = {name: chunk.token_count
+                  if chunk.token_count is not None and chunk.encoding == name
+                  else len(enc.encode_ordinary(chunk.text))
+                  for name, enc in encodings}
         first = params.encodings[0]
         out.append(replace(
             chunk,

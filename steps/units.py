@@ -165,6 +165,8 @@ class Chunk(Outcome):
     format: str = ""
     language: str | None = None
     language_prob: float | None = None
+    # The exact encode_ordinary count of `text` in `encoding` (split sets it), or None
+    # once a step changed the text (see clear_stale_count); tokens counts again then.
     token_count: int | None = None
     encoding: str | None = None
     # Leading characters of `text` that are not in the span: a table piece repeats its
@@ -199,6 +201,16 @@ class DocPages:
     source_path: str
     rank: int
     pages: list[Page]
+
+
+def clear_stale_count(before: Chunk | None, after: Chunk) -> None:
+    """Clear `after`'s token count when a step changed the text of the chunk it came
+    from (`before`) and carried the old count over, so no count outlives its text."""
+    if (before is not None and after.token_count is not None
+            and after.token_count == before.token_count and after.encoding == before.encoding
+            and after.text is not before.text and after.text != before.text):
+        after.token_count = None
+        after.encoding = None
 
 
 def chunk_locator(index: int) -> str:

@@ -94,6 +94,28 @@ SHARED_BLOCKS = StepSpec(name="shared_blocks", version="1", consumes="pages", pr
                          scope="corpus", params=NoParams, run=drop_shared_blocks)
 
 
+def shout_rota_chunks(chunks, params, ctx):
+    """A chunk step that changes one file's chunk text and, as `replace` does, carries
+    the old count over."""
+    rota = ctx.source_path.endswith("rota.html")
+    return [replace(c, text=c.text.upper() if rota else c.text, parents=[c.locator], payload={})
+            for c in chunks]
+
+
+SHOUT_ROTA = StepSpec(name="shout_rota", version="1", consumes="chunks", produces="chunks",
+                      scope="document", params=NoParams, run=shout_rota_chunks)
+
+
+def shout_one_path(docs, params, ctx):
+    """A corpus chunk step that changes the text of one file's chunks (count carried over)."""
+    return [replace(c, text=c.text.upper() if d.source_path.endswith("vans.html") else c.text,
+                    parents=[c.locator], payload={}) for d in docs for c in d.chunks]
+
+
+SHOUT_VANS = StepSpec(name="shout_vans", version="1", consumes="chunks", produces="chunks",
+                      scope="corpus", params=NoParams, run=shout_one_path)
+
+
 # --- Helpers for the child-process tests (tests/test_isolate.py) -------------------
 
 def _sleep_then(seconds: float, value):

@@ -255,6 +255,33 @@ def test_a_format_limited_step_passes_other_documents_by(prefect_harness, tmp_pa
     assert again["documents"]["processed"] == 0 and again["changes"] == {"upsert": 0, "delete": 0}
 
 
+def test_token_counts_follow_text_that_steps_after_split_change(prefect_harness, tmp_path):
+    # tokens reuses split's count; a mask (personal), a step of the user's own that
+    # changes chunk text in a document step (rota) or a corpus step (vans) and keeps
+    # the count must not leave it stale. Reference: tiktoken's encode_ordinary.
+    from thresher.flows.encodings import get_encoding
+
+    data = yaml.safe_load(default_config_text())
+    names = [s["step"] for s in data["steps"]]
+    data["steps"][names.index("personal")]["params"]["policy"] = {"email": "mask"}
+    data["steps"].insert(names.index("personal"), {"step": "example_steps:SHOUT_ROTA"})
+    data["steps"].insert(names.index("personal") + 2, {"step": "example_steps:SHOUT_VANS"})
+    drive = _small_drive(tmp_path / "drive")
+    (drive / "notes.md").write_text("# Notes\n\nThe book club meets on Thursdays; write to "
+                                    "club.secretary@quillfern.example for the reading list.\n")
+    _run(drive, tmp_path / "store", definition=build_definition(data, "test"))
+    store = Store(tmp_path / "store")
+    enc = get_encoding("cl100k_base")
+    split_counts = {r["source_path"]: r["token_count"] for r in store.current("split", "chunks").to_pylist()}
+    handoff = {r["source_path"]: r for r in store.handoff().to_pylist()}
+    assert sorted(handoff) == ["notes.md", "rota.html", "vans.html"]
+    assert "⟦email" in handoff["notes.md"]["text"] and handoff["vans.html"]["text"].isupper()
+    assert handoff["rota.html"]["text"].isupper()
+    for path, row in handoff.items():
+        assert row["token_count"] == len(enc.encode_ordinary(row["text"])), path
+        assert row["token_count"] != split_counts[path], path  # the text's count did change
+
+
 def test_a_corpus_page_step_rewrites_documents_when_the_corpus_changes(prefect_harness, tmp_path):
     data = yaml.safe_load(default_config_text())
     data["steps"].insert(1, {"step": "example_steps:SHARED_BLOCKS"})

@@ -93,3 +93,33 @@ def test_params_are_checked():
     assert (TOKENS.name, TOKENS.consumes, TOKENS.produces, TOKENS.scope) == (
         "tokens", "chunks", "chunks", "document")
 
+
+
+def test_counts_in_the_hand_off_are_tiktokens_count_of_the_final_text_masked_or_not():
+    # Real text: the copyright file Debian's manpages package ships (many e-mail
+    # addresses). split counts every chunk and tokens reuses that count; the personal
+    # step's mask changes the text after split, so the count must follow the text.
+    # The reference is tiktoken's own encode_ordinary of each chunk's final text.
+    from pathlib import Path
+
+    from thresher.steps.clean import CleanParams, clean
+    from thresher.steps.extract.text import text_blocks
+    from thresher.steps.personal import PersonalParams, find_personal
+    from thresher.steps.split import SplitParams, split
+    from thresher.steps.units import Page
+
+    text = Path("/usr/share/doc/manpages/copyright").read_text(encoding="utf-8")
+    pages = clean([Page(locator="file", page=None, blocks=text_blocks(text), format="text")], CleanParams())
+    chunks = split(pages, SplitParams(), CTX)
+    masked = find_personal(chunks, PersonalParams(policy={"email": "mask"}), CTX)
+    out = count_tokens(masked, TokensParams(encodings=["cl100k_base", "bytes_only"]), CTX)
+    enc = get_encoding("cl100k_base")
+    assert len(out) == len(chunks) > 10
+    changed = [i for i, c in enumerate(out) if c.text != chunks[i].text]
+    # The mask changed the token count of some chunks (else this test could not fail).
+    assert any(len(enc.encode_ordinary(out[i].text)) != chunks[i].token_count for i in changed)
+    for c in out:
+        assert c.token_count == len(enc.encode_ordinary(c.text)) == c.payload["token_counts"]["cl100k_base"]
+        assert c.payload["token_counts"]["bytes_only"] == len(c.text.encode("utf-8"))
+    # Chunks the mask left alone kept split's count (the one tokens reuses).
+    assert all(out[i].token_count == chunks[i].token_count for i in range(len(out)) if i not in changed)
