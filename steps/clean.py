@@ -106,11 +106,9 @@ _ZERO_WIDTH = re.compile(f"[{ZERO_WIDTH}]")
 _SOFT_HYPHEN = re.compile(SOFT_HYPHEN)
 # A soft hyphen at a line end: the word continues on the next line.
 _SOFT_HYPHEN_BREAK = re.compile(f"{SOFT_HYPHEN}[^\\S\\n]*\\n[^\\S\\n]*")
-# Any whitespace except the line break: spaces, tabs, no-break and other Unicode spaces.
-_INLINE_SPACE = re.compile(r"[^\S\n]+")
-_TRAILING_SPACE = re.compile(r"[^\S\n]+$", re.MULTILINE)
-# After runs became one space: the space at a line's start or end.
-_LINE_EDGE_SPACE = re.compile(r"^ | $", re.MULTILINE)
+# Steps 1-4 change nothing in ASCII text without these (line breaks other than "\n",
+# ESC and the other controls): most text skips their passes after one search.
+_ASCII_TOUCHED = re.compile("[\x00-\x08\x0b-\x1f\x7f]")
 # A hyphen (ASCII or U+2010) ending a line after a letter, the next line's first word.
 _LINE_END_HYPHEN = re.compile(r"([^\W\d_]+)([-\u2010])\n(\w+)")
 _WORD = re.compile(r"\w+(?:[-\u2010]\w+)*")
@@ -239,6 +237,15 @@ def _bump(fixes: dict[str, int], name: str, count: int) -> None:
 def clean_text(text: str, kind: str, normalization: str, fixes: dict[str, int],
                mojibake: bool = True, tally: _Tally | None = None) -> str:
     """Steps 1-6 for one block's text, adding what was fixed to `fixes`."""
+    if not (text.isascii() and not _ASCII_TOUCHED.search(text)):
+        # ASCII text is already in every normal form and cannot be mojibake.
+        text = _repair_and_remove(text, normalization, fixes, mojibake, tally)
+    return _whitespace(text, kind, fixes)
+
+
+def _repair_and_remove(text: str, normalization: str, fixes: dict[str, int], mojibake: bool,
+                       tally: _Tally | None) -> str:
+    """Steps 1-5."""
     from ftfy.fixes import remove_terminal_escapes
 
     crlf = text.count(_CRLF)
@@ -276,15 +283,20 @@ def clean_text(text: str, kind: str, normalization: str, fixes: dict[str, int],
         if tally is not None and normal != text:
             tally.changed(text, normal)
         text = normal
+    return text
 
+
+def _whitespace(text: str, kind: str, fixes: dict[str, int]) -> str:
+    """Step 6. str.split() splits at the characters str.isspace() names, the same that
+    the regular expression class \\s matches."""
     before = len(text)
     if kind == CODE:
-        lines = _TRAILING_SPACE.sub("", text).split("\n")
+        lines = [line.rstrip() for line in text.split("\n")]
     elif kind == HEADING:
-        lines = [_INLINE_SPACE.sub(" ", text.replace("\n", " ")).strip()]
+        lines = [" ".join(text.split())]
     else:
-        lines = _LINE_EDGE_SPACE.sub("", _INLINE_SPACE.sub(" ", text)).split("\n")
-    kept = [line for line in lines if line.strip()]
+        lines = [" ".join(line.split()) for line in text.split("\n")]
+    kept = [line for line in lines if line]
     text = "\n".join(kept)
     if kept:
         _bump(fixes, "blank_lines", len(lines) - len(kept))
@@ -299,11 +311,14 @@ def clean_text(text: str, kind: str, normalization: str, fixes: dict[str, int],
 
 def _vocabulary(pages: list[list[Block]]) -> Counter:
     """Casefolded words (hyphenated compounds as one word) on one line, document-wide."""
-    words: Counter = Counter()
+    seen: Counter = Counter()
     for blocks in pages:
         for block in blocks:
             if block.kind != CODE:
-                words.update(w.casefold() for w in _WORD.findall(block.text))
+                seen.update(_WORD.findall(block.text))
+    words: Counter = Counter()
+    for word, n in seen.items():  # each distinct spelling casefolded once
+        words[word.casefold()] += n
     return words
 
 
