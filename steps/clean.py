@@ -205,8 +205,13 @@ def _count_normalization_changes(text: str, form: str) -> int:
     return changed
 
 
+_ASCII_SPACES = "".join(c for c in map(chr, range(128)) if c.isspace())
+
+
 def _visible(text: str) -> int:
     """Characters that are not whitespace."""
+    if text.isascii():  # counting is much cheaper than splitting
+        return len(text) - sum(text.count(c) for c in _ASCII_SPACES)
     return len("".join(text.split()))
 
 
@@ -441,7 +446,8 @@ def clean(pages: list[Page], params: CleanParams, ctx=None) -> list[Page]:
         for block in page.blocks:
             text = clean_text(block.text, block.kind, params.normalization, tally.fixes,
                               mojibake=params.repair_mojibake, tally=tally)
-            blocks.append(replace(block, text=text))
+            # Blocks are never changed in place: an unchanged one is shared, not copied.
+            blocks.append(block if text == block.text else replace(block, text=text))
         cleaned.append(blocks)
 
     if params.dehyphenate:

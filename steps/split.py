@@ -139,9 +139,15 @@ class SplitParams(StepParams):
 
 # Sentence ends: Latin-script punctuation followed by whitespace, or CJK full stops.
 _CLOSERS = "\"'\u201d\u2019\u00bb)\\]"
-_SENTENCE_END = re.compile(rf"[.!?\u2026]+[{_CLOSERS}]*(?=\s)|[\u3002\uff01\uff1f]+[{_CLOSERS}]*")
+# Written to start with one character class, which lets the regular-expression engine
+# skip to candidate characters instead of trying every position; the lookbehind picks
+# the branch by that first character. Group 1 is the first non-space character after
+# the punctuation (None at the end), so the next word's case is read in the same pass.
+_SENTENCE_END = re.compile(
+    rf"[.!?\u2026\u3002\uff01\uff1f](?:(?<=[.!?\u2026])[.!?\u2026]*[{_CLOSERS}]*(?=\s)"
+    rf"|(?<=[\u3002\uff01\uff1f])[\u3002\uff01\uff1f]*[{_CLOSERS}]*)(?=\s*(\S)|)")
 _WORD_BEFORE = re.compile(r"(?:\w+\.)*\w+$")
-_NEXT_WORD = re.compile(r"\s*(\S)")
+_NON_SPACE = re.compile(r"\S")
 # A period after these (casefolded, without the final period) does not end a sentence.
 # English, German, French and Spanish forms from memory (common practice, not a source).
 ABBREVIATIONS = frozenset({
@@ -263,8 +269,8 @@ def _sections(pages: list[Page]) -> tuple[str, list[int], list[_Section], list[_
 
 def _sentence_continues(text: str, match: re.Match) -> bool:
     """True when the punctuation `match` found does not end a sentence."""
-    after = _NEXT_WORD.match(text, match.end())
-    if after and after.group(1).islower():
+    after = match.group(1)
+    if after is not None and after.islower():
         return True
     if match.group() != ".":
         return False
@@ -276,15 +282,17 @@ def _sentence_continues(text: str, match: re.Match) -> bool:
 
 
 def _sentence_spans(text: str) -> list[tuple[int, int]]:
+    """Sentences of `text`, trimmed of surrounding whitespace."""
     spans = []
     pos = 0
     for match in _SENTENCE_END.finditer(text):
         if _sentence_continues(text, match):
             continue
-        spans.append((pos, match.end()))
-        pos = match.end()
-    spans.append((pos, len(text)))
-    return _trimmed(text, spans)
+        end = match.end()
+        # A sentence ends on its punctuation (never a space): only its start is trimmed.
+        spans.append((_NON_SPACE.search(text, pos, end).start(), end))
+        pos = end
+    return spans + _trimmed(text, [(pos, len(text))])
 
 
 def _line_spans(text: str) -> list[tuple[int, int]]:

@@ -579,6 +579,15 @@ def test_abbreviations_do_not_end_sentences():
     ]
 
 
+def test_cjk_full_stops_end_sentences_with_or_without_a_space():
+    # The module docstring's rule: CJK full stops (and their closers) end a sentence
+    # whatever follows; Latin punctuation only before whitespace and a non-lowercase word.
+    text = "会员可以在线续借。请带上借书证！」今天开馆吗？ 开。Open at 9.30 today... and late? Yes!"
+    spans = [text[s:e] for s, e in _sentence_spans(text)]
+    assert spans == ["会员可以在线续借。", "请带上借书证！", "」今天开馆吗？", "开。",
+                     "Open at 9.30 today... and late?", "Yes!"]
+
+
 def test_long_paragraph_is_cut_between_sentences_not_after_abbreviations():
     sentence = "Members, e.g. Dr. Weller and Prof. Amsel, renew z. B. online or at the desk. "
     params = SplitParams(max_tokens=40)
