@@ -145,7 +145,7 @@ def rewrite_cost(chunks: int = 200_000, per_doc: int = 10) -> None:
     live = {d: (i, f"notes/{i:07d}.md", 0) for i, d in enumerate(docs)}
     old_access = {d: (["staff"], "internal", "access.default") for d in docs}
     new_access = {d: (["staff", "volunteers"], "everyone-internal", "access.default") for d in docs}
-    basis = handoff_basis(definition, live, {})
+    basis = handoff_basis(definition)
     n = len(docs) * per_doc
     doc_of = [docs[i // per_doc] for i in range(n)]
     ids = [f"{i:064x}" for i in range(n)]
@@ -174,7 +174,7 @@ def rewrite_cost(chunks: int = 200_000, per_doc: int = 10) -> None:
             for start in range(0, n, 20_000):
                 w.write_table(table.slice(start, 20_000))
         store.write_table("runs/bench/staged/digests.parquet", digests, run_id="bench")
-        store.commit("bench", {"run_id": "bench", "sequence": 1, "withheld": {},
+        store.commit("bench", {"run_id": "bench", "sequence": 1, "withheld": {}, "documents": {"copies": {}},
                                "publish": {"staged/chunks.parquet": "handoff/chunks.parquet",
                                            "staged/digests.parquet": "handoff/digests.parquet"}})
         del table, digests, texts
@@ -186,7 +186,8 @@ def rewrite_cost(chunks: int = 200_000, per_doc: int = 10) -> None:
         del copy
         t = time.perf_counter()
         result = build_handoff(definition, store, "bench-2", live, new_access, "staged/chunks.parquet",
-                               "staged/digests.parquet", "staged/changes.parquet", basis=basis, stages_unchanged=True)
+                               "staged/digests.parquet", "staged/changes.parquet", basis=basis,
+                               previous_live={d: live[d][1] for d in docs})
         rewrite_s = time.perf_counter() - t
     assert result.access_only and result.upserts == n, (result.access_only, result.upserts)
     del old_access

@@ -1,16 +1,19 @@
 """The hand-off table (one row per live chunk) and the change set since the last one.
 
-Built in groups of documents, so memory holds one group's chunks at a time, not the
-drive's: each group's chunk stages are read with a doc_id filter, its live chunks
-appended to the staged hand-off file, and a digest per chunk kept (a small Arrow
-table) to compare with the previous hand-off's digests for the change set.
+Built from the stages in groups of documents, so memory holds one group's chunks at
+a time, not the drive's: each group's chunk stages are read with a doc_id filter, its
+live chunks appended to the staged hand-off file, and a digest per chunk kept (a
+small Arrow table) to compare with the previous hand-off's digests for the change set.
 
-A run that changed only access (no stage rows written, the same live paths and chain
-as the previous hand-off, which records that basis in its file metadata) does not
-rebuild: it streams the previous file batch by batch, replacing only `readers` and
-`label` (see rewrite_access). A chunk's digest is the digest of its body (every
-column but run_id, readers and label) combined with its access, so the new digests
-come from the stored body digests without reading any stage.
+A run usually changes few documents, so the hand-off is not rebuilt: the previous
+file (when it is the one its run recorded, of the same chain and columns: the basis
+in its file metadata) is streamed batch by batch, rows of unchanged documents copied
+with only `readers` and `label` replaced, and the documents the run wrote stage rows
+of, whose paths changed or that it did not hold, read from the stages and merged in
+at their place in path order (_copy_forward). Row groups depend only on the rows
+(_Output), so that copy writes the bytes a rebuild writes. A chunk's digest is the
+digest of its body (every column but run_id, readers and label) combined with its
+access, so copied chunks' digests come from the stored body digests.
 """
 
 from __future__ import annotations
@@ -50,6 +53,8 @@ ACCESS_COLUMNS = ("readers", "label")
 # Rows per batch of the streamed access rewrite: tens of MB of chunk text in memory,
 # and row groups not so small that writing them costs more than the rows.
 REWRITE_BATCH = 32768
+# Rows per row group of the hand-off, however it is made (see _Output).
+ROW_GROUP = 32768
 
 
 @dataclass
@@ -61,9 +66,14 @@ class HandoffResult:
     per_doc: dict[str, tuple[int, int]] = field(default_factory=dict)  # doc_id -> (chunks, tokens)
     # Documents left out because their access allows nobody: source path -> reason.
     withheld: dict[str, str] = field(default_factory=dict)
-    # True: only the access columns were rewritten (no stage was read but for
-    # documents the previous hand-off did not hold).
-    access_only: bool = False
+    # How it was made: "rebuilt" (every stage read), "access columns rewritten" (the
+    # previous one copied, no stage read but for documents it withheld), or "copied
+    # forward, N of M documents read from the stages".
+    mode: str = "rebuilt"
+
+    @property
+    def access_only(self) -> bool:
+        return self.mode == "access columns rewritten"
 
 
 Access = dict[str, tuple[list[str], "str | None", str]]  # doc_id -> (readers, label, rule key)
@@ -101,12 +111,11 @@ def _digest_row(r: dict[str, Any]) -> dict[str, Any]:
             "body_digest": body}
 
 
-def handoff_basis(definition: FlowDefinition, live: dict[str, tuple[int, str, int]],
-                  copies: dict[str, list[str]]) -> str:
-    """What a hand-off holds besides its access columns, given unchanged stage rows:
-    the chain, the hand-off's columns, and every live document's paths."""
-    body = {"chain": definition.chain_digest, "columns": str(schema.HANDOFF),
-            "paths": sorted((d, p, sorted(copies.get(d, []))) for d, (_, p, _) in live.items())}
+def handoff_basis(definition: FlowDefinition) -> str:
+    """What every row of a hand-off depends on besides its document's stage rows, paths
+    and access: the chain and the hand-off's columns. A hand-off of another basis is
+    never copied forward."""
+    body = {"chain": definition.chain_digest, "columns": str(schema.HANDOFF)}
     return hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()
 
 
@@ -197,62 +206,91 @@ def _previous_basis(store: Store) -> tuple[str | None, str | None]:
     return rel, basis.decode() if basis else None
 
 
+class _Output:
+    """The hand-off writer: rows in, row groups of exactly ROW_GROUP rows out.
+
+    Row groups depend only on the rows, never on how they were gathered (a group of
+    documents read from the stages, a batch of the previous file), so a streamed copy
+    and a rebuild of the same rows write the same bytes. Keeps per-document chunk and
+    token counts and the chunk ids in write order (for the digests)."""
+
+    def __init__(self, writer):
+        self.writer = writer
+        self.pending: list[pa.Table] = []
+        self.held = 0
+        self.ids: list[pa.ChunkedArray] = []
+        self.counts: Counter = Counter()
+        self.tokens: Counter = Counter()
+
+    def write(self, t: pa.Table) -> None:
+        if not t.num_rows:
+            return
+        agg = t.group_by("doc_id").aggregate([("chunk_id", "count"), ("token_count", "sum")])
+        for d, n, k in zip(agg.column("doc_id").to_pylist(), agg.column("chunk_id_count").to_pylist(),
+                           agg.column("token_count_sum").to_pylist()):
+            self.counts[d] += n
+            self.tokens[d] += k or 0
+        self.ids.append(t.column("chunk_id"))
+        self.pending.append(t)
+        self.held += t.num_rows
+        if self.held >= ROW_GROUP:
+            self._flush(final=False)
+
+    def _flush(self, final: bool) -> None:
+        t = pa.concat_tables(self.pending)
+        cut = t.num_rows if final else t.num_rows - t.num_rows % ROW_GROUP
+        for start in range(0, cut, ROW_GROUP):
+            # One contiguous array per column: the writer's pages then do not depend
+            # on how the rows arrived.
+            piece = t.slice(start, min(ROW_GROUP, cut - start)).combine_chunks()
+            self.writer.write_table(piece, row_group_size=ROW_GROUP)
+        rest = t.slice(cut)
+        self.pending, self.held = ([rest], rest.num_rows) if rest.num_rows else ([], 0)
+
+    def close(self) -> None:
+        if self.held:
+            self._flush(final=True)
+
+    def chunk_ids(self) -> pa.Array:
+        return pa.chunked_array(self.ids, pa.string()).combine_chunks() if self.ids else pa.array([], pa.string())
+
+
 def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
-             access: Access, order: list[str], writer, copies: dict[str, list[str]]
-             ) -> tuple[pa.Table, Counter, Counter]:
+             access: Access, order: list[str], out: _Output, copies: dict[str, list[str]]) -> pa.Table:
     """Every live chunk read from the chunk stages, a group of documents at a time."""
     digest_parts: list[pa.Table] = []
-    counts: Counter = Counter()
-    tokens: Counter = Counter()
     for start in range(0, len(order), GROUP_DOCS):
         rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live, access, copies)
         if not rows:
             continue
-        writer.write_table(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
+        out.write(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
         digest_parts.append(pa.Table.from_pylist([_digest_row(r) for r in rows], schema=DIGESTS))
-        for r in rows:
-            counts[r["doc_id"]] += 1
-            tokens[r["doc_id"]] += r["token_count"] or 0
-    new = pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
-    return new, counts, tokens
+    return pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
 
 
-def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previous_rel: str, old: pa.Table,
-                   live: dict[str, tuple[int, str, int]], access: Access, order: list[str],
-                   writer, copies: dict[str, list[str]]) -> tuple[pa.Table, Counter, Counter]:
-    """The previous hand-off streamed batch by batch with only `readers` and `label`
-    replaced; documents now withheld left out, documents now allowed (not in it) read
-    from the stages and merged in at their place in path order.
+def _copy_forward(definition: FlowDefinition, store: Store, run_id: str, previous_rel: str, old: pa.Table,
+                  live: dict[str, tuple[int, str, int]], access: Access, order: list[str], out: _Output,
+                  copies: dict[str, list[str]], fresh: list[str]) -> pa.Table:
+    """The previous hand-off streamed batch by batch: rows of documents still live and
+    not in `fresh` copied with `readers` and `label` replaced; documents now withheld
+    or gone left out; the `fresh` documents (path order) read from the stages and
+    merged in at their place in path order.
 
-    Only for a run whose stage rows and live paths are those of the previous hand-off
-    (build_handoff checks the basis): then every other column is what a rebuild gives.
+    Only for documents whose stage rows and paths are those of the previous hand-off
+    (build_handoff decides): then every other column is what a rebuild gives.
     """
+    fresh_set = set(fresh)
+    kept_docs = pa.array([d for d in order if d not in fresh_set], pa.string())
     doc_arr = pa.array(order, pa.string())
     readers_type = schema.HANDOFF.field("readers").type
     readers_arr = pa.array([access[d][0] for d in order], readers_type)
     label_arr = pa.array([access[d][1] for d in order], pa.string())
-    in_old = set(pc.unique(old.column("doc_id")).to_pylist())
-    # Documents to read from the stages: those the previous run withheld (by its
-    # manifest), not every one without chunks in it (containers, failed files).
-    latest = store.latest_run()
-    before = latest.manifest.get("withheld") if latest is not None else None
-    fresh = [d for d in order if d not in in_old and (before is None or live[d][1] in before)]  # path order
     pending: list[dict[str, Any]] = []
     for start in range(0, len(fresh), GROUP_DOCS):
         pending += _group_rows(definition, store, run_id, fresh[start:start + GROUP_DOCS], live, access, copies)
-    pending_digests = [_digest_row(r) for r in pending]
-    counts: Counter = Counter()
-    tokens: Counter = Counter()
+    pending_digests = pa.Table.from_pylist([_digest_row(r) for r in pending], schema=DIGESTS)
     readers_at = schema.HANDOFF.get_field_index("readers")
     label_at = schema.HANDOFF.get_field_index("label")
-
-    def write(t: pa.Table) -> None:
-        writer.write_table(t)
-        agg = t.group_by("doc_id").aggregate([("chunk_id", "count"), ("token_count", "sum")])
-        for d, n, k in zip(agg.column("doc_id").to_pylist(), agg.column("chunk_id_count").to_pylist(),
-                           agg.column("token_count_sum").to_pylist()):
-            counts[d] += n
-            tokens[d] += k or 0
 
     def rows_table(rows: list[dict[str, Any]]) -> pa.Table:
         return pa.Table.from_pylist(rows, schema=schema.HANDOFF)
@@ -260,7 +298,7 @@ def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previo
     with store.fs.open_input_file(store.path(previous_rel)) as f:
         for batch in pq.ParquetFile(f).iter_batches(batch_size=REWRITE_BATCH):
             t = pa.Table.from_batches([batch])
-            t = t.filter(pc.is_in(t.column("doc_id"), value_set=doc_arr))
+            t = t.filter(pc.is_in(t.column("doc_id"), value_set=kept_docs))
             if not t.num_rows:
                 continue
             at = pc.index_in(t.column("doc_id"), value_set=doc_arr)
@@ -268,7 +306,7 @@ def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previo
             columns[readers_at] = readers_arr.take(at)
             columns[label_at] = label_arr.take(at)
             t = pa.Table.from_arrays(columns, schema=schema.HANDOFF)
-            # Documents are contiguous and in path order: a new one goes before the
+            # Documents are contiguous and in path order: a fresh one goes before the
             # first row whose path sorts after its own.
             paths = t.column("source_path").to_pylist()
             pieces, cut = [], 0
@@ -282,24 +320,70 @@ def rewrite_access(definition: FlowDefinition, store: Store, run_id: str, previo
                 cut, pending = pos, pending[k:]
             if pieces:
                 t = pa.concat_tables(pieces + [t.slice(cut)])
-            write(t)
+            out.write(t)
     if pending:
-        write(rows_table(pending))
+        out.write(rows_table(pending))
 
-    kept = old.filter(pc.is_in(old.column("doc_id"), value_set=doc_arr))
-    access_bytes = {d: _access_bytes(access[d][0], access[d][1]) for d in order}
-    digests = [_digest(b, access_bytes[d])
-               for b, d in zip(kept.column("body_digest").to_pylist(), kept.column("doc_id").to_pylist())]
-    kept = kept.set_column(kept.schema.get_field_index("digest"), DIGESTS.field("digest"),
-                           pa.array(digests, pa.string()))
-    new = pa.concat_tables([kept, pa.Table.from_pylist(pending_digests, schema=DIGESTS)])
-    return new, counts, tokens
+    # Digests in the hand-off's row order, as a rebuild writes them: a fresh chunk's
+    # from its rows, a copied chunk's from the previous digests (looked up once).
+    lookup = pa.concat_tables([pending_digests, old])
+    new = lookup.take(pc.index_in(out.chunk_ids(), value_set=lookup.column("chunk_id")))
+    # A chunk's digest covers its access: computed again only for documents whose
+    # access changed (told by each document's first chunk).
+    docs = new.column("doc_id").to_pylist()
+    bodies = new.column("body_digest").to_pylist()
+    digests = new.column("digest").to_pylist()
+    changed: dict[str, bytes | None] = {}
+    for i, d in enumerate(docs):
+        ab = changed.get(d, b"")
+        if ab == b"":
+            ab = _access_bytes(access[d][0], access[d][1])
+            ab = changed[d] = None if _digest(bodies[i], ab) == digests[i] else ab
+        if ab is not None:
+            digests[i] = _digest(bodies[i], ab)
+    return new.set_column(new.schema.get_field_index("digest"), DIGESTS.field("digest"),
+                          pa.array(digests, pa.string()))
+
+
+def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
+             order: list[str], old: pa.Table, copies: dict[str, list[str]],
+             previous_live: dict[str, str | None] | None) -> tuple[list[str], int] | None:
+    """The documents whose hand-off rows must come from the stages, in path order, and
+    how many of them for another reason than access; None when the latest run did
+    not record what that takes (then everything is rebuilt).
+
+    A document's rows change only when a run writes its rows at some stage (every
+    write is in the run's ledgers, corpus steps' revised decisions about unchanged
+    documents included), or its live path or other paths change (source_path,
+    source_paths). A live document the previous hand-off did not hold is read when it
+    was withheld, not live or at another path then; one that was live at the same path
+    and allowed had no live chunk.
+    """
+    latest = store.latest_run()
+    manifest = latest.manifest if latest is not None else {}
+    copies_before = (manifest.get("documents") or {}).get("copies")
+    withheld_before = manifest.get("withheld")
+    if copies_before is None or withheld_before is None or previous_live is None:
+        return None
+    written = set().union(*(store.run_docs(s.name, run_id) for s in definition.steps))
+    held_at = old.select(["doc_id", "source_path"]).group_by("doc_id").aggregate([("source_path", "min")])
+    held = dict(zip(held_at.column("doc_id").to_pylist(), held_at.column("source_path_min").to_pylist()))
+    out, not_access = [], 0
+    for d in order:
+        path = live[d][1]
+        if d in written or (d in held and (held[d] != path or copies_before.get(d, []) != copies.get(d, []))):
+            out.append(d)
+            not_access += 1
+        elif d not in held and (previous_live.get(d) != path or path in withheld_before):
+            out.append(d)
+            not_access += previous_live.get(d) != path
+    return out, not_access
 
 
 def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
                   access: Access, chunks_rel: str, digests_rel: str, changes_rel: str,
-                  basis: str = "", stages_unchanged: bool = False,
-                  copies: dict[str, list[str]] | None = None) -> HandoffResult:
+                  basis: str = "", copies: dict[str, list[str]] | None = None,
+                  previous_live: dict[str, str | None] | None = None) -> HandoffResult:
     """Write the hand-off, its digests and the change set to the given (staged) paths.
 
     `copies` (doc_id -> the document's other paths) fills each chunk's source_paths.
@@ -307,22 +391,39 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     Access is joined on here, from the catalog: a document whose access allows nobody
     is left out (fail closed), so its chunks leave the index through the change set.
 
-    `basis` (handoff_basis) is recorded in the file; when `stages_unchanged` (the run
-    wrote no stage rows) and the published hand-off has the same basis, only its
-    access columns are rewritten (rewrite_access) instead of reading every stage.
+    `basis` (handoff_basis) is recorded in the file. When the published hand-off has
+    the same basis and is the file its run recorded, it is copied forward
+    (_copy_forward) with only the documents _to_read names read from the stages
+    (`previous_live`: doc_id -> live path of the documents live in the latest run); else, or when more than
+    half the documents would be read, every stage is read. Either way the file holds
+    the same bytes.
     """
+    copies = copies or {}
     withheld = {live[d][1]: f"access allows nobody ({access[d][2]})" for d in live if not access[d][0]}
     order = sorted((d for d in live if access[d][0]), key=lambda d: live[d][1])
     old = previous_digests(store)
-    previous_rel, previous_basis = _previous_basis(store) if stages_unchanged and basis else (None, None)
-    access_only = previous_rel is not None and previous_basis == basis
+    previous_rel, previous_basis = _previous_basis(store) if basis else (None, None)
+    reading = None
+    if previous_rel is not None and previous_basis == basis:
+        reading = _to_read(definition, store, run_id, live, order, old, copies, previous_live)
+        if reading is not None and len(reading[0]) * 2 > len(order):
+            reading = None  # reading most of it anyway: a rebuild has no copy to make
     sch = schema.HANDOFF.with_metadata({BASIS_KEY: basis.encode()}) if basis else schema.HANDOFF
     with store.parquet_writer(chunks_rel, sch, run_id=run_id) as writer:
-        if access_only:
-            new, counts, tokens = rewrite_access(definition, store, run_id, previous_rel, old, live, access,
-                                                 order, writer, copies or {})
+        out = _Output(writer)
+        if reading is not None:
+            new = _copy_forward(definition, store, run_id, previous_rel, old, live, access, order, out, copies,
+                                reading[0])
         else:
-            new, counts, tokens = _rebuild(definition, store, run_id, live, access, order, writer, copies or {})
+            new = _rebuild(definition, store, run_id, live, access, order, out, copies)
+        out.close()
+    counts, tokens = out.counts, out.tokens
+    if reading is None:
+        mode = "rebuilt"
+    elif reading[1]:
+        mode = f"copied forward, {reading[1]} of {len(order)} documents read from the stages"
+    else:
+        mode = "access columns rewritten"
     per_doc = {d: (counts[d], tokens[d]) for d in counts}
     fault("handoff-chunks-staged")
     store.write_table(digests_rel, new, run_id=run_id)
@@ -347,4 +448,4 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     changes = changes.sort_by([("action", "ascending"), ("source_path", "ascending"), ("chunk_id", "ascending")])
     store.write_table(changes_rel, changes, run_id=run_id)
     return HandoffResult(sum(counts.values()), sum(tokens.values()), upserts.num_rows, gone.num_rows, per_doc,
-                         withheld, access_only)
+                         withheld, mode)

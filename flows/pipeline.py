@@ -373,13 +373,11 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
 
         t0 = time.perf_counter()
         staged = f"runs/{run_id}/staged"
-        # A run that wrote no stage rows changed at most access: the hand-off's access
-        # columns are rewritten, not rebuilt, when its basis matches the published one.
-        stages_unchanged = not any(store.files_under(f"stages/{s.name}/{run_id}") for s in definition.steps)
+        # The published hand-off is copied forward, only changed documents read from the stages.
         handoff = build_handoff(definition, store, run_id, plan.live, plan.access, f"{staged}/chunks.parquet",
                                 f"{staged}/digests.parquet", f"{staged}/changes.parquet",
-                                basis=handoff_basis(definition, plan.live, plan.copies), copies=plan.copies,
-                                stages_unchanged=stages_unchanged)
+                                basis=handoff_basis(definition), copies=plan.copies,
+                                previous_live=plan.previous_live)
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
                    "staged/digests.parquet": "handoff/digests.parquet",
                    "staged/changes.parquet": f"handoff/changes/{run_id}.parquet"}
@@ -438,7 +436,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "chunks": handoff.chunks,
             "tokens": tokens,
             "changes": {"upsert": handoff.upserts, "delete": handoff.deletes},
-            "handoff": "access columns rewritten" if handoff.access_only else "rebuilt",
+            "handoff": handoff.mode,
             "probes": probe_summary,
             "withheld": handoff.withheld,
             "failures": len(acc.failures),

@@ -41,6 +41,9 @@ class Plan:
     access: dict[str, tuple[list[str], str | None, str]] = field(default_factory=dict)
     access_section: Any = None  # the definition's access section, for members found later
     source_section: Any = None  # the definition's source section (live path rule), likewise
+    # doc_id -> live path of the documents live after the latest run (its catalog), so
+    # the hand-off knows which documents it held or withheld; None: unknown.
+    previous_live: dict[str, str | None] | None = None
 
 
 def _ts(epoch: float) -> datetime:
@@ -216,7 +219,8 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
     return Plan(catalog=catalog, jobs=jobs, skipped=skipped, deleted=deleted, live=live, copies=copies,
                 seq_of=seq_of, sequence=sequence, run_id=run_id, chain=chain, awaited=awaited,
                 access=document_access(rows, definition.model.access), access_section=definition.model.access,
-                source_section=definition.model.source)
+                source_section=definition.model.source,
+                previous_live={r["doc_id"]: r.get("canonical_path") for r in old if r["present"]})
 
 
 def member_chain(row_at: dict[str, dict], canonical: dict[str, str], path: str) -> tuple[str, tuple[str, ...]]:

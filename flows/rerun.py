@@ -117,7 +117,8 @@ def make_rerun_plan(store: Store, targets: list[RerunTarget], source_root: str,
                            member_of=inside))
     return Plan(catalog=catalog, jobs=jobs, skipped=[], deleted=[], live=live, copies=copies,
                 access=document_access(catalog.to_pylist(), access or AccessSection()),
-                access_section=access or AccessSection(), source_section=source or SourceSection())
+                access_section=access or AccessSection(), source_section=source or SourceSection(),
+                previous_live={d: v[1] for d, v in live.items()})  # a re-run keeps the catalog
 
 
 def describe(targets: list[RerunTarget]) -> list[str]:

@@ -1,0 +1,148 @@
+"""The hand-off copied forward: a run that changed a few documents streams the previous
+hand-off and reads only those documents from the stages, and writes the very bytes a
+rebuild from every stage writes (hand-off and digests), whatever changed."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import pytest
+import yaml
+
+from thresher.flows import pipeline
+from thresher.flows.access import document_access
+from thresher.flows.config import build_definition, default_config_text
+from thresher.flows.handoff import build_handoff, handoff_basis
+from thresher.flows.plan import live_documents
+from thresher.flows.store import Store
+
+TOPICS = ["seed library", "repair cafe", "reading room heating", "van route", "story hour", "loan periods",
+          "volunteer rota", "room bookings", "lost property", "printing charges"]
+
+
+def _note(topic: str, n: int) -> str:
+    words = " ".join(f"{topic.split()[0]}{i}" for i in range(40))
+    return f"# {topic.title()}\n\nNotes on the {topic} at branch {n}: {words}.\n"
+
+
+# A paragraph long enough that one changed word leaves its 5-word shingles well above
+# dedup's 0.8 threshold: the older copy's chunk is dropped as a near duplicate.
+SHARED = " ".join(f"Members may renew a loan twice online or at any desk, unless another member has reserved "
+                  f"the item; notice {i}." for i in range(6))
+
+
+def _definition(max_tokens: int = 400):
+    data = yaml.safe_load(default_config_text())
+    for step in data["steps"]:
+        if step["step"] == "split":
+            step["params"]["max_tokens"] = max_tokens
+    return build_definition(data, "test")
+
+
+def _run(drive: Path, store: Path, definition, **kw) -> dict:
+    return pipeline.run(definition, str(drive), str(store), workers=1, quiet=True, **kw)
+
+
+def _rebuilt_bytes(store_dir: Path, definition, run_id: str) -> tuple[bytes, bytes]:
+    """The latest run's hand-off and digests rebuilt from every stage, under its run id."""
+    store = Store(store_dir)
+    catalog = store.catalog().to_pylist()
+    _, live, copies = live_documents(catalog, {r.run_id: r.sequence for r in store.runs()}, store.next_sequence(),
+                                     definition.model.source)
+    scratch = "runs/rebuild-check"
+    result = build_handoff(definition, store, run_id, live, document_access(catalog, definition.model.access),
+                           f"{scratch}/chunks.parquet", f"{scratch}/digests.parquet", f"{scratch}/changes.parquet",
+                           basis=handoff_basis(definition), copies=copies)  # no previous_live: a rebuild
+    assert result.mode == "rebuilt"
+    out = ((store_dir / scratch / "chunks.parquet").read_bytes(), (store_dir / scratch / "digests.parquet").read_bytes())
+    store.delete_dir(scratch)
+    return out
+
+
+def _same_as_rebuild(store_dir: Path, definition, m: dict) -> None:
+    chunks, digests = _rebuilt_bytes(store_dir, definition, m["run_id"])
+    assert (store_dir / "handoff" / "chunks.parquet").read_bytes() == chunks
+    assert (store_dir / "handoff" / "digests.parquet").read_bytes() == digests
+
+
+def _texts(store_dir: Path) -> dict[str, list[str]]:
+    out: dict[str, list[str]] = {}
+    for r in Store(store_dir).handoff().to_pylist():
+        out.setdefault(r["source_path"], []).append(r["text"])
+    return out
+
+
+@pytest.mark.timeout(300)
+def test_a_copied_forward_handoff_is_byte_for_byte_a_rebuild(prefect_harness, tmp_path, monkeypatch):
+    # Small groups, batches and row groups, so this small drive spans many of each and
+    # the copy merges documents into batches as a large drive's would.
+    from thresher.flows import handoff
+
+    monkeypatch.setattr(handoff, "GROUP_DOCS", 3)
+    monkeypatch.setattr(handoff, "REWRITE_BATCH", 2)
+    monkeypatch.setattr(handoff, "ROW_GROUP", 5)
+    drive, store_dir = tmp_path / "drive", tmp_path / "store"
+    (drive / "notes").mkdir(parents=True)
+    (drive / "policy").mkdir()
+    for i, topic in enumerate(TOPICS):
+        (drive / "notes" / f"{i:02d}.md").write_text(_note(topic, i))
+    older, newer = drive / "policy" / "renewals-2025.md", drive / "policy" / "renewals-2026.md"
+    older.write_text(f"# Renewals\n\n{SHARED}\n")
+    newer.write_text(f"# Renewals\n\n{SHARED.replace('twice', 'three times')}\n")
+    os.utime(older, ns=(1_700_000_000_000_000_000,) * 2)
+    os.utime(newer, ns=(1_760_000_000_000_000_000,) * 2)
+    definition = _definition()
+
+    first = _run(drive, store_dir, definition)
+    assert first["handoff"] == "rebuilt"
+    # dedup keeps the newer revision: the older one's chunk is not handed off.
+    assert "policy/renewals-2025.md" not in _texts(store_dir) and "policy/renewals-2026.md" in _texts(store_dir)
+    _same_as_rebuild(store_dir, definition, first)
+
+    same = _run(drive, store_dir, definition)
+    assert same["handoff"] == "access columns rewritten" and same["changes"] == {"upsert": 0, "delete": 0}
+    _same_as_rebuild(store_dir, definition, same)
+
+    # An edit, an addition and a removal: three documents read from the stages.
+    (drive / "notes" / "03.md").write_text(_note("van route", 3).replace("branch 3", "the north branch"))
+    (drive / "notes" / "10.md").write_text(_note("book sale", 10))
+    (drive / "notes" / "07.md").unlink()
+    edited = _run(drive, store_dir, definition)
+    assert edited["handoff"].startswith("copied forward, 2 of 12 documents"), edited["handoff"]
+    texts = _texts(store_dir)
+    assert "notes/07.md" not in texts and "the north branch" in texts["notes/03.md"][0] and "notes/10.md" in texts
+    _same_as_rebuild(store_dir, definition, edited)
+
+    # The newer revision changes beyond recognition: dedup revives the older one's chunk,
+    # a document whose file did not change; the copy reads it from the stages.
+    newer.write_text("# Renewals\n\nRenewals are now handled by the new desk system from April onwards.\n")
+    os.utime(newer, ns=(1_760_000_000_000_000_000,) * 2)
+    flipped = _run(drive, store_dir, definition)
+    assert flipped["documents"]["processed"] == 1
+    assert flipped["handoff"].startswith("copied forward, 2 of 12 documents"), flipped["handoff"]
+    assert "policy/renewals-2025.md" in _texts(store_dir)
+    _same_as_rebuild(store_dir, definition, flipped)
+
+    # A rename (no step runs: the live path changes) and a copy at a second path.
+    (drive / "notes" / "01.md").rename(drive / "notes" / "01-repairs.md")
+    (drive / "copy-of-05.md").write_bytes((drive / "notes" / "05.md").read_bytes())
+    os.utime(drive / "copy-of-05.md", ns=(1_600_000_000_000_000_000,) * 2)  # older: notes/05.md stays live
+    moved = _run(drive, store_dir, definition)
+    assert moved["documents"]["processed"] == 0
+    sources = {r["source_path"]: r["source_paths"] for r in Store(store_dir).handoff().to_pylist()}
+    assert sources["notes/05.md"] == ["notes/05.md", "copy-of-05.md"] and "notes/01-repairs.md" in sources
+    assert moved["handoff"].startswith("copied forward, 2 of 12 documents"), moved["handoff"]
+    _same_as_rebuild(store_dir, definition, moved)
+
+    # A re-run of one document from the clean step.
+    doc = next(r["doc_id"] for r in Store(store_dir).handoff().to_pylist() if r["source_path"] == "notes/02.md")
+    rerun = _run(drive, store_dir, definition, rerun={"doc_id": doc, "page": None, "step": "clean"})
+    assert rerun["handoff"].startswith("copied forward, 1 of 12 documents"), rerun["handoff"]
+    _same_as_rebuild(store_dir, definition, rerun)
+
+    # Another chain (a split parameter): every chunk changes, the hand-off is rebuilt.
+    other = _definition(max_tokens=300)
+    rechained = _run(drive, store_dir, other)
+    assert rechained["handoff"] == "rebuilt"
+    _same_as_rebuild(store_dir, other, rechained)
