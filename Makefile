@@ -41,7 +41,7 @@ DEBIAN_TEST_PACKAGES += libsdl2-tests
 # Optional OCR of scanned PDF pages (extract: ocr: true): Tesseract and its English data.
 OCR_PACKAGES := tesseract-ocr tesseract-ocr-eng
 
-.PHONY: demo test bench bench-deps sample clean-store help system-deps ocr fuzz
+.PHONY: demo test bench bench-deps sample clean-store help system-deps ocr fuzz prefect-server prefect-server-stop
 
 help:
 	@echo "make demo    run the default flow on sample_inputs/ (store in .thresher-store/)"
@@ -51,6 +51,8 @@ help:
 	@echo "make sample  regenerate sample_inputs/ from tools/make_sample_drive.py"
 	@echo "make ocr     install Tesseract for scanned PDF pages (extract: ocr: true)"
 	@echo "make office  install LibreOffice to read legacy .doc and .ppt files"
+	@echo "make prefect-server       start a Prefect server in the background (its UI too), for fast runs"
+	@echo "make prefect-server-stop  stop it"
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -109,6 +111,25 @@ fuzz: $(TEST_STAMP)
 
 sample: $(TEST_STAMP)
 	$(BIN)/python tools/make_sample_drive.py
+
+# A Prefect server that outlives the runs: without one, every run starts a temporary
+# server (10-20 s on 2 cores). It listens on 127.0.0.1 only, keeps its database in
+# .prefect-server/, and shows the runs in its UI. Point runs at it with PREFECT_API_URL.
+PREFECT_SERVER_PORT ?= 4200
+PREFECT_SERVER_HOME := $(CURDIR)/.prefect-server
+prefect-server: $(STAMP)
+	@mkdir -p $(PREFECT_SERVER_HOME)
+	PREFECT_HOME=$(PREFECT_SERVER_HOME) DO_NOT_TRACK=1 PREFECT_SERVER_ANALYTICS_ENABLED=false \
+	  $(BIN)/prefect server start --host 127.0.0.1 --port $(PREFECT_SERVER_PORT) --background
+	@# --background returns before the server answers; a run started at once would fail.
+	@$(BIN)/python tools/wait_for_prefect.py http://127.0.0.1:$(PREFECT_SERVER_PORT)/api
+	@echo
+	@echo "runs use it when PREFECT_API_URL is set:"
+	@echo "  export PREFECT_API_URL=http://127.0.0.1:$(PREFECT_SERVER_PORT)/api"
+	@echo "its UI: http://127.0.0.1:$(PREFECT_SERVER_PORT)   stop it: make prefect-server-stop"
+
+prefect-server-stop: $(STAMP)
+	PREFECT_HOME=$(PREFECT_SERVER_HOME) $(BIN)/prefect server stop
 
 clean-store:
 	rm -rf .thresher-store

@@ -5,7 +5,11 @@ Measured side by side in one process run:
      starts Prefect's temporary server, against a second empty flow run;
   2. per batch: a flow submitting N no-op batch tasks against calling the same
      no-op N times in plain Python, so the difference is Prefect's per-task cost;
-  3. the demo drive end to end, and the share of it spent inside the steps.
+  3. the demo drive end to end, and the share of it spent inside the steps;
+  4. the demo drive with nothing changed, run after run: embedded (each run starts
+     its own temporary server) against runs pointed at a Prefect server that outlives
+     them (PREFECT_API_URL, as `make prefect-server` gives), alternating, beside the
+     floor of any run: starting Python and importing thresher's flow with Prefect.
 """
 
 from __future__ import annotations
@@ -94,3 +98,58 @@ def main() -> None:
         print(f"demo drive, fresh process       {wall:.2f} s wall; flow body {m['seconds']:.2f} s; "
               f"steps {inside:.2f} s (summed over workers; {inside / wall:.0%} of wall)")
         shutil.rmtree(store, ignore_errors=True)
+
+    server_fast_path(env)
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def server_fast_path(env: dict, rounds: int = 3) -> dict:
+    """Median wall times of a no-change run of the demo drive, embedded and against a
+    running server, and of the imports alone, measured alternately in one run."""
+    import statistics
+
+    from thresher.flows.runtime import api_unreachable
+
+    thresher = str(Path(sys.executable).with_name("thresher"))
+    with tempfile.TemporaryDirectory() as tmp:
+        port = _free_port()
+        url = f"http://127.0.0.1:{port}/api"
+        server_env = dict(env, PREFECT_HOME=str(Path(tmp) / "server"))
+        server = subprocess.Popen([str(Path(sys.executable).with_name("prefect")), "server", "start", "--host",
+                                   "127.0.0.1", "--port", str(port), "--no-ui"], env=server_env,
+                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        try:
+            end = time.monotonic() + 120
+            while api_unreachable(url, timeout=2) and time.monotonic() < end:
+                time.sleep(0.5)
+            run = [thresher, "run", "--source", str(REPO / "sample_inputs"), "--store", str(Path(tmp) / "store"),
+                   "--quiet"]
+            embedded_env = dict(env, PREFECT_HOME=str(Path(tmp) / "client"))
+            served_env = dict(embedded_env, PREFECT_API_URL=url)
+            subprocess.run(run, check=True, capture_output=True, env=served_env, cwd=REPO)  # the full run
+            times: dict[str, list[float]] = {"imports": [], "embedded": [], "server": []}
+            for _ in range(rounds):
+                for label, cmd, e in (("imports", [sys.executable, "-c", "import thresher.flows.pipeline"], env),
+                                      ("embedded", run, embedded_env), ("server", run, served_env)):
+                    t = time.perf_counter()
+                    subprocess.run(cmd, check=True, capture_output=True, env=e, cwd=REPO)
+                    times[label].append(time.perf_counter() - t)
+        finally:
+            server.terminate()
+            server.wait(timeout=60)
+    med = {k: statistics.median(v) for k, v in times.items()}
+    print(f"demo drive, nothing changed (median of {rounds}, alternating; load average "
+          f"{os.getloadavg()[0]:.1f}):")
+    print(f"  embedded (a temporary server each run)  {med['embedded']:.2f} s wall")
+    print(f"  PREFECT_API_URL to a running server     {med['server']:.2f} s wall   "
+          f"({med['embedded'] / med['server']:.1f}x faster)")
+    print(f"  floor: Python and thresher's imports    {med['imports']:.2f} s wall   "
+          f"({med['imports'] / med['server']:.0%} of the served run)")
+    return med

@@ -280,10 +280,16 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
 
 
 def _need_prefect_api() -> None:
-    """Fail at once, in one line, where embedded Prefect cannot start."""
-    from thresher.flows.runtime import NO_LOCAL_PORT, embedded_server_possible
+    """Fail at once, in one line, where embedded Prefect cannot start or the user's
+    Prefect server (PREFECT_API_URL) does not answer."""
+    from thresher.flows.runtime import NO_LOCAL_PORT, api_unreachable, embedded_server_possible
 
-    if not os.environ.get("PREFECT_API_URL") and not embedded_server_possible():
+    url = os.environ.get("PREFECT_API_URL")
+    if url:
+        problem = api_unreachable(url)
+        if problem:
+            raise UsageError(problem)
+    elif not embedded_server_possible():
         raise UsageError(NO_LOCAL_PORT)
 
 

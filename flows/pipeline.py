@@ -553,12 +553,12 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     """
     from prefect.settings import temporary_settings
 
-    from thresher.flows.runtime import embedded_overrides
+    from thresher.flows.runtime import run_overrides
 
     run_id = new_run_id()
     store = Store(store_root)
     store.acquire_lock(run_id)
-    overrides = embedded_overrides()  # before shared_api sets PREFECT_API_URL for its own server
+    overrides = run_overrides()
     try:
         with shared_api(definition.model.runner.kind), temporary_settings(updates=overrides):
             flow_obj = build_flow(definition, workers,

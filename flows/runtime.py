@@ -55,6 +55,27 @@ def embedded_server_possible() -> bool:
         return False
 
 
+def api_unreachable(url: str, timeout: float = 5.0) -> str | None:
+    """Why the Prefect server at `url` (PREFECT_API_URL) cannot be reached, or None.
+
+    Any HTTP answer counts as reachable (a server behind authentication may refuse the
+    health path); only a refused connection, a name that does not resolve or a timeout
+    is reported, so the run stops in one line instead of Prefect's traceback.
+    """
+    import urllib.error
+    import urllib.request
+
+    try:
+        with urllib.request.urlopen(url.rstrip("/") + "/health", timeout=timeout):
+            return None
+    except urllib.error.HTTPError:
+        return None
+    except (urllib.error.URLError, OSError, ValueError) as exc:
+        reason = getattr(exc, "reason", exc)
+        return (f"PREFECT_API_URL={url} does not answer ({reason}): start that Prefect server "
+                "(`make prefect-server` starts one on 127.0.0.1), or unset PREFECT_API_URL to run embedded")
+
+
 def apply_defaults() -> None:
     for key, value in PREFECT_DEFAULTS.items():
         os.environ.setdefault(key, value)
@@ -63,17 +84,20 @@ def apply_defaults() -> None:
 apply_defaults()
 
 
-# Prefect's flow-run heartbeat feeds automations that mark a stopped run as crashed
-# (docs.prefect.io, "How to detect and respond to zombie flows"); it is only useful
-# to a server that outlives the run. On exit Prefect waits for the heartbeat thread's
-# one-second sleep to end, which made every short run up to a second longer (bench/
-# incremental.py: wall times of short runs fell on whole seconds past their work).
+# Prefect's flow-run heartbeat feeds automations that mark a stopped run as crashed;
+# Prefect's guide to them ("How to detect and respond to zombie flows", docs.prefect.io)
+# has the user turn them on by setting PREFECT_FLOWS_HEARTBEAT_FREQUENCY, for runs of a
+# deployment. On exit Prefect waits for the heartbeat thread's one-second sleep, which
+# made every short run up to a second longer (bench/incremental.py: wall times of short
+# runs fell on whole seconds past their work). A scheduled run (flows/schedule.py) is a
+# deployment's flow run: its parent flow keeps Prefect's heartbeat, only the run inside
+# it goes without.
 HEARTBEAT_VARS = ("PREFECT_FLOWS_HEARTBEAT_FREQUENCY", "PREFECT_RUNNER_HEARTBEAT_FREQUENCY")
 
 
-def embedded_overrides(environ=os.environ) -> dict:
-    """Prefect settings for one embedded run: no heartbeat, unless the user asked for
-    one or a Prefect server of their own (PREFECT_API_URL) takes the run."""
-    if environ.get("PREFECT_API_URL") or any(environ.get(v) for v in HEARTBEAT_VARS):
+def run_overrides(environ=os.environ) -> dict:
+    """Prefect settings for one run of the flow: no heartbeat, unless the user set its
+    frequency (with or without a Prefect server of their own)."""
+    if any(environ.get(v) for v in HEARTBEAT_VARS):
         return {}
     return {"flows.heartbeat_frequency": None}

@@ -6,6 +6,7 @@ import json
 import os
 import re
 import shutil
+import socket
 import subprocess
 import sys
 from collections import Counter
@@ -73,6 +74,23 @@ def test_without_loopback_the_flow_verbs_fail_at_once_in_one_line(verb, tmp_path
     assert r.stderr.strip().splitlines() == [
         f"thresher {verb}: needs a local port on 127.0.0.1 for thresher's embedded Prefect server (is the "
         "loopback interface up?), or PREFECT_API_URL set to a Prefect server"]
+
+
+@pytest.mark.parametrize("verb", ["run", "schedule"])
+def test_a_prefect_server_that_does_not_answer_stops_the_flow_verbs_in_one_line(verb, tmp_path):
+    # A port nothing listens on: Prefect itself would end in a traceback after its retries.
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    env = dict(os.environ, PREFECT_HOME=str(tmp_path / "prefect"), PREFECT_API_URL=f"http://127.0.0.1:{port}/api")
+    r = subprocess.run([THRESHER, verb, "--source", str(SAMPLE), "--store", str(tmp_path / "s")],
+                       capture_output=True, text=True, cwd=tmp_path, env=env, timeout=60)
+    assert r.returncode == 2, r.stderr
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1, r.stderr
+    assert lines[0].startswith(f"thresher {verb}: PREFECT_API_URL=http://127.0.0.1:{port}/api does not answer (")
+    assert "make prefect-server" in lines[0]
+    assert not (tmp_path / "s").exists()  # nothing was created
 
 
 def test_plain_thresher_prints_the_help():

@@ -427,14 +427,16 @@ def test_the_manifests_counts_carried_from_the_last_run_equal_a_full_recount(fir
                        rerun={"doc_id": doc, "page": None, "step": "clean"}))  # a re-run
 
 
-def test_an_embedded_run_sends_no_heartbeat_but_a_server_of_ones_own_keeps_prefects_setting():
+def test_a_run_sends_no_heartbeat_unless_the_user_set_its_frequency():
     from prefect.settings import get_current_settings, temporary_settings
 
-    from thresher.flows.runtime import embedded_overrides
+    from thresher.flows.runtime import run_overrides
 
-    assert embedded_overrides({}) == {"flows.heartbeat_frequency": None}
-    assert embedded_overrides({"PREFECT_API_URL": "http://127.0.0.1:4200/api"}) == {}
-    assert embedded_overrides({"PREFECT_FLOWS_HEARTBEAT_FREQUENCY": "60"}) == {}
+    assert run_overrides({}) == {"flows.heartbeat_frequency": None}
+    assert run_overrides({"PREFECT_API_URL": "http://127.0.0.1:4200/api"}) == {"flows.heartbeat_frequency": None}
+    assert run_overrides({"PREFECT_FLOWS_HEARTBEAT_FREQUENCY": "60"}) == {}
+    assert run_overrides({"PREFECT_RUNNER_HEARTBEAT_FREQUENCY": "60",
+                               "PREFECT_API_URL": "http://127.0.0.1:4200/api"}) == {}
     # The override is one Prefect accepts: the flow engine then starts no heartbeat thread.
-    with temporary_settings(updates=embedded_overrides({})):
+    with temporary_settings(updates=run_overrides({})):
         assert get_current_settings().flows.heartbeat_frequency is None
