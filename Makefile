@@ -46,7 +46,7 @@ OCR_PACKAGES := tesseract-ocr tesseract-ocr-eng
 help:
 	@echo "make demo    run the default flow on sample_inputs/ (store in .thresher-store/)"
 	@echo "make test    run the test suite"
-	@echo "make bench   run the benchmarks (prints measured ratios)"
+	@echo "make bench   run the benchmarks, the throughput goals table first (prints measured ratios)"
 	@echo "make fuzz    extraction of thousands of damaged files (make test runs a few hundred)"
 	@echo "make sample  regenerate sample_inputs/ from tools/make_sample_drive.py"
 	@echo "make ocr     install Tesseract for scanned PDF pages (extract: ocr: true)"
