@@ -63,6 +63,20 @@ def inputs_key(step: ResolvedStep, live_docs: dict[str, tuple[int, str, int]]) -
     return h.hexdigest()
 
 
+def stored_result(step: ResolvedStep, key: str, previous: dict[str, Any] | None, rewrite: set[str],
+                  affected: set[str]) -> CorpusResult | None:
+    """The latest run's result for this corpus step when its inputs are as that run
+    left them, so it would decide the same and its stored rows stand; else None.
+
+    Inputs as left: no document's input rows written in this run (`rewrite`), no
+    earlier corpus step's rows changed (`affected`), and the same inputs_key (`key`)
+    as `previous` (the latest committed run's manifest) recorded."""
+    before = (previous or {}).get("corpus_inputs") or {}
+    if rewrite or affected or before.get(step.name) != key:
+        return None
+    return CorpusResult(step.name, set(), dict((previous or {}).get("written", {}).get(step.name, {})), 0, 0.0)
+
+
 def _freeze(v: Any) -> Any:
     if isinstance(v, dict):
         return tuple(sorted((k, _freeze(x)) for k, x in v.items()))

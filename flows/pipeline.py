@@ -28,7 +28,7 @@ from prefect.futures import as_completed
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from thresher.flows.config import FlowDefinition, build_definition
-from thresher.flows.corpus import CorpusResult, inputs_key, run_corpus_step
+from thresher.flows.corpus import inputs_key, run_corpus_step, stored_result
 from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, unit_kind
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
@@ -227,10 +227,8 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                force: bool = False, previous: dict[str, Any] | None = None) -> _Progress:
     """Every segment of the chain in order, for the documents the plan names.
 
-    `previous`: the latest committed run's manifest. A corpus step whose inputs are
-    as that run left them (no input row written this run, the same live documents
-    at the same paths, ranks and times, the same step digest) would decide the same:
-    it is not run, and its stored rows stand."""
+    `previous`: the latest committed run's manifest; a corpus step whose inputs are
+    as that run left them is not run (corpus.stored_result)."""
     model = definition.model
     names = [s.name for s in definition.steps]
     acc = _Progress()
@@ -246,11 +244,8 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             step = definition.steps[index]
             rewrite = set(processed) | {j.doc_id for j in plan.jobs if j.start <= index}
             key = acc.corpus_inputs[step.name] = inputs_key(step, plan.live)
-            before = (previous or {}).get("corpus_inputs") or {}
-            if not rewrite and not affected and before.get(step.name) == key:
-                # Same inputs as the latest run decided on: the same decisions, stored.
-                res = CorpusResult(step.name, set(), dict((previous or {}).get("written", {}).get(step.name, {})),
-                                   0, 0.0)
+            res = stored_result(step, key, previous, rewrite, affected)
+            if res is not None:
                 acc.add(res.stage, res.counts)
                 _emit(progress, f"{label}: inputs unchanged since run {previous['run_id']}, nothing to decide")
             else:
