@@ -54,12 +54,18 @@ class CorpusResult:
     seconds: float
 
 
-def inputs_key(step: ResolvedStep, live_docs: dict[str, tuple[int, str, int]]) -> str:
+def live_inputs(live_docs: dict[str, tuple[int, str, int]]) -> bytes:
+    """Every live document's rank, path and modification time, encoded once per run
+    for the corpus steps' inputs keys (a drive's worth of JSON, not one per step)."""
+    return json.dumps(sorted(live_docs.items()), separators=(",", ":")).encode()
+
+
+def inputs_key(step: ResolvedStep, live: bytes) -> str:
     """What a corpus step's decisions depend on besides its input rows: the step and
-    every step before it (its digest) and every live document's rank, path and
-    modification time. Recorded per run in the manifest (`corpus_inputs`)."""
+    every step before it (its digest) and the live documents (`live`, from
+    live_inputs). Recorded per run in the manifest (`corpus_inputs`)."""
     h = hashlib.sha256(step.digest.encode())
-    h.update(json.dumps(sorted(live_docs.items()), separators=(",", ":")).encode())
+    h.update(live)
     return h.hexdigest()
 
 

@@ -28,7 +28,7 @@ from prefect.futures import as_completed
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from thresher.flows.config import FlowDefinition, build_definition
-from thresher.flows.corpus import inputs_key, run_corpus_step, stored_result
+from thresher.flows.corpus import inputs_key, live_inputs, run_corpus_step, stored_result
 from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, unit_kind
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
@@ -235,6 +235,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
     processed: set[str] = set()
     affected: set[str] = set()  # documents whose corpus-step rows changed
     jobs_by_doc = {j.doc_id: j for j in plan.jobs}
+    live_of, live_enc = None, b""  # plan.live encoded for inputs_key, once
     first_batch_done = False
     for kind, indices in _segments(definition):
         t0 = time.perf_counter()
@@ -243,7 +244,9 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             index = indices[0]
             step = definition.steps[index]
             rewrite = set(processed) | {j.doc_id for j in plan.jobs if j.start <= index}
-            key = acc.corpus_inputs[step.name] = inputs_key(step, plan.live)
+            if live_of is not plan.live:  # the live set is final once the first segment found members
+                live_of, live_enc = plan.live, live_inputs(plan.live)
+            key = acc.corpus_inputs[step.name] = inputs_key(step, live_enc)
             res = stored_result(step, key, previous, rewrite, affected)
             if res is not None:
                 acc.add(res.stage, res.counts)
