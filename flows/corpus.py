@@ -69,18 +69,41 @@ def inputs_key(step: ResolvedStep, live: bytes) -> str:
     return h.hexdigest()
 
 
-def stored_result(step: ResolvedStep, key: str, previous: dict[str, Any] | None, rewrite: set[str],
-                  affected: set[str]) -> CorpusResult | None:
-    """The latest run's result for this corpus step when its inputs are as that run
-    left them, so it would decide the same and its stored rows stand; else None.
+def stored_result(definition: FlowDefinition, store: Store, run_id: str, index: int, key: str,
+                  previous: dict[str, Any] | None, rewrite: set[str], affected: set[str],
+                  live_docs: dict[str, tuple[int, str, int]],
+                  previous_live: dict[str, str | None] | None) -> CorpusResult | None:
+    """The latest run's result for the corpus step at `index` when its inputs are as
+    that run left them, so it would decide the same and its stored rows stand; else None.
 
     Inputs as left: no document's input rows written in this run (`rewrite`), no
     earlier corpus step's rows changed (`affected`), and the same inputs_key (`key`)
-    as `previous` (the latest committed run's manifest) recorded."""
+    as `previous` (the latest committed run's manifest) recorded.
+
+    A page step limited to some formats (the HTML boilerplate step) gets only the
+    pages, paths and ranks of documents of those formats (no modification time), so
+    for it the inputs are also as left when none of the documents this run wrote,
+    changed in an earlier corpus step, added, removed or moved is of those formats
+    (by the first stage's format column, read for those documents only), under the
+    same chain. Such a step is expected to depend on the order of ranks, not on
+    their values (a removal elsewhere shifts the values, never the order).
+    """
+    step = definition.steps[index]
     before = (previous or {}).get("corpus_inputs") or {}
-    if rewrite or affected or before.get(step.name) != key:
+    if step.name not in before:
         return None
-    return CorpusResult(step.name, set(), dict((previous or {}).get("written", {}).get(step.name, {})), 0, 0.0)
+    stored = CorpusResult(step.name, set(), dict((previous or {}).get("written", {}).get(step.name, {})), 0, 0.0)
+    if not rewrite and not affected and before[step.name] == key:
+        return stored
+    if (not step.spec.formats or unit_kind(step) != "pages" or previous_live is None
+            or previous.get("chain_digest") != definition.chain_digest):
+        return None
+    moved = {d for d, v in live_docs.items() if previous_live.get(d) != v[1]}
+    changed = sorted(set(rewrite) | set(affected) | moved | (set(previous_live) - set(live_docs)))
+    formats = _formats(store, definition, changed, run_id)
+    if any(formats.get(d) is None or formats[d] in step.spec.formats for d in changed):
+        return None
+    return stored
 
 
 def _freeze(v: Any) -> Any:
@@ -173,10 +196,16 @@ def _of_formats(store: Store, definition: FlowDefinition, step: ResolvedStep, do
     HTML pages the HTML-only step holds those pages, not the drive."""
     if not step.spec.formats or not doc_ids:
         return doc_ids
+    return sorted(d for d, f in _formats(store, definition, doc_ids, run_id).items() if f in step.spec.formats)
+
+
+def _formats(store: Store, definition: FlowDefinition, doc_ids: list[str], run_id: str) -> dict[str, str | None]:
+    """doc_id -> format, from the first stage's format column (no text read)."""
+    if not doc_ids:
+        return {}
     first = definition.steps[0]
     t = store.current(first.name, first.spec.produces, doc_ids, columns=["doc_id", "format"], include_run=run_id)
-    mask = pc.is_in(t.column("format"), value_set=pa.array(list(step.spec.formats), pa.string()))
-    return sorted(set(t.filter(mask).column("doc_id").to_pylist()))
+    return dict(zip(t.column("doc_id").to_pylist(), t.column("format").to_pylist()))
 
 
 # ----------------------------------------------------------------------------- incremental

@@ -247,7 +247,8 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             if live_of is not plan.live:  # the live set is final once the first segment found members
                 live_of, live_enc = plan.live, live_inputs(plan.live)
             key = acc.corpus_inputs[step.name] = inputs_key(step, live_enc)
-            res = stored_result(step, key, previous, rewrite, affected)
+            res = stored_result(definition, Store(store_root), run_id, index, key, previous, rewrite, affected,
+                                plan.live, plan.previous_live)
             if res is not None:
                 acc.add(res.stage, res.counts)
                 _emit(progress, f"{label}: inputs unchanged since run {previous['run_id']}, nothing to decide")

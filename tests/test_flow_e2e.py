@@ -303,6 +303,41 @@ def test_a_corpus_page_step_rewrites_documents_when_the_corpus_changes(prefect_h
     assert dict(rota[0]["notes"])["removed"] == "1" and rota[0]["attempt"] == 2
 
 
+def test_the_html_boilerplate_step_runs_only_when_an_html_document_changed(prefect_harness, tmp_path, capsys):
+    drive, store_dir = _small_drive(tmp_path / "drive"), tmp_path / "store"
+    site = drive / "site"
+    site.mkdir()
+    footer = "Quillfern branch pages are kept by the volunteers' web group; send corrections to the desk."
+    for name, body in (("hours", "The north branch opens at nine on weekdays and at ten on Saturdays."),
+                       ("events", "The spring book sale runs for two weeks in the main hall from April."),
+                       ("join", "Membership is free for everyone who lives or works in the district.")):
+        (site / f"{name}.html").write_text(f"<html><body><h1>{name.title()}</h1><p>{body}</p>"
+                                           f"<p>{footer}</p></body></html>")
+
+    def run() -> tuple[dict, str]:
+        capsys.readouterr()
+        m = pipeline.run(load_definition(), str(drive), str(store_dir), workers=1)
+        return m, capsys.readouterr().err
+
+    def site_texts() -> list[str]:
+        return [r["text"] for r in Store(store_dir).handoff().to_pylist() if r["source_path"].startswith("site/")]
+
+    run()
+    assert site_texts() and not any(footer in t for t in site_texts())
+    # Only Markdown changed (an edit and a new file): the HTML step keeps its decisions.
+    (drive / "notes.md").write_text("# Notes\n\nThe book club now meets on Wednesdays at six.\n")
+    (drive / "rota.md").write_text("# Rota\n\nThe rota for May is on the staff room board.\n")
+    m, out = run()
+    assert m["documents"]["processed"] == 2 and "boilerplate: inputs unchanged since run" in out
+    assert not any(footer in t for t in site_texts())
+    # An HTML page goes: the site is too small to tell template from content, and the
+    # step decides again (the footer comes back on the two pages left).
+    (site / "join.html").unlink()
+    m, out = run()
+    assert m["documents"]["processed"] == 0 and "boilerplate: inputs unchanged" not in out
+    assert sum(footer in t for t in site_texts()) == 2
+
+
 def test_prefect_receives_the_run_logs_and_a_per_document_artifact(first_run):
     import asyncio
     import time as _time
