@@ -85,3 +85,20 @@ def test_rules_on_small_texts():
     assert "private-use" in unreadable("Opening hours \ue000\ue001\ue002 daily")
     assert "(cid:N)" in unreadable("(cid:12)(cid:15)(cid:3) (cid:9)")
     assert "wrong characters" in unreadable("бook rеturns аre due")
+
+
+def test_the_fast_character_classes_match_unicodedata_on_every_code_point():
+    # The text-layer judge counts private-use characters with one pattern, and outline
+    # titles are compared after removing what str.isalnum() rejects with another: both
+    # stand for Python's Unicode database (unicodedata.category "Co", str.isalnum) and
+    # must agree with it on every code point of the database this Python ships.
+    import sys
+    import unicodedata
+
+    from thresher.steps.extract.pdf import _NOT_ALNUM
+    from thresher.steps.extract.text_layer import _PRIVATE_USE
+
+    everything = "".join(map(chr, range(sys.maxunicode + 1)))
+    assert _NOT_ALNUM.sub("", everything) == "".join(c for c in everything if c.isalnum())
+    assert "".join(_PRIVATE_USE.findall(everything)) == "".join(
+        c for c in everything if unicodedata.category(c) == "Co")

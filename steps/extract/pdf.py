@@ -82,6 +82,7 @@ import re
 import unicodedata
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
+from functools import lru_cache
 
 import pypdfium2 as pdfium
 
@@ -455,9 +456,12 @@ def _is_heading(line: Line, body: float, body_bold: bool, ratio: float) -> bool:
     )
 
 
+_NOT_ALNUM = re.compile(r"[\W_]+")  # removes exactly what str.isalnum() rejects
+
+
+@lru_cache(maxsize=8192)  # every outline entry of a page compares against the same lines
 def _norm(text: str) -> str:
-    text = unicodedata.normalize("NFKC", text).casefold()
-    return "".join(ch for ch in text if ch.isalnum())
+    return _NOT_ALNUM.sub("", unicodedata.normalize("NFKC", text).casefold())
 
 
 def _norm_variants(text: str) -> set[str]:

@@ -21,6 +21,7 @@ from __future__ import annotations
 import re
 import unicodedata
 from collections import Counter
+from functools import lru_cache
 
 MIXED_MIN = 3
 MIXED_SHARE = 0.02
@@ -30,8 +31,11 @@ MARK_SHARE = 0.01
 _CJK = {"CJK", "HIRAGANA", "KATAKANA", "KATAKANA-HIRAGANA", "HANGUL", "IDEOGRAPHIC", "HALFWIDTH"}
 _WORD = re.compile(r"\w+")
 _CID = re.compile(r"\(cid:\d+\)")
+# Unicode's private-use areas, exactly the characters of general category Co.
+_PRIVATE_USE = re.compile("[\ue000-\uf8ff\U000f0000-\U000ffffd\U00100000-\U0010fffd]")
 
 
+@lru_cache(maxsize=4096)  # a page has few distinct letters; names were looked up per letter
 def _script(ch: str) -> str:
     try:
         first = unicodedata.name(ch).split()[0]
@@ -44,6 +48,8 @@ def mixed_words(text: str) -> Counter:
     """Words that mix scripts no language writes together, by script pair."""
     out: Counter = Counter()
     for word in _WORD.findall(text):
+        if word.isascii():  # Latin letters, digits and underscore: one script at most
+            continue
         scripts = {_script(c) for c in word if c.isalpha()}
         if "CJK" in scripts:
             scripts.discard("LATIN")
@@ -62,7 +68,7 @@ def unreadable(text: str) -> str:
         return (f"text layer maps glyphs to the wrong characters: {n_mixed} of {words} words "
                 f"mix scripts no language writes together ({pairs})")
     marks = {
-        "private-use characters": sum(1 for c in text if unicodedata.category(c) == "Co"),
+        "private-use characters": len(_PRIVATE_USE.findall(text)),
         "replacement characters (U+FFFD)": text.count("\ufffd"),
         "(cid:N) placeholders": len(_CID.findall(text)),
     }
