@@ -174,7 +174,7 @@ _ESTIMATE_SLACK = 2
 _CHARS_PER_TOKEN_LIMIT = 10
 
 
-@dataclass
+@dataclass(slots=True)
 class _Atom:
     """A piece that is never cut further: a slice [start, end) of the document text."""
 
@@ -402,14 +402,14 @@ class _Splitter:
         def fits(text: str) -> bool:
             return (self.count(prefix + text) if prefix else self.count(text)) <= self.max
 
-        atoms = []
+        doc, count, atoms = self.doc, self._slices.count, []
         for s, e in spans:
             s, e = start + s, start + e
-            text = self.doc[s:e]
-            n = self.span(s, e)
-            if (n + lead if not prefix else self.count(prefix + text)) <= self.max:
+            n = count(s, e)
+            if (n <= self.max) if not prefix else (self.count(prefix + doc[s:e]) <= self.max):
                 atoms.append(_Atom(s, e, n, prefix))
                 continue
+            text = doc[s:e]
             if lines and "\n" in text:
                 atoms.extend(self.atoms_for(s, e, _line_spans(text), prefix))
                 continue
