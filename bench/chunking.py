@@ -18,10 +18,22 @@ Prints chunks per second and tokens per second of clean+split+tokens, and the ra
 of its time to encode_ordinary_batch's; and the same ratios in CPU time of this process
 against encode_ordinary one by one (all single-threaded), which a machine busy with
 other work disturbs far less than wall time.
+
+`python -m bench.chunking --against TREE` compares this checkout's steps with those of
+another checkout of thresher (a `git worktree add` of an older commit) side by side:
+child processes measure the CPU time of each step and of encode_ordinary (item 2 and
+the CPU figures above; no language step), the two trees in turn, AGAINST_ROUNDS times
+each; the fastest of each figure is printed for both trees with its ratio to
+encode_ordinary measured in the same process, and the load average.
 """
 
 from __future__ import annotations
 
+import json
+import os
+import subprocess
+import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -56,7 +68,93 @@ def load_corpus(limit: int = CORPUS_BYTES) -> list[tuple[str, str]]:
     return docs
 
 
-def main() -> None:
+AGAINST_ROUNDS = 2
+
+
+def cpu_figures() -> dict[str, float]:
+    """CPU seconds of clean, split and tokens over the corpus, and of encode_ordinary one
+    document after the other, the fastest of ROUNDS rounds each (no language step)."""
+    from thresher.flows.encodings import get_encoding
+    from thresher.steps.clean import CleanParams, clean
+    from thresher.steps.extract.text import text_blocks
+    from thresher.steps.spec import StepContext
+    from thresher.steps.split import SplitParams, split
+    from thresher.steps.tokens import TokensParams, count_tokens
+    from thresher.steps.units import Page
+
+    docs = load_corpus()
+    enc = get_encoding("cl100k_base")
+    enc.encode_ordinary("warm up")
+    ctx = StepContext(encoding=get_encoding)
+    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")]
+             for _, text in docs]
+    clean_p, split_p, tokens_p = CleanParams(), SplitParams(), TokensParams()
+    best = {"clean": 1e9, "split": 1e9, "tokens": 1e9, "single": 1e9}
+    chunks_seen = 0
+    for _ in range(ROUNDS):
+        used = {"clean": 0.0, "split": 0.0, "tokens": 0.0}
+        chunks_seen = 0
+        for doc_pages in pages:
+            p0 = time.process_time()
+            cleaned = [p for p in clean(doc_pages, clean_p) if p.ok]
+            p1 = time.process_time()
+            chunks = split(cleaned, split_p, ctx) if cleaned else []
+            p2 = time.process_time()
+            chunks_seen += len(count_tokens(chunks, tokens_p, ctx))
+            p3 = time.process_time()
+            used["clean"] += p1 - p0
+            used["split"] += p2 - p1
+            used["tokens"] += p3 - p2
+        p0 = time.process_time()
+        for _, text in docs:
+            enc.encode_ordinary(text)
+        used["single"] = time.process_time() - p0
+        for key, value in used.items():
+            best[key] = min(best[key], value)
+    best["chunks"] = chunks_seen
+    return best
+
+
+def against(tree: str) -> None:
+    """This checkout and `tree` side by side (see the module docstring)."""
+    here = Path(__file__).resolve().parent.parent
+    with tempfile.TemporaryDirectory() as tmp:
+        # thresher is the checkout's root directory: a link named thresher puts the other
+        # tree's package first on the import path of its child processes.
+        os.symlink(Path(tree).resolve(), Path(tmp) / "thresher")
+        envs = {"before": dict(os.environ, PYTHONPATH=tmp), "after": dict(os.environ)}
+        best: dict[str, dict[str, float]] = {}
+        for _ in range(AGAINST_ROUNDS):
+            for label, env in envs.items():
+                out = subprocess.run([sys.executable, "-m", "bench.chunking", "--figures"], cwd=here,
+                                     env=env, check=True, capture_output=True, text=True).stdout
+                figures = json.loads(out.strip().splitlines()[-1])
+                for key, value in figures.items():
+                    best.setdefault(label, {})[key] = min(best.get(label, {}).get(key, 1e9), value)
+    b, a = best["before"], best["after"]
+    print(f"CPU seconds, fastest of {AGAINST_ROUNDS} x {ROUNDS} rounds; before = {tree}, "
+          f"after = {here}; ratio = step / encode_ordinary in the same process")
+    print(f"{'':8} {'before':>8} {'ratio':>6}   {'after':>8} {'ratio':>6}")
+    for key in ("clean", "split", "tokens"):
+        print(f"{key:8} {b[key]:8.3f} {b[key] / b['single']:5.2f}x   {a[key]:8.3f} {a[key] / a['single']:5.2f}x")
+    bt = b["clean"] + b["split"] + b["tokens"]
+    at = a["clean"] + a["split"] + a["tokens"]
+    print(f"{'all':8} {bt:8.3f} {bt / b['single']:5.2f}x   {at:8.3f} {at / a['single']:5.2f}x")
+    print(f"encode_ordinary one by one: {b['single']:.3f} s / {a['single']:.3f} s; chunks "
+          f"{int(b['chunks'])} / {int(a['chunks'])}; load average {os.getloadavg()[0]:.2f}")
+
+
+def main(argv: list[str] | None = None) -> None:
+    argv = argv or []
+    if argv[:1] == ["--figures"]:
+        print(json.dumps(cpu_figures()))
+        return
+    if argv[:1] == ["--against"] and len(argv) == 2:
+        against(argv[1])
+        return
+    if argv:
+        print("usage: python -m bench.chunking [--against TREE]", file=sys.stderr)
+        sys.exit(2)
     from thresher.flows.encodings import get_encoding
     from thresher.steps.clean import CleanParams, clean
     from thresher.steps.extract.text import text_blocks
@@ -165,4 +263,4 @@ def main() -> None:
 
 
 if __name__ == "__main__":
-    main()
+    main(sys.argv[1:])
