@@ -693,9 +693,8 @@ def chunk_language(blocks: list[_Placed], starts: list[int], pages: list[Page], 
     parts = []
     page_chars: dict[int, int] = {}
     first = max(0, bisect.bisect_right(starts, start) - 1)
-    for block in blocks[first:]:
-        if block.start >= end:
-            break
+    # Only the blocks that start before the span ends (not a copy of all the rest).
+    for block in blocks[first:bisect.bisect_left(starts, end, first)]:
         chars = min(end, block.end) - max(start, block.start)
         if chars <= 0:
             continue
