@@ -25,6 +25,7 @@ child processes measure the CPU time of each step and of encode_ordinary (item 2
 the CPU figures above; no language step), the two trees in turn, AGAINST_ROUNDS times
 each; the fastest of each figure is printed for both trees with its ratio to
 encode_ordinary measured in the same process, and the load average.
+`python -m bench.chunking --profile` prints where each step's CPU time goes (cProfile).
 """
 
 from __future__ import annotations
@@ -144,8 +145,79 @@ def against(tree: str) -> None:
           f"{int(b['chunks'])} / {int(a['chunks'])}; load average {os.getloadavg()[0]:.2f}")
 
 
+def profile(top: int = 14) -> None:
+    """cProfile with the CPU clock over each step on the corpus: the functions with the
+    most time of their own, as shares of the step's total (the profiler's own cost per
+    call inflates many small calls, so read shares, not seconds)."""
+    import cProfile
+    import pstats
+
+    from thresher.flows.encodings import get_encoding
+    from thresher.steps.clean import CleanParams, clean
+    from thresher.steps.extract.text import text_blocks
+    from thresher.steps.spec import StepContext
+    from thresher.steps.split import SplitParams, split
+    from thresher.steps.tokens import TokensParams, count_tokens
+    from thresher.steps.units import Page
+
+    docs = load_corpus()
+    get_encoding("cl100k_base").encode_ordinary("warm up")
+    ctx = StepContext(encoding=get_encoding)
+    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")]
+             for _, text in docs]
+    cleaned = [[p for p in clean(d, CleanParams()) if p.ok] for d in pages]
+    chunks = [split(c, SplitParams(), ctx) if c else [] for c in cleaned]
+    runs = {
+        "clean": lambda: [clean(d, CleanParams()) for d in pages],
+        "split": lambda: [split(c, SplitParams(), ctx) for c in cleaned if c],
+        "tokens": lambda: [count_tokens(c, TokensParams(), ctx) for c in chunks],
+    }
+    # The same split in parts, without the profiler (CPU seconds, fastest of ROUNDS).
+    from thresher.steps import split as split_module
+    from thresher.steps.token_offsets import SliceCounter
+
+    enc = get_encoding("cl100k_base")
+    params = SplitParams()
+    parts: dict[str, float] = {}
+    for _ in range(ROUNDS):
+        spent = dict.fromkeys(["split", "sections", "encode", "counter", "pieces"], 0.0)
+        for c in (c for c in cleaned if c):
+            p0 = time.process_time()
+            split(c, params, ctx)
+            p1 = time.process_time()
+            doc, _, sections, _ = split_module._sections(c)
+            p2 = time.process_time()
+            enc.encode_ordinary(doc)
+            p3 = time.process_time()
+            splitter = split_module._Splitter(enc, params, doc)  # encodes the document again
+            p4 = time.process_time()
+            split_module._pieces(splitter, sections, params)
+            p5 = time.process_time()
+            for key, value in zip(spent, (p1 - p0, p2 - p1, p3 - p2, p4 - p3 - (p3 - p2), p5 - p4)):
+                spent[key] += value
+        parts = {k: min(parts.get(k, 1e9), v) for k, v in spent.items()}
+    rest = parts["split"] - parts["sections"] - parts["encode"] - parts["counter"] - parts["pieces"]
+    print(f"split in parts, CPU s without the profiler (fastest of {ROUNDS}): all {parts['split']:.3f}; "
+          f"whole-document encode {parts['encode']:.3f}; slice counter beyond it {parts['counter']:.3f}; "
+          f"sections {parts['sections']:.3f}; atoms and packing {parts['pieces']:.3f}; "
+          f"the rest (chunk records, languages, garbage collection) {rest:.3f}")
+    for name, run in runs.items():
+        prof = cProfile.Profile(time.process_time)
+        prof.runcall(run)
+        stats = pstats.Stats(prof).stats
+        total = sum(tt for _, _, tt, _, _ in stats.values())
+        print(f"{name}: {total:.2f} CPU s under the profiler; own time by function:")
+        rows = sorted(stats.items(), key=lambda kv: -kv[1][2])[:top]
+        for (path, line, func), (_, calls, tt, ct, _) in rows:
+            where = f"{Path(path).name}:{line}({func})" if line else func
+            print(f"  {tt / total:6.1%}  own, {ct / total:6.1%} with callees  {calls:>8} calls  {where}")
+
+
 def main(argv: list[str] | None = None) -> None:
     argv = argv or []
+    if argv[:1] == ["--profile"]:
+        profile()
+        return
     if argv[:1] == ["--figures"]:
         print(json.dumps(cpu_figures()))
         return
@@ -153,7 +225,7 @@ def main(argv: list[str] | None = None) -> None:
         against(argv[1])
         return
     if argv:
-        print("usage: python -m bench.chunking [--against TREE]", file=sys.stderr)
+        print("usage: python -m bench.chunking [--against TREE | --profile]", file=sys.stderr)
         sys.exit(2)
     from thresher.flows.encodings import get_encoding
     from thresher.steps.clean import CleanParams, clean
