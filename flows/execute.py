@@ -20,9 +20,10 @@ from typing import Any
 
 from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
+from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_units
 from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, RemoteError, TimeLimitExceeded,
                                     isolation_available)
-from thresher.flows.rows import RowContext, row_to_unit, rows_to_table, to_row
+from thresher.flows.rows import RowContext, rows_to_table, to_row
 from thresher.flows.segment import StepCall, StepDone, failed_document_unit, order_key, run_segment
 from thresher.flows.store import Store
 from thresher.steps.spec import StepContext
@@ -84,14 +85,6 @@ class BatchResult:
     members: list[MemberInfo] = field(default_factory=list)
 
 
-@dataclass
-class Loaded:
-    """A document's ok units at the stage they were read from."""
-
-    stage: str
-    units: list[Unit]
-
-
 def now_utc() -> datetime:
     return datetime.now(timezone.utc)
 
@@ -124,34 +117,16 @@ def applies_to(step: ResolvedStep, units: list[Unit]) -> bool:
     return any(u.format in step.spec.formats for u in units)
 
 
+def trail(definition: FlowDefinition, before: int) -> tuple[Stage, ...]:
+    """The steps before step `before`, as a read of their stored units needs them."""
+    return tuple(Stage(s.name, unit_kind(s), bool(s.spec.formats)) for s in definition.steps[:before])
+
+
 def load_units(store: Store, definition: FlowDefinition, before: int, doc_ids: list[str],
                run_id: str) -> dict[str, Loaded]:
-    """Per document, the ok units of the nearest stage before step `before` that holds it.
-
-    Walks back over format-limited stages that passed a document by; a stage that is
-    not format-limited and holds no ok unit of a document ends its trail there.
-    """
-    out: dict[str, Loaded] = {}
-    remaining = set(doc_ids)
-    i = before - 1
-    while remaining and i >= 0:
-        step = definition.steps[i]
-        kind = unit_kind(step)
-        table = store.current(step.name, kind, sorted(remaining), include_run=run_id)
-        found: dict[str, list[Unit]] = defaultdict(list)
-        held = set()
-        for row in table.to_pylist():
-            held.add(row["doc_id"])
-            if row["status"] == OK:
-                found[row["doc_id"]].append(row_to_unit(step.name, kind, row))
-        for d in held:
-            units = sorted(found.get(d, []), key=_order_key)
-            out[d] = Loaded(step.name, units)
-        remaining -= held
-        if not step.spec.formats:
-            break
-        i -= 1
-    return out
+    """Per document, the ok units of the nearest stage before step `before` that holds it
+    (inputs.read_units)."""
+    return read_units(store, trail(definition, before), doc_ids, run_id)
 
 
 _failed_document_unit = failed_document_unit
@@ -248,10 +223,21 @@ class BatchRunner:
             for i in job.segment:
                 step = self.definition.steps[i]
                 self._attempts[step.name] = self.store.max_attempts(step.name, unit_kind(step), known)
-        stored: dict[str, Loaded] = {}
+        # Documents that start past the first step read their inputs from the store: a
+        # warm worker reads them, once for the batch (inputs.resolve), so that work runs
+        # on the workers' cores, not under this process's interpreter lock.
+        stored: dict[str, Loaded | StoredInputs] = {}
         for start, docs in by_start.items():
-            if start > 0:
-                stored.update(load_units(self.store, self.definition, start, [d.doc_id for d in docs], self.run_id))
+            if start == 0:
+                continue
+            ids = [d.doc_id for d in docs]
+            if isolation_available():
+                batch_ids, path = tuple(ids), trail(self.definition, start)
+                # An absolute root: a worker's working folder is the fork server's.
+                root = self.store.root if "://" in self.store.root else self.store.base
+                stored.update({d: StoredInputs(root, self.run_id, path, batch_ids, d) for d in ids})
+            else:
+                stored.update(load_units(self.store, self.definition, start, ids, self.run_id))
         try:
             for doc in job.docs:
                 start = max(doc.start, job.segment[0])
@@ -268,7 +254,7 @@ class BatchRunner:
         result.seconds = time.perf_counter() - t0
         return result
 
-    def _run_document(self, doc: DocJob, indices: list[int], stored: Loaded | None,
+    def _run_document(self, doc: DocJob, indices: list[int], stored: Loaded | StoredInputs | None,
                       rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
                       result: BatchResult) -> None:
         steps = self.definition.steps
@@ -301,6 +287,8 @@ class BatchRunner:
                 return
             inputs: Any = Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime, len(doc.member_of))
             prev = None
+        elif isinstance(stored, StoredInputs):
+            inputs, prev = stored, None  # the worker reads them and says from which stage
         else:
             if stored is None or not stored.units:
                 return  # nothing upstream is ok: the trail ends at the earlier stage
@@ -368,11 +356,15 @@ class BatchRunner:
             calls = [self._step_call(i) for i in indices[pos:]]
             last: tuple[StepDone, list[Unit], str] | None = None
             first_out: list[Unit] | None = None
-            step_inputs = inputs
+            # The locators of the units the running step reads: a failure's parents.
+            parents = [] if isinstance(inputs, (Source, StoredInputs)) else [u.locator for u in inputs]
             t_mark = time.perf_counter()
             try:
                 for done in caller.stream(run_segment, (calls, inputs, doc.doc_id, doc.source_path,
                                                         doc.only is not None and pos == 0)):
+                    if isinstance(done, ReadFrom):
+                        prev, parents = done.stage, done.locators
+                        continue
                     step = steps[done.index]
                     out, scope = done.units, "document"
                     if doc.only is not None and done.index == indices[0]:
@@ -382,7 +374,7 @@ class BatchRunner:
                     prev, last = step.name, (done, out, scope)
                     if done.index == 0:
                         first_out = out
-                    step_inputs = sorted((u for u in out if u.ok), key=_order_key)
+                    parents = [u.locator for u in sorted((u for u in out if u.ok), key=_order_key)]
                     t_mark = time.perf_counter()
                     if len(out) != n or (out and out[0] is not head):
                         break  # its rows could not be stored: the worker's next steps are moot
@@ -391,12 +383,26 @@ class BatchRunner:
                     raise  # cannot happen: nothing is sent after the first step
                 # A step that cannot be sent to a worker (a function made at run time)
                 # runs here instead.
+                if isinstance(inputs, StoredInputs):
+                    loaded = load_units(self.store, self.definition, indices[0], [doc.doc_id], self.run_id)
+                    got = loaded.get(doc.doc_id)
+                    if got is None or not got.units:
+                        return
+                    inputs, prev = got.units, got.stage
                 self._run_here(doc, indices[pos:], inputs, prev, rows, writes, result)
                 return
             except (TimeLimitExceeded, ChildCrashed, RemoteError) as exc:
+                if isinstance(inputs, StoredInputs) and last is None and caller.current is None:
+                    # The worker failed reading the inputs, before any step: read them
+                    # here, so a damaged store fails the batch as a read here would.
+                    loaded = load_units(self.store, self.definition, indices[0], [doc.doc_id], self.run_id)
+                    got = loaded.get(doc.doc_id)
+                    if got is None or not got.units:
+                        return
+                    inputs, prev = got.units, got.stage
+                    continue
                 index = caller.current if isinstance(caller.current, int) else calls[0].index
                 step = steps[index]
-                parents = [] if isinstance(step_inputs, Source) else [u.locator for u in step_inputs]
                 ms = (exc.taken if isinstance(exc, TimeLimitExceeded) else time.perf_counter() - t_mark) * 1000.0
                 self._record(doc, step, prev, [_worker_failure(step, exc, parents)], now_utc(), ms,
                              rows, writes, result)

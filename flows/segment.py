@@ -4,7 +4,8 @@ The parent (execute.BatchRunner) sends a document's input and the steps of a seg
 `run_segment` runs them one after the other in the worker and yields each step's
 units as soon as they are ready, so the parent stores rows while the next step runs.
 Before each step it yields a Clock with that step's time limit: the parent times each
-step from its own start. No Prefect and no store here.
+step from its own start. A document whose inputs are stored is read here first
+(flows/inputs.py). No Prefect here; the store only to read inputs.
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ from datetime import datetime, timezone
 from typing import Any, Callable
 
 from thresher.flows.encodings import get_encoding
+from thresher.flows.inputs import ReadFrom, StoredInputs, order_key, resolve
 from thresher.flows.isolate import Clock
 from thresher.flows.rows import unit_id
 from thresher.steps.spec import StepContext, StepParams
@@ -47,12 +49,6 @@ class StepDone:
     paused: bool = False  # the worker stopped here so the parent can act first
 
 
-def order_key(unit: Unit) -> tuple:
-    if isinstance(unit, Chunk):
-        return (unit.index, unit.locator)
-    return (unit.page or 0, unit.locator)
-
-
 def failed_document_unit(kind: str, reason: str, exc: BaseException | None, parents: list[str]) -> Unit:
     unit: Unit = Page(locator=DOCUMENT_LOCATOR) if kind == "pages" else Chunk(locator=DOCUMENT_LOCATOR)
     unit.parents = parents
@@ -83,7 +79,15 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
 
     The worker stops after the first step when `pause_first` (a re-run of chosen units:
     the parent merges them with the stored ones) or when extraction found documents
-    inside the document (the parent runs those first, as their own documents)."""
+    inside the document (the parent runs those first, as their own documents).
+    `inputs` may be StoredInputs: then they are read here first (a ReadFrom says from
+    which stage), and a document with no ok unit there runs no step."""
+    if isinstance(inputs, StoredInputs):
+        loaded = resolve(inputs)
+        if loaded is None or not loaded.units:
+            return
+        yield ReadFrom(loaded.stage, [u.locator for u in loaded.units])
+        inputs = loaded.units
     for k, call in enumerate(calls):
         if passes_by(call, inputs):
             continue

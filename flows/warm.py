@@ -1,11 +1,11 @@
 """Imported once by the fork server of the worker processes (flows/isolate.py), so
-every worker starts with the text steps imported, the default token encoding parsed
+every worker starts with the text steps and the store's readers imported, the default token encoding parsed
 (with the per-token byte lengths split counts with) and the language profiles loaded,
 instead of paying for them in each new worker."""
 
 from __future__ import annotations
 
-from thresher.flows import segment  # noqa: F401 - the code a worker runs
+from thresher.flows import inputs, segment  # noqa: F401 - the code a worker runs (inputs reads the store)
 from thresher.steps import clean, language, personal, split, tokens  # noqa: F401
 
 

@@ -65,6 +65,17 @@ STUBBORN_EXTRACT = StepSpec(name="extract", version="test", consumes="source", p
                             time_limit=lambda p: p.time_limit_seconds)
 
 
+def fragile_pages(pages, params, ctx):
+    """Passes pages on, except that its process dies on a page that asks it to."""
+    if any("PLEASE CRASH" in b.text for p in pages for b in p.blocks):
+        os._exit(70)
+    return [replace(p, parents=[p.locator]) for p in pages]
+
+
+FRAGILE_PAGES = StepSpec(name="fragile", version="1", consumes="pages", produces="pages", scope="document",
+                         params=NoParams, run=fragile_pages)
+
+
 def tag_html(pages, params, ctx):
     return [replace(p, parents=[p.locator], payload={"tagged": "yes"}) for p in pages]
 

@@ -108,3 +108,34 @@ def test_a_hung_parser_is_stopped_at_the_time_limit_and_the_batch_goes_on(tmp_pa
     assert rows["fine.txt"]["status"] == "ok"  # the document after the hang got a fresh process
     split = store.current("split", "chunks", include_run="r1").to_pylist()
     assert [r["source_path"] for r in split] == ["fine.txt"]
+
+
+def test_a_worker_that_dies_on_a_document_read_from_the_store_costs_that_document_alone(tmp_path):
+    """A segment after a corpus step reads its inputs in the warm worker, once per batch;
+    the worker that replaces a dead one reads what is left of the batch again."""
+    files = {"a.txt": "The reading room opens at nine on weekdays and at ten on Saturdays.\n",
+             "b.txt": "PLEASE CRASH the way a step in C code can take its process down.\n",
+             "c.txt": "The mobile library visits the northern villages every second Tuesday.\n"}
+    data = _document_steps(yaml.safe_load(default_config_text()))
+    data["steps"].insert(1, {"step": "example_steps:FRAGILE_PAGES"})
+    definition = build_definition(data, "test")
+    store = Store(tmp_path / "store")
+    docs = []
+    for name, text in files.items():
+        (tmp_path / name).write_text(text)
+        docs.append(DocJob(_sha(text.encode()), name, str(tmp_path / name), len(text), 0.0, 0, False))
+    runner = BatchRunner(definition, store, "r1")
+    runner.run(BatchJob("r1", store.root, [0], "b0", docs))  # extract, stored
+    later = [DocJob(d.doc_id, d.source_path, d.abs_path, d.size, d.mtime, 1, False) for d in docs]
+    runner.run(BatchJob("r1", store.root, _segment(definition)[1:], "b1", later))
+    extract = {}
+    for r in store.current("extract", "pages", include_run="r1").to_pylist():
+        extract.setdefault(r["source_path"], set()).add(r["unit_id"])
+    rows = {r["source_path"]: r for r in store.current("fragile", "pages", include_run="r1").to_pylist()}
+    assert rows["b.txt"]["reason"] == "fragile crashed: the parser process died (exit code 70)"
+    assert rows["a.txt"]["status"] == rows["c.txt"]["status"] == "ok"
+    # Lineage runs back to the stored extract rows, the failed document's included.
+    for name in files:
+        assert set(rows[name]["parent_ids"]) == extract[name]
+    split = store.current("split", "chunks", include_run="r1").to_pylist()
+    assert sorted({r["source_path"] for r in split}) == ["a.txt", "c.txt"]
