@@ -4,6 +4,10 @@ drive of a few large PDFs and many small files.
 Threads are in the list because every document step runs in a warm worker process
 (flows/segment.py), so even a thread pool runs the steps on several cores at once.
 
+Knobs (environment): THRESHER_BENCH_SCALE_DOCUMENTS (small files, 1200),
+THRESHER_BENCH_SCALE_LARGE (book-length PDFs, 6), THRESHER_BENCH_SCALE_BATCH (documents
+per batch; the default runner's unless set).
+
 Each configuration runs as its own `thresher run` process against one Prefect server
 started here first (so no configuration pays for a server start), and is measured
 the same way: wall time, peak memory of its whole process tree (polled with psutil),
@@ -23,8 +27,11 @@ from pathlib import Path
 
 from bench.drive import add_large_pdfs, make_drive
 
-SMALL_DOCUMENTS = 1200
-LARGE_PDFS = 6
+SMALL_DOCUMENTS = int(os.environ.get("THRESHER_BENCH_SCALE_DOCUMENTS", "1200"))
+LARGE_PDFS = int(os.environ.get("THRESHER_BENCH_SCALE_LARGE", "6"))
+# Documents per batch: the default runner's unless set (the figure the goal is about is
+# the default runner's).
+BATCH_SIZE = os.environ.get("THRESHER_BENCH_SCALE_BATCH")
 
 
 def _tree_rss(pid: int) -> int:
@@ -44,7 +51,10 @@ def _tree_rss(pid: int) -> int:
     return total
 
 
-def _measure(cmd: list[str], env: dict) -> tuple[float, int, dict]:
+def _measure(cmd: list[str], env: dict) -> tuple[float, int, dict, tuple[float, float]]:
+    """Wall time, peak memory of the process tree, the run's manifest, and the one-minute
+    load average before and after (the machine is shared: a figure means little without it)."""
+    load_before = os.getloadavg()[0]
     peak = 0
     t = time.perf_counter()
     proc = subprocess.Popen(cmd, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -64,7 +74,7 @@ def _measure(cmd: list[str], env: dict) -> tuple[float, int, dict]:
     watcher.join()
     if proc.returncode != 0:
         raise RuntimeError(f"{' '.join(cmd)} failed: {err[-2000:]}")
-    return wall, peak, json.loads(out)
+    return wall, peak, json.loads(out), (load_before, os.getloadavg()[0])
 
 
 def main() -> None:
@@ -73,6 +83,12 @@ def main() -> None:
 
     from thresher.flows.pipeline import _free_port
 
+    import yaml
+
+    from thresher.flows.config import default_config_text
+
+    default = yaml.safe_load(default_config_text())["runner"]
+    batch_size = int(BATCH_SIZE or default["batch_size"])
     workers = os.cpu_count() or 2
     server = SubprocessASGIServer(port=_free_port())
     server.start(timeout=120)
@@ -92,7 +108,7 @@ def main() -> None:
             results = {}
             for label, runner in configs.items():
                 flow = Path(tmp) / f"{runner['kind']}.yaml"
-                flow.write_text(json.dumps({"runner": {**runner, "batch_size": 8},
+                flow.write_text(json.dumps({"runner": {**runner, "batch_size": batch_size},
                                             "steps": _default_steps()}))
                 store = Path(tmp) / f"store-{runner['kind']}"
                 results[label] = _measure([thresher, "run", "--config", str(flow), "--source", str(drive),
@@ -102,22 +118,27 @@ def main() -> None:
     base = next(iter(results.values()))[0]
     first = next(iter(results.values()))[2]
     print(f"drive: {first['documents']['files']} files, {first['pages']} pages, {first['chunks']} chunks; "
-          f"{workers} cores")
-    print(f"{'configuration':<28} {'wall s':>7} {'speed-up':>8} {'peak MB':>8} {'outside steps':>13}")
-    for label, (wall, peak, m) in results.items():
+          f"{workers} cores; batch size {batch_size}; default runner: {default['kind']}, "
+          f"{default['workers']} workers")
+    print(f"{'configuration':<28} {'wall s':>7} {'speed-up':>8} {'peak MB':>8} {'outside steps':>13} "
+          f"{'load before/after':>17}")
+    for label, (wall, peak, m, load) in results.items():
         n = 1 if label.startswith("1 worker") else workers
         # Step time is summed over workers; spread over n of them it is the steps' share of wall time.
         outside = max(0.0, 1 - m["step_seconds"] / n / wall)
-        print(f"{label:<28} {wall:7.2f} {base / wall:8.2f} {peak / 2**20:8.0f} {outside:13.0%}")
+        print(f"{label:<28} {wall:7.2f} {base / wall:8.2f} {peak / 2**20:8.0f} {outside:13.0%} "
+              f"{load[0]:8.1f}/{load[1]:.1f}")
     # Where the flow's time went, per part of the run (the manifest's timings), side by side.
     parts = list(first["timings"])
     print("flow time per part, s: " + "; ".join(
         f"{label}: " + ", ".join(f"{k} {m['timings'].get(k, 0):.1f}" for k in parts)
-        for label, (_, _, m) in results.items()))
-    segs = [k for k in parts if k not in ("plan", "handoff", "boilerplate", "dedup")]
+        for label, (_, _, m, _) in results.items()))
+    # The document segments: the parts named after steps joined by "+" or a lone step
+    # that is not a corpus step (plan, handoff and counts are not steps).
+    segs = [k for k in parts if k not in ("plan", "handoff", "counts", "boilerplate", "dedup")]
     print("document segments (" + ", ".join(segs) + ") against one worker: " + "; ".join(
         f"{label} {sum(first['timings'][k] for k in segs) / max(1e-9, sum(m['timings'].get(k, 0) for k in segs)):.2f}x"
-        for label, (_, _, m) in results.items()))
+        for label, (_, _, m, _) in results.items()))
 
 
 def _default_steps() -> list:
