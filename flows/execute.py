@@ -186,6 +186,12 @@ def _rows_for(step: ResolvedStep, ctx: RowContext, units: list[Unit]) -> list[di
     return rows
 
 
+def _may_pause(doc: DocJob, indices: list[int]) -> bool:
+    """The worker may stop after the first step for this process to act (segment.run_segment):
+    a re-run of chosen units, or extraction followed by more steps (documents found inside)."""
+    return doc.only is not None or (indices[0] == 0 and len(indices) > 1)
+
+
 class BatchRunner:
     """Runs one segment of the chain for a batch of documents."""
 
@@ -198,6 +204,9 @@ class BatchRunner:
         self._catalog: dict[str, set[str]] | None = None  # doc_id -> chain digests it was processed with
         self._members_seen: set[str] = set()
         self._force = False
+        # The batch's next document and, once made ready ahead of its turn, its inputs.
+        self._following: tuple | None = None
+        self._prepared: tuple | None = None
 
     def _caller_for(self, step: ResolvedStep) -> IsolatedCaller | None:
         if step.spec.time_limit is None or step.spec.time_limit(step.params) is None:
@@ -238,12 +247,14 @@ class BatchRunner:
                 stored.update({d: StoredInputs(root, self.run_id, path, batch_ids, d) for d in ids})
             else:
                 stored.update(load_units(self.store, self.definition, start, ids, self.run_id))
+        plan = [(doc, [i for i in job.segment if i >= max(doc.start, job.segment[0])], stored.get(doc.doc_id))
+                for doc in job.docs]
         try:
-            for doc in job.docs:
-                start = max(doc.start, job.segment[0])
-                self._run_document(doc, [i for i in job.segment if i >= start], stored.get(doc.doc_id),
-                                   rows, writes, result)
+            for k, (doc, indices, inputs) in enumerate(plan):
+                self._following = plan[k + 1] if k + 1 < len(plan) else None
+                self._run_document(doc, indices, inputs, rows, writes, result)
         finally:
+            self._following, self._prepared = None, None
             if self._caller is not None:
                 _give_back(self._caller)
                 self._caller = None
@@ -257,46 +268,75 @@ class BatchRunner:
     def _run_document(self, doc: DocJob, indices: list[int], stored: Loaded | StoredInputs | None,
                       rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
                       result: BatchResult) -> None:
-        steps = self.definition.steps
         if not indices:
             return
-        first = indices[0]
-        if first == 0:
-            spec, params = steps[0].spec, steps[0].params
-            limit = spec.source_limit(params) if spec.source_limit else None
-            try:
-                if limit is not None and doc.size > limit:
-                    data = b""
-                elif doc.data is not None:
-                    data = doc.data
-                elif doc.member_of:
-                    data = self._member_bytes(doc)
-                else:
-                    data = Path(doc.abs_path).read_bytes()
-            except OSError as exc:  # moved, deleted or locked since the scan: this file only
-                failed = _failed_document_unit("pages", f"cannot read file: {exc.strerror or exc}", exc, [])
-                self._record(doc, steps[0], None, [failed], now_utc(), 0.0, rows, writes, result)
-                return
-            if data and hashlib.sha256(data).hexdigest() != doc.doc_id:
-                # Rewritten between the scan and this read: these bytes are not the
-                # document the catalog names; the next run scans the new version.
-                failed = _failed_document_unit("pages", "file changed while the run read it (its content hash "
-                                               "differs from the scan's); the next run reads the new version",
-                                               None, [])
-                self._record(doc, steps[0], None, [failed], now_utc(), 0.0, rows, writes, result)
-                return
-            inputs: Any = Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime, len(doc.member_of))
-            prev = None
-        elif isinstance(stored, StoredInputs):
-            inputs, prev = stored, None  # the worker reads them and says from which stage
-        else:
-            if stored is None or not stored.units:
-                return  # nothing upstream is ok: the trail ends at the earlier stage
-            inputs, prev = stored.units, stored.stage
+        prepared = self._prepared
+        if prepared is not None and prepared[0] is doc:
+            self._prepared = None
+        else:  # not made ready while the previous one ran (or a document found inside one)
+            prepared = (doc, self._inputs(doc, indices, stored))
+        what, inputs, prev = prepared[1]
+        if what == "none":
+            return  # nothing upstream is ok: the trail ends at the earlier stage
+        if what == "failed":
+            self._record(doc, self.definition.steps[0], None, [inputs], now_utc(), 0.0, rows, writes, result)
+            return
         if isolation_available():
             self._run_in_worker(doc, indices, inputs, prev, rows, writes, result)
         else:
             self._run_here(doc, indices, inputs, prev, rows, writes, result)
+
+    def _inputs(self, doc: DocJob, indices: list[int],
+                stored: Loaded | StoredInputs | None) -> tuple[str, Any, str | None]:
+        """What the document's first step reads: ("run", inputs, the stage they came from),
+        ("failed", the unit that says why the file cannot be read, None) or ("none", ...)
+        when nothing upstream is ok. Records nothing, so it may run ahead of its turn."""
+        steps = self.definition.steps
+        if indices[0] != 0:
+            if isinstance(stored, StoredInputs):
+                return "run", stored, None  # the worker reads them and says from which stage
+            if stored is None or not stored.units:
+                return "none", None, None
+            return "run", stored.units, stored.stage
+        spec, params = steps[0].spec, steps[0].params
+        limit = spec.source_limit(params) if spec.source_limit else None
+        try:
+            if limit is not None and doc.size > limit:
+                data = b""
+            elif doc.data is not None:
+                data = doc.data
+            elif doc.member_of:
+                data = self._member_bytes(doc)
+            else:
+                data = Path(doc.abs_path).read_bytes()
+        except OSError as exc:  # moved, deleted or locked since the scan: this file only
+            return "failed", _failed_document_unit("pages", f"cannot read file: {exc.strerror or exc}", exc, []), None
+        if data and hashlib.sha256(data).hexdigest() != doc.doc_id:
+            # Rewritten between the scan and this read: these bytes are not the
+            # document the catalog names; the next run scans the new version.
+            return "failed", _failed_document_unit("pages", "file changed while the run read it (its content hash "
+                                                   "differs from the scan's); the next run reads the new version",
+                                                   None, []), None
+        return "run", Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime, len(doc.member_of)), None
+
+    def _queue_following(self) -> tuple | None:
+        """Once the worker has started a document: the batch's next one, made ready and
+        handed to the worker now (IsolatedCaller.stream's `following`), so the worker goes
+        straight on to it while this process records and stores the current one. Not for
+        a document whose segment may pause for this process (a re-run of chosen units,
+        or extraction followed by more steps: documents found inside)."""
+        nxt, self._following = self._following, None
+        if nxt is None or not isolation_available():
+            return None
+        doc, indices, stored = nxt
+        if not indices or _may_pause(doc, indices):
+            return None
+        self._prepared = (doc, self._inputs(doc, indices, stored))
+        what, inputs, _ = self._prepared[1]
+        if what != "run":
+            return None
+        calls = [self._step_call(i) for i in indices]
+        return run_segment, (calls, inputs, doc.doc_id, doc.source_path, False), doc
 
     def _run_here(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
                   rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
@@ -361,7 +401,9 @@ class BatchRunner:
             t_mark = time.perf_counter()
             try:
                 for done in caller.stream(run_segment, (calls, inputs, doc.doc_id, doc.source_path,
-                                                        doc.only is not None and pos == 0)):
+                                                        doc.only is not None and pos == 0),
+                                          token=doc if pos == 0 else None,
+                                          following=None if _may_pause(doc, indices) else self._queue_following):
                     if isinstance(done, ReadFrom):
                         prev, parents = done.stage, done.locators
                         continue

@@ -50,3 +50,25 @@ def test_a_streamed_call_times_each_piece_from_its_own_start_and_a_stopped_worke
         # 0.3 s limit holds for 0.1 s of work however long the new worker takes to start.
         again = list(caller.stream(timed_pieces, ([(0.3, 0.1)],)))
         assert again[0][1] != worker
+
+
+def test_a_call_queued_behind_another_runs_in_the_same_worker_timed_from_its_own_start():
+    from example_steps import timed_pieces
+
+    with IsolatedCaller() as caller:
+        # Queued while the first call's 1 s piece runs: it waits about 1 s in the child's
+        # pipe, which its 0.5 s limit must not count; the same warm worker takes it.
+        second = (timed_pieces, ([(0.5, 0.2)],), "second")
+        first = list(caller.stream(timed_pieces, ([(5.0, 1.0)],), following=lambda: second))
+        got = list(caller.stream(timed_pieces, ([(0.5, 0.2)],), token="second"))
+        assert [n for n, _ in got] == [0] and got[0][1] == first[0][1]
+        # A queued call that runs over its own limit is stopped like any other.
+        third = (timed_pieces, ([(0.5, 3600)],), "third")
+        list(caller.stream(timed_pieces, ([(5.0, 0.1)],), following=lambda: third))
+        with pytest.raises(TimeLimitExceeded) as info:
+            list(caller.stream(timed_pieces, ([(0.5, 3600)],), token="third"))
+        assert 0.5 <= info.value.taken < 1.0
+        # A call other than the queued one never gets the queued one's results.
+        fourth = (timed_pieces, ([(None, 0.0), (None, 0.0)],), "fourth")
+        list(caller.stream(timed_pieces, ([(5.0, 0.1)],), following=lambda: fourth))
+        assert [n for n, _ in caller.stream(timed_pieces, ([(None, 0.0)],), token="other")] == [0]
