@@ -111,6 +111,9 @@ _SOFT_HYPHEN_BREAK = re.compile(f"{SOFT_HYPHEN}[^\\S\\n]*\\n[^\\S\\n]*")
 _ASCII_TOUCHED = re.compile("[\x00-\x08\x0b-\x1f\x7f]")
 # A hyphen (ASCII or U+2010) ending a line after a letter, the next line's first word.
 _LINE_END_HYPHEN = re.compile(r"([^\W\d_]+)([-\u2010])\n(\w+)")
+# What dehyphenate_text looks for first, and the letters before such a hyphen.
+_HYPHEN_BREAK = re.compile("[-\u2010]\n")
+_LETTERS_TO_END = re.compile(r"[^\W\d_]+$")
 _WORD = re.compile(r"\w+(?:[-\u2010]\w+)*")
 _DIGITS = re.compile(r"\d+")
 
@@ -342,7 +345,21 @@ def dehyphenate_text(text: str, vocabulary: Counter) -> tuple[str, int]:
         keep = vocabulary.get(hyphenated, 0) > vocabulary.get(closed, 0)
         return left + (hyphen if keep else "") + right
 
-    return _LINE_END_HYPHEN.sub(join, text), joins
+    # The matches _LINE_END_HYPHEN.sub would make, in order, found from the line-end
+    # hyphens: sub tries every position of the text and backtracks through every
+    # word, several times slower on hard-wrapped text. A match starts where the run of
+    # letters before a hyphen starts (never before the previous match's end).
+    parts, done = [], 0
+    for hyphen in _HYPHEN_BREAK.finditer(text):
+        h = hyphen.start()
+        if h <= done:
+            continue
+        run = _LETTERS_TO_END.search(text, max(done, text.rfind("\n", 0, h) + 1), h)
+        match = _LINE_END_HYPHEN.match(text, run.start()) if run else None
+        if match:
+            parts += [text[done:match.start()], join(match)]
+            done = match.end()
+    return ("".join(parts) + text[done:] if parts else text), joins
 
 
 def _line_key(line: str) -> str:

@@ -227,6 +227,37 @@ def test_closed_spelling_elsewhere_wins_over_a_hyphenated_one():
     assert run(Block(PARAGRAPH, text)).blocks[0].text.startswith("Ask at the frontdesk.")
 
 
+def test_dehyphenation_makes_the_matches_of_its_rule_as_one_regular_expression():
+    # dehyphenate_text finds line-end hyphens first; the rule it implements is the
+    # single expression _LINE_END_HYPHEN applied by re.sub, used here as the reference
+    # on random text made of the pieces that decide a match (letters of several
+    # scripts, digits, "_", superscripts that are \w but not letters, both hyphens).
+    import random
+    from collections import Counter
+
+    from thresher.steps.clean import _LINE_END_HYPHEN, dehyphenate_text
+
+    def reference(text, vocabulary):
+        def join(m):
+            left, hyphen, right = m.groups()
+            if not right[0].islower():
+                return m.group(0)
+            keep = vocabulary.get((left + "-" + right).casefold(), 0) > vocabulary.get((left + right).casefold(), 0)
+            return left + (hyphen if keep else "") + right
+        return _LINE_END_HYPHEN.sub(join, text), len([m for m in _LINE_END_HYPHEN.finditer(text)
+                                                      if m.group(3)[0].islower()])
+
+    pieces = ["co", "op", "Er", "ß", "é", "日本", "3", "_", "\u00b2", "-", "\u2010", "\n", " ", "-\n", "a-\nb"]
+    vocabulary = Counter({"co-op": 2, "coop": 1, "er-op": 1})
+    rng = random.Random(11)
+    joined = 0
+    for _ in range(3000):
+        text = "".join(rng.choice(pieces) for _ in range(rng.randint(1, 30)))
+        assert dehyphenate_text(text, vocabulary) == reference(text, vocabulary), repr(text)
+        joined += reference(text, vocabulary)[1]
+    assert joined > 1000
+
+
 def test_not_a_broken_word_is_left_alone():
     text = "Send an E-\nMail to the desk\nOpening hours -\nsee below\nRoom 12-\n14"
     out = run(Block(PARAGRAPH, text))
