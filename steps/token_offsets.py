@@ -49,7 +49,7 @@ def _token_bytes(enc) -> np.ndarray:
 
 def _anchor_mask(codes: np.ndarray) -> np.ndarray:
     """True at m (1 <= m < n) when codes[m-1] is an ASCII letter and codes[m] an ASCII
-    character that is not a letter or an apostrophe."""
+    character that is not a letter or an apostrophe (codes: characters or UTF-8 bytes)."""
     low = codes | 32
     letter = (low >= 97) & (low <= 122)
     right = (codes < 128) & ~letter & (codes != 39)
@@ -69,25 +69,29 @@ class SliceCounter:
         self._edges: dict[str, int] = {}
         if getattr(enc, "name", None) not in ANCHOR_ENCODINGS or len(text) < 2 * _SHORT:
             return
-        tokens = np.asarray(enc.encode_ordinary(text), dtype=np.int64)
+        # encode(text, disallowed_special=()) is encode_ordinary (tiktoken's docstring of
+        # encode_ordinary says so); the numpy form skips building a list of ints.
+        tokens = enc.encode_to_numpy(text, disallowed_special=())
         byte_ends = np.cumsum(_token_bytes(enc)[tokens])
-        codes = np.frombuffer(text.encode("utf-32-le"), dtype=np.uint32)
-        mask = _anchor_mask(codes)
-        mask[0] = mask[len(text)] = True
-        chars = np.flatnonzero(mask)
+        # Anchors are ASCII characters, so they sit at the same places in the UTF-8
+        # bytes (every byte of a longer character is >= 0x80): found there, then mapped
+        # to character offsets.
+        data = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
+        mask = _anchor_mask(data)
+        token_end = np.zeros(len(data) + 1, dtype=bool)
+        token_end[byte_ends] = True
+        token_end[0] = True
+        mask[0] = mask[len(data)] = True
+        at_bytes = np.flatnonzero(mask & token_end)  # a token of the whole encoding ends here
+        before = np.searchsorted(byte_ends, at_bytes, side="right")
         if text.isascii():
-            at_bytes = chars
+            chars = at_bytes
         else:
-            # Bytes before char m: where the m-th character starts in UTF-8 (a byte that
-            # is not a continuation byte starts one), or the length at the end.
-            data = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
-            starts = np.append(np.flatnonzero((data & 0xC0) != 0x80), len(data))
-            at_bytes = starts[chars]
-        count = np.searchsorted(byte_ends, at_bytes, side="right")
-        ends_at = np.where(count > 0, byte_ends[np.maximum(count - 1, 0)], 0)
-        keep = ends_at == at_bytes  # a token of the whole encoding ends exactly here
-        self.anchors = chars[keep].tolist()
-        self.before = count[keep].tolist()
+            # Characters before byte b: b less the continuation bytes before it.
+            continued = np.concatenate(([0], np.cumsum((data & 0xC0) == 0x80)))
+            chars = at_bytes - continued[at_bytes]
+        self.anchors = chars.tolist()
+        self.before = before.tolist()
 
     def _encode(self, start: int, end: int) -> int:
         if end <= start:
