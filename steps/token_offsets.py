@@ -31,6 +31,8 @@ ANCHOR_ENCODINGS = frozenset({"cl100k_base", "o200k_base", "p50k_base", "r50k_ba
 # Slices shorter than this are encoded directly (cheaper than the look-ups; measured on
 # the chunking bench: 48 cost 35 % more time in counting than 16).
 _SHORT = 16
+# A text shorter than this is not encoded whole: its few counts are direct encodes.
+_WHOLE = 96
 # Pieces up to this long are remembered per text (counted once).
 _EDGE = 24
 
@@ -67,7 +69,7 @@ class SliceCounter:
         self.anchors: list[int] = []
         self.before: list[int] = []  # tokens of the whole text before each anchor
         self._edges: dict[str, int] = {}
-        if getattr(enc, "name", None) not in ANCHOR_ENCODINGS or len(text) < 2 * _SHORT:
+        if getattr(enc, "name", None) not in ANCHOR_ENCODINGS or len(text) < _WHOLE:
             return
         # encode(text, disallowed_special=()) is encode_ordinary (tiktoken's docstring of
         # encode_ordinary says so); the numpy form skips building a list of ints.
