@@ -308,7 +308,7 @@ def _copy_forward(definition: FlowDefinition, store: Store, run_id: str, previou
             t = pa.Table.from_arrays(columns, schema=schema.HANDOFF)
             # Documents are contiguous and in path order: a fresh one goes before the
             # first row whose path sorts after its own.
-            paths = t.column("source_path").to_pylist()
+            paths = t.column("source_path").to_pylist() if pending else []
             pieces, cut = [], 0
             while pending and pending[0]["source_path"] < paths[-1]:
                 doc, path = pending[0]["doc_id"], pending[0]["source_path"]
@@ -328,21 +328,25 @@ def _copy_forward(definition: FlowDefinition, store: Store, run_id: str, previou
     # from its rows, a copied chunk's from the previous digests (looked up once).
     lookup = pa.concat_tables([pending_digests, old])
     new = lookup.take(pc.index_in(out.chunk_ids(), value_set=lookup.column("chunk_id")))
-    # A chunk's digest covers its access: computed again only for documents whose
-    # access changed (told by each document's first chunk).
-    docs = new.column("doc_id").to_pylist()
-    bodies = new.column("body_digest").to_pylist()
-    digests = new.column("digest").to_pylist()
-    changed: dict[str, bytes | None] = {}
-    for i, d in enumerate(docs):
-        ab = changed.get(d, b"")
-        if ab == b"":
-            ab = _access_bytes(access[d][0], access[d][1])
-            ab = changed[d] = None if _digest(bodies[i], ab) == digests[i] else ab
-        if ab is not None:
-            digests[i] = _digest(bodies[i], ab)
-    return new.set_column(new.schema.get_field_index("digest"), DIGESTS.field("digest"),
-                          pa.array(digests, pa.string()))
+    # A chunk's digest covers its access: computed again only for the chunks of
+    # documents whose access changed (told by each document's first chunk).
+    if not new.num_rows:
+        return new
+    doc_col = new.column("doc_id")
+    docs = pc.unique(doc_col)
+    first = pc.index_in(docs, value_set=doc_col)
+    heads = new.take(first).select(["doc_id", "body_digest", "digest"]).to_pylist()
+    moved = [h["doc_id"] for h in heads
+             if _digest(h["body_digest"], _access_bytes(*access[h["doc_id"]][:2])) != h["digest"]]
+    if not moved:
+        return new
+    mask = pc.is_in(doc_col, value_set=pa.array(moved, pa.string()))
+    again = new.filter(mask)
+    digests = [_digest(b, _access_bytes(*access[d][:2]))
+               for b, d in zip(again.column("body_digest").to_pylist(), again.column("doc_id").to_pylist())]
+    column = pc.replace_with_mask(new.column("digest").combine_chunks(), mask.combine_chunks()
+                                  if isinstance(mask, pa.ChunkedArray) else mask, pa.array(digests, pa.string()))
+    return new.set_column(new.schema.get_field_index("digest"), DIGESTS.field("digest"), column)
 
 
 def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
