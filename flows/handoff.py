@@ -268,13 +268,50 @@ def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[s
     return pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
 
 
+class _FreshRows:
+    """The hand-off rows of documents read from the stages, in path order, one group of
+    GROUP_DOCS documents in memory at a time (read when the copy reaches it)."""
+
+    def __init__(self, definition: FlowDefinition, store: Store, run_id: str, docs: list[str],
+                 live: dict[str, tuple[int, str, int]], access: Access, copies: dict[str, list[str]]):
+        self.args = (definition, store, run_id)
+        self.live, self.access, self.copies = live, access, copies
+        self.groups = [docs[i:i + GROUP_DOCS] for i in range(0, len(docs), GROUP_DOCS)]
+        self.rows: list[dict[str, Any]] = []
+        self.at = 0
+        self.digests: list[dict[str, Any]] = []
+
+    def next_path(self) -> str | None:
+        """The live path of the next document waiting, or None when none is left."""
+        while self.at >= len(self.rows) and self.groups:
+            definition, store, run_id = self.args
+            self.rows = _group_rows(definition, store, run_id, self.groups.pop(0), self.live, self.access,
+                                    self.copies)
+            self.at = 0
+            self.digests += [_digest_row(r) for r in self.rows]
+        return self.rows[self.at]["source_path"] if self.at < len(self.rows) else None
+
+    def take_document(self) -> pa.Table:
+        """The next document's rows (next_path said there is one)."""
+        doc, end = self.rows[self.at]["doc_id"], self.at
+        while end < len(self.rows) and self.rows[end]["doc_id"] == doc:
+            end += 1
+        rows, self.at = self.rows[self.at:end], end
+        return pa.Table.from_pylist(rows, schema=schema.HANDOFF)
+
+    def take_group(self) -> pa.Table:
+        """The rest of the group in memory (next_path said there is a document)."""
+        rows, self.at = self.rows[self.at:], len(self.rows)
+        return pa.Table.from_pylist(rows, schema=schema.HANDOFF)
+
+
 def _copy_forward(definition: FlowDefinition, store: Store, run_id: str, previous_rel: str, old: pa.Table,
                   live: dict[str, tuple[int, str, int]], access: Access, order: list[str], out: _Output,
                   copies: dict[str, list[str]], fresh: list[str]) -> pa.Table:
     """The previous hand-off streamed batch by batch: rows of documents still live and
     not in `fresh` copied with `readers` and `label` replaced; documents now withheld
-    or gone left out; the `fresh` documents (path order) read from the stages and
-    merged in at their place in path order.
+    or gone left out; the `fresh` documents (path order) read from the stages, a group
+    at a time, and merged in at their place in path order.
 
     Only for documents whose stage rows and paths are those of the previous hand-off
     (build_handoff decides): then every other column is what a rebuild gives.
@@ -285,15 +322,9 @@ def _copy_forward(definition: FlowDefinition, store: Store, run_id: str, previou
     readers_type = schema.HANDOFF.field("readers").type
     readers_arr = pa.array([access[d][0] for d in order], readers_type)
     label_arr = pa.array([access[d][1] for d in order], pa.string())
-    pending: list[dict[str, Any]] = []
-    for start in range(0, len(fresh), GROUP_DOCS):
-        pending += _group_rows(definition, store, run_id, fresh[start:start + GROUP_DOCS], live, access, copies)
-    pending_digests = pa.Table.from_pylist([_digest_row(r) for r in pending], schema=DIGESTS)
+    fresh_rows = _FreshRows(definition, store, run_id, fresh, live, access, copies)
     readers_at = schema.HANDOFF.get_field_index("readers")
     label_at = schema.HANDOFF.get_field_index("label")
-
-    def rows_table(rows: list[dict[str, Any]]) -> pa.Table:
-        return pa.Table.from_pylist(rows, schema=schema.HANDOFF)
 
     with store.fs.open_input_file(store.path(previous_rel)) as f:
         for batch in pq.ParquetFile(f).iter_batches(batch_size=REWRITE_BATCH):
@@ -308,21 +339,18 @@ def _copy_forward(definition: FlowDefinition, store: Store, run_id: str, previou
             t = pa.Table.from_arrays(columns, schema=schema.HANDOFF)
             # Documents are contiguous and in path order: a fresh one goes before the
             # first row whose path sorts after its own.
-            paths = t.column("source_path").to_pylist() if pending else []
+            paths = t.column("source_path").to_pylist() if fresh_rows.next_path() is not None else []
             pieces, cut = [], 0
-            while pending and pending[0]["source_path"] < paths[-1]:
-                doc, path = pending[0]["doc_id"], pending[0]["source_path"]
-                k = 0
-                while k < len(pending) and pending[k]["doc_id"] == doc:
-                    k += 1
+            while (path := fresh_rows.next_path()) is not None and path < paths[-1]:
                 pos = bisect.bisect_left(paths, path)
-                pieces += [t.slice(cut, pos - cut), rows_table(pending[:k])]
-                cut, pending = pos, pending[k:]
+                pieces += [t.slice(cut, pos - cut), fresh_rows.take_document()]
+                cut = pos
             if pieces:
                 t = pa.concat_tables(pieces + [t.slice(cut)])
             out.write(t)
-    if pending:
-        out.write(rows_table(pending))
+    while fresh_rows.next_path() is not None:
+        out.write(fresh_rows.take_group())
+    pending_digests = pa.Table.from_pylist(fresh_rows.digests, schema=DIGESTS)
 
     # Digests in the hand-off's row order, as a rebuild writes them: a fresh chunk's
     # from its rows, a copied chunk's from the previous digests (looked up once).

@@ -79,7 +79,7 @@ def test_a_copied_forward_handoff_is_byte_for_byte_a_rebuild(prefect_harness, tm
     # the copy merges documents into batches as a large drive's would.
     from thresher.flows import handoff
 
-    monkeypatch.setattr(handoff, "GROUP_DOCS", 3)
+    monkeypatch.setattr(handoff, "GROUP_DOCS", 1)
     monkeypatch.setattr(handoff, "REWRITE_BATCH", 2)
     monkeypatch.setattr(handoff, "ROW_GROUP", 5)
     drive, store_dir = tmp_path / "drive", tmp_path / "store"
@@ -104,12 +104,14 @@ def test_a_copied_forward_handoff_is_byte_for_byte_a_rebuild(prefect_harness, tm
     assert same["handoff"] == "access columns rewritten" and same["changes"] == {"upsert": 0, "delete": 0}
     _same_as_rebuild(store_dir, definition, same)
 
-    # An edit, an addition and a removal: three documents read from the stages.
+    # An edit, two additions (one with no text: no chunk) and a removal: three documents
+    # read from the stages.
+    (drive / "notes" / "00-blank.md").write_text("")
     (drive / "notes" / "03.md").write_text(_note("van route", 3).replace("branch 3", "the north branch"))
     (drive / "notes" / "10.md").write_text(_note("book sale", 10))
     (drive / "notes" / "07.md").unlink()
     edited = _run(drive, store_dir, definition)
-    assert edited["handoff"].startswith("copied forward, 2 of 12 documents"), edited["handoff"]
+    assert edited["handoff"].startswith("copied forward, 3 of 13 documents"), edited["handoff"]
     texts = _texts(store_dir)
     assert "notes/07.md" not in texts and "the north branch" in texts["notes/03.md"][0] and "notes/10.md" in texts
     _same_as_rebuild(store_dir, definition, edited)
@@ -120,7 +122,7 @@ def test_a_copied_forward_handoff_is_byte_for_byte_a_rebuild(prefect_harness, tm
     os.utime(newer, ns=(1_760_000_000_000_000_000,) * 2)
     flipped = _run(drive, store_dir, definition)
     assert flipped["documents"]["processed"] == 1
-    assert flipped["handoff"].startswith("copied forward, 2 of 12 documents"), flipped["handoff"]
+    assert flipped["handoff"].startswith("copied forward, 2 of 13 documents"), flipped["handoff"]
     assert "policy/renewals-2025.md" in _texts(store_dir)
     _same_as_rebuild(store_dir, definition, flipped)
 
@@ -132,13 +134,13 @@ def test_a_copied_forward_handoff_is_byte_for_byte_a_rebuild(prefect_harness, tm
     assert moved["documents"]["processed"] == 0
     sources = {r["source_path"]: r["source_paths"] for r in Store(store_dir).handoff().to_pylist()}
     assert sources["notes/05.md"] == ["notes/05.md", "copy-of-05.md"] and "notes/01-repairs.md" in sources
-    assert moved["handoff"].startswith("copied forward, 2 of 12 documents"), moved["handoff"]
+    assert moved["handoff"].startswith("copied forward, 2 of 13 documents"), moved["handoff"]
     _same_as_rebuild(store_dir, definition, moved)
 
     # A re-run of one document from the clean step.
     doc = next(r["doc_id"] for r in Store(store_dir).handoff().to_pylist() if r["source_path"] == "notes/02.md")
     rerun = _run(drive, store_dir, definition, rerun={"doc_id": doc, "page": None, "step": "clean"})
-    assert rerun["handoff"].startswith("copied forward, 1 of 12 documents"), rerun["handoff"]
+    assert rerun["handoff"].startswith("copied forward, 1 of 13 documents"), rerun["handoff"]
     _same_as_rebuild(store_dir, definition, rerun)
 
     # Another chain (a split parameter): every chunk changes, the hand-off is rebuilt.
