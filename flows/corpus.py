@@ -52,6 +52,7 @@ class CorpusResult:
     counts: dict[str, int]
     rows_written: int
     seconds: float
+    read: int | None = None  # documents whose units were loaded (a plain step)
 
 
 def live_inputs(live_docs: dict[str, tuple[int, str, int]]) -> bytes:
@@ -98,12 +99,38 @@ def stored_result(definition: FlowDefinition, store: Store, run_id: str, index: 
     if (not step.spec.formats or unit_kind(step) != "pages" or previous_live is None
             or previous.get("chain_digest") != definition.chain_digest):
         return None
-    moved = {d for d, v in live_docs.items() if previous_live.get(d) != v[1]}
-    changed = sorted(set(rewrite) | set(affected) | moved | (set(previous_live) - set(live_docs)))
+    changed = sorted(_changed(rewrite, affected, live_docs, previous_live))
     formats = _formats(store, definition, changed, run_id)
     if any(formats.get(d) is None or formats[d] in step.spec.formats for d in changed):
         return None
     return stored
+
+
+def _changed(rewrite: set[str], affected: set[str], live_docs: dict[str, tuple[int, str, int]],
+             previous_live: dict[str, str | None]) -> set[str]:
+    """Documents written this run, changed by an earlier corpus step, added, moved or removed."""
+    moved = {d for d, v in live_docs.items() if previous_live.get(d) != v[1]}
+    return set(rewrite) | set(affected) | moved | (set(previous_live) - set(live_docs))
+
+
+def changed_groups(definition: FlowDefinition, index: int, previous: dict[str, Any] | None, rewrite: set[str],
+                   affected: set[str], live_docs: dict[str, tuple[int, str, int]],
+                   previous_live: dict[str, str | None] | None) -> set[str] | None:
+    """For a plain corpus step with groups (StepSpec.group) that the latest run ran or
+    kept under the same chain: the groups holding a changed document, at its live
+    path now and its path then (its other groups' stored decisions stand). None: all."""
+    step = definition.steps[index]
+    if (step.spec.group is None or isinstance(step.spec, IncrementalCorpusSpec) or previous_live is None
+            or step.name not in ((previous or {}).get("corpus_inputs") or {})
+            or previous.get("chain_digest") != definition.chain_digest):
+        return None
+    paths = set()
+    for d in _changed(rewrite, affected, live_docs, previous_live):
+        if d in live_docs:
+            paths.add(live_docs[d][1])
+        if previous_live.get(d):
+            paths.add(previous_live[d])
+    return {step.spec.group(p, step.params) for p in paths}
 
 
 def _freeze(v: Any) -> Any:
@@ -121,7 +148,8 @@ def _decision(row: dict[str, Any], payload_names: list[str]) -> tuple:
 
 
 def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index: int,
-                    live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str]) -> CorpusResult:
+                    live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str],
+                    groups: set[str] | None = None) -> CorpusResult:
     """Run the corpus-wide step at `index` over all live documents.
 
     live_docs maps doc_id -> (rank, source path). Documents in rewrite_docs get every
@@ -133,8 +161,17 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     if isinstance(step.spec, IncrementalCorpusSpec):
         return _run_incremental(definition, store, run_id, index, live_docs, rewrite_docs)
     kind = unit_kind(step)
-    loaded = load_units(store, definition, index, _of_formats(store, definition, step, sorted(live_docs), run_id),
-                        run_id)
+    wanted = _of_formats(store, definition, step, sorted(live_docs), run_id)
+    stored: Counter[str] = Counter()
+    if groups is not None:
+        # Other groups' documents are not loaded: their stored decisions stand, and
+        # only their statuses are read, for the counts.
+        others = [d for d in wanted if step.spec.group(live_docs[d][1], step.params) not in groups]
+        wanted = [d for d in wanted if step.spec.group(live_docs[d][1], step.params) in groups]
+        if others:
+            stored.update(store.current(step.name, kind, others, columns=["status"], include_run=run_id)
+                          .column("status").to_pylist())
+    loaded = load_units(store, definition, index, wanted, run_id)
     loaded = {d: v for d, v in loaded.items() if d in live_docs and v.units and applies_to(step, v.units)}
     if kind == "chunks":
         docs: list[Any] = [DocChunks(d, live_docs[d][1], live_docs[d][0], list(v.units), live_docs[d][2])
@@ -167,7 +204,7 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     all_rows: list[dict[str, Any]] = []
     writes: list[tuple[str, str]] = []
     affected: set[str] = set()
-    counts: dict[str, int] = {}
+    counts: dict[str, int] = dict(stored)
     for doc_id, units in sorted(by_doc.items()):
         rctx = RowContext(run_id, doc_id, live_docs[doc_id][1], step.name, step.spec.version, step.digest,
                           kind, loaded[doc_id].stage, started, None, attempts)
@@ -186,7 +223,7 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
             affected.add(doc_id)
     if all_rows:
         store.write_stage_part(step.name, run_id, "corpus", rows_to_table(step.name, kind, all_rows), writes)
-    return CorpusResult(step.name, affected, counts, len(all_rows), time.perf_counter() - t0)
+    return CorpusResult(step.name, affected, counts, len(all_rows), time.perf_counter() - t0, len(docs))
 
 
 def _of_formats(store: Store, definition: FlowDefinition, step: ResolvedStep, doc_ids: list[str],

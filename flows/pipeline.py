@@ -28,7 +28,7 @@ from prefect.futures import as_completed
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from thresher.flows.config import FlowDefinition, build_definition
-from thresher.flows.corpus import inputs_key, live_inputs, run_corpus_step, stored_result
+from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
 from thresher.flows.discover import scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, unit_kind
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
@@ -116,8 +116,9 @@ def process_batch(job: BatchJob, data_json: str, origin: str) -> BatchResult:
 
 @task(name="corpus-step", cache_policy=NO_CACHE)
 def corpus_step(run_id: str, store_root: str, data_json: str, origin: str, index: int,
-                live: dict[str, tuple[int, str, int]], rewrite: set[str]):
-    result = run_corpus_step(_definition(data_json, origin), Store(store_root), run_id, index, live, rewrite)
+                live: dict[str, tuple[int, str, int]], rewrite: set[str], groups: set[str] | None = None):
+    result = run_corpus_step(_definition(data_json, origin), Store(store_root), run_id, index, live, rewrite,
+                             groups)
     get_run_logger().info("%s: %s over the corpus, %d rows written", result.stage, result.counts, result.rows_written)
     return result
 
@@ -253,12 +254,15 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 acc.add(res.stage, res.counts)
                 _emit(progress, f"{label}: inputs unchanged since run {previous['run_id']}, nothing to decide")
             else:
+                groups = changed_groups(definition, index, previous, rewrite, affected, plan.live,
+                                        plan.previous_live)
                 res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
-                                         plan.live, rewrite).result()
+                                         plan.live, rewrite, groups).result()
                 affected |= res.affected_docs
                 acc.add(res.stage, res.counts)
+                within = "" if groups is None else f"; {res.read} documents read, of the {len(groups)} group(s) that changed"
                 _emit(progress, f"{label}: {sum(res.counts.values())} units compared, "
-                                f"{res.rows_written} decisions written ({res.seconds:.1f} s)")
+                                f"{res.rows_written} decisions written ({res.seconds:.1f} s){within}")
             _fault("after-corpus")
         else:
             first, last = indices[0], indices[-1]

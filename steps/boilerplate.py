@@ -66,6 +66,11 @@ def site_of(source_path: str, how: str) -> str:
     return folders[0] if how == "top_folder" else "/".join(folders)
 
 
+def site_group(source_path: str, params: BoilerplateParams) -> str:
+    """A page's site: its decisions depend on the pages of that site alone."""
+    return site_of(source_path, params.site)
+
+
 def block_key(text: str) -> str:
     text = unicodedata.normalize("NFKC", text).casefold()
     return _DIGITS.sub("0", _WS.sub(" ", text).strip())
@@ -134,5 +139,6 @@ BOILERPLATE = StepSpec(
     params=BoilerplateParams,
     run=remove_boilerplate,
     formats=("html",),
+    group=site_group,
     summary="Removes blocks that repeat across the HTML pages of one site (menus, footers).",
 )

@@ -80,3 +80,8 @@ class StepSpec:
     # layer runs such a step in a child process and kills it at the limit.
     time_limit: Callable[[StepParams], float | None] | None = None
     formats: tuple[str, ...] = ()
+    # For a plain corpus step whose decisions about a document depend only on the
+    # documents of its group (the boilerplate step's site folder): the group of a
+    # document, from its live path and the parameters. A run then loads only the
+    # groups that hold a document added, changed, moved or removed.
+    group: Callable[[str, StepParams], str] | None = None

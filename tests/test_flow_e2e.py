@@ -313,17 +313,24 @@ def test_the_html_boilerplate_step_runs_only_when_an_html_document_changed(prefe
                        ("join", "Membership is free for everyone who lives or works in the district.")):
         (site / f"{name}.html").write_text(f"<html><body><h1>{name.title()}</h1><p>{body}</p>"
                                            f"<p>{footer}</p></body></html>")
+    other = drive / "archive-site"  # a second site, whose pages keep their decisions
+    other.mkdir()
+    for n in range(3):
+        (other / f"page-{n}.html").write_text(f"<html><body><h1>Page {n}</h1><p>Old newsletter number {n} of "
+                                              f"the cooperative, kept for the record.</p><p>{footer}</p>"
+                                              "</body></html>")
 
     def run() -> tuple[dict, str]:
         capsys.readouterr()
         m = pipeline.run(load_definition(), str(drive), str(store_dir), workers=1)
         return m, capsys.readouterr().err
 
-    def site_texts() -> list[str]:
-        return [r["text"] for r in Store(store_dir).handoff().to_pylist() if r["source_path"].startswith("site/")]
+    def site_texts(folder: str = "site/") -> list[str]:
+        return [r["text"] for r in Store(store_dir).handoff().to_pylist() if r["source_path"].startswith(folder)]
 
     run()
     assert site_texts() and not any(footer in t for t in site_texts())
+    assert site_texts("archive-site/") and not any(footer in t for t in site_texts("archive-site/"))
     # Only Markdown changed (an edit and a new file): the HTML step keeps its decisions.
     (drive / "notes.md").write_text("# Notes\n\nThe book club now meets on Wednesdays at six.\n")
     (drive / "rota.md").write_text("# Rota\n\nThe rota for May is on the staff room board.\n")
@@ -331,11 +338,22 @@ def test_the_html_boilerplate_step_runs_only_when_an_html_document_changed(prefe
     assert m["documents"]["processed"] == 2 and "boilerplate: inputs unchanged since run" in out
     assert not any(footer in t for t in site_texts())
     # An HTML page goes: the site is too small to tell template from content, and the
-    # step decides again (the footer comes back on the two pages left).
+    # step decides again (the footer comes back on the two pages left), reading only
+    # that site's pages: the other site's decisions stand.
     (site / "join.html").unlink()
     m, out = run()
     assert m["documents"]["processed"] == 0 and "boilerplate: inputs unchanged" not in out
+    assert "2 documents read, of the 1 group(s) that changed" in out
     assert sum(footer in t for t in site_texts()) == 2
+    # What a run from scratch over the same drive hands off, page for page, and the
+    # same counts for the step.
+    scratch = pipeline.run(load_definition(), str(drive), str(tmp_path / "scratch"), workers=1, quiet=True)
+
+    def texts(store: Path) -> dict[str, list[str]]:
+        return {r["source_path"]: r["text"] for r in Store(store).handoff().to_pylist()}
+
+    assert texts(store_dir) == texts(tmp_path / "scratch")
+    assert m["written"]["boilerplate"] == scratch["written"]["boilerplate"]
 
 
 def test_prefect_receives_the_run_logs_and_a_per_document_artifact(first_run):
