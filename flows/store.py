@@ -229,6 +229,16 @@ class Store:
         except FileNotFoundError:
             pass
 
+    def table_and_record(self, rel: str) -> tuple[pa.Table, list]:
+        """A stored Parquet file's table and its [size, SHA-256], from one read of its bytes."""
+        with self.fs.open_input_stream(self.path(rel)) as f:
+            data = f.read()
+        # One thread: a threaded decode from a buffer left Arrow's pool threads busy
+        # for a moment after the read, and a process exiting then aborted ("terminate
+        # called without an active exception") in about 1 of 20 exits.
+        table = pq.read_table(pa.BufferReader(data), use_threads=False)
+        return table, [len(data), hashlib.sha256(data).hexdigest()]
+
     def file_record(self, rel: str) -> list:
         """[size in bytes, SHA-256] of a stored file, as the manifest records it."""
         h = hashlib.sha256()
@@ -825,16 +835,10 @@ class Store:
             if rel is None:
                 return None
             try:
-                with self.fs.open_input_stream(self.path(rel)) as f:
-                    data = f.read()
+                return self.table_and_record(rel)
             except FileNotFoundError:
                 self.runs(refresh=True)
                 continue
-            # One thread: a threaded decode from a buffer left Arrow's pool threads busy
-            # for a moment after the read, and a process exiting then aborted ("terminate
-            # called without an active exception") in about 1 of 20 exits.
-            table = pq.read_table(pa.BufferReader(data), use_threads=False)
-            return table, [len(data), hashlib.sha256(data).hexdigest()]
         raise StoreError(f"{final_rel} kept moving while it was read; try again")
 
     def catalog(self) -> pa.Table:

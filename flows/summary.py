@@ -6,6 +6,9 @@ from collections import Counter
 from dataclasses import dataclass, field
 from typing import Any
 
+import pyarrow as pa
+
+from thresher.flows import schema
 from thresher.flows.store import Store
 
 STATUS_ORDER = ("ok", "failed", "dropped", "skipped")
@@ -42,18 +45,33 @@ def counts_by_stage_and_document(store: Store, stages: list[tuple[str, str]], do
                                  ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
     """Per stage the units by status; per document its units by status over all stages,
     and its units at the first stage (its pages). One read of each stage."""
-    totals = []
+    return _fold(stages, _count_rows(store, stages, doc_ids, include_run))
+
+
+def _count_rows(store: Store, stages: list[tuple[str, str]], doc_ids: list[str],
+                include_run: str | None) -> list[dict[str, Any]]:
+    """Current units per (document, stage, status): rows of schema.STAGE_COUNTS."""
+    rows: list[dict[str, Any]] = []
+    for name, unit in stages:
+        t = store.current(name, unit, doc_ids, columns=["doc_id", "status"], include_run=include_run)
+        per = Counter(zip(t.column("doc_id").to_pylist(), t.column("status").to_pylist()))
+        rows += [{"doc_id": d, "stage": name, "status": st, "units": n} for (d, st), n in per.items()]
+    return rows
+
+
+def _fold(stages: list[tuple[str, str]], rows: list[dict[str, Any]]
+          ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
+    totals = {name: Counter() for name, _ in stages}
     by_doc: dict[str, Counter] = {}
     pages: Counter = Counter()
-    for n, (name, unit) in enumerate(stages):
-        t = store.current(name, unit, doc_ids, columns=["doc_id", "status"], include_run=include_run)
-        statuses = t.column("status").to_pylist()
-        totals.append(StageCounts(name, unit, dict(Counter(statuses))))
-        for d, s in zip(t.column("doc_id").to_pylist(), statuses):
-            by_doc.setdefault(d, Counter())[s] += 1
-            if n == 0:
-                pages[d] += 1
-    return totals, by_doc, pages
+    first = stages[0][0] if stages else None
+    for r in rows:
+        totals[r["stage"]][r["status"]] += r["units"]
+        by_doc.setdefault(r["doc_id"], Counter())[r["status"]] += r["units"]
+        if r["stage"] == first:
+            pages[r["doc_id"]] += r["units"]
+    out = [StageCounts(name, unit, {k: totals[name][k] for k in sorted(totals[name])}) for name, unit in stages]
+    return out, by_doc, pages
 
 
 def counts_rel(run_id: str) -> str:
@@ -73,43 +91,24 @@ def carried_counts(store: Store, stages: list[tuple[str, str]], live_docs: list[
     its manifest's checksum) every stage is counted in full. Returns the counts and
     this run's per-document table (schema.STAGE_COUNTS), to be stored for the next run.
     """
-    import pyarrow as pa
-
-    from thresher.flows import schema
-
     live = set(live_docs)
     prev = _previous_counts(store, stages, previous)
     if prev is None:
-        recount, kept = live, []
+        recount, rows = live, []
     else:
         written = set().union(*(store.run_docs(name, run_id) for name, _ in stages))
         counted = set(prev.column("doc_id").to_pylist())
         recount = live & (written | (live - counted))
-        kept = [r for r in prev.to_pylist() if r["doc_id"] in live and r["doc_id"] not in recount]
-    rows = kept
+        rows = [r for r in prev.to_pylist() if r["doc_id"] in live and r["doc_id"] not in recount]
     if recount:
-        ids = sorted(recount)
-        for name, unit in stages:
-            t = store.current(name, unit, ids, columns=["doc_id", "status"], include_run=run_id)
-            per = Counter(zip(t.column("doc_id").to_pylist(), t.column("status").to_pylist()))
-            rows += [{"doc_id": d, "stage": name, "status": st, "units": n} for (d, st), n in per.items()]
-    totals = {name: Counter() for name, _ in stages}
-    by_doc: dict[str, Counter] = {}
-    pages: Counter = Counter()
-    first = stages[0][0] if stages else None
-    for r in rows:
-        totals[r["stage"]][r["status"]] += r["units"]
-        by_doc.setdefault(r["doc_id"], Counter())[r["status"]] += r["units"]
-        if r["stage"] == first:
-            pages[r["doc_id"]] += r["units"]
+        rows += _count_rows(store, stages, sorted(recount), run_id)
     rows.sort(key=lambda r: (r["doc_id"], r["stage"], r["status"]))
-    table = pa.Table.from_pylist(rows, schema=schema.STAGE_COUNTS)
-    out = [StageCounts(name, unit, {k: totals[name][k] for k in sorted(totals[name])}) for name, unit in stages]
-    return out, by_doc, pages, table
+    return (*_fold(stages, rows), pa.Table.from_pylist(rows, schema=schema.STAGE_COUNTS))
 
 
 def _previous_counts(store: Store, stages: list[tuple[str, str]], previous: Any):
-    """The previous run's per-document counts, if they can stand for this run's."""
+    """The previous run's per-document counts, if they can stand for this run's: read
+    once, and used only when those bytes match the manifest's record of the file."""
     if previous is None:
         return None
     manifest = previous.manifest
@@ -118,11 +117,10 @@ def _previous_counts(store: Store, stages: list[tuple[str, str]], previous: Any)
     if record is None or stages_of(manifest) != stages:
         return None
     try:
-        if store.file_record(rel) != record:
-            return None
-        return store.read_table(rel)
-    except OSError:
+        table, found = store.table_and_record(rel)
+    except (OSError, pa.ArrowInvalid):
         return None
+    return table if found == record else None
 
 
 def document_rows(live: dict[str, tuple[int, str, int]], by_doc: dict[str, Counter], pages: Counter,
