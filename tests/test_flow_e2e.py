@@ -476,8 +476,20 @@ def test_the_manifests_counts_carried_from_the_last_run_equal_a_full_recount(fir
     check(m)
     doc = next(r["doc_id"] for r in Store(store_dir).catalog().to_pylist()
                if r["present"] and r["source_path"].endswith(".md"))
-    check(pipeline.run(load_definition(), str(drive), str(store_dir), workers=1, quiet=True,
-                       rerun={"doc_id": doc, "page": None, "step": "clean"}))  # a re-run
+    m = pipeline.run(load_definition(), str(drive), str(store_dir), workers=1, quiet=True,
+                     rerun={"doc_id": doc, "page": None, "step": "clean"})  # a re-run
+    check(m)
+    # A counts file that no longer matches its record (here: valid Parquet, wrong
+    # numbers) is not trusted: the next run counts every document afresh.
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    counts = store_dir / "runs" / m["run_id"] / "counts.parquet"
+    wrong = pq.read_table(counts)
+    pq.write_table(wrong.set_column(wrong.schema.get_field_index("units"), "units",
+                                    pc.add(wrong.column("units"), 1000)), counts)
+    notes[1].write_text(notes[1].read_text(encoding="utf-8") + "\n\nAnd one for the next week.\n", encoding="utf-8")
+    check(_run(drive, store_dir, workers=1))
 
 
 def test_a_run_sends_no_heartbeat_unless_the_user_set_its_frequency():
