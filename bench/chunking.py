@@ -72,27 +72,33 @@ def load_corpus(limit: int = CORPUS_BYTES) -> list[tuple[str, str]]:
 AGAINST_ROUNDS = 2
 
 
-def cpu_figures() -> dict[str, float]:
-    """CPU seconds of clean, split and tokens over the corpus, and of encode_ordinary one
-    document after the other, the fastest of ROUNDS rounds each (no language step)."""
+def text_pages(limit: int = CORPUS_BYTES):
+    """The corpus as thresher reads plain text files: (docs, one page list per document,
+    a step context, cl100k_base warmed up)."""
     from thresher.flows.encodings import get_encoding
-    from thresher.steps.clean import CleanParams, clean
     from thresher.steps.extract.text import text_blocks
     from thresher.steps.spec import StepContext
-    from thresher.steps.split import SplitParams, split
-    from thresher.steps.tokens import TokensParams, count_tokens
     from thresher.steps.units import Page
 
-    docs = load_corpus()
+    docs = load_corpus(limit)
     enc = get_encoding("cl100k_base")
     enc.encode_ordinary("warm up")
-    ctx = StepContext(encoding=get_encoding)
-    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")]
-             for _, text in docs]
+    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")] for _, text in docs]
+    return docs, pages, StepContext(encoding=get_encoding), enc
+
+
+def cpu_figures(limit: int = CORPUS_BYTES, rounds: int = ROUNDS) -> dict[str, float]:
+    """CPU seconds of clean, split and tokens over the corpus, and of encode_ordinary one
+    document after the other, the fastest of `rounds` rounds each (no language step)."""
+    from thresher.steps.clean import CleanParams, clean
+    from thresher.steps.split import SplitParams, split
+    from thresher.steps.tokens import TokensParams, count_tokens
+
+    docs, pages, ctx, enc = text_pages(limit)
     clean_p, split_p, tokens_p = CleanParams(), SplitParams(), TokensParams()
     best = {"clean": 1e9, "split": 1e9, "tokens": 1e9, "single": 1e9}
     chunks_seen = 0
-    for _ in range(ROUNDS):
+    for _ in range(rounds):
         used = {"clean": 0.0, "split": 0.0, "tokens": 0.0}
         chunks_seen = 0
         for doc_pages in pages:
@@ -152,19 +158,11 @@ def profile(top: int = 14) -> None:
     import cProfile
     import pstats
 
-    from thresher.flows.encodings import get_encoding
     from thresher.steps.clean import CleanParams, clean
-    from thresher.steps.extract.text import text_blocks
-    from thresher.steps.spec import StepContext
     from thresher.steps.split import SplitParams, split
     from thresher.steps.tokens import TokensParams, count_tokens
-    from thresher.steps.units import Page
 
-    docs = load_corpus()
-    get_encoding("cl100k_base").encode_ordinary("warm up")
-    ctx = StepContext(encoding=get_encoding)
-    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")]
-             for _, text in docs]
+    docs, pages, ctx, _ = text_pages()
     cleaned = [[p for p in clean(d, CleanParams()) if p.ok] for d in pages]
     chunks = [split(c, SplitParams(), ctx) if c else [] for c in cleaned]
     runs = {
@@ -227,25 +225,16 @@ def main(argv: list[str] | None = None) -> None:
     if argv:
         print("usage: python -m bench.chunking [--against TREE | --profile]", file=sys.stderr)
         sys.exit(2)
-    from thresher.flows.encodings import get_encoding
     from thresher.steps.clean import CleanParams, clean
-    from thresher.steps.extract.text import text_blocks
     from thresher.steps.language import LanguageParams, detect_language
-    from thresher.steps.spec import StepContext
     from thresher.steps.split import SplitParams, split
     from thresher.steps.tokens import TokensParams, count_tokens
-    from thresher.steps.units import Page
 
-    docs = load_corpus()
+    docs, pages, ctx, enc = text_pages()
     if not docs:
         print("no corpus: /usr/share/common-licenses and /usr/share/doc/*/copyright are empty")
         return
     mb = sum(len(t.encode("utf-8")) for _, t in docs) / 1e6
-    enc = get_encoding("cl100k_base")
-    enc.encode_ordinary("warm up")
-    ctx = StepContext(encoding=get_encoding)
-    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")]
-             for _, text in docs]
 
     clean_p, split_p, tokens_p = CleanParams(), SplitParams(), TokensParams()
     texts = [text for _, text in docs]

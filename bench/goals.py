@@ -124,31 +124,11 @@ def whole_chain(paths: list[Path], env: dict, tmp: Path, pdfium_pages_per_s: flo
 
 def text_steps() -> None:
     """clean + split + tokens against tiktoken alone on the same text, CPU time, best of 2."""
-    from bench.chunking import load_corpus
-    from thresher.flows.encodings import get_encoding
-    from thresher.steps.clean import CleanParams, clean
-    from thresher.steps.extract.text import text_blocks
-    from thresher.steps.spec import StepContext
-    from thresher.steps.split import SplitParams, split
-    from thresher.steps.tokens import TokensParams, count_tokens
-    from thresher.steps.units import Page
+    from bench.chunking import cpu_figures, load_corpus
 
-    docs = load_corpus(TEXT_BYTES)
-    enc = get_encoding("cl100k_base")
-    ctx = StepContext(encoding=get_encoding)
-    pages = [[Page(locator="file", page=None, blocks=text_blocks(text), format="text")] for _, text in docs]
-    ours = alone = 1e9
-    for _ in range(2):
-        t = time.process_time()
-        for doc_pages in pages:
-            cleaned = [p for p in clean(doc_pages, CleanParams()) if p.ok]
-            count_tokens(split(cleaned, SplitParams(), ctx) if cleaned else [], TokensParams(), ctx)
-        ours = min(ours, time.process_time() - t)
-        t = time.process_time()
-        for _, text in docs:
-            enc.encode_ordinary(text)
-        alone = min(alone, time.process_time() - t)
-    mb = sum(len(t.encode("utf-8")) for _, t in docs) / 1e6
+    f = cpu_figures(TEXT_BYTES, rounds=2)
+    ours, alone = f["clean"] + f["split"] + f["tokens"], f["single"]
+    mb = sum(len(t.encode("utf-8")) for _, t in load_corpus(TEXT_BYTES)) / 1e6
     row("clean + split + tokens", f"{ours / alone:.1f}x tiktoken's time",
         f"{mb:.1f} MB of licence text: {mb / ours:.2f} MB/s against tiktoken encode_ordinary {mb / alone:.2f} MB/s",
         "<= 1.5x")
