@@ -37,7 +37,7 @@ What is judged, and what "unknown" means:
   second language in it usually scores lower and has its blocks judged; a short
   passage in another language inside a long page can be missed (then its chunk takes
   the page's language). `page_certainty: 1.0` judges every block.
-- Cost: langdetect's time is mostly per call (7 sampling trials), about 3.5 ms per
+- Cost: langdetect's time is mostly per call (7 sampling trials), about 3 ms per
   block here, so judging blocks costs about ten times judging pages on text of many
   short paragraphs (bench/chunking.py prints the rate). `detect_blocks: false` judges
   pages only; chunks then take their pages' languages. Note that langdetect reads
