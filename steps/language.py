@@ -37,7 +37,7 @@ What is judged, and what "unknown" means:
   second language in it usually scores lower and has its blocks judged; a short
   passage in another language inside a long page can be missed (then its chunk takes
   the page's language). `page_certainty: 1.0` judges every block.
-- Cost: langdetect's time is mostly per call (7 sampling trials), about 3 ms per
+- Cost: langdetect's time is mostly per call (7 sampling trials), about 1.5 ms per
   block here, so judging blocks costs about ten times judging pages on text of many
   short paragraphs (bench/chunking.py prints the rate). `detect_blocks: false` judges
   pages only; chunks then take their pages' languages. Note that langdetect reads
@@ -61,6 +61,8 @@ from __future__ import annotations
 
 import re
 import threading
+
+import numpy as np
 from collections import defaultdict
 from dataclasses import replace
 
@@ -116,7 +118,8 @@ def _fast_detector_class():
     tests/test_language_detector.py checks them against the original). Profiled with cProfile on the bench text and
     on translated manual pages, n-gram extraction (a Python call per character through
     NGram.add_char and NGram.normalize, on up to 10,000 characters) was over half of
-    the step's time and the trials' loop (a method call per drawn n-gram) most of the rest."""
+    the step's time and the trials' loop (a method call and a 55-language product in
+    Python per drawn n-gram) most of the rest."""
     from langdetect.detector import Detector
     from langdetect.utils.ngram import NGram
 
@@ -172,22 +175,32 @@ def _fast_detector_class():
             rand.seed(self.seed)
             choice = rand.choice
             conv, limit = self.CONV_THRESHOLD, self.ITERATION_LIMIT
+            rows = _rows
+            if len(rows) > ROW_CACHE:
+                rows.clear()
             for _ in range(self.n_trial):
-                prob = self._init_probability()
+                prob = np.array(self._init_probability())
                 alpha = self.alpha + rand.gauss(0.0, 1.0) * self.ALPHA_WIDTH
                 weight = alpha / self.BASE_FREQ
                 i = 0
                 while True:
-                    row = table.get(choice(ngrams))
+                    word = choice(ngrams)
+                    row = rows.get(word)
+                    if row is None:
+                        listed = table.get(word)
+                        if listed is not None:
+                            row = rows[word] = np.array(listed)
                     if row is not None:
-                        prob = [p * (weight + q) for p, q in zip(prob, row)]
+                        # Element by element the same two operations as the original.
+                        prob *= weight + row
                     if i % 5 == 0:
-                        sump = sum(prob)
-                        prob = [p / sump for p in prob]
-                        if max(prob) > conv or i >= limit:
+                        # Python's own sum, as the original: numpy's sum adds pairwise.
+                        prob /= sum(prob.tolist())
+                        if prob.max() > conv or i >= limit:
                             break
                     i += 1
-                self.langprob = [lp + p / self.n_trial for lp, p in zip(self.langprob, prob)]
+                self.langprob = [lp + p / self.n_trial
+                                 for lp, p in zip(self.langprob, prob.tolist())]
 
     return FastDetector
 
@@ -197,6 +210,10 @@ def _fast_detector_class():
 WORD_CACHE = 200_000
 _word_grams: dict[tuple[str, bool], tuple[str, ...]] = {}
 _SPACES = re.compile(" {2,}")
+# Profile rows (one probability per language) of n-grams drawn, as numpy arrays;
+# emptied past this many (ours: 55 languages x 8 bytes, so at most about 20 MB).
+ROW_CACHE = 50_000
+_rows: dict = {}
 
 
 def _grams(word: str, closed: bool, known) -> tuple[str, ...]:
