@@ -7,8 +7,8 @@
    rule for one folder (a tenth of the drive) was added, and one where every
    document's label changed, each as a share of the full run (goal: under 3 %); then
    the labels changed back with the hand-off rebuilt from the stages (the way before
-   the access-only rewrite), for comparison.
-3. The access-only hand-off rewrite on a synthetic hand-off of 200,000 chunks, beside
+   the hand-off was copied forward), for comparison.
+3. The hand-off copied forward with new access columns, on a synthetic hand-off of 200,000 chunks, beside
    a plain pyarrow read and write of the same file, and its cost per million chunks.
 """
 
@@ -107,7 +107,7 @@ def change_of_access() -> None:
         for name, d in (("full run", definition), ("no change", definition), ("one folder's rule", folder),
                         ("every label", everything), ("labels back, rebuilt", folder)):
             if name.endswith("rebuilt"):
-                # The way before the access-only rewrite: a basis that never matches
+                # The way before the hand-off was copied forward: a basis that never matches
                 # makes the hand-off rebuilt from every stage.
                 pipeline.handoff_basis = lambda *a: os.urandom(8).hex()
             t = time.perf_counter()
