@@ -58,22 +58,28 @@ def embedded_server_possible() -> bool:
 def api_unreachable(url: str, timeout: float = 5.0) -> str | None:
     """Why the Prefect server at `url` (PREFECT_API_URL) cannot be reached, or None.
 
-    Any HTTP answer counts as reachable (a server behind authentication may refuse the
-    health path); only a refused connection, a name that does not resolve or a timeout
-    is reported, so the run stops in one line instead of Prefect's traceback.
+    Asked through Prefect's own client (its health check), the same way the run would
+    reach that server; thresher itself opens no connection. An HTTP error status counts
+    as reachable (a server behind authentication may refuse the health path); only a
+    refused connection, a name that does not resolve or a timeout is reported, so the
+    run stops in one line instead of Prefect's traceback.
     """
-    import urllib.error
-    import urllib.request
+    import httpx
+    from prefect.client.orchestration import get_client
+    from prefect.settings import PREFECT_API_REQUEST_TIMEOUT, PREFECT_API_URL, temporary_settings
 
     try:
-        with urllib.request.urlopen(url.rstrip("/") + "/health", timeout=timeout):
-            return None
-    except urllib.error.HTTPError:
+        with temporary_settings({PREFECT_API_URL: url, PREFECT_API_REQUEST_TIMEOUT: timeout}):
+            with get_client(sync_client=True) as client:
+                problem = client.api_healthcheck()
+    except Exception as exc:  # the client checks the server's version on entry
+        problem = exc
+    if problem is None or isinstance(problem, httpx.HTTPStatusError):
         return None
-    except (urllib.error.URLError, OSError, ValueError) as exc:
-        reason = getattr(exc, "reason", exc)
-        return (f"PREFECT_API_URL={url} does not answer ({reason}): start that Prefect server "
-                "(`make prefect-server` starts one on 127.0.0.1), or unset PREFECT_API_URL to run embedded")
+    text = str(problem).strip()
+    reason = text.splitlines()[0] if text else type(problem).__name__
+    return (f"PREFECT_API_URL={url} does not answer ({reason}): start that Prefect server "
+            "(`make prefect-server` starts one on 127.0.0.1), or unset PREFECT_API_URL to run embedded")
 
 
 def apply_defaults() -> None:
