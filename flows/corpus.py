@@ -166,8 +166,9 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     if groups is not None:
         # Other groups' documents are not loaded: their stored decisions stand, and
         # only their statuses are read, for the counts.
-        others = [d for d in wanted if step.spec.group(live_docs[d][1], step.params) not in groups]
-        wanted = [d for d in wanted if step.spec.group(live_docs[d][1], step.params) in groups]
+        inside = {d: step.spec.group(live_docs[d][1], step.params) in groups for d in wanted}
+        others = [d for d in wanted if not inside[d]]
+        wanted = [d for d in wanted if inside[d]]
         if others:
             stored.update(store.current(step.name, kind, others, columns=["status"], include_run=run_id)
                           .column("status").to_pylist())
