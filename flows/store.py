@@ -40,7 +40,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.compute  # noqa: F401 - registers pa.compute
+import pyarrow.compute as pc
 import pyarrow.dataset as ds
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
@@ -82,6 +82,37 @@ def _filesystem(root: str) -> tuple[pafs.FileSystem, str]:
         fs, path = pafs.FileSystem.from_uri(root)
         return fs, path.rstrip("/")
     return pafs.LocalFileSystem(), str(Path(root).resolve())
+
+
+def _latest_attempts(rows: pa.Table, seq: dict[str, int], floors: dict[str, int]) -> np.ndarray:
+    """Row positions of each unit's latest attempt: from runs in `seq`, not older than
+    the document's floor (its latest whole rewrite), latest by (run sequence, attempt).
+
+    Arrow compute and numpy, not pandas: a run asks this for a few documents at every
+    stage, where pandas' fixed cost per call was most of the time (tools/profile_weekly.py).
+    """
+    runs = list(seq)
+    run_pos = pc.index_in(rows.column("run_id"), value_set=pa.array(runs, pa.string()))
+    run_seq = np.array([seq[r] for r in runs] + [-1], dtype=np.int64)
+    seqs = run_seq[run_pos.fill_null(len(runs)).to_numpy(zero_copy_only=False)]
+    keep = seqs >= 0  # rows of runs not (or no longer) committed are not current
+    if floors:
+        docs = list(floors)
+        doc_pos = pc.index_in(rows.column("doc_id"), value_set=pa.array(docs, pa.string()))
+        floor_of = np.array([floors[d] for d in docs] + [0], dtype=np.int64)
+        keep &= seqs >= floor_of[doc_pos.fill_null(len(docs)).to_numpy(zero_copy_only=False)]
+    kept = np.flatnonzero(keep)
+    keys = pa.table({"unit_id": rows.column("unit_id").take(pa.array(kept)), "seq": seqs[kept],
+                     "attempt": rows.column("attempt").take(pa.array(kept))})
+    order = pc.sort_indices(keys, sort_keys=[("unit_id", "ascending"), ("seq", "ascending"),
+                                             ("attempt", "ascending")]).to_numpy()
+    if len(order) == 0:
+        return order
+    units = keys.column("unit_id").take(pa.array(order))
+    # the last row of each unit in that order is its latest attempt
+    last = np.ones(len(order), dtype=bool)
+    last[:-1] = pc.not_equal(units[:-1], units[1:]).to_numpy(zero_copy_only=False)
+    return np.sort(kept[order[last]])
 
 
 @dataclass
@@ -791,27 +822,14 @@ class Store:
         if doc_ids is not None:
             doc_ids = set(doc_ids)
             floors = self._floors(stage, seq, doc_ids)
-            full = pd.Series(floors, dtype="int64") if floors else None
         else:
             writes = self._writes(stage, seq)
-            full = writes.groupby("doc_id")["seq"].max() if len(writes) else None
-            floors = None
-        rows = self.stage_rows(stage, unit, doc_ids, need, include_run, floors=floors, tolerant=tolerant)
+            floors = writes.groupby("doc_id")["seq"].max().to_dict() if len(writes) else {}
+        rows = self.stage_rows(stage, unit, doc_ids, need, include_run,
+                               floors=floors if doc_ids is not None else None, tolerant=tolerant)
         if rows.num_rows == 0:
             return rows if columns is None else rows.select(columns)
-        keys = pd.DataFrame({
-            "run": rows.column("run_id").to_pylist(),
-            "doc_id": rows.column("doc_id").to_pylist(),
-            "unit_id": rows.column("unit_id").to_pylist(),
-            "attempt": rows.column("attempt").to_pylist(),
-        })
-        keys["seq"] = keys["run"].map(seq)
-        keys = keys[keys["seq"].notna()]
-        if full is not None:
-            floor = keys["doc_id"].map(full).fillna(0)
-            keys = keys[keys["seq"] >= floor]
-        keys = keys.sort_values(["unit_id", "seq", "attempt"])
-        winners = np.sort(keys.drop_duplicates("unit_id", keep="last").index.to_numpy())
+        winners = _latest_attempts(rows, seq, floors)
         out = rows.take(pa.array(winners))
         return out if columns is None else out.select(columns)
 

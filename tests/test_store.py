@@ -53,6 +53,9 @@ def test_whole_document_rewrite_retires_units_the_new_run_did_not_produce(tmp_pa
     store.write_stage_part("extract", "r2", "a", _pages("r2", "docA", {"page/1": "uno"}), [("docA", "document")])
     _commit(store, "r2")
     assert _current_texts(store, "docA") == {"page/1": "uno"}
+    # The same from the whole stage's current view (no document named).
+    whole = store.current("extract", "pages")
+    assert whole.column("text").to_pylist() == ["uno"]
     # Old attempts stay for audit.
     all_rows = store.stage_rows("extract", "pages", ["docA"])
     assert all_rows.num_rows == 3
