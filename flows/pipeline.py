@@ -504,7 +504,7 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
 def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store_root: str,
            run_id: str | None = None, force: bool = False, quiet: bool = False,
            rerun: dict[str, Any] | None = None, workers: int | None = None,
-           probes: str | None = None, verify: bool = False, live: bool = False) -> dict[str, Any]:
+           probes: str | None = None, verify: bool = False, live: bool = False) -> "RunResult":
     """One run of the chain over the source root (or a re-run of chosen units), then the
     delivery of its change set to the definition's targets when it asks for that.
 
@@ -521,7 +521,17 @@ def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store
     deliver_section = definition.model.deliver
     if deliver_section.after_run and deliver_section.targets:
         result["delivered"] = deliver_after_run(definition, store_root)
-    return result
+    return RunResult(result)
+
+
+class RunResult:
+    """The flow's return value: the run's manifest, held where Prefect does not walk it.
+
+    Prefect visits every item of a dict or list a flow returns (looking for futures to
+    resolve); a manifest holds hundreds, and no future. run() hands the dict on."""
+
+    def __init__(self, manifest: dict[str, Any]) -> None:
+        self.manifest = manifest
 
 
 def deliver_after_run(definition: FlowDefinition, store_root: str) -> dict[str, Any]:
@@ -561,18 +571,19 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     The store's lock is taken before Prefect starts, so a second run on the same
     store is refused at once with the holder's name, not after a server start.
     """
-    from thresher.flows.runtime import run_overrides, run_settings
+    from thresher.flows.runtime import client_context, run_overrides, run_settings
 
     run_id = new_run_id()
     store = Store(store_root)
     store.acquire_lock(run_id)
     overrides = run_overrides()
     try:
-        with shared_api(definition.model.runner.kind), run_settings(overrides):
+        with shared_api(definition.model.runner.kind), run_settings(overrides), client_context():
             flow_obj = build_flow(definition, workers,
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
-            return flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
-                            run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers, probes=probes,
-                            verify=verify, live=live)
+            out = flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
+                           run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers, probes=probes,
+                           verify=verify, live=live)
+            return out.manifest if isinstance(out, RunResult) else out
     finally:
         store.release_lock(run_id)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 from contextlib import contextmanager
+from typing import Any
 
 PREFECT_DEFAULTS = {
     # No telemetry or analytics calls (the machine may have no network at all);
@@ -139,3 +140,38 @@ def run_settings(overrides: dict):
         hit = _RUN_SETTINGS[key] = (context.settings, context.settings.copy_with_update(updates=overrides))
     with prefect.context.SettingsContext(profile=context.profile, settings=hit[1]):
         yield hit[1]
+
+
+_TLS: dict[tuple, Any] = {}
+
+
+@contextmanager
+def client_context():
+    """Prefect's sync client context for one run, its TLS context made once per process.
+
+    Each flow run's client built a new SSL context and loaded certifi's CA bundle into
+    it: 25-60 ms CPU per run (tools/profile_weekly.py), whatever the server's scheme.
+    The flow engine and its task threads take the client of a context that is already
+    entered, so this one serves them. The TLS choice is Prefect's own (its client's
+    constructor): no verification when PREFECT_API_TLS_INSECURE_SKIP_VERIFY, else the
+    PREFECT_API_SSL_CERT_FILE bundle or certifi's.
+    """
+    import ssl
+
+    import certifi
+    from prefect.context import SyncClientContext
+    from prefect.settings import get_current_settings
+
+    api = get_current_settings().api
+    key = (bool(api.tls_insecure_skip_verify), api.ssl_cert_file or certifi.where())
+    tls = _TLS.get(key)
+    if tls is None:
+        if key[0]:
+            tls = ssl.create_default_context()
+            tls.check_hostname = False
+            tls.verify_mode = ssl.CERT_NONE
+        else:
+            tls = ssl.create_default_context(cafile=key[1])
+        tls = _TLS[key] = tls
+    with SyncClientContext(httpx_settings={"verify": tls}) as ctx:
+        yield ctx
