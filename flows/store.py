@@ -55,6 +55,10 @@ RUN_META_KEY = b"thresher.run_id"
 # (store base, stage, run id), which documents each part file holds and how.
 _LEDGERS: dict[tuple[str, str, str], "Ledger"] = {}
 _LEDGER_FILES: dict[str, list[tuple[str, str]]] = {}
+# Committed runs' manifests by path: ((mtime_ns, size), RunInfo).
+_MANIFESTS: dict[str, tuple[tuple, "RunInfo"]] = {}
+# A running run's ledgers, with the ledger file names they were built from.
+_RUNNING_LEDGERS: dict[tuple[str, str, str], tuple[tuple[str, ...], "Ledger"]] = {}
 _LEDGERS_LOCK = threading.Lock()
 _COMPACTED: dict[tuple[str, str, str], "CompactedLedger"] = {}
 # Up to this many documents, a read of a compacted stage looks up only their ledger
@@ -415,14 +419,22 @@ class Store:
         if self._runs_cache is None or refresh:
             self._compaction_cache = {}
             out = []
-            for info in self._list("runs"):
-                if info.type != pafs.FileType.Directory:
+            dirs = [i.base_name for i in self._list("runs") if i.type == pafs.FileType.Directory]
+            found = self.fs.get_file_info([self.path(f"runs/{r}/manifest.json") for r in dirs])
+            for run_id, info in zip(dirs, found):
+                if info.type == pafs.FileType.NotFound:
                     continue
-                run_id = info.base_name
-                rel = f"runs/{run_id}/manifest.json"
-                if self.exists(rel):
-                    m = self.read_json(rel)
-                    out.append(RunInfo(run_id, int(m["sequence"]), m))
+                # A manifest is written once, whole (the commit): parsed once per process,
+                # as every task's Store reads the runs again (what it holds is not changed).
+                stamp = (info.mtime_ns, info.size)
+                with _LEDGERS_LOCK:
+                    cached = _MANIFESTS.get(info.path)
+                if cached is None or cached[0] != stamp:
+                    m = self.read_json(f"runs/{run_id}/manifest.json")
+                    cached = (stamp, RunInfo(run_id, int(m["sequence"]), m))
+                    with _LEDGERS_LOCK:
+                        _MANIFESTS[info.path] = cached
+                out.append(cached[1])
             out.sort(key=lambda r: r.sequence)
             self._runs_cache = out
         return self._runs_cache
@@ -635,12 +647,19 @@ class Store:
             cached = _LEDGERS.get(key)
         if cached is not None:
             return cached
+        infos = [i for i in self._list(f"runs/{run_id}/writes/{stage}")
+                 if i.base_name.endswith(".parquet") and not i.base_name.startswith(".tmp-")]
+        # A running run's ledger grows by whole files: while the listing is the same,
+        # so is the ledger (asked at every stage of every read, it was rebuilt each time).
+        names = tuple(sorted(i.base_name for i in infos))
+        with _LEDGERS_LOCK:
+            running = _RUNNING_LEDGERS.get(key)
+        if running is not None and running[0] == names:
+            return running[1]
         files: dict[str, list[str]] = {}
         full: list[str] = []
-        for info in self._list(f"runs/{run_id}/writes/{stage}"):
+        for info in infos:
             name = info.base_name
-            if not name.endswith(".parquet") or name.startswith(".tmp-"):
-                continue
             # A ledger file is written once, whole; the running run's are read once each.
             with _LEDGERS_LOCK:
                 entries = _LEDGER_FILES.get(info.path)
@@ -655,9 +674,13 @@ class Store:
                 if scope == "document":
                     full.append(doc_id)
         ledger = Ledger(files, full)
-        if self._committed(run_id):
-            with _LEDGERS_LOCK:
+        committed = self._committed(run_id)
+        with _LEDGERS_LOCK:
+            if committed:
                 _LEDGERS[key] = ledger
+                _RUNNING_LEDGERS.pop(key, None)
+            else:
+                _RUNNING_LEDGERS[key] = (names, ledger)
         return ledger
 
     def run_docs(self, stage: str, run_id: str) -> set[str]:

@@ -178,3 +178,12 @@ def test_sweep_removes_what_an_uncommitted_run_left(tmp_path):
     store.sweep_uncommitted()
     assert not (tmp_path / "s" / "stages" / "extract" / "r2").exists()
     assert _current_texts(store, "docA") == {"page/1": "one"}
+
+
+def test_a_running_runs_ledger_shows_each_part_as_it_is_written(tmp_path):
+    store = Store(tmp_path / "s")
+    store.write_stage_part("extract", "r1", "a", _pages("r1", "docA", {"page/1": "one"}), [("docA", "document")])
+    assert store.run_docs("extract", "r1") == {"docA"}
+    store.write_stage_part("extract", "r1", "b", _pages("r1", "docB", {"page/1": "two"}), [("docB", "document")])
+    assert store.run_docs("extract", "r1") == {"docA", "docB"}
+    assert _current_texts(store, "docB", include_run="r1") == {"page/1": "two"}
