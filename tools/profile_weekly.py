@@ -6,7 +6,10 @@ profiled each on its own and merged in), against Prefect's temporary server, war
 as bench/goals.py's weekly_runs measures them.
 
 Usage (from the repo, with the venv's python):
-  python tools/profile_weekly.py OUT [DOCUMENTS] [ROUNDS]
+  python tools/profile_weekly.py OUT [DOCUMENTS] [ROUNDS] [--figures]
+
+--figures: no profiles, only the figures (for measuring two versions side by side:
+run this alternately with each version's code first on PYTHONPATH).
 
 Prints each run's wall and CPU seconds beside the full run's, the Prefect task runs
 each run created, and writes the profiles (by own time and by cumulative time, wall
@@ -80,7 +83,52 @@ class _Threads:
         return run
 
 
-def main(out: Path, documents: int = 300, rounds: int = 3) -> None:
+def prefect_floor(times: int = 7) -> None:
+    """Prefect's own cost per run on this server, as thresher's flow is set up (same
+    task runner, same settings): an empty flow run; with one task run; with the two
+    summary artifacts a run publishes. Medians of `times` runs each."""
+    import statistics
+
+    from prefect import flow, task
+    from prefect.artifacts import create_markdown_artifact, create_table_artifact
+    from prefect.cache_policies import NO_CACHE
+    from prefect.task_runners import ThreadPoolTaskRunner
+
+    from thresher.flows.runtime import run_overrides
+
+    try:
+        from thresher.flows.runtime import run_settings
+    except ImportError:  # a version before run_settings: as its run() did
+        from prefect.settings import temporary_settings
+
+        def run_settings(overrides):
+            return temporary_settings(updates=overrides)
+
+    @task(cache_policy=NO_CACHE)
+    def one() -> int:
+        return 1
+
+    @flow(persist_result=False, task_runner=ThreadPoolTaskRunner(max_workers=2))
+    def empty(tasks: int, artifacts: bool) -> int:
+        for _ in range(tasks):
+            one.submit().result()
+        if artifacts:
+            create_table_artifact(key="floor-table", table=[{"a": i, "b": str(i)} for i in range(300)])
+            create_markdown_artifact(key="floor-summary", markdown="# floor")
+        return 0
+
+    for label, tasks, artifacts in (("empty flow run", 0, False), ("with one task run", 1, False),
+                                    ("with five task runs", 5, False), ("with two artifacts", 0, True)):
+        walls = []
+        with run_settings(run_overrides()):
+            for _ in range(times):
+                t = time.perf_counter()
+                empty(tasks, artifacts)
+                walls.append(time.perf_counter() - t)
+        print(f"Prefect alone, {label}: {statistics.median(walls):.3f} s wall (median of {times})", flush=True)
+
+
+def main(out: Path, documents: int = 300, rounds: int = 3, figures: bool = False) -> None:
     from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
 
     from prefect import flow
@@ -99,6 +147,7 @@ def main(out: Path, documents: int = 300, rounds: int = 3) -> None:
         return 0
 
     warm_up()
+    prefect_floor()
     definition = load_definition()
     with tempfile.TemporaryDirectory() as td:
         drive = make_drive(Path(td) / "drive", documents)
@@ -118,11 +167,14 @@ def main(out: Path, documents: int = 300, rounds: int = 3) -> None:
             return time.perf_counter() - t, time.process_time() - c, m
 
         full, full_cpu, _ = timed()
+        import thresher.flows
+
+        print(f"code from {thresher.flows.__path__[0]}")
         print(f"load average {os.getloadavg()[0]:.2f}; full run {full:.2f} s wall, {full_cpu:.2f} s CPU", flush=True)
         seed = 11
         for r in range(rounds):
             for label in ("same", "changed"):
-                for clock in ("plain", "wall", "cpu"):
+                for clock in ("plain",) if figures else ("plain", "wall", "cpu"):
                     if label == "changed":
                         seed += 1
                         n = len(change_files(drive, 0.01, seed=seed))
@@ -139,4 +191,5 @@ def main(out: Path, documents: int = 300, rounds: int = 3) -> None:
 
 
 if __name__ == "__main__":
-    main(Path(sys.argv[1]), *(int(a) for a in sys.argv[2:]))
+    args = [a for a in sys.argv[1:] if a != "--figures"]
+    main(Path(args[0]), *(int(a) for a in args[1:]), figures="--figures" in sys.argv)
