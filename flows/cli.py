@@ -279,11 +279,17 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
     return 0
 
 
+_checked_api: list[str | None] = []  # the PREFECT_API_URL found reachable by this process
+
+
 def _need_prefect_api() -> None:
     """Fail at once, in one line, where embedded Prefect cannot start or the user's
-    Prefect server (PREFECT_API_URL) does not answer."""
+    Prefect server (PREFECT_API_URL) does not answer. Asked once per process: the
+    health check costs a served run a tenth of a second or more."""
     from thresher.flows.runtime import NO_LOCAL_PORT, api_unreachable, embedded_server_possible
 
+    if os.environ.get("PREFECT_API_URL") in _checked_api:
+        return
     url = os.environ.get("PREFECT_API_URL")
     if url:
         problem = api_unreachable(url)
@@ -291,6 +297,7 @@ def _need_prefect_api() -> None:
             raise UsageError(problem)
     elif not embedded_server_possible():
         raise UsageError(NO_LOCAL_PORT)
+    _checked_api.append(url)
 
 
 def run_summary_lines(m: dict[str, Any]) -> list[str]:

@@ -27,6 +27,7 @@ from typing import Any, Iterator, Protocol
 
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from thresher.flows.config import FlowDefinition, TargetEntry
 from thresher.flows.store import Store
@@ -121,11 +122,12 @@ def _handoff(store: Store, chunk_ids: list[str] | None = None) -> pa.Table:
         raise DeliveryError("the store has no hand-off yet: run `thresher run` first")
     if chunk_ids is None:
         return store.read_table(rel)
+    if not chunk_ids:  # a week with nothing to upsert: only the columns
+        with store.fs.open_input_file(store.path(rel)) as f:
+            return pq.ParquetFile(f).schema_arrow.empty_table()
     import pyarrow.dataset as ds
 
     data = ds.dataset(store.path(rel), filesystem=store.fs, format="parquet")
-    if not chunk_ids:
-        return data.schema.empty_table()
     return data.to_table(filter=ds.field("chunk_id").isin(pa.array(chunk_ids, pa.string())))
 
 

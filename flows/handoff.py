@@ -30,6 +30,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from thresher.flows import schema
+from thresher.flows.arrow_groups import count_and_sum_per_key, highest_per_key
 from thresher.flows.config import FlowDefinition
 from thresher.flows.faults import fault
 from thresher.flows.store import Store
@@ -225,11 +226,9 @@ class _Output:
     def write(self, t: pa.Table) -> None:
         if not t.num_rows:
             return
-        agg = t.group_by("doc_id").aggregate([("chunk_id", "count"), ("token_count", "sum")])
-        for d, n, k in zip(agg.column("doc_id").to_pylist(), agg.column("chunk_id_count").to_pylist(),
-                           agg.column("token_count_sum").to_pylist()):
+        for d, n, k in count_and_sum_per_key(t.column("doc_id"), t.column("token_count")):
             self.counts[d] += n
-            self.tokens[d] += k or 0
+            self.tokens[d] += k
         self.ids.append(t.column("chunk_id"))
         self.pending.append(t)
         self.held += t.num_rows
@@ -398,8 +397,7 @@ def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[s
     if copies_before is None or withheld_before is None or previous_live is None:
         return None
     written = set().union(*(store.run_docs(s.name, run_id) for s in definition.steps))
-    held_at = old.select(["doc_id", "source_path"]).group_by("doc_id").aggregate([("source_path", "min")])
-    held = dict(zip(held_at.column("doc_id").to_pylist(), held_at.column("source_path_min").to_pylist()))
+    held = highest_per_key(old.column("doc_id"), old.column("source_path"), lowest=True)
     out, not_access = [], 0
     for d in order:
         path = live[d][1]
@@ -462,12 +460,11 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     fault("handoff-digests-staged")
 
     # Upsert: new chunk ids, or any column an index holds changed. Delete: ids gone.
-    joined = new.join(old.select(["chunk_id", "digest"]).rename_columns(["chunk_id", "old_digest"]),
-                      keys="chunk_id", join_type="left outer")
-    changed = pc.or_kleene(pc.is_null(joined.column("old_digest")),
-                           pc.not_equal(joined.column("digest"), joined.column("old_digest")))
-    upserts = joined.filter(pc.fill_null(changed, True))
-    gone = old.join(new.select(["chunk_id"]), keys="chunk_id", join_type="left anti")
+    # Looked up by chunk id (chunk ids are unique in a hand-off; no join engine needed).
+    old_digest = pc.take(old.column("digest"), pc.index_in(new.column("chunk_id"), value_set=old.column("chunk_id")))
+    changed = pc.or_kleene(pc.is_null(old_digest), pc.not_equal(new.column("digest"), old_digest))
+    upserts = new.filter(pc.fill_null(changed, True))
+    gone = old.filter(pc.is_null(pc.index_in(old.column("chunk_id"), value_set=new.column("chunk_id"))))
 
     def _changes(t: pa.Table, action: str) -> pa.Table:
         n = t.num_rows

@@ -64,17 +64,19 @@ def api_unreachable(url: str, timeout: float = 5.0) -> str | None:
     reach that server; thresher itself opens no connection. An HTTP error status counts
     as reachable (a server behind authentication may refuse the health path); only a
     refused connection, a name that does not resolve or a timeout is reported, so the
-    run stops in one line instead of Prefect's traceback.
+    run stops in one line instead of Prefect's traceback. The client is made for `url`
+    directly: a temporary change of Prefect's settings re-validates all of them (0.07 s
+    on an idle machine, a fifth of the check).
     """
     import httpx
-    from prefect.client.orchestration import get_client
-    from prefect.settings import PREFECT_API_REQUEST_TIMEOUT, PREFECT_API_URL, temporary_settings
+    from prefect.client.orchestration import SyncPrefectClient
+    from prefect.settings import PREFECT_API_AUTH_STRING, PREFECT_API_KEY
 
     try:
-        with temporary_settings({PREFECT_API_URL: url, PREFECT_API_REQUEST_TIMEOUT: timeout}):
-            with get_client(sync_client=True) as client:
-                problem = client.api_healthcheck()
-    except Exception as exc:  # the client checks the server's version on entry
+        with SyncPrefectClient(url, api_key=PREFECT_API_KEY.value(), auth_string=PREFECT_API_AUTH_STRING.value(),
+                               httpx_settings={"timeout": timeout}) as client:
+            problem = client.api_healthcheck()
+    except Exception as exc:
         problem = exc
     if problem is None or isinstance(problem, httpx.HTTPStatusError):
         return None

@@ -35,20 +35,40 @@ from collections.abc import Iterable
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.dataset as ds
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
+
+if TYPE_CHECKING:  # loaded where a filtered read needs it
+    import pyarrow.dataset as ds
+
 from thresher.flows import schema
+from thresher.flows.arrow_groups import highest_per_key
 from thresher.flows.faults import fault
 
 RUN_META_KEY = b"thresher.run_id"
+
+
+def read_parquet(source: Any, columns: list[str] | None = None, use_threads: bool = True) -> pa.Table:
+    """One whole Parquet file (an open file or a buffer) as a table.
+
+    Through pyarrow's file reader, not `pq.read_table`, which builds a dataset for each
+    file: half the CPU time on the store's small files (45 ledgers and parts read ten
+    times: 1.3-1.6 s against 0.66-0.72 s). A column the file lacks raises, as
+    `pq.read_table` does (the file reader would silently return an empty table).
+    """
+    f = pq.ParquetFile(source)
+    if columns is not None:
+        missing = [c for c in columns if c not in f.schema_arrow.names]
+        if missing:
+            raise pa.ArrowInvalid(f"no column {', '.join(missing)} in this Parquet file")
+    return f.read(columns=columns, use_threads=use_threads)
+
 
 # A committed run's files never change, so what they hold is cached for the process,
 # shared by every Store object on the same root (tasks make their own): per
@@ -248,7 +268,7 @@ class Store:
 
     def read_table(self, rel: str, columns: list[str] | None = None) -> pa.Table:
         with self.fs.open_input_file(self.path(rel)) as f:
-            return pq.read_table(f, columns=columns)
+            return read_parquet(f, columns)
 
     def move(self, src_rel: str, dst_rel: str) -> None:
         self.fs.create_dir(self.path(dst_rel).rsplit("/", 1)[0], recursive=True)
@@ -271,7 +291,7 @@ class Store:
         # One thread: a threaded decode from a buffer left Arrow's pool threads busy
         # for a moment after the read, and a process exiting then aborted ("terminate
         # called without an active exception") in about 1 of 20 exits.
-        table = pq.read_table(pa.BufferReader(data), use_threads=False)
+        table = read_parquet(pa.BufferReader(data), use_threads=False)
         return table, [len(data), hashlib.sha256(data).hexdigest()]
 
     def file_record(self, rel: str) -> list:
@@ -566,6 +586,8 @@ class Store:
         if doc_ids is not None and len(doc_ids) <= LEDGER_LOOKUP_DOCS:
             look = (key, frozenset(doc_ids))
             if self._ledger_lookup is None or self._ledger_lookup[0] != look:
+                import pyarrow.dataset as ds
+
                 t = ds.dataset(self.path(f"{folder}/ledger.parquet"), format="parquet", filesystem=self.fs) \
                     .to_table(filter=ds.field("doc_id").isin(sorted(doc_ids)))
                 self._ledger_lookup = (look, self._compacted_from(folder, t))
@@ -664,7 +686,8 @@ class Store:
             with _LEDGERS_LOCK:
                 entries = _LEDGER_FILES.get(info.path)
             if entries is None:
-                t = pq.read_table(info.path, filesystem=self.fs, columns=["doc_id", "scope"])
+                with self.fs.open_input_file(info.path) as f:
+                    t = read_parquet(f, ["doc_id", "scope"])
                 entries = list(zip(t.column("doc_id").to_pylist(), t.column("scope").to_pylist()))
                 with _LEDGERS_LOCK:
                     _LEDGER_FILES[info.path] = entries
@@ -756,6 +779,8 @@ class Store:
               flt: ds.Expression | None, tolerant: bool) -> pa.Table:
         """Rows of these part files; a file that cannot be read raises StoreDamaged
         naming it, or with `tolerant` is left out (attempt counts need no more)."""
+        import pyarrow.dataset as ds
+
         try:
             dataset = ds.dataset(files, schema=sch, format="parquet", filesystem=self.fs)
             return dataset.to_table(columns=columns, filter=flt)
@@ -788,28 +813,32 @@ class Store:
             return sch.empty_table() if columns is None else sch.empty_table().select(columns)
         flt = extra_filter
         if doc_ids is not None:
+            import pyarrow.dataset as ds
+
             doc_filter = ds.field("doc_id").isin(doc_ids)
             flt = doc_filter if flt is None else (flt & doc_filter)
         return self._read(files, sch, columns, flt, tolerant)
 
-    def _writes(self, stage: str, seq: dict[str, int]) -> pd.DataFrame:
-        """Per run, the documents it rewrote whole at this stage."""
-        docs: list[str] = []
-        seqs: list[int] = []
+    def _writes(self, stage: str, seq: dict[str, int]) -> dict[str, int]:
+        """Per document, the sequence of the latest run that rewrote it whole at this stage."""
+        latest: dict[str, int] = {}
+
+        def note(doc_id: str, s: int) -> None:
+            if s > latest.get(doc_id, 0):
+                latest[doc_id] = s
+
         covered = set((self.compaction(stage) or {}).get("runs", []))
         compacted = self._compacted_ledger(stage)
         if compacted is not None:
             for doc_id, run_id in compacted.full:
                 if run_id in seq:
-                    docs.append(doc_id)
-                    seqs.append(seq[run_id])
-        for run_id in seq:
+                    note(doc_id, seq[run_id])
+        for run_id, s in seq.items():
             if run_id in covered:
                 continue
-            found = self._ledger(stage, run_id).full
-            docs.extend(found)
-            seqs.extend([seq[run_id]] * len(found))
-        return pd.DataFrame({"doc_id": docs, "seq": seqs})
+            for doc_id in self._ledger(stage, run_id).full:
+                note(doc_id, s)
+        return latest
 
     def _floors(self, stage: str, seq: dict[str, int], doc_ids: set[str]) -> dict[str, int]:
         """Per document, the sequence of the latest run that rewrote it whole here."""
@@ -846,8 +875,7 @@ class Store:
             doc_ids = set(doc_ids)
             floors = self._floors(stage, seq, doc_ids)
         else:
-            writes = self._writes(stage, seq)
-            floors = writes.groupby("doc_id")["seq"].max().to_dict() if len(writes) else {}
+            floors = self._writes(stage, seq)
         rows = self.stage_rows(stage, unit, doc_ids, need, include_run,
                                floors=floors if doc_ids is not None else None, tolerant=tolerant)
         if rows.num_rows == 0:
@@ -860,8 +888,7 @@ class Store:
         rows = self.stage_rows(stage, unit, doc_ids, ["unit_id", "attempt"], tolerant=True)
         if rows.num_rows == 0:
             return {}
-        df = rows.to_pandas()
-        return df.groupby("unit_id")["attempt"].max().astype(int).to_dict()
+        return highest_per_key(rows.column("unit_id"), rows.column("attempt"))
 
     # ----------------------------------------------------------------- catalog and hand-off
 
