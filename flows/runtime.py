@@ -65,8 +65,8 @@ def api_unreachable(url: str, timeout: float = 5.0) -> str | None:
     as reachable (a server behind authentication may refuse the health path); only a
     refused connection, a name that does not resolve or a timeout is reported, so the
     run stops in one line instead of Prefect's traceback. The client is made for `url`
-    directly: a temporary change of Prefect's settings re-validates all of them (0.07 s
-    on an idle machine, a fifth of the check).
+    directly (a temporary change of Prefect's settings re-validates all of them), with
+    the run's TLS context.
     """
     import httpx
     from prefect.client.orchestration import SyncPrefectClient
@@ -74,7 +74,7 @@ def api_unreachable(url: str, timeout: float = 5.0) -> str | None:
 
     try:
         with SyncPrefectClient(url, api_key=PREFECT_API_KEY.value(), auth_string=PREFECT_API_AUTH_STRING.value(),
-                               httpx_settings={"timeout": timeout}) as client:
+                               httpx_settings={"timeout": timeout, "verify": tls_context()}) as client:
             problem = client.api_healthcheck()
     except Exception as exc:
         problem = exc
@@ -147,21 +147,13 @@ def run_settings(overrides: dict):
 _TLS: dict[tuple, Any] = {}
 
 
-@contextmanager
-def client_context():
-    """Prefect's sync client context for one run, its TLS context made once per process.
-
-    Each flow run's client built a new SSL context and loaded certifi's CA bundle into
-    it: 25-60 ms CPU per run (tools/profile_weekly.py), whatever the server's scheme.
-    The flow engine and its task threads take the client of a context that is already
-    entered, so this one serves them. The TLS choice is Prefect's own (its client's
-    constructor): no verification when PREFECT_API_TLS_INSECURE_SKIP_VERIFY, else the
-    PREFECT_API_SSL_CERT_FILE bundle or certifi's.
-    """
+def tls_context():
+    """The TLS context Prefect's client would make (its constructor's choice: no
+    verification when PREFECT_API_TLS_INSECURE_SKIP_VERIFY, else the
+    PREFECT_API_SSL_CERT_FILE bundle or certifi's), made once per process."""
     import ssl
 
     import certifi
-    from prefect.context import SyncClientContext
     from prefect.settings import get_current_settings
 
     api = get_current_settings().api
@@ -175,5 +167,20 @@ def client_context():
         else:
             tls = ssl.create_default_context(cafile=key[1])
         tls = _TLS[key] = tls
+    return tls
+
+
+@contextmanager
+def client_context():
+    """Prefect's sync client context for one run, its TLS context made once per process.
+
+    Each flow run's client built a new SSL context and loaded certifi's CA bundle into
+    it: 25-60 ms CPU per run (tools/profile_weekly.py), whatever the server's scheme.
+    The flow engine and its task threads take the client of a context that is already
+    entered, so this one serves them.
+    """
+    from prefect.context import SyncClientContext
+
+    tls = tls_context()
     with SyncClientContext(httpx_settings={"verify": tls}) as ctx:
         yield ctx
