@@ -45,6 +45,11 @@ from thresher.flows.summary import STATUS_ORDER, carried_counts, counts_rel, doc
 BATCH_BYTES = 64 << 20
 # Batches per worker to aim for, so the last batches to finish are small ones.
 BATCHES_PER_WORKER = 4
+# A segment whose documents hold fewer bytes than this is batched by count alone.
+# Split by bytes it gains a few tens of ms of parallel work per extra task run (text
+# steps run at about 1.7 MB/s), about what a task run costs Prefect; a week with three
+# small notes changed made three task runs per segment (tools/profile_weekly.py).
+SMALL_SEGMENT_BYTES = 64 << 10
 
 
 
@@ -83,11 +88,14 @@ def make_batches(jobs: list[DocJob], batch_size: int, workers: int = 1,
     A batch is closed at `batch_size` documents or at a byte budget: the drive's bytes
     spread over BATCHES_PER_WORKER batches per worker (at most BATCH_BYTES). So a few
     huge PDFs each get a batch of their own and start first, and the many small files
-    fill the remaining batches, which keeps every worker busy to the end.
+    fill the remaining batches, which keeps every worker busy to the end. A segment of
+    under SMALL_SEGMENT_BYTES in all (a quiet week's few edits) is not split by bytes.
     """
     jobs = sorted(jobs, key=lambda j: (-j.size, j.source_path))
     total = sum(j.size for j in jobs)
     budget = min(batch_bytes, max(1, total // max(1, workers * BATCHES_PER_WORKER)))
+    if total < SMALL_SEGMENT_BYTES:
+        budget = batch_bytes
     batches: list[list[DocJob]] = []
     current: list[DocJob] = []
     size = 0
