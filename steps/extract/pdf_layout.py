@@ -51,6 +51,7 @@ import re
 from bisect import bisect_right
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
+from operator import attrgetter
 
 import numpy as np
 
@@ -100,64 +101,139 @@ class Line:
         return bool(self.words) and self.words[-1].hyphen
 
 
+_X0 = attrgetter("x0")
+# Pieces closer than this share of the larger font size join without a space.
+_TOUCH = 0.25 * WORD_GAP
+
+
 def line_from(words: list[Word]) -> Line:
-    words = sorted(words, key=lambda w: w.x0)
-    parts: list[str] = []
-    prev: Word | None = None
-    sizes: dict[float, int] = {}
-    bold = chars = 0
-    top = bottom = None
-    x1 = words[0].x1
-    for w in words:
-        if prev is not None:
-            # Pieces that touch (a superscript, a change of font inside a word) join.
-            limit = 0.25 * WORD_GAP * (w.size if w.size > prev.size else prev.size or 1.0)
-            parts.append("" if w.x0 - prev.x1 <= limit else " ")
-        parts.append(w.text)
-        sizes[w.size] = sizes.get(w.size, 0) + w.chars
-        if w.bold:
-            bold += w.chars
-        chars += w.chars
-        if top is None or w.top < top:
-            top = w.top
-        if bottom is None or w.bottom > bottom:
-            bottom = w.bottom
-        if w.x1 > x1:
-            x1 = w.x1
-        prev = w
-    size = max(sizes.items(), key=lambda kv: kv[1])[0] if sizes else 0.0
+    if len(words) > 1:
+        words = sorted(words, key=_X0)
+    first = words[0]
+    if len(words) == 1:
+        text, size, bold_chars, chars = first.text, first.size, first.chars if first.bold else 0, first.chars
+        top, bottom, x1 = first.top, first.bottom, first.x1
+    else:
+        # Pieces that touch (a superscript, a change of font inside a word) join.
+        parts = [first.text]
+        for prev, w in zip(words, words[1:]):
+            limit = _TOUCH * (w.size if w.size > prev.size else prev.size or 1.0)
+            parts.append(w.text if w.x0 - prev.x1 <= limit else " " + w.text)
+        text = "".join(parts)
+        sizes = {w.size for w in words}
+        if len(sizes) == 1:
+            size = first.size
+        else:  # the size most characters have; on a tie the leftmost
+            counts: dict[float, int] = {}
+            for w in words:
+                counts[w.size] = counts.get(w.size, 0) + w.chars
+            size = max(counts.items(), key=lambda kv: kv[1])[0]
+        bold_chars = sum([w.chars for w in words if w.bold])
+        chars = sum([w.chars for w in words])
+        top = min([w.top for w in words])
+        bottom = max([w.bottom for w in words])
+        x1 = max([w.x1 for w in words])
+    text = text.strip()
+    if "\u0300" in text:
+        text = _TEX_GRAVE.sub("\u2018", text)
     return Line(
-        text=_TEX_GRAVE.sub("\u2018", "".join(parts).strip()),
+        text=text,
         top=top,
         bottom=bottom,
-        x0=words[0].x0,
+        x0=first.x0,
         x1=x1,
         size=round(size, 1),
-        bold=bold >= 0.8 * chars if chars else False,
+        bold=bold_chars >= 0.8 * chars if chars else False,
         chars=chars,
         words=words,
     )
 
 
 def make_lines(words: list[Word]) -> list[Line]:
-    """Group words into lines, top to bottom; text that is not upright comes last."""
-    upright = [w for w in words if w.upright and w.text.strip()]
-    other = [w for w in words if not w.upright and w.text.strip()]
-    upright.sort(key=lambda w: ((w.top + w.bottom) / 2, w.x0))
-    groups: list[list[Word]] = []
-    centre = height = 0.0
-    for w in upright:
-        c = (w.top + w.bottom) / 2
-        h = max(w.bottom - w.top, 0.1)
-        if groups and abs(c - centre) <= 0.35 * max(h, height):
-            groups[-1].append(w)
-            continue
-        groups.append([w])
-        centre, height = c, h
-    lines = [line_from(g) for g in groups]
+    """Group words into lines, top to bottom; text that is not upright comes last.
+
+    Words sorted by vertical centre, then x0; a word joins the current line when its
+    centre lies within 0.35 times the larger of its own height and the line's first
+    word's height from that first word's centre; each line's words are read left to
+    right (line_from). The upright lines are computed with numpy over the whole page:
+    Python work per word was most of this function's time (tests/test_pdf_text.py
+    checks the result against the rule applied word by word).
+    """
+    upright = []
+    other = []
+    for w in words:
+        if w.text.strip():
+            (upright if w.upright else other).append(w)
+    lines = _upright_lines(upright) if upright else []
     lines.sort(key=lambda ln: (ln.top, ln.x0))
     lines += [line_from([w]) for w in other]
     return lines
+
+
+def _upright_lines(words: list[Word]) -> list[Line]:
+    n = len(words)
+    x0 = np.array([w.x0 for w in words])
+    top = np.array([w.top for w in words])
+    bottom = np.array([w.bottom for w in words])
+    centre = (top + bottom) / 2
+    # Sorted by (centre, x0); lexsort is stable, so equal keys keep the words' order.
+    order = np.lexsort((x0, centre))
+    cs = centre[order].tolist()
+    hs = np.maximum(bottom - top, 0.1)[order].tolist()
+    # The grouping depends on each line's first word: a loop, over plain floats.
+    group = [0] * n
+    g = -1
+    c0 = h0 = 0.0
+    for k in range(n):
+        c, h = cs[k], hs[k]
+        if g < 0 or not abs(c - c0) <= 0.35 * (h if h > h0 else h0):
+            g += 1
+            c0, h0 = c, h
+        group[k] = g
+    # Within a line, left to right (stable: equal x0 keep the centre order).
+    pos = np.empty(n, dtype=np.int64)
+    pos[order] = np.arange(n)
+    gid = np.empty(n, dtype=np.int64)
+    gid[order] = group
+    final = np.lexsort((pos, x0, gid))
+    ws = [words[i] for i in final.tolist()]
+    gids = gid[final]
+    starts = np.flatnonzero(np.r_[True, gids[1:] != gids[:-1]])
+    ends = np.r_[starts[1:], n]
+
+    fx0 = x0[final]
+    x1 = np.array([w.x1 for w in ws])
+    size = np.array([w.size for w in ws])
+    chars = np.array([w.chars for w in ws], dtype=np.int64)
+    bold = np.array([w.bold for w in ws], dtype=bool)
+    # Pieces that touch (a superscript, a change of font inside a word) join.
+    prev_size = size[:-1]
+    larger = np.where(size[1:] > prev_size, size[1:], np.where(prev_size != 0, prev_size, 1.0))
+    touch = np.r_[True, fx0[1:] - x1[:-1] <= _TOUCH * larger]
+    # (A line's first piece may get a space here: the line's text is stripped.)
+    pieces = [w.text if t else " " + w.text for w, t in zip(ws, touch.tolist())]
+    tops = np.minimum.reduceat(top[final], starts).tolist()
+    bottoms = np.maximum.reduceat(bottom[final], starts).tolist()
+    x1s = np.maximum.reduceat(x1, starts).tolist()
+    n_chars = np.add.reduceat(chars, starts).tolist()
+    n_bold = np.add.reduceat(np.where(bold, chars, 0), starts).tolist()
+    one_size = (np.minimum.reduceat(size, starts) == np.maximum.reduceat(size, starts)).tolist()
+    out = []
+    for a, b, t, u, r, nc, nb, same in zip(starts.tolist(), ends.tolist(), tops, bottoms, x1s, n_chars,
+                                          n_bold, one_size):
+        lw = ws[a:b]
+        if same:
+            sz = lw[0].size
+        else:  # the size most characters have; on a tie the leftmost
+            counts: dict[float, int] = {}
+            for w in lw:
+                counts[w.size] = counts.get(w.size, 0) + w.chars
+            sz = max(counts.items(), key=lambda kv: kv[1])[0]
+        text = "".join(pieces[a:b]).strip()
+        if "\u0300" in text:
+            text = _TEX_GRAVE.sub("\u2018", text)
+        out.append(Line(text, t, u, lw[0].x0, r, round(sz, 1), nb >= 0.8 * nc if nc else False, nc, lw))
+    return out
 
 
 # --- columns ----------------------------------------------------------------

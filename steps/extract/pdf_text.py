@@ -2,8 +2,11 @@
 
 Why PDFium and not pdfminer for the characters: pdfminer (under pdfplumber) parses
 every character in Python, 50-600 ms a page on the Debian documentation PDFs; PDFium's
-text page is built in C++ and each character costs one ctypes call here (about 1 us),
-so a page of 2 000 characters is read in a few milliseconds (bench/extract.py).
+text page is built in C++ and each character costs one ctypes call here (its box, about
+0.6 us), so a page of 2 000 characters is read in a few milliseconds (bench/extract.py).
+PDFium has no call that returns all boxes at once (FPDFText_CountRects/GetRect merge a
+text object's characters into one rectangle, GetRectArray in its cpdf_textpage.cpp, which
+loses the gaps the word rule needs).
 
 What one page gives (`PageText`):
 - words: runs of characters between spaces (real ones or the ones PDFium generates at
@@ -31,7 +34,10 @@ from __future__ import annotations
 import ctypes
 import re
 import threading
+from itertools import repeat
 from dataclasses import dataclass, field
+from functools import partial
+from typing import NamedTuple
 
 import numpy as np
 import pypdfium2 as pdfium
@@ -59,8 +65,10 @@ PAGEOBJ_IMAGE = raw.FPDF_PAGEOBJ_IMAGE
 PAGEOBJ_FORM = raw.FPDF_PAGEOBJ_FORM
 
 
-@dataclass(slots=True)
-class Word:
+class Word(NamedTuple):
+    """A word of the text layer. A tuple, so a page's words are made from zipped
+    columns without a Python __init__ call each (about 400 words a page)."""
+
     text: str
     x0: float
     x1: float
@@ -101,9 +109,9 @@ def _font_facts(font) -> tuple[bool, str]:
 _IDENTITY = (1.0, 0.0, 0.0, 1.0, 0.0, 0.0)
 
 
-def _matrix(obj) -> tuple[float, ...]:
+def _matrix(obj: int) -> tuple[float, ...]:
     m = raw.FS_MATRIX()
-    if not raw.FPDFPageObj_GetMatrix(obj, ctypes.byref(m)):
+    if not _OBJ_MATRIX(obj, ctypes.addressof(m)):
         return _IDENTITY
     return (m.a, m.b, m.c, m.d, m.e, m.f)
 
@@ -115,45 +123,47 @@ def _then(m: tuple[float, ...], outer: tuple[float, ...]) -> tuple[float, ...]:
     return (a * A + b * C, a * B + b * D, c * A + d * C, c * B + d * D, e * A + f * C + E, e * B + f * D + F)
 
 
-def _page_objects(page_raw):
+def _page_objects(page: int) -> list[tuple[int, int, tuple[float, ...]]]:
     """(type, object, matrix of the forms around it) of every non-text page object."""
-    stack = [(raw.FPDFPage_CountObjects(page_raw), lambda i: raw.FPDFPage_GetObject(page_raw, i), _IDENTITY)]
+    stack = [(page, _COUNT_OBJECTS(page), _GET_OBJECT, _IDENTITY)]
     out = []
     while stack:
-        count, get, outer = stack.pop()
-        for i in range(count):
-            obj = get(i)
-            kind = raw.FPDFPageObj_GetType(obj)
+        parent, count, get, outer = stack.pop()
+        objects = list(map(get, repeat(parent, count), range(count)))
+        for obj, kind in zip(objects, map(_OBJ_TYPE, objects)):
             if kind == PAGEOBJ_FORM:
-                stack.append((raw.FPDFFormObj_CountObjects(obj),
-                              lambda j, o=obj: raw.FPDFFormObj_GetObject(o, j), _then(_matrix(obj), outer)))
+                stack.append((obj, _FORM_COUNT(obj), _FORM_OBJECT, _then(_matrix(obj), outer)))
             elif kind != PAGEOBJ_TEXT:
                 out.append((kind, obj, outer))
     return out
 
 
-def _path_edges(obj, outer: tuple[float, ...], page_top: float, out: list) -> None:
+def _path_edges(obj: int, outer: tuple[float, ...], page_top: float, out: list) -> None:
     """The path's straight horizontal and vertical segments, in points from the page top.
 
     As pdfplumber takes them from pdfminer: the drawn path's own coordinates (without
     the stroke's width), each straight piece and each closing piece; curves are left out.
     """
     a, b, c, d, e, f = _then(_matrix(obj), outer)
-    x, y = ctypes.c_float(), ctypes.c_float()
-    px, py = ctypes.byref(x), ctypes.byref(y)
+    count = _COUNT_SEGMENTS(obj)
+    segments = list(map(_SEGMENT, repeat(obj, count), range(count)))
+    points = np.empty((count, 2), dtype=np.float32)
+    base = points.ctypes.data
+    got = list(map(_SEG_POINT, segments, range(base, base + 8 * count, 8), range(base + 4, base + 8 * count, 8)))
+    kinds = list(map(_SEG_TYPE, segments))
+    closes = list(map(_SEG_CLOSE, segments))
+    moveto, lineto = raw.FPDF_SEGMENT_MOVETO, raw.FPDF_SEGMENT_LINETO
     start = prev = None
-    for i in range(raw.FPDFPath_CountSegments(obj)):
-        seg = raw.FPDFPath_GetPathSegment(obj, i)
-        if not raw.FPDFPathSegment_GetPoint(seg, px, py):
+    for (x, y), ok, kind, close in zip(points.tolist(), got, kinds, closes):
+        if not ok:
             continue
-        pt = (a * x.value + c * y.value + e, page_top - (b * x.value + d * y.value + f))
-        kind = raw.FPDFPathSegment_GetType(seg)
-        if kind == raw.FPDF_SEGMENT_MOVETO:
+        pt = (a * x + c * y + e, page_top - (b * x + d * y + f))
+        if kind == moveto:
             start = prev = pt
             continue
-        if kind == raw.FPDF_SEGMENT_LINETO and prev is not None:
+        if kind == lineto and prev is not None:
             _edge(prev, pt, out)
-        if raw.FPDFPathSegment_GetClose(seg) and start is not None:
+        if close and start is not None:
             _edge(pt, start, out)
             prev = start
         else:
@@ -168,38 +178,39 @@ def _edge(p, q, out: list) -> None:
         out.append(("v", x0, min(y0, y1), x0, max(y0, y1)))
 
 
-def _graphics(page_raw, width: float, height: float, facts: PageText, page_top: float) -> None:
+def _graphics(page: int, width: float, height: float, facts: PageText, page_top: float) -> None:
     """Image coverage, whether the page's paths could draw a ruled table, and if so its edges."""
-    left, bottom, right, top = (ctypes.c_float() for _ in range(4))
-    refs = [ctypes.byref(v) for v in (left, bottom, right, top)]
+    box = (ctypes.c_float * 4)()
+    at = ctypes.addressof(box)
     image_area = 0.0
     hs: set[int] = set()
     vs: set[int] = set()
     grid_like = False
     paths = []
-    for kind, obj, outer in _page_objects(page_raw):
+    for kind, obj, outer in _page_objects(page):
         if kind not in (PAGEOBJ_PATH, PAGEOBJ_IMAGE):
             continue
         if kind == PAGEOBJ_PATH:
             paths.append((obj, outer))
-        if not raw.FPDFPageObj_GetBounds(obj, *refs):
+        if not _OBJ_BOUNDS(obj, at, at + 4, at + 8, at + 12):
             continue
-        w = right.value - left.value
-        h = top.value - bottom.value
+        left, bottom, right, top = box
+        w = right - left
+        h = top - bottom
         if kind == PAGEOBJ_IMAGE:
             facts.images += 1
-            cw = max(0.0, min(right.value, width) - max(left.value, 0.0))
-            ch = max(0.0, min(top.value, height) - max(bottom.value, 0.0))
+            cw = max(0.0, min(right, width) - max(left, 0.0))
+            ch = max(0.0, min(top, height) - max(bottom, 0.0))
             image_area += cw * ch
             continue
         if h <= 3.0 and w >= 8.0:  # bounds include the stroke width
-            hs.add(round(bottom.value))
+            hs.add(round(bottom))
         elif w <= 3.0 and h >= 8.0:
-            vs.add(round(left.value))
+            vs.add(round(left))
         elif w >= 8.0 and h >= 8.0:
-            hs.update((round(bottom.value), round(top.value)))
-            vs.update((round(left.value), round(right.value)))
-            if raw.FPDFPath_CountSegments(obj) >= 10:
+            hs.update((round(bottom), round(top)))
+            vs.update((round(left), round(right)))
+            if _COUNT_SEGMENTS(obj) >= 10:
                 grid_like = True
     area = width * height or 1.0
     facts.image_share = min(1.0, image_area / area)
@@ -209,10 +220,10 @@ def _graphics(page_raw, width: float, height: float, facts: PageText, page_top: 
             _path_edges(obj, outer, page_top, facts.edges)
 
 
-def _chars_text(tp, n: int) -> str:
+def _chars_text(tp: int, n: int) -> str:
     """The page's characters, one per character index."""
     buf = (ctypes.c_ushort * (n + 1))()
-    got = raw.FPDFText_GetText(tp, 0, n, buf)
+    got = _GET_TEXT(tp, 0, n, ctypes.addressof(buf))
     if got - 1 == n:
         text = bytes(memoryview(buf)[:n]).decode("utf-16-le", "replace")
         if len(text) == n:
@@ -220,7 +231,7 @@ def _chars_text(tp, n: int) -> str:
     # Text and character indices differ (characters outside the BMP, say): ask each.
     out = []
     for i in range(n):
-        code = raw.FPDFText_GetUnicode(tp, i)
+        code = _UNICODE(tp, i)
         out.append(chr(code) if 0 <= code < 0x110000 else "\ufffd")
     return "".join(out)
 
@@ -229,79 +240,133 @@ def _own(name: str, argtypes: tuple, restype):
     """A PDFium function taking and returning plain integers (addresses, handles).
 
     pypdfium2's bindings want ctypes pointer objects and return them; plain integers
-    let boxes land in one preallocated array and handles serve as dictionary keys,
-    which halves the cost per character (0.67 against 1.18 us a box, measured on
-    docbook-xsl-doc-pdf's reference.pdf). None when this build has no such handle.
+    let boxes land in one preallocated array, let handles serve as dictionary keys and
+    let map() drive many calls from C, which halves the cost per call (0.67 against
+    1.18 us a box, measured on docbook-xsl-doc-pdf's reference.pdf). The function
+    comes from pypdfium2's library handle; a build without that handle gets the
+    public binding behind the same integer interface (`_adapted`, slower).
     """
     try:
         import pypdfium2_raw.bindings as bindings
 
-        fn = bindings._libs["pdfium"][name]
-        fn.argtypes = argtypes
-        fn.restype = restype
-        return fn
-    except Exception:  # another build of pypdfium2: the slower, public path
-        return None
+        fn = bindings._libs["pdfium"][name]  # a new function object: pypdfium2's own is untouched
+    except Exception:
+        return _adapted(getattr(raw, name), argtypes, restype)
+    fn.argtypes = argtypes
+    fn.restype = restype
+    return fn
+
+
+def _adapted(public, argtypes: tuple, restype):
+    """`public` (a pypdfium2 binding) called with and returning plain integers."""
+    types = public.argtypes
+
+    def call(*args):
+        res = public(*(ctypes.cast(_VP(a), t) if at is _VP else a for a, at, t in zip(args, argtypes, types)))
+        return ctypes.cast(res, _VP).value if restype is _VP else res
+
+    return call
 
 
 _VP = ctypes.c_void_p
-_BOX = _own("FPDFText_GetLooseCharBox", (_VP, ctypes.c_int, _VP), ctypes.c_int)
-_TEXT_OBJECT = _own("FPDFText_GetTextObject", (_VP, ctypes.c_int), _VP)
+_INT = ctypes.c_int
+_new_word = partial(tuple.__new__, Word)  # a Word from a tuple of all its fields, in order
+_BOX = _own("FPDFText_GetLooseCharBox", (_VP, _INT, _VP), _INT)
+_TEXT_OBJECT = _own("FPDFText_GetTextObject", (_VP, _INT), _VP)
 _OBJ_FONT = _own("FPDFTextObj_GetFont", (_VP,), _VP)
+_LOAD_PAGE = _own("FPDF_LoadPage", (_VP, _INT), _VP)
+_CLOSE_PAGE = _own("FPDF_ClosePage", (_VP,), None)
+_LOAD_TEXT = _own("FPDFText_LoadPage", (_VP,), _VP)
+_CLOSE_TEXT = _own("FPDFText_ClosePage", (_VP,), None)
+_WIDTH = _own("FPDF_GetPageWidthF", (_VP,), ctypes.c_float)
+_HEIGHT = _own("FPDF_GetPageHeightF", (_VP,), ctypes.c_float)
+_MEDIABOX = _own("FPDFPage_GetMediaBox", (_VP, _VP, _VP, _VP, _VP), _INT)
+_COUNT_OBJECTS = _own("FPDFPage_CountObjects", (_VP,), _INT)
+_GET_OBJECT = _own("FPDFPage_GetObject", (_VP, _INT), _VP)
+_FORM_COUNT = _own("FPDFFormObj_CountObjects", (_VP,), _INT)
+_FORM_OBJECT = _own("FPDFFormObj_GetObject", (_VP, ctypes.c_ulong), _VP)
+_OBJ_TYPE = _own("FPDFPageObj_GetType", (_VP,), _INT)
+_OBJ_BOUNDS = _own("FPDFPageObj_GetBounds", (_VP, _VP, _VP, _VP, _VP), _INT)
+_OBJ_MATRIX = _own("FPDFPageObj_GetMatrix", (_VP, _VP), _INT)
+_COUNT_SEGMENTS = _own("FPDFPath_CountSegments", (_VP,), _INT)
+_SEGMENT = _own("FPDFPath_GetPathSegment", (_VP, _INT), _VP)
+_SEG_POINT = _own("FPDFPathSegment_GetPoint", (_VP, _VP, _VP), _INT)
+_SEG_TYPE = _own("FPDFPathSegment_GetType", (_VP,), _INT)
+_SEG_CLOSE = _own("FPDFPathSegment_GetClose", (_VP,), _INT)
+_COUNT_CHARS = _own("FPDFText_CountChars", (_VP,), _INT)
+_GET_TEXT = _own("FPDFText_GetText", (_VP, _INT, _INT, _VP), _INT)
+_UNICODE = _own("FPDFText_GetUnicode", (_VP, _INT), ctypes.c_uint)
+_FONT_SIZE = _own("FPDFText_GetFontSize", (_VP, _INT), ctypes.c_double)
+_CHAR_MATRIX = _own("FPDFText_GetMatrix", (_VP, _INT, _VP), _INT)
+_MAP_ERROR = _own("FPDFText_HasUnicodeMapError", (_VP, _INT), _INT)
 
 
-def _boxes(tp, indices: list[int]) -> np.ndarray:
-    """(left, top, right, bottom) of each character index, as float32 rows."""
+def _boxes(tp: int, indices: list[int]) -> np.ndarray:
+    """(left, top, right, bottom) of each character index, as float64 rows."""
     m = len(indices)
-    arr = (ctypes.c_float * (4 * m))()
-    if _BOX is not None:
-        handle = ctypes.cast(tp, ctypes.c_void_p).value
-        base = ctypes.addressof(arr)
-        box = _BOX
-        for k, i in enumerate(indices):
-            box(handle, i, base + 16 * k)
-    else:
-        rect = raw.FS_RECTF()
-        pr = ctypes.byref(rect)
-        for k, i in enumerate(indices):
-            raw.FPDFText_GetLooseCharBox(tp, i, pr)
-            arr[4 * k: 4 * k + 4] = [rect.left, rect.top, rect.right, rect.bottom]
-    return np.frombuffer(arr, dtype=np.float32).reshape(m, 4).astype(np.float64)
+    arr = np.empty((m, 4), dtype=np.float32)
+    base = arr.ctypes.data
+    # map() drives the calls from C: no Python loop step per character.
+    for _ in map(_BOX, repeat(tp, m), indices, range(base, base + 16 * m, 16)):
+        pass
+    return arr.astype(np.float64)
 
 
 def read_page(doc: pdfium.PdfDocument, index: int) -> PageText:
-    """Words and page facts of page `index` (0-based). Hold LOCK while calling."""
-    page = doc[index]
+    """Words and page facts of page `index` (0-based). Hold LOCK while calling.
+
+    The page and its text page are opened and closed through PDFium directly, with
+    pypdfium2's messages when that fails: its page objects register finalizers and
+    parent links, a measurable share of a page's time for two handles used once.
+    """
+    page = _LOAD_PAGE(ctypes.cast(doc.raw, _VP).value, index)
+    if not page:
+        raise pdfium.PdfiumError("Failed to load page.")
     try:
-        width, height = page.get_size()
-        mb_left, mb_bottom, mb_right, mb_top = page.get_mediabox()
-        facts = PageText(width=float(width), height=float(height))
-        page_raw = page.raw
-        _graphics(page_raw, facts.width, facts.height, facts, float(mb_top))
-        textpage = page.get_textpage()
+        box = (ctypes.c_float * 4)()
+        at = ctypes.addressof(box)
+        if _MEDIABOX(page, at, at + 4, at + 8, at + 12):
+            mb_top = float(box[3])
+        else:  # no MediaBox of its own: pypdfium2's fallback, US Letter
+            mb_top = 792.0
+        facts = PageText(width=float(_WIDTH(page)), height=float(_HEIGHT(page)))
+        _graphics(page, facts.width, facts.height, facts, mb_top)
+        textpage = _LOAD_TEXT(page)
+        if not textpage:
+            raise pdfium.PdfiumError("Failed to load text page.")
         try:
-            _words(textpage.raw, float(mb_top), facts)
+            _words(textpage, mb_top, facts)
         finally:
-            textpage.close()
+            _CLOSE_TEXT(textpage)
     finally:
-        page.close()
+        _CLOSE_PAGE(page)
     return facts
 
 
-_SPACE_CODES = np.array(sorted(ord(c) for c in _SPACES), dtype=np.uint32)
-_MARK_CODES = np.array(sorted(ord(c) for c in _HYPHEN_MARKS), dtype=np.uint32)
+
+
+def _table(chars: set[str]) -> np.ndarray:
+    """A lookup table for `chars`: table[min(code, len - 1)] is True for a member.
+    (np.isin sorts both arrays on every call; a page asks twice.)"""
+    table = np.zeros(max(ord(c) for c in chars) + 2, dtype=bool)
+    table[[ord(c) for c in chars]] = True
+    return table
+
+
+_SPACE_TABLE = _table(_SPACES)
+_MARK_TABLE = _table(_HYPHEN_MARKS)
 # Hyphen marks become "-"; other control characters are glyphs PDFium could not map.
 _OUT = {ord(c): "-" for c in _HYPHEN_MARKS}
 _OUT.update({c: "\ufffd" for c in range(0x20) if chr(c) not in _SPACES and chr(c) not in _HYPHEN_MARKS})
 
 
-def _words(tp, page_top: float, facts: PageText) -> None:
-    n = raw.FPDFText_CountChars(tp)
+def _words(tp: int, page_top: float, facts: PageText) -> None:
+    n = _COUNT_CHARS(tp)
     if n <= 0:
         return
     text = _chars_text(tp, n)
     codes = np.frombuffer(text.encode("utf-32-le"), dtype=np.uint32)
-    visible = np.flatnonzero(~np.isin(codes, _SPACE_CODES))
+    visible = np.flatnonzero(~_SPACE_TABLE[np.minimum(codes, len(_SPACE_TABLE) - 1)])
     m = len(visible)
     facts.visible_chars = m
     if not m:
@@ -310,10 +375,12 @@ def _words(tp, page_top: float, facts: PageText) -> None:
     box = _boxes(tp, idx)
     left, top, right, bottom = box[:, 0], box[:, 1], box[:, 2], box[:, 3]
     h = top - bottom
-    h[h <= 0] = np.median(h[h > 0]) if np.any(h > 0) else 1.0
+    flat = h <= 0
+    if flat.any():  # boxes without height take the page's usual height
+        h[flat] = np.median(h[h > 0]) if np.any(h > 0) else 1.0
     vis_codes = codes[visible]
     vis_text = vis_codes.tobytes().decode("utf-32-le")
-    marks = np.isin(vis_codes, _MARK_CODES)
+    marks = _MARK_TABLE[np.minimum(vis_codes, len(_MARK_TABLE) - 1)]
 
     brk = np.ones(m, dtype=bool)
     if m > 1:
@@ -329,52 +396,44 @@ def _words(tp, page_top: float, facts: PageText) -> None:
     ends = np.append(starts[1:], m)
     x0 = np.minimum.reduceat(left, starts).tolist()
     x1 = np.maximum.reduceat(right, starts).tolist()
-    y0 = np.minimum.reduceat(bottom, starts).tolist()
-    y1 = np.maximum.reduceat(top, starts).tolist()
-    out_text = vis_text.translate(_OUT)
+    y0_ = np.minimum.reduceat(bottom, starts)
+    y1_ = np.maximum.reduceat(top, starts)
+    # Hyphen marks and unmapped control characters are rare: translate only when present.
+    out_text = vis_text.translate(_OUT) if bool(marks.any() or (vis_codes < 0x20).any()) else vis_text
     hyph = marks[ends - 1].tolist()
     s_list = starts.tolist()
     e_list = ends.tolist()
-    words = facts.words
-    words.extend(
-        Word(out_text[s:e], a, b, page_top - t, page_top - u, hyphen=hy, chars=e - s)
-        for s, e, a, b, t, u, hy in zip(s_list, e_list, x0, x1, y1, y0, hyph)
-    )
 
-    # Fonts: one lookup per text object (a Tj/TJ run shares one font and size).
-    matrix = raw.FS_MATRIX()
-    pm = ctypes.byref(matrix)
+    # Fonts: one lookup per text object (a Tj/TJ run shares one font and size). The
+    # object of each word's first character is asked in one map() (no Python loop per
+    # word), the facts once per distinct object.
+    first = visible[starts].tolist()
+    keys = [k or 0 for k in map(_TEXT_OBJECT, repeat(tp, len(first)), first)]
     by_object: dict[int, tuple[float, bool, bool]] = {}
     by_font: dict[int, bool] = {}
-    fast = _TEXT_OBJECT is not None and _OBJ_FONT is not None
-    handle = ctypes.cast(tp, _VP).value
-    for word, s in zip(words, s_list):
-        i = idx[s]
-        if fast:
-            key = _TEXT_OBJECT(handle, i) or 0
-        else:
-            obj = raw.FPDFText_GetTextObject(tp, i)
-            key = ctypes.cast(obj, _VP).value or 0
-        found = by_object.get(key)
-        if found is None:
-            nominal = raw.FPDFText_GetFontSize(tp, i)
-            raw.FPDFText_GetMatrix(tp, i, pm)
-            scale = (matrix.c * matrix.c + matrix.d * matrix.d) ** 0.5 or 1.0
-            upright = abs(matrix.b) <= 0.1 * abs(matrix.a) and matrix.a > 0
-            bold = False
-            if key:
-                if fast:
-                    fkey = _OBJ_FONT(key) or 0
-                else:
-                    fkey = ctypes.cast(raw.FPDFTextObj_GetFont(obj), _VP).value or 0
-                if fkey not in by_font:
-                    by_font[fkey] = _font_facts(ctypes.cast(fkey, raw.FPDF_FONT))[0] if fkey else False
-                bold = by_font[fkey]
-            found = (nominal * scale, bold, upright)
-            by_object[key] = found
-        word.size, word.bold, word.upright = found
+    matrix = raw.FS_MATRIX()
+    pm = ctypes.addressof(matrix)
+    for key, i in zip(keys, first):
+        if key in by_object:
+            continue
+        nominal = _FONT_SIZE(tp, i)
+        _CHAR_MATRIX(tp, i, pm)
+        scale = (matrix.c * matrix.c + matrix.d * matrix.d) ** 0.5 or 1.0
+        upright = abs(matrix.b) <= 0.1 * abs(matrix.a) and matrix.a > 0
+        bold = False
+        if key:
+            fkey = _OBJ_FONT(key) or 0
+            if fkey not in by_font:
+                by_font[fkey] = _font_facts(ctypes.cast(fkey, raw.FPDF_FONT))[0] if fkey else False
+            bold = by_font[fkey]
+        by_object[key] = (nominal * scale, bold, upright)
+    fonts = [by_object[k] for k in keys]
+    facts.words.extend(map(_new_word, zip(
+        [out_text[s:e] for s, e in zip(s_list, e_list)], x0, x1,
+        (page_top - y1_).tolist(), (page_top - y0_).tolist(),
+        [f[0] for f in fonts], [f[1] for f in fonts], hyph, (ends - starts).tolist(), [f[2] for f in fonts])))
 
     # Glyphs without a Unicode mapping: ask PDFium only about suspicious characters.
     odd = ((vis_codes < 0x20) & ~marks) | (vis_codes == 0xFFFD) | ((vis_codes >= 0xE000) & (vis_codes <= 0xF8FF))
     if odd.any():
-        facts.unmapped = sum(1 for i in visible[odd].tolist() if raw.FPDFText_HasUnicodeMapError(tp, i))
+        facts.unmapped = sum(1 for i in visible[odd].tolist() if _MAP_ERROR(tp, i))
