@@ -177,10 +177,15 @@ def client_context():
     Each flow run's client built a new SSL context and loaded certifi's CA bundle into
     it: 25-60 ms CPU per run (tools/profile_weekly.py), whatever the server's scheme.
     The flow engine and its task threads take the client of a context that is already
-    entered, so this one serves them.
+    entered, so this one serves them. Prefect's get_client hands a context's client
+    only to callers asking with the httpx settings the context was made with; artifacts
+    and the result-storage lookup ask with none, and made a client (and a CA bundle
+    load) each, three per run. The TLS context is the one Prefect would make itself,
+    so the context is marked as made with none: they take this client too.
     """
     from prefect.context import SyncClientContext
 
-    tls = tls_context()
-    with SyncClientContext(httpx_settings={"verify": tls}) as ctx:
+    ctx = SyncClientContext(httpx_settings={"verify": tls_context()})
+    ctx._httpx_settings = None
+    with ctx:
         yield ctx

@@ -492,6 +492,18 @@ def test_the_manifests_counts_carried_from_the_last_run_equal_a_full_recount(fir
     check(_run(drive, store_dir, workers=1))
 
 
+def test_a_runs_prefect_calls_share_the_runs_client(prefect_harness):
+    # Artifacts and Prefect's result-storage lookup ask get_client with no httpx settings;
+    # each made a client of its own (and loaded a CA bundle) until they took the run's.
+    from prefect.client.orchestration import get_client
+
+    from thresher.flows.runtime import client_context, tls_context
+
+    with client_context() as ctx:
+        assert get_client(sync_client=True) is ctx.client
+    assert tls_context() is tls_context()
+
+
 def test_a_run_sends_no_heartbeat_unless_the_user_set_its_frequency():
     from prefect.settings import get_current_settings, temporary_settings
 
