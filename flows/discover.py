@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import os
 import re
+import stat
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import lru_cache
@@ -82,24 +83,24 @@ def stat_record(st: os.stat_result) -> dict[str, int]:
             "device": st.st_dev & 0x7FFF_FFFF_FFFF_FFFF, "ctime_ns": st.st_ctime_ns}
 
 
-def _look(full: Path, rel: str, known: dict | None, verify: bool) -> SourceFile | ScanProblem | None:
+def _look(full: str, rel: str, known: dict | None, verify: bool) -> SourceFile | ScanProblem | None:
     """Stat one file; hash it unless the catalog's stat record for its path still matches."""
     from thresher.flows.access import read_facts  # access imports this module's globs
 
     try:
-        st = full.stat()
-        if not full.is_file():
+        st = os.stat(full)
+        if not stat.S_ISREG(st.st_mode):  # what is_file() asks, without a second stat
             return None
         rec = stat_record(st)
         if not verify and known is not None and known.get("doc_id") and all(known.get(k) == rec[k] for k in STAT_FIELDS):
-            return SourceFile(rel, str(full), st.st_size, st.st_mtime, known["doc_id"], rec["mtime_ns"],
+            return SourceFile(rel, full, st.st_size, st.st_mtime, known["doc_id"], rec["mtime_ns"],
                               rec["inode"], rec["device"], rec["ctime_ns"], hashed=False,
-                              facts=read_facts(str(full), st))
+                              facts=read_facts(full, st))
         doc_id = file_doc_id(full)
     except OSError as exc:
         return ScanProblem(rel, f"cannot read file: {exc.strerror or exc}")
-    return SourceFile(rel, str(full), st.st_size, st.st_mtime, doc_id, rec["mtime_ns"], rec["inode"],
-                      rec["device"], rec["ctime_ns"], facts=read_facts(str(full), st))
+    return SourceFile(rel, full, st.st_size, st.st_mtime, doc_id, rec["mtime_ns"], rec["inode"],
+                      rec["device"], rec["ctime_ns"], facts=read_facts(full, st))
 
 
 def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
@@ -115,15 +116,19 @@ def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
     """
     root = Path(root)
     known = known or {}
-    todo: list[tuple[Path, str]] = []
-    for dirpath, dirnames, filenames in os.walk(root, followlinks=False):
+    todo: list[tuple[str, str]] = []
+    # Paths as strings: pathlib's parsing per file was most of a quiet week's scan.
+    top = str(root)
+    for dirpath, dirnames, filenames in os.walk(top, followlinks=False):
         dirnames.sort()
+        base = str(Path(dirpath))  # the folder as pathlib spells it, once per folder
+        folder = os.path.relpath(dirpath, top).replace(os.sep, "/")
+        prefix = "" if folder == "." else folder + "/"
         for name in sorted(filenames):
-            full = Path(dirpath) / name
-            rel = full.relative_to(root).as_posix()
+            rel = prefix + name
             if not matches(rel, include) or matches(rel, exclude):
                 continue
-            todo.append((full, rel))
+            todo.append((os.path.join(base, name), rel))
     found: list[SourceFile] = []
     problems: list[ScanProblem] = []
     with ThreadPoolExecutor(max_workers=max(1, threads), thread_name_prefix="thresher-scan") as pool:
