@@ -127,3 +127,27 @@ def test_contents_and_index_lines():
 ])
 def test_ordinary_lists_are_not_navigation(lines):
     assert judge_page(lines, [lines[0]], 40).kind == ""
+
+
+def test_lines_without_a_reference_at_their_end_are_not_entries(monkeypatch):
+    """The quick check on a line's last three characters (pdf_navigation._TAIL) decides
+    nothing the entry patterns would decide otherwise: every line of the Debian FAQ's
+    first twelve pages (contents and text) and of libtasn1's two-column index, and
+    entry forms written out (another script's digits among them), read the same with
+    the check and without it."""
+    from thresher.steps.extract import pdf_layout, pdf_navigation, pdf_text
+
+    lines = ["Basics . . . . 12", "Preface . . . . iii", "a . . . 3 b . . . 4 x", "apt-get, 12, 45-47",
+             "1.2 Basics 12", "Grundlagen \u0661\u0662", "Prix 12,50", "Kapitel IV", "Seite 4 ."]
+    for path, pages in ((PDFS[0], slice(0, 12)), (PDFS[1], slice(-8, None))):  # contents; index
+        doc = pdfium.PdfDocument(_read(path))
+        try:
+            with pdf_text.LOCK:
+                for i in range(len(doc))[pages]:
+                    lines += [ln.text for ln in pdf_layout.make_lines(pdf_text.read_page(doc, i).words)]
+        finally:
+            doc.close()
+    with_check = [pdf_navigation._entry(ln) for ln in lines]
+    monkeypatch.setattr(pdf_navigation, "_TAIL", re.compile(""))  # matches every line
+    assert [pdf_navigation._entry(ln) for ln in lines] == with_check
+    assert sum(e is not None for e in with_check) > 150  # contents and index entries among them

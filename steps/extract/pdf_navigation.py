@@ -70,6 +70,10 @@ _LEADER_ANY = re.compile(rf"(?:\.\s?){{3,}}\s*(\d{{1,4}}|{_ROMAN})(?=\s|$)", re.
 _SPACED_ENTRY = re.compile(r"[^\W\d]\S*\s+(\d{1,4})$")
 _INDEX_ENTRY = re.compile(r"^([^\W\d].*?),\s*(\d{1,4}(?:\s*[-\u2013,]\s*\d{1,4})*)$")
 _NOT_PAGE = re.compile(r"[$\u20ac\u00a3\u00a5%]|\d[.,]\d+$")
+# Every entry form ends in its page reference, a digit or a roman numeral, within the
+# line's last three characters (two-column leaders may leave two after it): a line
+# without one is no entry, decided without the patterns above (most lines of a page).
+_TAIL = re.compile(r"[\divxlcdm]", re.IGNORECASE)
 _LIST_OF = re.compile(r"^\s*list\s+of\s+(figures|tables|illustrations|examples)\b", re.IGNORECASE)
 
 _ROMAN_VALUES = {"i": 1, "v": 5, "x": 10, "l": 50, "c": 100, "d": 500, "m": 1000}
@@ -87,7 +91,7 @@ def _entry(line: str) -> tuple[str, int | None] | None:
     """(term, page) for an entry line: page is None for an index entry's page list and
     negative for a roman page number; None for a line that is not an entry."""
     line = line.strip()
-    if _NOT_PAGE.search(line):
+    if not _TAIL.search(line, max(0, len(line) - 3)) or _NOT_PAGE.search(line):
         return None
     many = list(_LEADER_ANY.finditer(line))
     if len(many) > 1 and len(line) - many[-1].end() <= 2:
@@ -135,8 +139,15 @@ def judge_page(lines: list[str], headings: list[str], page_count: int,
     heads = set(headings)
     body = [i for i, ln in enumerate(lines)
             if len(ln.strip()) > 2 and not ln.strip().isdigit() and ln not in heads]
-    found = [(i, e) for i, e in ((i, _entry(lines[i])) for i in body) if e is not None]
-    if len(found) < min_entries or len(found) < share * len(body):
+    needed = max(min_entries, share * len(body))
+    found = []
+    for k, i in enumerate(body):
+        if len(found) + len(body) - k < needed:  # too few lines left to reach it
+            return Judgement()
+        e = _entry(lines[i])
+        if e is not None:
+            found.append((i, e))
+    if len(found) < needed:
         return Judgement()
     entries = [i for i, _ in found]
     pages = [p for _, (_, p) in found if p is not None]
