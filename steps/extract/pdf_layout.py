@@ -254,33 +254,28 @@ def find_gutters(lines: list[Line], em: float) -> list[tuple[float, float]]:
     n = len(lines)
     if n < 6 or em <= 0:
         return []
-    words = [w for ln in lines for w in ln.words]
-    xs0 = min(w.x0 for w in words)
-    xs1 = max(w.x1 for w in words)
+    x0s = [w.x0 for ln in lines for w in ln.words]
+    x1s = [w.x1 for ln in lines for w in ln.words]
+    xs0 = min(x0s)
+    xs1 = max(x1s)
     if xs1 - xs0 < 2 * COLUMN_EM * em:
         return []
     bins = int(xs1 - xs0) + 2
     diff = np.zeros(bins + 1)
-    a = np.array([int(w.x0 - xs0) for w in words])
-    b = np.array([int(np.ceil(w.x1 - xs0)) for w in words])
-    np.add.at(diff, a, 1)
-    np.add.at(diff, b, -1)
+    # Each word covers the whole points from its left edge (rounded down) to its right
+    # edge (rounded up); x - xs0 >= 0, so truncation rounds down.
+    np.add.at(diff, (np.array(x0s) - xs0).astype(np.int64), 1)
+    np.add.at(diff, np.ceil(np.array(x1s) - xs0).astype(np.int64), -1)
     coverage = np.cumsum(diff)[:bins]
     free = coverage <= SPANNING_SHARE * n
     lo = int(COLUMN_EM * em)
     hi = bins - int(COLUMN_EM * em)
     if hi <= lo:
         return []
-    runs: list[tuple[float, float]] = []
-    start = None
-    for i in range(lo, hi + 1):
-        on = i < hi and bool(free[i])
-        if on and start is None:
-            start = i
-        elif not on and start is not None:
-            if i - start >= max(GUTTER_EM * em, 3.0):
-                runs.append((xs0 + start, xs0 + i))
-            start = None
+    # Runs of free points between lo and hi: where the padded mask turns on and off.
+    edges = np.flatnonzero(np.diff(np.concatenate(([False], free[lo:hi], [False])))).tolist()
+    wide = max(GUTTER_EM * em, 3.0)
+    runs = [(xs0 + (lo + a), xs0 + (lo + b)) for a, b in zip(edges[0::2], edges[1::2]) if b - a >= wide]
     accepted = runs
     for _ in range(2):  # validate against the neighbours that remain
         kept = []
