@@ -127,6 +127,7 @@ _BULLET = re.compile(r"^[\u2022\u25e6\u25aa\u25ab\u2023\u2043\u25cf\u25cb\u25a0\
 # A table-of-contents line: dot leaders, then a page number.
 _DOT_LEADER = re.compile(r"(?:\.\s?){4,}\s*[\divxlc]+\s*$", re.IGNORECASE)
 _CID = re.compile(r"\(cid:\d+\)")
+_ASCII_LETTER = re.compile(r"[A-Za-z]")
 _LEADING_NUMBER = re.compile(r"^(?:\d+(?:[.)]\d+)*[.)]?|[ivxlc]+[.)]|[a-z][.)])\s+", re.IGNORECASE)
 _JUNK_TITLE = re.compile(
     r"^(untitled(\s+document)?|microsoft word\s*-.*|.*\.(docx?|pdf|odt|rtf|txt|tex|indd|qxd))$",
@@ -442,7 +443,10 @@ def _size_mode(lines: list[Line]) -> tuple[float, int]:
 
 
 def _is_heading(line: Line, body: float, body_bold: bool, ratio: float) -> bool:
-    if not any(ch.isalpha() for ch in line.text) or _DOT_LEADER.search(line.text):
+    text = line.text
+    # Has a letter: in ASCII text one search (str.isalpha per character is the slow part).
+    letter = _ASCII_LETTER.search(text) is not None if text.isascii() else any(ch.isalpha() for ch in text)
+    if not letter or _DOT_LEADER.search(text):
         return False
     words = len(line.text.split())
     if body and line.size >= ratio * body and words <= 20:

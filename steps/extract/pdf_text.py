@@ -222,10 +222,10 @@ def _graphics(page: int, width: float, height: float, facts: PageText, page_top:
 
 def _chars_text(tp: int, n: int) -> str:
     """The page's characters, one per character index."""
-    buf = (ctypes.c_ushort * (n + 1))()
-    got = _GET_TEXT(tp, 0, n, ctypes.addressof(buf))
+    buf = np.zeros(n + 1, dtype=np.uint16)  # UTF-16 code units and a terminating zero
+    got = _GET_TEXT(tp, 0, n, buf.ctypes.data)
     if got - 1 == n:
-        text = bytes(memoryview(buf)[:n]).decode("utf-16-le", "replace")
+        text = buf[:n].tobytes().decode("utf-16-le", "replace")
         if len(text) == n:
             return text
     # Text and character indices differ (characters outside the BMP, say): ask each.
