@@ -85,7 +85,7 @@ class _Threads:
 
 def prefect_floor(times: int = 7) -> None:
     """Prefect's own cost per run on this server, as thresher's flow is set up (same
-    task runner, same settings): an empty flow run; with one task run; with the two
+    task runner, same settings and client context): an empty flow run; with one task run; with the two
     summary artifacts a run publishes. Medians of `times` runs each."""
     import statistics
 
@@ -97,12 +97,16 @@ def prefect_floor(times: int = 7) -> None:
     from thresher.flows.runtime import run_overrides
 
     try:
-        from thresher.flows.runtime import run_settings
-    except ImportError:  # a version before run_settings: as its run() did
+        from thresher.flows.runtime import client_context, run_settings
+    except ImportError:  # a version before them: as its run() did
+        from contextlib import nullcontext
+
         from prefect.settings import temporary_settings
 
         def run_settings(overrides):
             return temporary_settings(updates=overrides)
+
+        client_context = nullcontext
 
     @task(cache_policy=NO_CACHE)
     def one() -> int:
@@ -123,7 +127,8 @@ def prefect_floor(times: int = 7) -> None:
         with run_settings(run_overrides()):
             for _ in range(times):
                 t, c = time.perf_counter(), time.process_time()
-                empty(tasks, artifacts)
+                with client_context():  # as run() enters it for each run
+                    empty(tasks, artifacts)
                 walls.append(time.perf_counter() - t)
                 cpus.append(time.process_time() - c)
         print(f"Prefect alone, {label}: {statistics.median(walls):.3f} s wall, {statistics.median(cpus):.3f} s CPU "
