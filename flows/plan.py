@@ -105,7 +105,9 @@ def live_documents(catalog_rows: list[dict], seq_of: dict[str, int], sequence: i
     for r in catalog_rows:
         s = seq_of.get(r["first_run"], sequence)
         first_seq[r["doc_id"]] = min(first_seq.get(r["doc_id"], s), s)
-    chosen = {d: min(rows, key=lambda r: source_path_key(r, source)) for d, rows in present.items()}
+    # Most documents sit at one path: no key to work out (it matches globs per row).
+    chosen = {d: rows[0] if len(rows) == 1 else min(rows, key=lambda r: source_path_key(r, source))
+              for d, rows in present.items()}
     canonical = {d: r["source_path"] for d, r in chosen.items()}
     order = sorted(canonical, key=lambda d: (first_seq[d], canonical[d]))
     live = {d: (rank, canonical[d], _modified_ns(chosen[d])) for rank, d in enumerate(order)}
