@@ -506,6 +506,9 @@ class Store:
         manifest["files"] = self.run_files(run_id, manifest.get("publish"))
         self.write_json(f"runs/{run_id}/manifest.json", manifest)
         self._runs_cache = None
+        with _LEDGERS_LOCK:  # committed now: its ledgers are cached as such when next read
+            for key in [k for k in _RUNNING_LEDGERS if k[0] == self.base and k[2] == run_id]:
+                del _RUNNING_LEDGERS[key]
         if before_publish is not None:
             before_publish()
         self.publish(manifest)
