@@ -172,9 +172,10 @@ def make_lines(words: list[Word]) -> list[Line]:
 
 def _upright_lines(words: list[Word]) -> list[Line]:
     n = len(words)
-    x0 = np.array([w.x0 for w in words])
-    top = np.array([w.top for w in words])
-    bottom = np.array([w.bottom for w in words])
+    # Words are tuples: one zip gives every field's column.
+    columns = list(zip(*words))
+    x0, x1, top, bottom, size = (np.array(columns[k]) for k in range(1, 6))
+    bold, chars = np.array(columns[6], dtype=bool), np.array(columns[8], dtype=np.int64)
     centre = (top + bottom) / 2
     # Sorted by (centre, x0); lexsort is stable, so equal keys keep the words' order.
     order = np.lexsort((x0, centre))
@@ -201,11 +202,7 @@ def _upright_lines(words: list[Word]) -> list[Line]:
     starts = np.flatnonzero(np.r_[True, gids[1:] != gids[:-1]])
     ends = np.r_[starts[1:], n]
 
-    fx0 = x0[final]
-    x1 = np.array([w.x1 for w in ws])
-    size = np.array([w.size for w in ws])
-    chars = np.array([w.chars for w in ws], dtype=np.int64)
-    bold = np.array([w.bold for w in ws], dtype=bool)
+    fx0, x1, size, chars, bold = x0[final], x1[final], size[final], chars[final], bold[final]
     # Pieces that touch (a superscript, a change of font inside a word) join.
     prev_size = size[:-1]
     larger = np.where(size[1:] > prev_size, size[1:], np.where(prev_size != 0, prev_size, 1.0))
