@@ -18,6 +18,10 @@ PDFs: the ones Debian documentation packages install and the tests read
 THRESHER_BENCH_MORE=1 adds every other PDF found under /usr/share/doc and R's
 manuals (r-doc-pdf), gzipped ones unpacked, each once and none over 2 MB;
 pdfplumber then takes minutes.
+
+`python -m bench.extract --against TREE` measures only the PDF extraction's CPU time
+per page, this checkout beside another (a `git worktree add` of an older commit), and
+whether both give the same pages (see `against`).
 """
 
 from __future__ import annotations
@@ -287,5 +291,94 @@ def main() -> None:
         shutil.rmtree(tmp, ignore_errors=True)
 
 
+# --- this checkout against another, side by side ------------------------------
+
+AGAINST_ROUNDS = 7
+
+
+def _serve_pdfs() -> None:
+    """Child of `against`: extract the goals' Debian PDFs on request, answering each
+    with its CPU seconds, pages and a digest of the pages (text, blocks, payload)."""
+    import hashlib
+    import pickle
+    import sys
+
+    from thresher.steps.extract import ExtractParams, extract
+    from thresher.steps.spec import StepContext
+    from thresher.steps.units import Source
+
+    tmp = Path(tempfile.mkdtemp(prefix="thresher-bench-"))
+    paths = [_plain(p, tmp) for p in BASE_PDFS + RULED_PDFS if Path(p).exists()]
+    sources = [Source(doc_id="bench", source_path=p.name, data=p.read_bytes(), size=p.stat().st_size, mtime=0.0)
+               for p in paths]
+    shutil.rmtree(tmp, ignore_errors=True)
+    for src in sources:  # imports and PDFium's library load, not timed
+        extract(src, ExtractParams(), StepContext())
+    print(len(sources), flush=True)
+    for line in sys.stdin:
+        src = sources[int(line)]
+        t = time.process_time()
+        pages = extract(src, ExtractParams(), StepContext())
+        cpu = time.process_time() - t
+        seen = [(p.page, p.text, p.blocks, p.warnings, p.status, p.reason,
+                 {k: v for k, v in p.payload.items() if k != "duration_ms"}) for p in pages]
+        print(cpu, len(pages), hashlib.sha256(pickle.dumps(seen)).hexdigest(), flush=True)
+
+
+def against(tree: str) -> None:
+    """The PDF extraction's CPU time per page, this checkout beside `tree` (a `git
+    worktree add` of another commit), on the Debian PDFs `bench goals` reads: two
+    child processes, one per checkout, take turns file by file (the order swapped every
+    round); each file's best of AGAINST_ROUNDS counts, so a busy shared machine
+    disturbs both alike. Also says whether both give the same pages."""
+    import sys
+
+    here = Path(__file__).resolve().parent.parent
+    with tempfile.TemporaryDirectory() as link:
+        # thresher is the checkout's root directory: a link named thresher puts the other
+        # tree's package first on the import path of its child.
+        os.symlink(Path(tree).resolve(), Path(link) / "thresher")
+        envs = {"before": dict(os.environ, PYTHONPATH=link), "after": dict(os.environ)}
+        children = {label: subprocess.Popen([sys.executable, "-m", "bench.extract", "--serve"], cwd=here, env=env,
+                                            stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+                    for label, env in envs.items()}
+        try:
+            files = {int(c.stdout.readline()) for c in children.values()}
+            if len(files) != 1 or not files:
+                raise SystemExit("the two checkouts see different PDFs")
+            n = files.pop()
+            best = {label: [float("inf")] * n for label in children}
+            pages = [0] * n
+            digests: dict[str, list[str]] = {label: [""] * n for label in children}
+            for r in range(AGAINST_ROUNDS):
+                for k in range(n):
+                    order = list(children.items()) if r % 2 == 0 else list(children.items())[::-1]
+                    for label, child in order:
+                        child.stdin.write(f"{k}\n")
+                        child.stdin.flush()
+                        cpu, count, digest = child.stdout.readline().split()
+                        best[label][k] = min(best[label][k], float(cpu))
+                        pages[k], digests[label][k] = int(count), digest
+        finally:
+            for child in children.values():
+                child.stdin.close()
+                child.wait()
+    total = sum(pages)
+    print(f"load average {os.getloadavg()[0]:.1f}; {n} PDFs, {total} pages; best of {AGAINST_ROUNDS} per file")
+    for label in children:
+        print(f"  {label} ({tree if label == 'before' else 'this checkout'}): "
+              f"{sum(best[label]) / total * 1000:.2f} ms CPU/page")
+    print(f"  after/before: {sum(best['after']) / sum(best['before']):.3f}")
+    same = sum(a == b for a, b in zip(digests["before"], digests["after"]))
+    print(f"  the same pages (text, blocks, warnings, statuses, payload) in {same} of {n} PDFs")
+
+
 if __name__ == "__main__":
-    main()
+    import sys
+
+    if sys.argv[1:2] == ["--against"] and len(sys.argv) == 3:
+        against(sys.argv[2])
+    elif sys.argv[1:] == ["--serve"]:
+        _serve_pdfs()
+    else:
+        main()
