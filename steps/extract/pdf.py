@@ -468,9 +468,10 @@ def _norm(text: str) -> str:
     return _NOT_ALNUM.sub("", unicodedata.normalize("NFKC", text).casefold())
 
 
-def _norm_variants(text: str) -> set[str]:
+@lru_cache(maxsize=8192)  # asked for every line once per outline entry the headings missed
+def _norm_variants(text: str) -> frozenset[str]:
     stripped = _LEADING_NUMBER.sub("", text.strip())
-    return {v for v in (_norm(text), _norm(stripped)) if v}
+    return frozenset(v for v in (_norm(text), _norm(stripped)) if v)
 
 
 def _wrapped(prev: Line, ln: Line) -> bool:
