@@ -1,0 +1,154 @@
+"""Each runner with 2 workers against one worker on the Debian documentation PDFs, with
+where the CPU went: the run's own process (the parent: Prefect, recording rows, writing
+parts), its child processes (warm workers, fork servers, pool or Dask workers), and the
+Prefect server.
+
+On a shared machine the wall-clock ratios move with the load; the CPU seconds hardly do.
+From them: a 2-worker run needs at least its CPU seconds spread over the 2 cores, and at
+least the parent's own CPU seconds (one interpreter lock), so against a one-worker run
+that keeps one core busy (flow time = its CPU seconds) it can be at most
+2 * CPU(1) / CPU(2) times faster, and at most CPU(1) / parent CPU(2).
+
+`python -m bench runners` (about two minutes); THRESHER_BENCH_RUNNERS=threads,processes
+limits the runners, THRESHER_BENCH_ROUNDS=2 repeats the set in alternating order.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+def _cpu_of(proc) -> float:
+    t = proc.cpu_times()
+    return t.user + t.system
+
+
+class TreeCPU:
+    """CPU seconds of a process and of its descendants, polled: a descendant that ends
+    between two polls loses at most one poll's worth (warm workers live for the run)."""
+
+    def __init__(self, pid: int, every: float = 0.05):
+        import psutil
+
+        self.root = psutil.Process(pid)
+        self.own = 0.0
+        self.children: dict[int, float] = {}
+        self.every = every
+        self._done = threading.Event()
+        self._thread = threading.Thread(target=self._poll, daemon=True)
+        self._thread.start()
+
+    def _poll(self) -> None:
+        import psutil
+
+        while not self._done.is_set():
+            try:
+                self.own = _cpu_of(self.root)
+                kids = self.root.children(recursive=True)
+            except psutil.NoSuchProcess:
+                return
+            for k in kids:
+                try:
+                    self.children[k.pid] = _cpu_of(k)
+                except psutil.NoSuchProcess:
+                    pass
+            self._done.wait(self.every)
+
+    def stop(self) -> tuple[float, float]:
+        self._done.set()
+        self._thread.join()
+        return self.own, sum(self.children.values())
+
+
+def run_once(drive: Path, store: Path, runner: dict, env: dict, tmp: Path, server_pid: int | None) -> dict:
+    import psutil
+    import yaml
+
+    from thresher.flows.config import default_config_text
+
+    flow = tmp / f"flow-{runner['kind']}-{runner['workers']}.yaml"
+    flow.write_text(json.dumps({"runner": runner, "steps": yaml.safe_load(default_config_text())["steps"]}))
+    server = psutil.Process(server_pid) if server_pid else None
+    server_before = _cpu_of(server) if server else 0.0
+    load = os.getloadavg()[0]
+    t = time.perf_counter()
+    proc = subprocess.Popen([str(Path(sys.executable).with_name("thresher")), "run", "--config", str(flow),
+                             "--source", str(drive), "--store", str(store), "--quiet", "--json"],
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=REPO)
+    tree = TreeCPU(proc.pid)
+    out, err = proc.communicate()
+    wall = time.perf_counter() - t
+    parent, children = tree.stop()
+    if proc.returncode != 0:
+        raise RuntimeError(f"thresher run failed: {err[-2000:]}")
+    m = json.loads(out)
+    return {"wall": wall, "flow": m["seconds"], "manifest": m, "parent": parent, "children": children,
+            "server": (_cpu_of(server) - server_before) if server else 0.0, "load": (load, os.getloadavg()[0])}
+
+
+def main() -> None:
+    from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
+    from prefect.server.api.server import SubprocessASGIServer
+
+    from bench.goals import debian_pdfs
+    from thresher.flows.pipeline import _free_port
+
+    kinds = os.environ.get("THRESHER_BENCH_RUNNERS", "threads,processes,dask").split(",")
+    rounds = int(os.environ.get("THRESHER_BENCH_ROUNDS", "1"))
+    with tempfile.TemporaryDirectory() as td:
+        tmp = Path(td)
+        paths = debian_pdfs(tmp)
+        if not paths:
+            print("no Debian documentation PDFs here (make bench-deps installs some)")
+            return
+        drive = tmp / "pdf-drive"
+        drive.mkdir()
+        for p in paths:
+            (drive / p.name).write_bytes(p.read_bytes())
+        server = SubprocessASGIServer(port=_free_port())
+        server.start(timeout=120)
+        env = dict(os.environ, PREFECT_API_URL=server.api_url)
+        configs = [("sequential", 1)] + [(k, 2) for k in kinds]
+        results: dict[tuple[str, int], list[dict]] = {c: [] for c in configs}
+        try:
+            for r in range(rounds):
+                order = configs if r % 2 == 0 else [configs[0]] + configs[:0:-1]
+                for kind, workers in order:
+                    res = run_once(drive, tmp / f"store-{kind}-{workers}-{r}", {"kind": kind, "workers": workers},
+                                   env, tmp, server.server_process.pid)
+                    results[(kind, workers)].append(res)
+                    print(f"  round {r + 1} {kind} x{workers}: flow {res['flow']:.2f} s, wall {res['wall']:.2f} s, "
+                          f"CPU parent {res['parent']:.1f} s, children {res['children']:.1f} s, server "
+                          f"{res['server']:.1f} s; load {res['load'][0]:.1f} -> {res['load'][1]:.1f}", flush=True)
+        finally:
+            server.stop()
+    one = results[("sequential", 1)]
+    pages = one[0]["manifest"]["pages"]
+    print(f"{len(paths)} PDFs, {pages} pages, {os.cpu_count()} cores")
+    print(f"{'runner':<16} {'flow s':>7} {'speed-up':>8} {'CPU parent':>10} {'children':>8} {'server':>6} "
+          f"{'CPU vs 1':>8} {'bound 2C1/C2':>12} {'bound C1/P2':>11} {'load':>9}")
+    for (kind, workers), runs in results.items():
+        for r, res in enumerate(runs):
+            base = one[r]
+            c1 = base["parent"] + base["children"] + base["server"]
+            c2 = res["parent"] + res["children"] + res["server"]
+            print(f"{kind + ' x' + str(workers):<16} {res['flow']:7.2f} {base['flow'] / res['flow']:8.2f} "
+                  f"{res['parent']:10.1f} {res['children']:8.1f} {res['server']:6.1f} {c2 / c1:8.2f} "
+                  f"{2 * c1 / c2:12.2f} {c1 / max(res['parent'], 1e-9):11.2f} "
+                  f"{res['load'][0]:4.1f}-{res['load'][1]:.1f}")
+    print("flow time per part, s: " + "; ".join(
+        f"{k} x{w}: " + ", ".join(f"{p} {v:.2f}" for p, v in runs[0]["manifest"]["timings"].items())
+        for (k, w), runs in results.items()))
+
+
+if __name__ == "__main__":
+    main()
