@@ -251,6 +251,10 @@ def cmd_run(args: argparse.Namespace) -> int:
 def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source: str, store_root: str,
                     **options: Any) -> int:
     """Run the flow, then print its manifest (--json) or the summary."""
+    if args.verb == "run":  # before Prefect is imported, so their start overlaps it
+        from thresher.flows.execute import prewarm_run
+
+        prewarm_run(definition, store_root, options.get("workers"), options.get("force", False))
     from thresher.flows import pipeline
     from thresher.flows.rerun import RerunError
     from thresher.flows.store import StoreError

@@ -30,7 +30,7 @@ from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
 from thresher.flows.discover import scan
-from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, unit_kind
+from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, prewarm_run, unit_kind
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
 from thresher.flows.plan import Plan, add_members, make_plan
@@ -584,6 +584,8 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     run_id = new_run_id()
     store = Store(store_root)
     store.acquire_lock(run_id)
+    if rerun is None:
+        prewarm_run(definition, store_root, workers, force)  # beside Prefect's start of the flow
     overrides = run_overrides()
     try:
         with shared_api(definition.model.runner.kind), run_settings(overrides), client_context():

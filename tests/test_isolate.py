@@ -72,3 +72,59 @@ def test_a_call_queued_behind_another_runs_in_the_same_worker_timed_from_its_own
         fourth = (timed_pieces, ([(None, 0.0), (None, 0.0)],), "fourth")
         list(caller.stream(timed_pieces, ([(5.0, 0.1)],), following=lambda: fourth))
         assert [n for n, _ in caller.stream(timed_pieces, ([(None, 0.0)],), token="other")] == [0]
+
+
+def test_a_worker_started_ahead_is_running_before_any_call_and_takes_the_first_one():
+    import multiprocessing as mp
+    import time
+
+    from example_steps import timed_pieces
+
+    before = {p.pid for p in mp.active_children()}
+    caller = IsolatedCaller()
+    caller.start_soon()
+    try:
+        # The child comes up with no call sent: its start (the fork server's preload on
+        # a first start) is not left for the first document to wait for.
+        deadline = time.monotonic() + 60
+        started = []
+        while not started and time.monotonic() < deadline:
+            started = [p for p in mp.active_children() if p.pid not in before and p.name == "thresher-parser"]
+            time.sleep(0.05)
+        assert len(started) == 1
+        # That same process takes the first call.
+        assert [pid for _, pid in caller.stream(timed_pieces, ([(None, 0.0)],))] == [started[0].pid]
+    finally:
+        caller.close()
+
+
+def test_workers_are_started_ahead_only_for_a_run_that_surely_has_work(tmp_path):
+    import yaml
+
+    from thresher.flows import isolate
+    from thresher.flows.config import build_definition, default_config_text
+    from thresher.flows.execute import prewarm_run
+
+    data = yaml.safe_load(default_config_text())
+    data["runner"] = {"kind": "threads", "workers": 2}
+    threads = build_definition(data, "test")
+    data["runner"] = {"kind": "processes", "workers": 2}
+    processes = build_definition(data, "test")
+    weekly = tmp_path / "weekly"
+    weekly.mkdir()
+    (weekly / "catalog.parquet").write_bytes(b"")  # an earlier run's catalog: the scan decides
+    with isolate._idle_lock:
+        kept, isolate._idle[:] = list(isolate._idle), []
+    try:
+        prewarm_run(threads, str(weekly), None, force=False)
+        prewarm_run(processes, str(tmp_path / "new"), None, force=False)  # its batches run in the pool
+        assert isolate._idle == []
+        prewarm_run(threads, str(weekly), None, force=True)  # --force processes every document
+        assert len(isolate._idle) == 2
+        prewarm_run(threads, str(tmp_path / "new"), 3, force=False)  # a first run; idle ones count
+        assert len(isolate._idle) == 3
+    finally:
+        with isolate._idle_lock:
+            started, isolate._idle[:] = list(isolate._idle), kept
+        for caller in started:
+            caller.close()
