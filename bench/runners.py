@@ -69,6 +69,20 @@ class TreeCPU:
         return self.own, sum(self.children.values())
 
 
+def first_document(store: Path, manifest: dict) -> float:
+    """Seconds from the flow's start until a worker started on the first document (the
+    earliest extract row's started_at, which the worker stamps), less the scan and plan:
+    the time the first batch waited for its worker to be ready."""
+    from datetime import datetime
+
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    parts = sorted((store / "stages" / "extract").rglob("part-*.parquet"))
+    first = min(pc.min(pq.read_table(p, columns=["started_at"]).column("started_at")).as_py() for p in parts)
+    return (first - datetime.fromisoformat(manifest["started_at"])).total_seconds() - manifest["timings"]["plan"]
+
+
 def run_once(drive: Path, store: Path, runner: dict, env: dict, tmp: Path, server_pid: int | None) -> dict:
     import psutil
     import yaml
@@ -92,6 +106,7 @@ def run_once(drive: Path, store: Path, runner: dict, env: dict, tmp: Path, serve
         raise RuntimeError(f"thresher run failed: {err[-2000:]}")
     m = json.loads(out)
     return {"wall": wall, "flow": m["seconds"], "manifest": m, "parent": parent, "children": children,
+            "first": first_document(store, m),
             "server": (_cpu_of(server) - server_before) if server else 0.0, "load": (load, os.getloadavg()[0])}
 
 
@@ -128,7 +143,7 @@ def main() -> None:
                     results[(kind, workers)].append(res)
                     print(f"  round {r + 1} {kind} x{workers}: flow {res['flow']:.2f} s, wall {res['wall']:.2f} s, "
                           f"CPU parent {res['parent']:.1f} s, children {res['children']:.1f} s, server "
-                          f"{res['server']:.1f} s; load {res['load'][0]:.1f} -> {res['load'][1]:.1f}", flush=True)
+                          f"{res['server']:.1f} s; first document after {res['first']:.2f} s; load {res['load'][0]:.1f} -> {res['load'][1]:.1f}", flush=True)
         finally:
             server.stop()
     one = results[("sequential", 1)]
