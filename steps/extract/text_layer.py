@@ -60,16 +60,20 @@ def mixed_words(text: str) -> Counter:
 
 def unreadable(text: str) -> str:
     """Why the text layer is unreadable, or "" when it reads as text."""
-    words = len(_WORD.findall(text))
-    mixed = mixed_words(text)
+    # ASCII text has no mixed-script word, private-use or replacement character: only
+    # "(cid:N)" placeholders are looked for (most pages of most drives).
+    ascii_only = text.isascii()
+    mixed = Counter() if ascii_only else mixed_words(text)
     n_mixed = sum(mixed.values())
-    if n_mixed >= MIXED_MIN and n_mixed >= MIXED_SHARE * words:
-        pairs = ", ".join(f"{pair} {n}" for pair, n in mixed.most_common(3))
-        return (f"text layer maps glyphs to the wrong characters: {n_mixed} of {words} words "
-                f"mix scripts no language writes together ({pairs})")
+    if n_mixed >= MIXED_MIN:
+        words = len(_WORD.findall(text))
+        if n_mixed >= MIXED_SHARE * words:
+            pairs = ", ".join(f"{pair} {n}" for pair, n in mixed.most_common(3))
+            return (f"text layer maps glyphs to the wrong characters: {n_mixed} of {words} words "
+                    f"mix scripts no language writes together ({pairs})")
     marks = {
-        "private-use characters": len(_PRIVATE_USE.findall(text)),
-        "replacement characters (U+FFFD)": text.count("\ufffd"),
+        "private-use characters": 0 if ascii_only else len(_PRIVATE_USE.findall(text)),
+        "replacement characters (U+FFFD)": 0 if ascii_only else text.count("\ufffd"),
         "(cid:N) placeholders": len(_CID.findall(text)),
     }
     for what, n in marks.items():
