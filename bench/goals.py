@@ -44,6 +44,15 @@ def debian_pdfs(into: Path) -> list[Path]:
     return [_plain(p, into) for p in BASE_PDFS + RULED_PDFS if Path(p).exists()]
 
 
+def pdf_drive(paths: list[Path], tmp: Path) -> Path:
+    """A drive folder holding a copy of each PDF, for whole-chain runs."""
+    drive = tmp / "pdf-drive"
+    drive.mkdir()
+    for p in paths:
+        (drive / p.name).write_bytes(p.read_bytes())
+    return drive
+
+
 def _cpu(reader, paths: list[Path]) -> tuple[float, int]:
     t = time.process_time()
     pages = sum(len(reader(str(p))) for p in paths)
@@ -94,10 +103,7 @@ def whole_chain(paths: list[Path], env: dict, tmp: Path, pdfium_pages_per_s: flo
     """The default chain over the Debian PDFs: one worker, then each runner with 2."""
     from thresher.flows.config import RunnerSection
 
-    drive = tmp / "pdf-drive"
-    drive.mkdir()
-    for p in paths:
-        (drive / p.name).write_bytes(p.read_bytes())
+    drive = pdf_drive(paths, tmp)
     default_kind = RunnerSection().kind
     results = {}
     for kind, workers in (("sequential", 1), (default_kind, 2), ("processes", 2), ("dask", 2)):

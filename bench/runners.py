@@ -114,7 +114,7 @@ def main() -> None:
     from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
     from prefect.server.api.server import SubprocessASGIServer
 
-    from bench.goals import debian_pdfs
+    from bench.goals import debian_pdfs, pdf_drive
     from thresher.flows.pipeline import _free_port
 
     kinds = os.environ.get("THRESHER_BENCH_RUNNERS", "threads,processes,dask").split(",")
@@ -125,10 +125,7 @@ def main() -> None:
         if not paths:
             print("no Debian documentation PDFs here (make bench-deps installs some)")
             return
-        drive = tmp / "pdf-drive"
-        drive.mkdir()
-        for p in paths:
-            (drive / p.name).write_bytes(p.read_bytes())
+        drive = pdf_drive(paths, tmp)
         server = SubprocessASGIServer(port=_free_port())
         server.start(timeout=120)
         env = dict(os.environ, PREFECT_API_URL=server.api_url)

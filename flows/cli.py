@@ -292,9 +292,9 @@ def _need_prefect_api() -> None:
     health check costs a served run a tenth of a second or more."""
     from thresher.flows.runtime import NO_LOCAL_PORT, api_unreachable, embedded_server_possible
 
-    if os.environ.get("PREFECT_API_URL") in _checked_api:
-        return
     url = os.environ.get("PREFECT_API_URL")
+    if url in _checked_api:
+        return
     if url:
         problem = api_unreachable(url)
         if problem:

@@ -48,7 +48,7 @@ if TYPE_CHECKING:  # loaded where a filtered read needs it
     import pyarrow.dataset as ds
 
 from thresher.flows import schema
-from thresher.flows.arrow_groups import highest_per_key
+from thresher.flows.arrow_groups import highest_per_key, run_ends
 from thresher.flows.faults import fault
 
 RUN_META_KEY = b"thresher.run_id"
@@ -132,10 +132,8 @@ def _latest_attempts(rows: pa.Table, seq: dict[str, int], floors: dict[str, int]
                                              ("attempt", "ascending")]).to_numpy()
     if len(order) == 0:
         return order
-    units = keys.column("unit_id").take(pa.array(order))
     # the last row of each unit in that order is its latest attempt
-    last = np.ones(len(order), dtype=bool)
-    last[:-1] = pc.not_equal(units[:-1], units[1:]).to_numpy(zero_copy_only=False)
+    last = run_ends(keys.column("unit_id").take(pa.array(order)).combine_chunks()).to_numpy(zero_copy_only=False)
     return np.sort(kept[order[last]])
 
 
