@@ -375,6 +375,25 @@ def test_truncated_pdf_reports_the_parsers_messages():
     assert page.error_type  # the pdfminer exception is kept for the reviewer
 
 
+def test_the_cycle_collector_is_left_as_the_reader_found_it():
+    # The reader pauses Python's cycle collector while it reads (pdf.read_pdf: speed);
+    # leaving it off would let every later reference cycle of the run pile up.
+    import gc
+
+    assert gc.isenabled()
+    assert [p.status for p in run(lending_pdf())] == [OK, OK]
+    assert gc.isenabled()
+    data = lending_pdf()
+    assert run(data[: len(data) // 2])[0].status == FAILED  # a document that fails
+    assert gc.isenabled()
+    gc.disable()  # a caller that turned it off keeps it off
+    try:
+        run(lending_pdf())
+        assert not gc.isenabled()
+    finally:
+        gc.enable()
+
+
 def test_too_many_pages():
     (page,) = run(running_footer_pdf(pages=3), max_pages=2)
     assert page.status == FAILED and page.reason == "too many pages: 3 over the limit of 2"
