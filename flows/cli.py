@@ -218,14 +218,14 @@ def cmd_run(args: argparse.Namespace) -> int:
     store_root = _store_root(args, definition)
     if Path(store_root).exists() and not Path(store_root).is_dir():
         raise UsageError(f"store path exists and is not a folder: {store_root}")
-    from thresher.flows.encodings import EncodingUnavailable, get_encoding
+    from thresher.flows.encodings import EncodingUnavailable, check_encoding
 
     for step in definition.steps:  # fail before starting Prefect if an encoding is missing
         for name in step.spec.encoding_params:
             value = getattr(step.params, name)
             for enc in ([value] if isinstance(value, str) else list(value)):
                 try:
-                    get_encoding(enc)
+                    check_encoding(enc)
                 except EncodingUnavailable as exc:
                     raise UsageError(str(exc).replace("\n", " ")) from None
 

@@ -172,3 +172,31 @@ def test_sandbox_leaves_tiktoken_untouched():
     encodings.recipe("o200k_harmony")
     # The real loader is still in place for anyone else using tiktoken.
     assert openai_public.load_tiktoken_bpe is tiktoken.load.load_tiktoken_bpe
+
+
+def test_run_refuses_a_missing_or_damaged_encoding_before_it_starts(tmp_path, monkeypatch, capsys, fresh_cache):
+    """`thresher run` checks each encoding's file and hash up front (without building the
+    encoding) and stops with one line naming it, before Prefect or any store is touched."""
+    from thresher.flows import cli
+    from thresher.flows.config import default_config_text
+
+    definition = tmp_path / "flow.yaml"
+    definition.write_text(default_config_text().replace("cl100k_base", "o200k_base"), "utf-8")
+    if "o200k_base" in available_encodings():
+        pytest.skip("o200k_base is shipped here; this test needs an encoding that is not")
+    store = tmp_path / "store"
+    args = ["run", "--config", str(definition), "--source", str(tmp_path), "--store", str(store)]
+    assert cli.main(args) == cli.EXIT_USAGE
+    assert "o200k_base" in capsys.readouterr().err
+    assert not store.exists()
+
+    # The shipped encoding with a damaged file: the hash check catches it the same way.
+    damaged = bytearray(SHIPPED.read_bytes())
+    damaged[100] ^= 0x01
+    (tmp_path / "cl100k_base.tiktoken").write_bytes(bytes(damaged))
+    monkeypatch.setenv(ENCODINGS_DIR_ENV, str(tmp_path))
+    assert cli.main(args[:1] + args[3:]) == cli.EXIT_USAGE
+    assert "SHA-256" in capsys.readouterr().err
+    assert not store.exists()
+    monkeypatch.delenv(ENCODINGS_DIR_ENV)
+    encodings.check_encoding("cl100k_base")  # the shipped file passes
