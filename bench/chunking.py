@@ -174,7 +174,7 @@ def profile(top: int = 14) -> None:
     from thresher.steps import split as split_module
     from thresher.steps.token_offsets import SliceCounter
 
-    enc = get_encoding("cl100k_base")
+    enc = ctx.encoding("cl100k_base")
     params = SplitParams()
     parts: dict[str, float] = {}
     for _ in range(ROUNDS):
