@@ -285,7 +285,7 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
     return 0
 
 
-_checked_api: list[str | None] = []  # the PREFECT_API_URL found reachable by this process
+_checked_api: set[str | None] = set()  # the PREFECT_API_URL found reachable by this process
 
 
 def _need_prefect_api() -> None:
@@ -303,7 +303,7 @@ def _need_prefect_api() -> None:
             raise UsageError(problem)
     elif not embedded_server_possible():
         raise UsageError(NO_LOCAL_PORT)
-    _checked_api.append(url)
+    _checked_api.add(url)
 
 
 def run_summary_lines(m: dict[str, Any]) -> list[str]:

@@ -166,7 +166,7 @@ def tls_context():
             tls.verify_mode = ssl.CERT_NONE
         else:
             tls = ssl.create_default_context(cafile=key[1])
-        tls = _TLS[key] = tls
+        _TLS[key] = tls
     return tls
 
 
