@@ -3,8 +3,9 @@
 paper: ruled tables, superscripts; libtasn1-doc's manual: a two-column index) and the
 demo drive's handbook (ruled tables).
 
-The reader calls PDFium through plain-integer handles (`pdf_text._own`); a pypdfium2
-build without its library handle goes through pypdfium2's public bindings instead
+The reader calls PDFium through plain-integer handles (`pdf_text._own`), its hottest
+calls without ctypes' argument conversion (`pdf_text._BARE`); a pypdfium2 build without
+its library handle goes through pypdfium2's public bindings instead
 (`pdf_text._adapted`). Both routes must read the same page. make_lines computes lines
 with numpy over the page; it must give the lines the rule in pdf_layout's docstring
 gives when applied word by word (written out plainly below)."""
@@ -54,6 +55,7 @@ def test_public_bindings_read_the_same_page(path, first, monkeypatch):
             monkeypatch.setattr(pdf_text, name, pdf_text._adapted(public, fn.argtypes, fn.restype))
             swapped += 1
     assert swapped >= 20
+    monkeypatch.setattr(pdf_text, "_BARE", None)  # a build without the handle has no bare calls either
     assert _pages(path, first) == fast
 
 

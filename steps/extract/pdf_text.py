@@ -35,6 +35,7 @@ import ctypes
 import re
 import threading
 from itertools import repeat
+from types import SimpleNamespace
 from dataclasses import dataclass, field
 from functools import partial
 from typing import NamedTuple
@@ -129,8 +130,13 @@ def _page_objects(page: int) -> list[tuple[int, int, tuple[float, ...]]]:
     out = []
     while stack:
         parent, count, get, outer = stack.pop()
-        objects = list(map(get, repeat(parent, count), range(count)))
-        for obj, kind in zip(objects, map(_OBJ_TYPE, objects)):
+        if get is _GET_OBJECT and _BARE is not None:  # a page's objects: hundreds of them
+            objects = list(map(_BARE.get_object, repeat(_Handle(parent), count), range(count)))
+            kinds = map(_BARE.obj_type, objects)
+        else:
+            objects = list(map(get, repeat(parent, count), range(count)))
+            kinds = map(_OBJ_TYPE, objects)
+        for obj, kind in zip(objects, kinds):
             if kind == PAGEOBJ_FORM:
                 stack.append((obj, _FORM_COUNT(obj), _FORM_OBJECT, _then(_matrix(obj), outer)))
             elif kind != PAGEOBJ_TEXT:
@@ -301,33 +307,52 @@ _CHAR_MATRIX = _own("FPDFText_GetMatrix", (_VP, _INT, _VP), _INT)
 _MAP_ERROR = _own("FPDFText_HasUnicodeMapError", (_VP, _INT), _INT)
 
 
-class _BoxSlots:
-    """FPDFText_GetLooseCharBox without ctypes' argument conversion, into slots reused
-    from page to page: 0.36 against 0.62 us a character (/usr/share/doc/libtasn1-doc's
-    manual, 22,000 calls each), and a page asks once per visible character.
+class _Handle(ctypes.c_void_p):
+    """A PDFium handle that ctypes hands back as it is (a subclass of c_void_p is not
+    turned into an int), so it goes into the next bare call without a conversion."""
 
-    Why it is cheaper: with `argtypes` set, ctypes converts every argument on every
-    call; without them, a ready pointer object is passed as it is and a small integer
-    as a C int. So the text page is wrapped once per page and each box slot's address
-    once per process (`ptrs`, pointing into `buf`, grown when a page has more
-    characters). Used under LOCK only (one page at a time), so the slots are never
-    shared. None of this when pypdfium2 has no library handle (`fn` is None).
-    """
+
+def _bare_functions() -> SimpleNamespace | None:
+    """The hottest PDFium calls without ctypes' argument conversion: 0.36 against 0.62
+    us a call for a character's box (/usr/share/doc/libtasn1-doc's manual, 22,000 calls
+    each way). With `argtypes` set, ctypes converts every argument on every call;
+    without them, a pointer object is passed as it is and a small int as a C int, so
+    handles are wrapped once (`_Handle`) and box slots made once (`_BoxSlots`). A C int
+    cannot carry an address: only indices go in as ints. None without pypdfium2's
+    library handle (then `_own`'s route, or the public bindings, serve)."""
+    try:
+        import pypdfium2_raw.bindings as bindings
+
+        lib = bindings._libs["pdfium"]
+    except Exception:
+        return None
+    out = SimpleNamespace()
+    for attr, name, restype in (
+        ("box", "FPDFText_GetLooseCharBox", _INT),
+        ("text_object", "FPDFText_GetTextObject", _VP),
+        ("get_object", "FPDFPage_GetObject", _Handle),
+        ("obj_type", "FPDFPageObj_GetType", _INT),
+    ):
+        fn = lib[name]  # a new function object each time: pypdfium2's own is untouched
+        fn.argtypes = None
+        fn.restype = restype
+        setattr(out, attr, fn)
+    return out
+
+
+_BARE = _bare_functions()
+
+
+class _BoxSlots:
+    """Where the characters' boxes land: `ptrs` point into `buf`, made once per process
+    and grown when a page has more characters. Used under LOCK only (one page at a
+    time), so the slots are never shared."""
 
     def __init__(self) -> None:
-        try:
-            import pypdfium2_raw.bindings as bindings
-
-            fn = bindings._libs["pdfium"]["FPDFText_GetLooseCharBox"]  # a new function object
-            fn.argtypes = None
-            fn.restype = _INT
-        except Exception:
-            fn = None
-        self.fn = fn
         self.buf = np.empty((0, 4), dtype=np.float32)
         self.ptrs: list[ctypes.c_void_p] = []
 
-    def read(self, tp: int, indices: list[int]) -> np.ndarray:
+    def read(self, box, tp: int, indices: list[int]) -> np.ndarray:
         m = len(indices)
         if m > len(self.ptrs):
             size = max(m, 2 * len(self.ptrs), 4096)
@@ -335,19 +360,18 @@ class _BoxSlots:
             base = self.buf.ctypes.data
             self.ptrs = list(map(_VP, range(base, base + 16 * size, 16)))
         # map() stops at the shortest input: the m indices.
-        for _ in map(self.fn, repeat(_VP(tp), m), indices, self.ptrs):
+        for _ in map(box, repeat(_VP(tp), m), indices, self.ptrs):
             pass
         return self.buf[:m].astype(np.float64)
 
 
 _BOX_SLOTS = _BoxSlots()
-_OWN_BOX = _BOX
 
 
 def _boxes(tp: int, indices: list[int]) -> np.ndarray:
     """(left, top, right, bottom) of each character index, as float64 rows."""
-    if _BOX is _OWN_BOX and _BOX_SLOTS.fn is not None:
-        return _BOX_SLOTS.read(tp, indices)
+    if _BARE is not None:
+        return _BOX_SLOTS.read(_BARE.box, tp, indices)
     m = len(indices)
     arr = np.empty((m, 4), dtype=np.float32)
     base = arr.ctypes.data
@@ -453,7 +477,10 @@ def _words(tp: int, page_top: float, facts: PageText) -> None:
     # object of each word's first character is asked in one map() (no Python loop per
     # word), the facts once per distinct object.
     first = visible[starts].tolist()
-    keys = [k or 0 for k in map(_TEXT_OBJECT, repeat(tp, len(first)), first)]
+    if _BARE is not None:
+        keys = [k or 0 for k in map(_BARE.text_object, repeat(_VP(tp), len(first)), first)]
+    else:
+        keys = [k or 0 for k in map(_TEXT_OBJECT, repeat(tp, len(first)), first)]
     by_object: dict[int, tuple[float, bool, bool]] = {}
     by_font: dict[int, bool] = {}
     matrix = raw.FS_MATRIX()
