@@ -372,16 +372,20 @@ def test_prefect_receives_the_run_logs_and_a_per_document_artifact(first_run):
             arts = await client.read_artifacts(
                 artifact_filter=ArtifactFilter(key=ArtifactFilterKey(any_=["thresher-documents"])),
                 flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[flow_run_id])))
-            return logs, arts
+            return logs, arts, (await client.read_flow_run(flow_run_id)).parameters
 
     deadline = _time.monotonic() + 30
     while True:  # the API log handler flushes in the background
-        logs, arts = asyncio.run(fetch())
+        logs, arts, parameters = asyncio.run(fetch())
         messages = [entry.message for entry in logs]
         if any("password protected" in msg for msg in messages) or _time.monotonic() > deadline:
             break
         _time.sleep(1)
     assert any("hr/salary-review-2026-protected.pdf: extract failed: password protected" in msg for msg in messages)
+    # The run's parameters, as the UI shows them: the drive, the store, the definition.
+    assert parameters["source_root"] == str(first_run["drive"])
+    assert parameters["store_root"] == first_run["store"].base
+    assert parameters["definition_data"]["steps"][0]["step"] == "extract" and parameters["workers"] == 1
     assert arts, "no per-document artifact"
     table = arts[0].data if isinstance(arts[0].data, list) else __import__("json").loads(arts[0].data)
     by_doc = {row["document"]: row for row in table}
