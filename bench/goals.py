@@ -99,6 +99,18 @@ def _run(drive: Path, store: Path, runner: dict, env: dict, tmp: Path) -> tuple[
     return wall, json.loads(out.stdout)
 
 
+def _extract_seconds(store: Path) -> float:
+    """The extract step's own time in the run: each document's `document_ms` (wall time
+    in its warm worker, once per document), summed. Not the extract segment's time: a
+    PDF's text steps run in that segment too (pipeline.onward)."""
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    parts = sorted((store / "stages" / "extract").rglob("part-*.parquet"))
+    return sum(pc.sum(pq.read_table(p, columns=["document_ms"]).column("document_ms")).as_py() or 0.0
+               for p in parts) / 1000.0
+
+
 def whole_chain(paths: list[Path], env: dict, tmp: Path, pdfium_pages_per_s: float) -> None:
     """The default chain over the Debian PDFs: one worker, then each runner with 2."""
     from thresher.flows.config import RunnerSection
@@ -113,10 +125,10 @@ def whole_chain(paths: list[Path], env: dict, tmp: Path, pdfium_pages_per_s: flo
                                         env, tmp)
     wall1, m1 = results[("sequential", 1)]
     pages = m1["pages"]
-    extract_s = m1["timings"].get("extract", 0.0)
+    extract_s = _extract_seconds(tmp / "store-sequential-1")
     row("PDF extraction inside a run (one worker)", f"{extract_s / max(pages, 1) * 1000:.1f} ms/page",
-        f"its extract segment over {pages} pages; PDFium text layer {1000 / pdfium_pages_per_s:.1f} ms/page",
-        "<= 8 ms/page")
+        f"the extract step's time per document in its worker, over {pages} pages; PDFium text layer "
+        f"{1000 / pdfium_pages_per_s:.1f} ms/page", "<= 8 ms/page")
     row("whole chain, one worker", f"{pages / m1['seconds']:.0f} pages/s",
         f"flow time {m1['seconds']:.1f} s; PDFium text layer alone {pdfium_pages_per_s:.0f} pages/s",
         ">= 80 pages/s")

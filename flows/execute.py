@@ -23,7 +23,7 @@ from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_un
 from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, RemoteError, TimeLimitExceeded,
                                     give_back, isolation_available, prewarm, take_worker)
 from thresher.flows.rows import RowContext, rows_to_table, to_row
-from thresher.flows.segment import StepCall, StepDone, failed_document_unit, order_key, run_segment
+from thresher.flows.segment import PassedOn, StepCall, StepDone, failed_document_unit, order_key, run_segment
 from thresher.flows.store import Store
 from thresher.steps.spec import StepContext
 from thresher.steps.units import DOCUMENT_LOCATOR, OK, Chunk, Page, Source
@@ -67,7 +67,11 @@ class MemberInfo:
 class BatchJob:
     run_id: str
     store_root: str
-    segment: list[int]  # step indices, consecutive document-scope steps
+    # Step indices: consecutive document-scope steps, possibly followed by a corpus
+    # step limited to some formats and the document steps after it, which a document
+    # goes on to when that step passes it by (pipeline.onward); they hold no other
+    # corpus step.
+    segment: list[int]
     part: str
     docs: list[DocJob]
     force: bool = False  # read documents found inside containers even if the store has them
@@ -82,6 +86,9 @@ class BatchResult:
     seconds: float = 0.0
     failures: list[tuple[str, str, str]] = field(default_factory=list)  # path, stage, reason
     members: list[MemberInfo] = field(default_factory=list)
+    # Documents that went on past the segment's corpus step (it passes them by): the
+    # document segment after that step has run for them already.
+    through: list[str] = field(default_factory=list)
 
 
 def now_utc() -> datetime:
@@ -186,9 +193,11 @@ def _rows_for(step: ResolvedStep, ctx: RowContext, units: list[Unit]) -> list[di
 
 
 def _may_pause(doc: DocJob, indices: list[int]) -> bool:
-    """The worker may stop after the first step for this process to act (segment.run_segment):
-    a re-run of chosen units, or extraction followed by more steps (documents found inside)."""
-    return doc.only is not None or (indices[0] == 0 and len(indices) > 1)
+    """The worker stops after the first step for this process to act (segment.run_segment)
+    on a re-run of chosen units. (It also pauses after extraction when it found documents
+    inside one; that is known only then, and a worker holding a queued document is then
+    replaced, IsolatedCaller._send: a cost for containers only, not for every document.)"""
+    return doc.only is not None
 
 
 class BatchRunner:
@@ -230,6 +239,8 @@ class BatchRunner:
         if known:  # one read per stage for the batch, not one per document
             for i in job.segment:
                 step = self.definition.steps[i]
+                if step.spec.scope == "corpus":
+                    continue
                 self._attempts[step.name] = self.store.max_attempts(step.name, unit_kind(step), known)
         # Documents that start past the first step read their inputs from the store: a
         # warm worker reads them, once for the batch (inputs.resolve), so that work runs
@@ -344,6 +355,11 @@ class BatchRunner:
         steps = self.definition.steps
         for i in indices:
             step = steps[i]
+            if step.spec.scope == "corpus":  # a barrier (segment.run_segment)
+                if applies_to(step, inputs):
+                    return
+                result.through.append(doc.doc_id)
+                continue
             if i > 0 and not applies_to(step, inputs):
                 continue  # passed by: the next step reads what this one would have read
             ctx = StepContext(doc_id=doc.doc_id, source_path=doc.source_path, encoding=get_encoding)
@@ -379,6 +395,9 @@ class BatchRunner:
         step = self.definition.steps[i]
         spec = step.spec
         limit = spec.time_limit(step.params) if spec.time_limit is not None else None
+        if spec.scope == "corpus":  # a barrier: the worker only checks the formats
+            return StepCall(i, step.name, spec.produces, None, step.params, frozenset(spec.formats or ()), None,
+                            barrier=True)
         return StepCall(i, step.name, spec.produces, spec.run, step.params, frozenset(spec.formats or ()), limit)
 
     def _run_in_worker(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
@@ -405,6 +424,9 @@ class BatchRunner:
                                           following=None if _may_pause(doc, indices) else self._queue_following):
                     if isinstance(done, ReadFrom):
                         prev, parents = done.stage, done.locators
+                        continue
+                    if isinstance(done, PassedOn):
+                        result.through.append(doc.doc_id)
                         continue
                     step = steps[done.index]
                     out, scope = done.units, "document"

@@ -131,6 +131,22 @@ def corpus_step(run_id: str, store_root: str, data_json: str, origin: str, index
     return result
 
 
+def onward(definition: FlowDefinition, segments: list[tuple[str, list[int]]], pos: int) -> list[int]:
+    """Steps a document of segment `pos` goes on to in the same worker call: a corpus
+    step limited to some formats (the HTML boilerplate step), then the document segment
+    after it. That step passes documents of other formats by (it neither reads nor
+    writes them), so those need not wait for it: their next steps run at once on the
+    units still in the worker's memory, instead of in another round of task runs that
+    reads them back from the store after every document has been extracted. Documents
+    of its formats stop there (execute.BatchRunner) and run the next segment as before."""
+    if pos + 2 >= len(segments) or segments[pos + 1][0] != "corpus" or segments[pos + 2][0] != "document":
+        return []
+    corpus = segments[pos + 1][1][0]
+    if not definition.steps[corpus].spec.formats:
+        return []
+    return [corpus] + segments[pos + 2][1]
+
+
 def _segments(definition: FlowDefinition) -> list[tuple[str, list[int]]]:
     """Consecutive document-scope steps form a segment; a corpus step stands alone."""
     out: list[tuple[str, list[int]]] = []
@@ -248,7 +264,12 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
     jobs_by_doc = {j.doc_id: j for j in plan.jobs}
     live_of, live_enc = None, b""  # plan.live encoded for inputs_key, once
     first_batch_done = False
-    for kind, indices in _segments(definition):
+    segments = _segments(definition)
+    # A re-run of chosen units pauses after its first step (execute._may_pause): no
+    # going on past a corpus step there.
+    chosen = any(j.only is not None for j in plan.jobs)
+    passed_on: set[str] = set()  # documents whose next segment ran with the one before
+    for pos, (kind, indices) in enumerate(segments):
         t0 = time.perf_counter()
         label = "+".join(names[i] for i in indices)
         if kind == "corpus":
@@ -279,8 +300,9 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             # Documents whose chain starts at or before this segment continue here; a
             # re-run's unit choice applies only in the segment where it starts.
             seg_jobs = []
+            skip, passed_on = passed_on - affected, set()
             for j in plan.jobs:
-                if j.start <= last:
+                if j.start <= last and j.doc_id not in skip:
                     only = j.only if first <= j.start <= last else None
                     seg_jobs.append(replace(j, only=only))
             for d in sorted(affected - {j.doc_id for j in seg_jobs}):
@@ -294,9 +316,10 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 _emit(progress, f"{label}: nothing to do")
                 continue
             _live(progress, "segment", label, len(seg_jobs), unit_kind(definition.steps[first]))
+            steps_of = indices + ([] if chosen else onward(definition, segments, pos))
             futures = []
             for n, batch in enumerate(batches):
-                job = BatchJob(run_id, store_root, indices, f"s{first:02d}-b{n:05d}", batch, force)
+                job = BatchJob(run_id, store_root, steps_of, f"s{first:02d}-b{n:05d}", batch, force)
                 futures.append(process_batch.with_options(
                     retries=model.runner.retries, retry_delay_seconds=model.runner.retry_delay_seconds,
                 ).submit(job, data_json, definition.origin))
@@ -305,6 +328,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             for fut in as_completed(futures):
                 res: BatchResult = fut.result()
                 found += res.members
+                passed_on.update(res.through)
                 done += 1
                 acc.step_seconds += res.step_seconds
                 acc.failures.extend(res.failures)

@@ -32,10 +32,14 @@ class StepCall:
     index: int
     name: str
     produces: str  # "pages" | "chunks"
-    run: Callable[..., list]
+    run: Callable[..., list] | None  # None for a barrier
     params: StepParams
     formats: frozenset[str]
     limit: float | None
+    # A corpus step limited to `formats`: the document goes on past it only when none
+    # of its units is of those formats (then the step passes it by, as it passes by
+    # any document of other formats); otherwise it stops here for the corpus step.
+    barrier: bool = False
 
 
 @dataclass
@@ -47,6 +51,14 @@ class StepDone:
     started: datetime
     ms: float
     paused: bool = False  # the worker stopped here so the parent can act first
+
+
+@dataclass
+class PassedOn:
+    """Sent when a document went on past a corpus step that passes it by (a barrier
+    call): its later steps run now, so the segment after that step leaves it out."""
+
+    index: int
 
 
 def failed_document_unit(kind: str, reason: str, exc: BaseException | None, parents: list[str]) -> Unit:
@@ -81,7 +93,9 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
     the parent merges them with the stored ones) or when extraction found documents
     inside the document (the parent runs those first, as their own documents).
     `inputs` may be StoredInputs: then they are read here first (a ReadFrom says from
-    which stage), and a document with no ok unit there runs no step."""
+    which stage), and a document with no ok unit there runs no step. A barrier call
+    (a format-limited corpus step) ends the document's run here unless the step passes
+    it by; then a PassedOn says so and the steps after it run."""
     if isinstance(inputs, StoredInputs):
         loaded = resolve(inputs)
         if loaded is None or not loaded.units:
@@ -89,6 +103,11 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
         yield ReadFrom(loaded.stage, [u.locator for u in loaded.units])
         inputs = loaded.units
     for k, call in enumerate(calls):
+        if call.barrier:
+            if not passes_by(call, inputs):
+                return  # the corpus step decides about this document first
+            yield PassedOn(call.index)
+            continue
         if passes_by(call, inputs):
             continue
         if call.index > 0:

@@ -255,6 +255,26 @@ def test_a_format_limited_step_passes_other_documents_by(prefect_harness, tmp_pa
     assert again["documents"]["processed"] == 0 and again["changes"] == {"upsert": 0, "delete": 0}
 
 
+def test_a_document_the_html_step_passes_by_goes_on_to_its_text_steps_at_once(prefect_harness, tmp_path):
+    # The Markdown file need not wait for the HTML boilerplate step (a corpus step):
+    # its text steps run in the same task runs as its extraction (parts "s00-...");
+    # the HTML pages wait for that step and read its output (parts "s02-...").
+    drive = _small_drive(tmp_path / "drive")
+    m = _run(drive, tmp_path / "store")
+    store = Store(tmp_path / "store")
+    path_of = {r["doc_id"]: r["source_path"] for r in store.current("extract", "pages").to_pylist()}
+    for stage in ("clean", "language", "split", "personal"):
+        segment_of = {}
+        for part in (tmp_path / "store" / "runs" / m["run_id"] / "writes" / stage).glob("part-*.parquet"):
+            segment_of.update({path_of[d]: part.name.split("-")[1] for d in pq.read_table(part)["doc_id"].to_pylist()})
+        assert segment_of == {"notes.md": "s00", "rota.html": "s02", "vans.html": "s02"}, stage
+    boilerplate = {r["unit_id"] for r in store.current("boilerplate", "pages").to_pylist()}
+    extract = {r["unit_id"] for r in store.current("extract", "pages").to_pylist()}
+    for r in store.current("clean", "pages").to_pylist():
+        assert set(r["parent_ids"]) <= (extract if r["source_path"] == "notes.md" else boilerplate)
+    assert {r["source_path"] for r in store.handoff().to_pylist()} == {"notes.md", "rota.html", "vans.html"}
+
+
 def test_token_counts_follow_text_that_steps_after_split_change(prefect_harness, tmp_path):
     # tokens reuses split's count; a mask (personal), a step of the user's own that
     # changes chunk text in a document step (rota) or a corpus step (vans) and keeps
