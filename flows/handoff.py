@@ -56,6 +56,8 @@ ACCESS_COLUMNS = ("readers", "label")
 REWRITE_BATCH = 32768
 # Rows per row group of the hand-off, however it is made (see _Output).
 ROW_GROUP = 32768
+# The manifest's `handoff` when the published hand-off stands as it is.
+KEPT = "kept as published"
 
 
 @dataclass
@@ -68,9 +70,14 @@ class HandoffResult:
     # Documents left out because their access allows nobody: source path -> reason.
     withheld: dict[str, str] = field(default_factory=dict)
     # How it was made: "rebuilt" (every stage read), "access columns rewritten" (the
-    # previous one copied, no stage read but for documents it withheld), or "copied
-    # forward, N of M documents read from the stages".
+    # previous one copied, no stage read but for documents it withheld), "copied
+    # forward, N of M documents read from the stages", or KEPT (nothing in it would
+    # change: no hand-off or digests written, the published ones stand).
     mode: str = "rebuilt"
+
+    @property
+    def kept(self) -> bool:
+        return self.mode == KEPT
 
     @property
     def access_only(self) -> bool:
@@ -193,13 +200,12 @@ def _previous_basis(store: Store) -> tuple[str | None, str | None]:
     when it is not the file its run recorded (size and SHA-256): a damaged or altered
     hand-off is rebuilt from the stages, never copied forward."""
     rel = store.published("handoff/chunks.parquet")
-    latest = store.latest_run()
-    if rel is None or latest is None:
+    if rel is None:
         return None, None
-    recorded = latest.manifest.get("files", {})
     for name in ("handoff/chunks.parquet", "handoff/digests.parquet"):
         here = store.published(name)
-        if here is None or recorded.get(name) != store.file_record(here):
+        recorded = store.published_record(name)
+        if here is None or recorded is None or recorded != store.file_record(here):
             return None, None
     with store.fs.open_input_file(store.path(rel)) as f:
         meta = pq.read_schema(f).metadata or {}
@@ -376,6 +382,31 @@ def _copy_forward(definition: FlowDefinition, store: Store, run_id: str, previou
     return new.set_column(new.schema.get_field_index("digest"), DIGESTS.field("digest"), column)
 
 
+def _unchanged(old: pa.Table, order: list[str], access: Access) -> bool:
+    """With no document to read from the stages: whether a copy of the published
+    hand-off would write it as it is, i.e. it holds no document that is gone or
+    withheld now, and every document's access is the one its chunks' digests cover
+    (told by its first chunk; a document's chunks share its access)."""
+    if not old.num_rows:
+        return False
+    doc_col = old.column("doc_id")
+    docs = pc.unique(doc_col)
+    if not pc.all(pc.is_in(docs, value_set=pa.array(order, pa.string()))).as_py():
+        return False
+    heads = old.take(pc.index_in(docs, value_set=doc_col)).select(["doc_id", "body_digest", "digest"])
+    return all(_digest(b, _access_bytes(*access[d][:2])) == g for d, b, g in
+               zip(*(heads.column(c).to_pylist() for c in ("doc_id", "body_digest", "digest"))))
+
+
+def _counts_of(store: Store, rel: str) -> tuple[Counter, Counter]:
+    """Chunks and tokens per document of a hand-off file (two columns read)."""
+    t = store.read_table(rel, columns=["doc_id", "token_count"])
+    counts, tokens = Counter(), Counter()
+    for d, n, k in count_and_sum_per_key(t.column("doc_id"), t.column("token_count")):
+        counts[d], tokens[d] = n, k
+    return counts, tokens
+
+
 def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
              order: list[str], old: pa.Table, copies: dict[str, list[str]],
              previous_live: dict[str, str | None] | None) -> tuple[list[str], int] | None:
@@ -438,6 +469,14 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
         reading = _to_read(definition, store, run_id, live, order, old, copies, previous_live)
         if reading is not None and len(reading[0]) * 2 > len(order):
             reading = None  # reading most of it anyway: a rebuild has no copy to make
+    if reading is not None and not reading[0] and _unchanged(old, order, access):
+        # Every row a copy would write is the published one's, in the same place: the
+        # published hand-off and digests stand (no rewrite of the drive's chunks in a
+        # quiet week); only the counts are read, and the change set is empty.
+        counts, tokens = _counts_of(store, previous_rel)
+        store.write_table(changes_rel, schema.CHANGES.empty_table(), run_id=run_id)
+        return HandoffResult(sum(counts.values()), sum(tokens.values()), 0, 0,
+                             {d: (counts[d], tokens[d]) for d in counts}, withheld, KEPT)
     sch = schema.HANDOFF.with_metadata({BASIS_KEY: basis.encode()}) if basis else schema.HANDOFF
     with store.parquet_writer(chunks_rel, sch, run_id=run_id) as writer:
         out = _Output(writer)

@@ -418,12 +418,16 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
                    "staged/digests.parquet": "handoff/digests.parquet",
                    "staged/changes.parquet": f"handoff/changes/{run_id}.parquet"}
+        chunks_at = f"{staged}/chunks.parquet"
+        if handoff.kept:  # the published hand-off stands: this run publishes no copy of it
+            del publish["staged/chunks.parquet"], publish["staged/digests.parquet"]
+            chunks_at = store.published("handoff/chunks.parquet")
         probe_file = probes or model.probes
         probe_summary = None
         if probe_file:
             from thresher.flows.probes import probe_run, probes_rel
 
-            probe_summary = probe_run(store, f"{staged}/chunks.parquet", run_id, probe_file,
+            probe_summary = probe_run(store, chunks_at, run_id, probe_file,
                                       f"{staged}/probes.parquet").as_dict()
             publish["staged/probes.parquet"] = probes_rel(run_id)
         _fault("handoff-staged")

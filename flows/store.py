@@ -619,6 +619,14 @@ class Store:
                          if f.base_name.endswith(".parquet") and not f.base_name.startswith(".tmp-"))
         return n
 
+    def published_record(self, final_rel: str) -> list | None:
+        """[size, SHA-256] of a published file as recorded by the latest run that
+        published it (a run that kept the file as it was publishes no copy of it)."""
+        for r in reversed(self.runs()):
+            if final_rel in r.manifest.get("publish", {}).values():
+                return (r.manifest.get("files") or {}).get(final_rel)
+        return None
+
     def published(self, final_rel: str) -> str | None:
         """Where a published file (catalog, hand-off) can be read now.
 

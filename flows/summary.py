@@ -7,8 +7,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from thresher.flows import schema
+from thresher.flows.arrow_groups import count_and_sum_per_key
 from thresher.flows.store import Store
 
 STATUS_ORDER = ("ok", "failed", "dropped", "skipped")
@@ -45,7 +47,8 @@ def counts_by_stage_and_document(store: Store, stages: list[tuple[str, str]], do
                                  ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
     """Per stage the units by status; per document its units by status over all stages,
     and its units at the first stage (its pages). One read of each stage."""
-    return _fold(stages, _count_rows(store, stages, doc_ids, include_run))
+    rows = _count_rows(store, stages, doc_ids, include_run)
+    return _fold(stages, pa.Table.from_pylist(rows, schema=schema.STAGE_COUNTS))
 
 
 def _count_rows(store: Store, stages: list[tuple[str, str]], doc_ids: list[str],
@@ -57,21 +60,6 @@ def _count_rows(store: Store, stages: list[tuple[str, str]], doc_ids: list[str],
         per = Counter(zip(t.column("doc_id").to_pylist(), t.column("status").to_pylist()))
         rows += [{"doc_id": d, "stage": name, "status": st, "units": n} for (d, st), n in per.items()]
     return rows
-
-
-def _fold(stages: list[tuple[str, str]], rows: list[dict[str, Any]]
-          ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
-    totals = {name: Counter() for name, _ in stages}
-    by_doc: dict[str, Counter] = {}
-    pages: Counter = Counter()
-    first = stages[0][0] if stages else None
-    for r in rows:
-        totals[r["stage"]][r["status"]] += r["units"]
-        by_doc.setdefault(r["doc_id"], Counter())[r["status"]] += r["units"]
-        if r["stage"] == first:
-            pages[r["doc_id"]] += r["units"]
-    out = [StageCounts(name, unit, {k: totals[name][k] for k in sorted(totals[name])}) for name, unit in stages]
-    return out, by_doc, pages
 
 
 def counts_rel(run_id: str) -> str:
@@ -94,16 +82,45 @@ def carried_counts(store: Store, stages: list[tuple[str, str]], live_docs: list[
     live = set(live_docs)
     prev = _previous_counts(store, stages, previous)
     if prev is None:
-        recount, rows = live, []
+        recount, parts = live, []
     else:
         written = set().union(*(store.run_docs(name, run_id) for name, _ in stages))
-        counted = set(prev.column("doc_id").to_pylist())
+        counted = set(pc.unique(prev.column("doc_id")).to_pylist())
         recount = live & (written | (live - counted))
-        rows = [r for r in prev.to_pylist() if r["doc_id"] in live and r["doc_id"] not in recount]
+        # The carried rows stay Arrow: a quiet week on a large drive turns none of them
+        # into Python objects but the per-document sums the summary table shows.
+        parts = [prev.filter(pc.is_in(prev.column("doc_id"), value_set=pa.array(sorted(live - recount), pa.string())))]
     if recount:
-        rows += _count_rows(store, stages, sorted(recount), run_id)
-    rows.sort(key=lambda r: (r["doc_id"], r["stage"], r["status"]))
-    return (*_fold(stages, rows), pa.Table.from_pylist(rows, schema=schema.STAGE_COUNTS))
+        parts.append(pa.Table.from_pylist(_count_rows(store, stages, sorted(recount), run_id),
+                                          schema=schema.STAGE_COUNTS))
+    table = pa.concat_tables(parts).cast(schema.STAGE_COUNTS) if parts else schema.STAGE_COUNTS.empty_table()
+    table = table.sort_by([("doc_id", "ascending"), ("stage", "ascending"), ("status", "ascending")])
+    return (*_fold(stages, table), table)
+
+
+def _fold(stages: list[tuple[str, str]], t: pa.Table
+                ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
+    """Per stage by status, per document by status, pages per document, from a
+    STAGE_COUNTS table (summed per key in Arrow: arrow_groups)."""
+    sep = "\x1f"  # a control character: in no doc_id, stage or status name
+    units = t.column("units")
+    totals = {name: Counter() for name, _ in stages}
+    for key, _, n in count_and_sum_per_key(pc.binary_join_element_wise(t.column("stage"), t.column("status"), sep),
+                                           units):
+        stage, status = key.split(sep)
+        totals[stage][status] += n
+    by_doc: dict[str, Counter] = {}
+    for key, _, n in count_and_sum_per_key(pc.binary_join_element_wise(t.column("doc_id"), t.column("status"), sep),
+                                           units):
+        doc, status = key.split(sep)
+        by_doc.setdefault(doc, Counter())[status] += n
+    pages: Counter = Counter()
+    if stages:
+        first = t.filter(pc.equal(t.column("stage"), stages[0][0]))
+        for d, _, n in count_and_sum_per_key(first.column("doc_id"), first.column("units")):
+            pages[d] = n
+    out = [StageCounts(name, unit, {k: totals[name][k] for k in sorted(totals[name])}) for name, unit in stages]
+    return out, by_doc, pages
 
 
 def _previous_counts(store: Store, stages: list[tuple[str, str]], previous: Any):

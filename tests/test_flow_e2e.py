@@ -484,8 +484,20 @@ def test_the_manifests_counts_carried_from_the_last_run_equal_a_full_recount(fir
         totals, per = _recount(store, m)
         assert m["current"] == totals
         assert m["pages"] == sum(totals[m["definition"]["steps"][0]["name"]].values())
-        stored = store.read_table(f"runs/{m['run_id']}/counts.parquet").to_pylist()
+        table = store.read_table(f"runs/{m['run_id']}/counts.parquet")
+        stored = table.to_pylist()
         assert Counter({(r["doc_id"], r["stage"], r["status"]): r["units"] for r in stored}) == per
+        # The per-document figures of the run's summary table (units by status, pages).
+        from thresher.flows.summary import _fold, stages_of
+
+        _, by_doc, pages = _fold(stages_of(m), table)
+        want: dict[str, Counter] = {}
+        want_pages: Counter = Counter()
+        for (d, stage, status), n in per.items():
+            want.setdefault(d, Counter())[status] += n
+            if stage == m["definition"]["steps"][0]["name"]:
+                want_pages[d] += n
+        assert by_doc == want and pages == want_pages
 
     check(_run(drive, store_dir, workers=1))  # nothing changed
     notes[0].write_text(notes[0].read_text(encoding="utf-8") + "\n\nOne more paragraph for the week.\n",

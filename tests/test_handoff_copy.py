@@ -100,9 +100,15 @@ def test_a_copied_forward_handoff_is_byte_for_byte_a_rebuild(prefect_harness, tm
     assert "policy/renewals-2025.md" not in _texts(store_dir) and "policy/renewals-2026.md" in _texts(store_dir)
     _same_as_rebuild(store_dir, definition, first)
 
+    # Nothing changed: the published hand-off and digests stand, not rewritten (the
+    # first run's files, as a rebuild under its id writes them); the next run copies
+    # forward from them, checked against the first run's record.
+    published = {n: (store_dir / "handoff" / n).stat().st_mtime_ns for n in ("chunks.parquet", "digests.parquet")}
     same = _run(drive, store_dir, definition)
-    assert same["handoff"] == "access columns rewritten" and same["changes"] == {"upsert": 0, "delete": 0}
-    _same_as_rebuild(store_dir, definition, same)
+    assert same["handoff"] == "kept as published" and same["changes"] == {"upsert": 0, "delete": 0}
+    assert (same["chunks"], same["tokens"]) == (first["chunks"], first["tokens"])
+    assert {n: (store_dir / "handoff" / n).stat().st_mtime_ns for n in published} == published
+    _same_as_rebuild(store_dir, definition, first)
 
     # An edit, two additions (one with no text: no chunk) and a removal: three documents
     # read from the stages.
