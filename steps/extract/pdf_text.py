@@ -424,9 +424,6 @@ def _table(chars: set[str]) -> np.ndarray:
 
 _SPACE_TABLE = _table(_SPACES)
 _MARK_TABLE = _table(_HYPHEN_MARKS)
-# Hyphen marks become "-"; other control characters are glyphs PDFium could not map.
-_OUT = {ord(c): "-" for c in _HYPHEN_MARKS}
-_OUT.update({c: "\ufffd" for c in range(0x20) if chr(c) not in _SPACES and chr(c) not in _HYPHEN_MARKS})
 
 
 def _words(tp: int, page_top: float, facts: PageText) -> None:
@@ -448,8 +445,17 @@ def _words(tp: int, page_top: float, facts: PageText) -> None:
     if flat.any():  # boxes without height take the page's usual height
         h[flat] = np.median(h[h > 0]) if np.any(h > 0) else 1.0
     vis_codes = codes[visible]
-    vis_text = vis_codes.tobytes().decode("utf-32-le")
     marks = _MARK_TABLE[np.minimum(vis_codes, len(_MARK_TABLE) - 1)]
+    controls = vis_codes < 0x20
+    if marks.any() or controls.any():
+        # Hyphen marks become "-", other control characters (glyphs PDFium could not
+        # map) U+FFFD: replaced in the codes, before the one decoding of the page.
+        out_codes = vis_codes.copy()
+        out_codes[controls] = 0xFFFD
+        out_codes[marks] = 0x2D
+        out_text = out_codes.tobytes().decode("utf-32-le")
+    else:
+        out_text = vis_codes.tobytes().decode("utf-32-le")
 
     brk = np.ones(m, dtype=bool)
     if m > 1:
@@ -467,8 +473,6 @@ def _words(tp: int, page_top: float, facts: PageText) -> None:
     x1 = np.maximum.reduceat(right, starts).tolist()
     y0_ = np.minimum.reduceat(bottom, starts)
     y1_ = np.maximum.reduceat(top, starts)
-    # Hyphen marks and unmapped control characters are rare: translate only when present.
-    out_text = vis_text.translate(_OUT) if bool(marks.any() or (vis_codes < 0x20).any()) else vis_text
     hyph = marks[ends - 1].tolist()
     s_list = starts.tolist()
     e_list = ends.tolist()
@@ -506,6 +510,6 @@ def _words(tp: int, page_top: float, facts: PageText) -> None:
         [f[0] for f in fonts], [f[1] for f in fonts], hyph, (ends - starts).tolist(), [f[2] for f in fonts])))
 
     # Glyphs without a Unicode mapping: ask PDFium only about suspicious characters.
-    odd = ((vis_codes < 0x20) & ~marks) | (vis_codes == 0xFFFD) | ((vis_codes >= 0xE000) & (vis_codes <= 0xF8FF))
+    odd = (controls & ~marks) | (vis_codes == 0xFFFD) | ((vis_codes >= 0xE000) & (vis_codes <= 0xF8FF))
     if odd.any():
         facts.unmapped = sum(1 for i in visible[odd].tolist() if _MAP_ERROR(tp, i))
