@@ -17,6 +17,8 @@ from __future__ import annotations
 from collections import defaultdict
 from typing import Iterable
 
+import numpy as np
+
 from .pdf_tables import FoundTable
 from .pdf_text import Word
 
@@ -173,12 +175,17 @@ def table_rows(cells: list[tuple[float, float, float, float]], words: list[Word]
         by_top[c[1]][c[0]] = c
     in_cell: dict[tuple, list[Word]] = defaultdict(list)
     cell_list = list(cells)
-    for w in words:
-        cx, cy = (w.x0 + w.x1) / 2, (w.top + w.bottom) / 2
-        for c in cell_list:
-            if c[0] <= cx < c[2] and c[1] <= cy < c[3]:
-                in_cell[c].append(w)
-                break
+    if words and cell_list:
+        # Each word's first cell (in the cells' order) holding its centre, for all the
+        # page's words and cells at once: a Python loop over both was 0.4 ms a page
+        # on the goals' PDFs, more than the rest of the grid.
+        x0, x1, top, bottom = (np.array(col) for col in list(zip(*words))[1:5])
+        cx, cy = ((x0 + x1) / 2)[:, None], ((top + bottom) / 2)[:, None]
+        box = np.array(cell_list, dtype=np.float64)
+        holds = (box[:, 0] <= cx) & (cx < box[:, 2]) & (box[:, 1] <= cy) & (cy < box[:, 3])
+        first = holds.argmax(axis=1).tolist()
+        for k in np.flatnonzero(holds.any(axis=1)).tolist():
+            in_cell[cell_list[first[k]]].append(words[k])
     rows = []
     for top in sorted(by_top):
         row = by_top[top]
