@@ -384,18 +384,21 @@ def _exact(text: str) -> str:
     return "".join(ch for ch in _SECTION_NUMBER.sub("", text).casefold() if ch.isalnum())
 
 
-def follows_document(text: str, titles: set[str], exact: set[str] = frozenset()) -> bool:
+def follows_document(text: str, titles: set[str] | tuple[str, ...], exact: set[str] = frozenset()) -> bool:
     """True when a header/footer line's text is a chapter or section label with a number
     ("CHAPTER 7. BASICS OF ...", "12 Chapter 2. The Debian Archive"), or starts or ends
     with a title the document's outline or metadata names (digits aside) -- but not
     when it is that title and nothing more (`exact`: a section's own heading that
-    happens to open a page)."""
+    happens to open a page). `titles` as a tuple: those of 8 or more letters,
+    picked by the caller once for many calls."""
     if _exact(text) in exact:
         return False
     if _RUNNING_LABEL.match(text):
         return True
     loose = _loose(text)
-    return any(len(t) >= 8 and (loose.startswith(t) or loose.endswith(t)) for t in titles)
+    # One startswith/endswith over a tuple, in C (a document's outline has hundreds).
+    long = tuple(t for t in titles if len(t) >= 8) if not isinstance(titles, tuple) else titles
+    return bool(long) and (loose.startswith(long) or loose.endswith(long))
 
 
 def drop_running_lines(pages: list[tuple[float, list[Line]]],
@@ -411,7 +414,7 @@ def drop_running_lines(pages: list[tuple[float, list[Line]]],
     removed: list[list[dict]] = [[] for _ in pages]
     if len(pages) < 2:
         return removed
-    loose_titles = {_loose(t) for t in (titles or [])}
+    loose_titles = tuple(t for t in {_loose(t) for t in (titles or [])} if len(t) >= 8)
     exact_titles = {_exact(t) for t in (titles or [])}
     candidates: list[list[tuple[Line, str]]] = []
     seen: dict[str, list[tuple[int, float]]] = defaultdict(list)
