@@ -7,8 +7,9 @@ The reader calls PDFium through plain-integer handles (`pdf_text._own`), its hot
 calls without ctypes' argument conversion (`pdf_text._BARE`); a pypdfium2 build without
 its library handle goes through pypdfium2's public bindings instead
 (`pdf_text._adapted`). Both routes must read the same page. make_lines computes lines
-with numpy over the page; it must give the lines the rule in pdf_layout's docstring
-gives when applied word by word (written out plainly below)."""
+with numpy over the page, from the reader's word arrays or from the words alone; it
+must give the lines the rule in pdf_layout's docstring gives when applied word by word
+(written out plainly below)."""
 
 from __future__ import annotations
 
@@ -81,8 +82,9 @@ def _lines_word_by_word(words: list[pdf_text.Word]) -> list[pdf_layout.Line]:
 def test_lines_are_the_word_by_word_rule(path):
     lines = []
     for page in _pages(path):
-        got = pdf_layout.make_lines(page.words)
+        got = pdf_layout.make_lines(page.words, page.columns)  # the reader's arrays
         assert got == _lines_word_by_word(page.words)
+        assert pdf_layout.make_lines(page.words) == got  # the words alone (pdfminer's route)
         lines += got
     assert len(lines) > 1000
     # Lines of several sizes (the size most characters have decides) occur in both.

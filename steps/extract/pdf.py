@@ -85,6 +85,7 @@ from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from functools import lru_cache
 
+import numpy as np
 import pypdfium2 as pdfium
 
 from . import pdf_text
@@ -252,12 +253,15 @@ def scan_text(number: int, facts: PageText, tables: list[FoundTable]) -> PageSca
     if facts.unmapped > facts.visible_chars / 2:
         scan.no_text = "glyphs"
         return scan
-    words = facts.words
+    words, columns = facts.words, facts.columns
     if tables:
         scan.tables = tables
         boxes = [t.bbox for t in tables]
-        words = [w for w in words if not inside(w.x0, w.top, w.x1, w.bottom, boxes)]
-    scan.lines = make_lines(words)
+        outside = [not inside(w.x0, w.top, w.x1, w.bottom, boxes) for w in words]
+        words = [w for w, keep in zip(words, outside) if keep]
+        if columns is not None:
+            columns = type(columns)(*(c[np.array(outside, dtype=bool)] for c in columns))
+    scan.lines = make_lines(words, columns)
     return scan
 
 

@@ -55,7 +55,7 @@ from operator import attrgetter
 
 import numpy as np
 
-from .pdf_text import WORD_GAP, Word
+from .pdf_text import WORD_GAP, Word, WordColumns
 
 GUTTER_EM = 0.6
 COLUMN_EM = 12.0
@@ -149,7 +149,7 @@ def line_from(words: list[Word]) -> Line:
     )
 
 
-def make_lines(words: list[Word]) -> list[Line]:
+def make_lines(words: list[Word], columns: WordColumns | None = None) -> list[Line]:
     """Group words into lines, top to bottom; text that is not upright comes last.
 
     Words sorted by vertical centre, then x0; a word joins the current line when its
@@ -157,25 +157,46 @@ def make_lines(words: list[Word]) -> list[Line]:
     word's height from that first word's centre; each line's words are read left to
     right (line_from). The upright lines are computed with numpy over the whole page:
     Python work per word was most of this function's time (tests/test_pdf_text.py
-    checks the result against the rule applied word by word).
+    checks the result against the rule applied word by word). `columns`, when given,
+    are the same words as arrays (pdf_text.WordColumns), so they are not taken apart
+    word by word here.
     """
-    upright = []
-    other = []
-    for w in words:
-        if w.text.strip():
-            (upright if w.upright else other).append(w)
-    lines = _upright_lines(upright) if upright else []
+    if columns is None:
+        upright = []
+        other = []
+        for w in words:
+            if w.text.strip():
+                (upright if w.upright else other).append(w)
+        lines = _upright_lines(upright, _columns(upright)) if upright else []
+    else:
+        takes = columns.upright & ~columns.blank
+        if takes.all():  # the usual page: every word upright and printable
+            upright, other, cols = words, [], columns
+        else:
+            picked = np.flatnonzero(takes)
+            upright = [words[i] for i in picked.tolist()]
+            other = [words[i] for i in np.flatnonzero(~columns.upright & ~columns.blank).tolist()]
+            cols = WordColumns(*(c[picked] for c in columns))
+        lines = _upright_lines(upright, cols) if upright else []
     lines.sort(key=lambda ln: (ln.top, ln.x0))
     lines += [line_from([w]) for w in other]
     return lines
 
 
-def _upright_lines(words: list[Word]) -> list[Line]:
+def _columns(words: list[Word]) -> WordColumns | None:
+    """Words' fields as arrays (words from pdfminer, or filtered ones): one zip of the
+    tuples gives every field's column."""
+    if not words:
+        return None
+    c = list(zip(*words))
+    return WordColumns(np.array(c[1]), np.array(c[2]), np.array(c[3]), np.array(c[4]), np.array(c[5]),
+                       np.array(c[6], dtype=bool), np.array(c[8], dtype=np.int64), np.array(c[9], dtype=bool),
+                       np.zeros(len(words), dtype=bool))
+
+
+def _upright_lines(words: list[Word], cols: WordColumns) -> list[Line]:
     n = len(words)
-    # Words are tuples: one zip gives every field's column.
-    columns = list(zip(*words))
-    x0, x1, top, bottom, size = (np.array(columns[k]) for k in range(1, 6))
-    bold, chars = np.array(columns[6], dtype=bool), np.array(columns[8], dtype=np.int64)
+    x0, x1, top, bottom, size, bold, chars = cols.x0, cols.x1, cols.top, cols.bottom, cols.size, cols.bold, cols.chars
     centre = (top + bottom) / 2
     # Sorted by (centre, x0); lexsort is stable, so equal keys keep the words' order.
     order = np.lexsort((x0, centre))

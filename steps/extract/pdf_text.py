@@ -82,6 +82,21 @@ class Word(NamedTuple):
     upright: bool = True
 
 
+class WordColumns(NamedTuple):
+    """A page's words as arrays, in the order of PageText.words: what line building
+    needs, so it does not take the word tuples apart again (pdf_layout.make_lines)."""
+
+    x0: np.ndarray
+    x1: np.ndarray
+    top: np.ndarray
+    bottom: np.ndarray
+    size: np.ndarray
+    bold: np.ndarray
+    chars: np.ndarray
+    upright: np.ndarray
+    blank: np.ndarray  # only whitespace (str.isspace) characters: no line takes it
+
+
 @dataclass
 class PageText:
     width: float
@@ -95,6 +110,8 @@ class PageText:
     # On a ruled page: its straight axis-parallel path segments ("h"|"v", x0, top, x1,
     # bottom in points from the top), for pdf_grid's table finder.
     edges: list[tuple[str, float, float, float, float]] = field(default_factory=list)
+    # The words again, as arrays (the PDFium route; not compared: `words` holds the same).
+    columns: WordColumns | None = field(default=None, compare=False, repr=False)
 
 
 def _font_facts(font) -> tuple[bool, str]:
@@ -424,6 +441,8 @@ def _table(chars: set[str]) -> np.ndarray:
 
 _SPACE_TABLE = _table(_SPACES)
 _MARK_TABLE = _table(_HYPHEN_MARKS)
+# What str.isspace (so str.strip) counts as white space; none lies above U+3000.
+_WHITE_TABLE = _table({chr(c) for c in range(0x3001) if chr(c).isspace()})
 
 
 def _words(tp: int, page_top: float, facts: PageText) -> None:
@@ -455,6 +474,7 @@ def _words(tp: int, page_top: float, facts: PageText) -> None:
         out_codes[marks] = 0x2D
         out_text = out_codes.tobytes().decode("utf-32-le")
     else:
+        out_codes = vis_codes
         out_text = vis_codes.tobytes().decode("utf-32-le")
 
     brk = np.ones(m, dtype=bool)
@@ -469,8 +489,8 @@ def _words(tp: int, page_top: float, facts: PageText) -> None:
         )
     starts = np.flatnonzero(brk)
     ends = np.append(starts[1:], m)
-    x0 = np.minimum.reduceat(left, starts).tolist()
-    x1 = np.maximum.reduceat(right, starts).tolist()
+    x0_ = np.minimum.reduceat(left, starts)
+    x1_ = np.maximum.reduceat(right, starts)
     y0_ = np.minimum.reduceat(bottom, starts)
     y1_ = np.maximum.reduceat(top, starts)
     hyph = marks[ends - 1].tolist()
@@ -504,10 +524,14 @@ def _words(tp: int, page_top: float, facts: PageText) -> None:
             bold = by_font[fkey]
         by_object[key] = (nominal * scale, bold, upright)
     fonts = [by_object[k] for k in keys]
+    sizes, bolds, uprights = [f[0] for f in fonts], [f[1] for f in fonts], [f[2] for f in fonts]
+    tops, bottoms, chars = page_top - y1_, page_top - y0_, ends - starts
     facts.words.extend(map(_new_word, zip(
-        [out_text[s:e] for s, e in zip(s_list, e_list)], x0, x1,
-        (page_top - y1_).tolist(), (page_top - y0_).tolist(),
-        [f[0] for f in fonts], [f[1] for f in fonts], hyph, (ends - starts).tolist(), [f[2] for f in fonts])))
+        [out_text[s:e] for s, e in zip(s_list, e_list)], x0_.tolist(), x1_.tolist(),
+        tops.tolist(), bottoms.tolist(), sizes, bolds, hyph, chars.tolist(), uprights)))
+    white = _WHITE_TABLE[np.minimum(out_codes, len(_WHITE_TABLE) - 1)]
+    facts.columns = WordColumns(x0_, x1_, tops, bottoms, np.array(sizes), np.array(bolds, dtype=bool), chars,
+                                np.array(uprights, dtype=bool), np.logical_and.reduceat(white, starts))
 
     # Glyphs without a Unicode mapping: ask PDFium only about suspicious characters.
     odd = (controls & ~marks) | (vis_codes == 0xFFFD) | ((vis_codes >= 0xE000) & (vis_codes <= 0xF8FF))
