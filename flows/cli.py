@@ -256,7 +256,7 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
     if args.verb == "run":  # before Prefect is imported, so their start overlaps it
         from thresher.flows.execute import prewarm_run
 
-        prewarm_run(definition, store_root, options.get("workers"), options.get("force", False))
+        prewarm_run(definition, source, store_root, options.get("workers"), options.get("force", False))
     from thresher.flows import pipeline
     from thresher.flows.rerun import RerunError
     from thresher.flows.store import StoreError

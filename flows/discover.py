@@ -114,11 +114,24 @@ def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
     Symbolic links to folders are not followed (a drive can hold loops); a file that
     cannot be read is reported as a problem, not an error.
     """
-    root = Path(root)
     known = known or {}
+    found: list[SourceFile] = []
+    problems: list[ScanProblem] = []
+    with ThreadPoolExecutor(max_workers=max(1, threads), thread_name_prefix="thresher-scan") as pool:
+        for r in pool.map(lambda fr: _look(fr[0], fr[1], known.get(fr[1]), verify),
+                          _candidates(root, include, exclude)):
+            if isinstance(r, SourceFile):
+                found.append(r)
+            elif isinstance(r, ScanProblem):
+                problems.append(r)
+    return found, problems
+
+
+def _candidates(root: str | os.PathLike[str], include: list[str], exclude: list[str]) -> list[tuple[str, str]]:
+    """(full path, source path) of every file name under root the globs select, sorted."""
     todo: list[tuple[str, str]] = []
     # Paths as strings: pathlib's parsing per file was most of a quiet week's scan.
-    top = str(root)
+    top = str(Path(root))
     for dirpath, dirnames, filenames in os.walk(top, followlinks=False):
         dirnames.sort()
         base = str(Path(dirpath))  # the folder as pathlib spells it, once per folder
@@ -129,12 +142,24 @@ def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
             if not matches(rel, include) or matches(rel, exclude):
                 continue
             todo.append((os.path.join(base, name), rel))
-    found: list[SourceFile] = []
-    problems: list[ScanProblem] = []
+    return todo
+
+
+def new_or_changed(root: str | os.PathLike[str], include: list[str], exclude: list[str],
+                   known: dict[str, dict], threads: int = SCAN_THREADS) -> bool:
+    """Whether any selected file under root is missing from `known` (catalog rows by
+    source path) or has another stat record: the scan's question, asked without
+    reading a byte, before a run decides to start its workers."""
+    def differs(fr: tuple[str, str]) -> bool:
+        row = known.get(fr[1])
+        if row is None:
+            return True
+        try:
+            st = os.stat(fr[0])
+        except OSError:
+            return False  # the scan reports it; no document to process
+        rec = stat_record(st)
+        return any(row.get(k) != rec[k] for k in STAT_FIELDS)
+
     with ThreadPoolExecutor(max_workers=max(1, threads), thread_name_prefix="thresher-scan") as pool:
-        for r in pool.map(lambda fr: _look(fr[0], fr[1], known.get(fr[1]), verify), todo):
-            if isinstance(r, SourceFile):
-                found.append(r)
-            elif isinstance(r, ScanProblem):
-                problems.append(r)
-    return found, problems
+        return any(pool.map(differs, _candidates(root, include, exclude)))

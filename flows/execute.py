@@ -21,7 +21,7 @@ from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
 from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_units
 from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, RemoteError, TimeLimitExceeded,
-                                    give_back, isolation_available, prewarm, take_worker)
+                                    give_back, idle_count, isolation_available, prewarm, take_worker)
 from thresher.flows.rows import RowContext, rows_to_table, to_row
 from thresher.flows.segment import PassedOn, StepCall, StepDone, failed_document_unit, order_key, run_segment
 from thresher.flows.store import Store
@@ -101,20 +101,39 @@ def unit_kind(step: ResolvedStep) -> str:
 
 _order_key = order_key
 
-def prewarm_run(definition: FlowDefinition, store_root: str, workers: int | None, force: bool) -> None:
+def prewarm_run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None,
+                force: bool) -> None:
     """Start this process's warm workers before Prefect starts the flow, when the run
-    surely has documents to process: a store with no catalog yet (its first run) or
-    --force. The fork server's preload (about 2 s of CPU: the step modules, the token
-    encoding, the language profiles) then runs beside Prefect's imports and its start
-    of the flow, instead of holding up the first document. Only where the batches run
-    in this process (sequential, threads: a pool's or Dask's run elsewhere). Not on a
-    guess: a weekly run learns whether anything changed only from its scan, and
-    starting workers for a run with nothing to do made a served no-change run of the
-    demo drive 2-11 s slower in four rounds at load 5-7 (the preload competing with it)."""
+    has documents to process: a store with no catalog yet (its first run), --force, or
+    a weekly run whose source holds a new or changed file (by the stat record, as the
+    scan decides; no byte is read) or whose chain changed. The fork server's preload
+    (about 2 s of CPU: the step modules, the token encoding, the language profiles)
+    then runs beside Prefect's imports and its start of the flow, instead of holding up
+    the first document. Only where the batches run in this process (sequential,
+    threads: a pool's or Dask's run elsewhere). Not on a guess: starting workers for a
+    run with nothing to do made a served no-change run of the demo drive 2-11 s slower
+    in four rounds at load 5-7 (the preload competing with it)."""
     runner = definition.model.runner
     wanted = {"sequential": 1, "threads": workers or runner.workers}.get(runner.kind, 0)
-    if wanted and (force or not Store(store_root).exists("catalog.parquet")):
+    if not wanted or idle_count() >= wanted:  # started already (by the command, or a run before)
+        return
+    store = Store(store_root)
+    if force or not store.exists("catalog.parquet") or _has_work(definition, source_root, store):
         prewarm(wanted)
+
+
+def _has_work(definition: FlowDefinition, source_root: str, store: Store) -> bool:
+    from thresher.flows.discover import new_or_changed
+
+    try:
+        rows = store.catalog().to_pylist()
+    except Exception:  # noqa: BLE001 - the run itself reports a store it cannot read
+        return False
+    known = {r["source_path"]: r for r in rows if r["present"] and not r.get("container_doc_id")}
+    if any(r.get("chain_digest") != definition.chain_digest for r in known.values()):
+        return True  # another chain: every document goes through it again
+    source = definition.model.source
+    return new_or_changed(source_root, list(source.include), list(source.exclude), known)
 
 
 def applies_to(step: ResolvedStep, units: list[Unit]) -> bool:

@@ -375,6 +375,12 @@ def give_back(caller: IsolatedCaller) -> None:
         _idle.append(caller)
 
 
+def idle_count() -> int:
+    """Warm workers waiting in this process's pool."""
+    with _idle_lock:
+        return len(_idle)
+
+
 def prewarm(workers: int) -> None:
     """Have `workers` warm workers starting in the background (idle workers left by an
     earlier run in this process count); the first batches take them from the pool."""

@@ -622,7 +622,7 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     store = Store(store_root)
     store.acquire_lock(run_id)
     if rerun is None:
-        prewarm_run(definition, store_root, workers, force)  # beside Prefect's start of the flow
+        prewarm_run(definition, source_root, store_root, workers, force)  # beside Prefect's start of the flow
     overrides = run_overrides()
     try:
         with shared_api(definition.model.runner.kind), run_settings(overrides), client_context():

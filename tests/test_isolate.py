@@ -112,16 +112,16 @@ def test_workers_are_started_ahead_only_for_a_run_that_surely_has_work(tmp_path)
     processes = build_definition(data, "test")
     weekly = tmp_path / "weekly"
     weekly.mkdir()
-    (weekly / "catalog.parquet").write_bytes(b"")  # an earlier run's catalog: the scan decides
+    (weekly / "catalog.parquet").write_bytes(b"")  # a catalog it cannot read: the run itself says so
     with isolate._idle_lock:
         kept, isolate._idle[:] = list(isolate._idle), []
     try:
-        prewarm_run(threads, str(weekly), None, force=False)
-        prewarm_run(processes, str(tmp_path / "new"), None, force=False)  # its batches run in the pool
+        prewarm_run(threads, str(tmp_path), str(weekly), None, force=False)
+        prewarm_run(processes, str(tmp_path), str(tmp_path / "new"), None, force=False)  # its batches run in the pool
         assert isolate._idle == []
-        prewarm_run(threads, str(weekly), None, force=True)  # --force processes every document
+        prewarm_run(threads, str(tmp_path), str(weekly), None, force=True)  # --force processes every document
         assert len(isolate._idle) == 2
-        prewarm_run(threads, str(tmp_path / "new"), 3, force=False)  # a first run; idle ones count
+        prewarm_run(threads, str(tmp_path), str(tmp_path / "new"), 3, force=False)  # a first run; idle ones count
         assert len(isolate._idle) == 3
     finally:
         with isolate._idle_lock:

@@ -8,7 +8,7 @@ from pathlib import Path
 
 from thresher.flows import pipeline
 from thresher.flows.config import load_definition
-from thresher.flows.discover import file_doc_id, scan
+from thresher.flows.discover import file_doc_id, new_or_changed, scan
 from thresher.flows.store import Store
 
 
@@ -63,6 +63,25 @@ def test_scan_reuses_doc_ids_only_while_every_stat_field_matches(tmp_path):
     verified = {x.source_path: x for x in scan(drive, ["**/*"], [], known=stale, verify=True)[0]}
     assert verified["vans.md"].doc_id == file_doc_id(vans) != first[1].doc_id
     assert all(x.hashed for x in verified.values())
+
+
+def test_workers_start_early_only_when_the_stat_records_say_a_file_is_new_or_changed(tmp_path):
+    """The question a run asks before Prefect starts (execute.prewarm_run), with no byte
+    read: the scan's own stat match, so it agrees with what the scan will hash."""
+    drive = _drive(tmp_path / "drive")
+    first, _ = scan(drive, ["**/*"], [])
+    known = {f.source_path: {"doc_id": f.doc_id, "size": f.size, "mtime_ns": f.mtime_ns, "inode": f.inode,
+                             "device": f.device, "ctime_ns": f.ctime_ns} for f in first}
+    assert not new_or_changed(drive, ["**/*"], [], known)
+    (drive / "~$rota.md").write_text("a lock file the definition leaves out")
+    assert not new_or_changed(drive, ["**/*"], ["**/~$*"], known)
+    assert new_or_changed(drive, ["**/*"], [], known)  # a file the catalog has not seen
+    (drive / "~$rota.md").unlink()
+    (drive / "rota.md").unlink()  # a removal alone: no document to extract
+    assert not new_or_changed(drive, ["**/*"], [], known)
+    with (drive / "vans.md").open("a") as f:
+        f.write("Fuel cards are kept in the office safe.\n")
+    assert new_or_changed(drive, ["**/*"], [], known)
 
 
 def test_scan_in_threads_keeps_path_order_and_reports_unreadable_files(tmp_path):
