@@ -64,8 +64,17 @@ def _glob_regex(pattern: str) -> re.Pattern[str]:
     return re.compile(out + r"\Z")
 
 
+@lru_cache(maxsize=64)
+def _any_glob(patterns: tuple[str, ...]) -> re.Pattern[str] | None:
+    """One regex for a list of globs: a scan asks it of every path, include and exclude."""
+    if not patterns:
+        return None
+    return re.compile("|".join(f"(?:{_glob_regex(p).pattern})" for p in patterns))
+
+
 def matches(rel_path: str, patterns: list[str]) -> bool:
-    return any(_glob_regex(p).match(rel_path) for p in patterns)
+    rx = _any_glob(tuple(patterns))
+    return rx is not None and rx.match(rel_path) is not None
 
 
 def file_doc_id(path: str | os.PathLike[str]) -> str:

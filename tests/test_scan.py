@@ -117,3 +117,17 @@ def test_a_touched_file_is_not_extracted_again_and_verify_rereads_every_file(pre
 
     verified = run(verify=True)
     assert verified["documents"]["hashed"] == 3 and verified["documents"]["processed"] == 0
+
+
+def test_a_path_matches_a_list_of_globs_when_any_one_of_them_matches_it_whole():
+    from thresher.flows.discover import matches
+
+    # The default definition's exclude list (config/default.yaml).
+    exclude = ["**/.*", "**/~$*", "**/Thumbs.db"]
+    assert matches(".git", exclude) and matches("notes/.hidden", exclude) and matches("a/b/~$draft.docx", exclude)
+    assert matches("Thumbs.db", exclude) and matches("photos/Thumbs.db", exclude)
+    assert not matches("notes/a.md", exclude) and not matches("photos/Thumbs.db.bak", exclude)
+    assert not matches("notes/a.md", [])
+    # '*' stays within a folder, '**/' spans any number of them (or none).
+    assert matches("a/x.txt", ["b/*", "a/*.txt"]) and not matches("a/b/x.txt", ["a/*.txt"])
+    assert matches("a/b/c/x.pdf", ["q", "a/**/x.pdf"]) and matches("a/x.pdf", ["a/**/x.pdf"])
