@@ -169,6 +169,16 @@ def table_shape(rows: list[list[str | None]]) -> tuple[int, int]:
     return len(cells), cols
 
 
+def table_or_paragraphs(rows: list[list[str | None]]) -> list[Block]:
+    """A grid of at least 2 x 2 cells with text as one table block; a smaller one (a
+    layout table, a single row or column) as one paragraph per row."""
+    n_rows, n_cols = table_shape(rows)
+    if n_rows >= 2 and n_cols >= 2:
+        block = table_block(rows)
+        return [block] if block else []
+    return [b for b in (paragraph_block(" ".join(c for c in row if c)) for row in rows) if b]
+
+
 def code_block(text: str) -> Block | None:
     lines = text.split("\n")
     while lines and not lines[0].strip():

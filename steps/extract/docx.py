@@ -33,8 +33,7 @@ from .blocks import (
     inline,
     flush_list,
     paragraph_block,
-    table_block,
-    table_shape,
+    table_or_paragraphs,
 )
 
 _HEADING_STYLE = re.compile(r"^heading\s+(\d+)$", re.IGNORECASE)
@@ -131,17 +130,7 @@ def read_docx(inp: ReaderInput) -> ReadResult:
     for item in document.iter_inner_content():
         if isinstance(item, Table):
             end_list()
-            rows = table_rows(item)
-            n_rows, n_cols = table_shape(rows)
-            if n_rows >= 2 and n_cols >= 2:
-                block = table_block(rows)
-                if block:
-                    blocks.append(block)
-            else:
-                for row in rows:
-                    block = paragraph_block(" ".join(c for c in row if c))
-                    if block:
-                        blocks.append(block)
+            blocks.extend(table_or_paragraphs(table_rows(item)))
             continue
         text = item.text
         if not text.strip():

@@ -24,8 +24,7 @@ from .blocks import (
     heading_block,
     inline,
     paragraph_block,
-    table_block,
-    table_shape,
+    table_or_paragraphs,
 )
 from .odf_text import H, LIST, P, TABLE, Package, list_lines, paragraph_text, q, table_rows
 
@@ -73,17 +72,7 @@ def read_odt(inp: ReaderInput) -> ReadResult:
                 list_items.extend(list_lines(node, 0, notes))
             elif tag == TABLE:
                 flush_list(blocks, list_items)
-                rows = table_rows(node, notes)
-                n_rows, n_cols = table_shape(rows)
-                if n_rows >= 2 and n_cols >= 2:
-                    block = table_block(rows)
-                    if block:
-                        blocks.append(block)
-                else:
-                    for row in rows:
-                        block = paragraph_block(" ".join(c for c in row if c))
-                        if block:
-                            blocks.append(block)
+                blocks.extend(table_or_paragraphs(table_rows(node, notes)))
             elif tag in _INDEXES:
                 flush_list(blocks, list_items)
                 words = inline(" ".join(paragraph_text(p) for p in node.iter(P)))

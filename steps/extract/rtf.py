@@ -35,8 +35,7 @@ from .blocks import (
     heading_block,
     inline,
     paragraph_block,
-    table_block,
-    table_shape,
+    table_or_paragraphs,
 )
 
 _TOKEN = re.compile(
@@ -307,16 +306,7 @@ class _Reader:
         if not self.rows:
             return
         rows, self.rows = self.rows, []
-        n_rows, n_cols = table_shape(rows)
-        if n_rows >= 2 and n_cols >= 2:
-            block = table_block(rows)
-            if block:
-                self.blocks.append(block)
-        else:
-            for row in rows:
-                block = paragraph_block(" ".join(c for c in row if c))
-                if block:
-                    self.blocks.append(block)
+        self.blocks.extend(table_or_paragraphs(rows))
 
     def _end_paragraph(self, para: _Para, out: list[str]) -> tuple[_Para, list[str]]:
         text = "".join(para.text)
