@@ -21,7 +21,8 @@ from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
 from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_units
 from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, RemoteError, TimeLimitExceeded,
-                                    give_back, idle_count, isolation_available, prewarm, take_worker)
+                                    claim_waiting, give_back, idle_count, isolation_available, prewarm,
+                                    take_worker)
 from thresher.flows.rows import RowContext, rows_to_table, to_row
 from thresher.flows.segment import PassedOn, StepCall, StepDone, failed_document_unit, order_key, run_segment
 from thresher.flows.store import Store
@@ -101,6 +102,12 @@ def unit_kind(step: ResolvedStep) -> str:
 
 _order_key = order_key
 
+def local_workers(kind: str, workers: int) -> int:
+    """Warm workers the batches use at once in this process: 0 where they run in other
+    processes (a process pool, Dask)."""
+    return {"sequential": 1, "threads": workers}.get(kind, 0)
+
+
 def prewarm_run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None,
                 force: bool) -> None:
     """Start this process's warm workers before Prefect starts the flow, when the run
@@ -114,7 +121,7 @@ def prewarm_run(definition: FlowDefinition, source_root: str, store_root: str, w
     run with nothing to do made a served no-change run of the demo drive 2-11 s slower
     in four rounds at load 5-7 (the preload competing with it)."""
     runner = definition.model.runner
-    wanted = {"sequential": 1, "threads": workers or runner.workers}.get(runner.kind, 0)
+    wanted = local_workers(runner.kind, workers or runner.workers)
     if not wanted or idle_count() >= wanted:  # started already (by the command, or a run before)
         return
     store = Store(store_root)
@@ -234,6 +241,10 @@ class BatchRunner:
         # The batch's next document and, once made ready ahead of its turn, its inputs.
         self._following: tuple | None = None
         self._prepared: tuple | None = None
+        self._at_last = False  # the batch's last document is under way
+        # A batch waiting for a worker whose first call this batch queued in its own
+        # (isolate.claim_waiting): the worker goes to it.
+        self._promised: Any = None
 
     def _caller_for(self, step: ResolvedStep) -> IsolatedCaller | None:
         if step.spec.time_limit is None or step.spec.time_limit(step.params) is None:
@@ -279,14 +290,21 @@ class BatchRunner:
         plan = [(doc, [i for i in job.segment if i >= max(doc.start, job.segment[0])], stored.get(doc.doc_id))
                 for doc in job.docs]
         try:
+            if plan and isolation_available():
+                # The worker is taken with the first document ready: when all are busy,
+                # a batch whose worker starts its last document queues this one there.
+                self._caller = take_worker(self._ready_call(plan[0]))
             for k, (doc, indices, inputs) in enumerate(plan):
                 self._following = plan[k + 1] if k + 1 < len(plan) else None
+                self._at_last = k + 1 == len(plan)
                 self._run_document(doc, indices, inputs, rows, writes, result)
         finally:
-            self._following, self._prepared = None, None
+            self._following, self._prepared, self._at_last = None, None, False
             if self._caller is not None:
-                give_back(self._caller)
+                # Before this batch's parts are written: the worker goes on meanwhile.
+                give_back(self._caller, self._promised)
                 self._caller = None
+            self._promised = None
         for stage, stage_rows in rows.items():
             unit = unit_kind(self.definition.step(stage))
             self.store.write_stage_part(stage, self.run_id, job.part, rows_to_table(stage, unit, stage_rows),
@@ -348,16 +366,11 @@ class BatchRunner:
                                                    None, []), None
         return "run", Source(doc.doc_id, doc.source_path, data, doc.size, doc.mtime, len(doc.member_of)), None
 
-    def _queue_following(self) -> tuple | None:
-        """Once the worker has started a document: the batch's next one, made ready and
-        handed to the worker now (IsolatedCaller.stream's `following`), so the worker goes
-        straight on to it while this process records and stores the current one. Not for
-        a document whose segment may pause for this process (a re-run of chosen units,
-        or extraction followed by more steps: documents found inside)."""
-        nxt, self._following = self._following, None
-        if nxt is None or not isolation_available():
-            return None
-        doc, indices, stored = nxt
+    def _ready_call(self, entry: tuple) -> tuple | None:
+        """Make a document ready ahead of its turn (its inputs kept for _run_document) and
+        return its call for a worker's queue; None when it has nothing to run in a worker
+        or its segment may pause for this process (a re-run of chosen units)."""
+        doc, indices, stored = entry
         if not indices or _may_pause(doc, indices):
             return None
         self._prepared = (doc, self._inputs(doc, indices, stored))
@@ -366,6 +379,22 @@ class BatchRunner:
             return None
         calls = [self._step_call(i) for i in indices]
         return run_segment, (calls, inputs, doc.doc_id, doc.source_path, False), doc
+
+    def _queue_following(self) -> tuple | None:
+        """Once the worker has started a document: the batch's next one, made ready and
+        handed to the worker now (IsolatedCaller.stream's `following`), so the worker goes
+        straight on to it while this process records and stores the current one. After
+        the batch's last document, the first one of a batch waiting for a worker
+        (isolate.claim_waiting), which then gets this worker."""
+        nxt, self._following = self._following, None
+        if not isolation_available():
+            return None
+        if nxt is not None:
+            return self._ready_call(nxt)
+        if self._at_last and self._promised is None:
+            self._promised = claim_waiting()
+            return None if self._promised is None else self._promised.call
+        return None
 
     def _run_here(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
                   rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],

@@ -27,7 +27,7 @@ import pickle
 import threading
 import time
 import traceback
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from multiprocessing.connection import Connection
 from multiprocessing.reduction import ForkingPickler
 from typing import Any, Callable
@@ -363,15 +363,74 @@ class IsolatedCaller:
 # imports, encodings and language profiles are loaded once per run, not per batch.
 _idle: list[IsolatedCaller] = []
 _idle_lock = threading.Lock()
+# At most this many in use at once (pipeline: the run's workers; None: as many as
+# batches ask for). The thread pool runs one batch more than that, so the next batch
+# is started and waiting, its first document ready, when a worker comes free.
+_limit: int | None = None
+_in_use = 0
 
 
-def take_worker() -> IsolatedCaller:
+@dataclass(eq=False)
+class _Waiting:
+    """A batch waiting for a worker, with the call its first document starts with."""
+
+    call: tuple | None  # (fn, args, token), or None when it cannot be queued
+    caller: IsolatedCaller | None = None
+    claimed: bool = False
+    ready: threading.Event = field(default_factory=threading.Event)
+
+
+_waiting: list[_Waiting] = []
+
+
+def limit_workers(n: int | None) -> None:
+    global _limit
     with _idle_lock:
-        return _idle.pop() if _idle else IsolatedCaller()
+        _limit = n
 
 
-def give_back(caller: IsolatedCaller) -> None:
+def take_worker(first: tuple | None = None) -> IsolatedCaller:
+    """A warm worker for a batch: an idle one, a new one under the limit, or else the
+    next one a batch gives back. `first` (fn, args, token) is the batch's first call: a
+    batch whose worker is on its last document queues it there (claim_waiting), so
+    the worker goes straight on to it and comes here with it under way."""
+    global _in_use
     with _idle_lock:
+        if _limit is None or _in_use < _limit:
+            _in_use += 1
+            return _idle.pop() if _idle else IsolatedCaller()
+        waiting = _Waiting(first)
+        _waiting.append(waiting)
+    waiting.ready.wait()
+    assert waiting.caller is not None
+    return waiting.caller
+
+
+def claim_waiting() -> _Waiting | None:
+    """For a batch whose worker has started its last document: a waiting batch's first
+    call to queue in that worker now. give_back(caller, promised) then hands the worker
+    to that batch."""
+    with _idle_lock:
+        for waiting in _waiting:
+            if not waiting.claimed and waiting.call is not None:
+                waiting.claimed = True
+                return waiting
+    return None
+
+
+def give_back(caller: IsolatedCaller, promised: _Waiting | None = None) -> None:
+    """The batch is done with its worker: to the batch it queued a call for, else to
+    the first batch waiting, else to the idle pool."""
+    global _in_use
+    with _idle_lock:
+        if promised is None:
+            promised = next((w for w in _waiting if not w.claimed), None)
+        if promised is not None:
+            _waiting.remove(promised)
+            promised.caller = caller
+            promised.ready.set()
+            return
+        _in_use = max(0, _in_use - 1)
         _idle.append(caller)
 
 

@@ -30,7 +30,8 @@ from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
 from thresher.flows.discover import scan
-from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, prewarm_run, unit_kind
+from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run, unit_kind
+from thresher.flows.isolate import limit_workers
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
 from thresher.flows.plan import Plan, add_members, make_plan
@@ -189,7 +190,9 @@ def _task_runner(kind: str, workers: int, address: str | None = None):
         return DaskTaskRunner(cluster_class="distributed.LocalCluster",
                               cluster_kwargs={"n_workers": workers, "threads_per_worker": 1, "processes": True,
                                               "dashboard_address": None, "host": "127.0.0.1"})
-    return ThreadPoolTaskRunner(max_workers=1 if kind == "sequential" else workers)
+    # One thread more than warm workers: the next batch starts (its task run, its first
+    # document read) while the workers are busy, and waits for one (isolate.take_worker).
+    return ThreadPoolTaskRunner(max_workers=local_workers(kind, workers) + 1)
 
 
 @contextmanager
@@ -405,8 +408,13 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         logger.info("%s %s: %d documents to process", kind, run_id, len(plan.jobs))
 
         latest = store.latest_run()
-        acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings,
-                         workers or model.runner.workers, force, latest.manifest if latest else None)
+        # The batches of a thread pool share this process's warm workers, one per worker.
+        limit_workers(local_workers(model.runner.kind, workers or model.runner.workers) or None)
+        try:
+            acc = _run_chain(definition, plan, store_root, run_id, data_json, progress, timings,
+                             workers or model.runner.workers, force, latest.manifest if latest else None)
+        finally:
+            limit_workers(None)
 
         t0 = time.perf_counter()
         staged = f"runs/{run_id}/staged"

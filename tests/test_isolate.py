@@ -74,6 +74,58 @@ def test_a_call_queued_behind_another_runs_in_the_same_worker_timed_from_its_own
         assert [n for n, _ in caller.stream(timed_pieces, ([(None, 0.0)],), token="other")] == [0]
 
 
+def test_a_batch_waiting_for_the_worker_finds_its_first_document_queued_there():
+    # One worker, two batches: the second waits (the run's limit holds), and the first
+    # queues the second's first call behind its own last one, so the worker goes
+    # straight on to it and then passes to the second batch with that call under way.
+    import threading
+    import time
+
+    from example_steps import timed_pieces
+    from thresher.flows import isolate
+
+    with isolate._idle_lock:
+        kept, isolate._idle[:] = list(isolate._idle), []
+        in_use, isolate._in_use = isolate._in_use, 0
+    isolate.limit_workers(1)
+    try:
+        caller = isolate.take_worker()
+        call = (timed_pieces, ([(5.0, 0.1)],), "second batch")
+        got = {}
+
+        def second_batch():
+            worker = isolate.take_worker(call)
+            got["sent before"] = worker._calls
+            got["pieces"] = list(worker.stream(*call[:2], token="second batch"))
+            got["worker"] = worker
+
+        waiting = threading.Thread(target=second_batch)
+        waiting.start()
+        deadline = time.monotonic() + 30
+        while not isolate._waiting and time.monotonic() < deadline:
+            time.sleep(0.01)
+        assert isolate._waiting and "worker" not in got  # no second worker beyond the limit
+        promised = []
+
+        def claim():
+            promised.append(isolate.claim_waiting())
+            return promised[0].call
+
+        last = list(caller.stream(timed_pieces, ([(5.0, 0.3)],), following=claim))
+        isolate.give_back(caller, promised[0])
+        waiting.join(30)
+        assert got["worker"] is caller and got["pieces"][0][1] == last[0][1]  # the same process
+        assert got["sent before"] == caller._calls == 2  # the queued call was not sent again
+        isolate.give_back(caller)
+        assert isolate._in_use == 0 and isolate._idle == [caller]
+    finally:
+        isolate.limit_workers(None)
+        with isolate._idle_lock:
+            for c in isolate._idle:
+                c.close()
+            isolate._idle[:], isolate._in_use = kept, in_use
+
+
 def test_a_worker_started_ahead_is_running_before_any_call_and_takes_the_first_one():
     import multiprocessing as mp
     import time
