@@ -359,7 +359,7 @@ class IsolatedCaller:
         self.close()
 
 
-# Warm workers kept between batches (one per batch running at once), so a worker's
+# Warm workers kept between batches (one per worker of the run), so a worker's
 # imports, encodings and language profiles are loaded once per run, not per batch.
 _idle: list[IsolatedCaller] = []
 _idle_lock = threading.Lock()
