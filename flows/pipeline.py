@@ -389,10 +389,11 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         files: list = []
         t0 = time.perf_counter()
         if rerun is None:
-            known = {r["source_path"]: r for r in store.catalog().to_pylist() if r["present"]}
+            catalog = store.catalog().to_pylist()  # read once: the scan's stat records, then the plan
+            known = {r["source_path"]: r for r in catalog if r["present"]}
             files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
                                    known=known, verify=verify or model.source.verify)
-            plan = make_plan(definition, store, files, run_id, sequence, force=force)
+            plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog)
             _emit(progress, f"found {len(files)} files ({len(plan.live)} distinct documents): "
                             f"{len(plan.jobs)} to process, {len(plan.skipped)} unchanged, {len(plan.deleted)} removed; "
                             f"{sum(f.hashed for f in files)} files read to hash (the rest matched their stat record)")

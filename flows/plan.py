@@ -127,8 +127,9 @@ def source_path_key(row: dict, source: SourceSection) -> tuple:
 
 
 def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile], run_id: str,
-              sequence: int, force: bool = False) -> Plan:
-    old = store.catalog().to_pylist()
+              sequence: int, force: bool = False, catalog: list[dict] | None = None) -> Plan:
+    """`catalog`: the store's catalog rows when the caller has read them already."""
+    old = store.catalog().to_pylist() if catalog is None else catalog
     old_by_path = {r["source_path"]: r for r in old}
     seq_of = {r.run_id: r.sequence for r in store.runs()}
     chain = definition.chain_digest
