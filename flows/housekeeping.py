@@ -289,23 +289,13 @@ def retention_plan(store: Store, keep_runs: int | None, since: datetime | None,
     newest_probes = next((r.run_id for r in reversed(runs) if probes_rel(r.run_id) in
                           r.manifest.get("publish", {}).values()), None)
     needed.add(newest_probes)
-    for r in runs:
-        for final in r.manifest.get("publish", {}).values():
-            if not final.startswith(("handoff/changes/", "probes/")):
-                needed.add(_publisher(runs, final))
+    needed |= {r.run_id for final, r in store.publishers().items()
+               if not final.startswith(("handoff/changes/", "probes/"))}
     plan.runs_removed = [r for r in old if r not in needed]
     plan.bytes_freed += sum(_run_bytes(store, r) for r in plan.runs_removed)
     for run_id in plan.runs_removed:
         plan.bytes_freed += store.fs.get_file_info(store.path(probes_rel(run_id))).size or 0
     return plan
-
-
-def _publisher(runs, final: str) -> str | None:
-    last = None
-    for r in runs:
-        if final in r.manifest.get("publish", {}).values():
-            last = r.run_id
-    return last
 
 
 def retain(store: Store, keep_runs: int | None, since: datetime | None = None,

@@ -619,13 +619,20 @@ class Store:
                          if f.base_name.endswith(".parquet") and not f.base_name.startswith(".tmp-"))
         return n
 
+    def publishers(self) -> dict[str, RunInfo]:
+        """Each published file (its final path) and the latest committed run that
+        published it, whose manifest records its size and SHA-256 (a run that kept a
+        file as it was publishes no copy of it)."""
+        out: dict[str, RunInfo] = {}
+        for r in self.runs():
+            for final in r.manifest.get("publish", {}).values():
+                out[final] = r
+        return out
+
     def published_record(self, final_rel: str) -> list | None:
-        """[size, SHA-256] of a published file as recorded by the latest run that
-        published it (a run that kept the file as it was publishes no copy of it)."""
-        for r in reversed(self.runs()):
-            if final_rel in r.manifest.get("publish", {}).values():
-                return (r.manifest.get("files") or {}).get(final_rel)
-        return None
+        """[size, SHA-256] of a published file as recorded by the run that published it."""
+        r = self.publishers().get(final_rel)
+        return None if r is None else (r.manifest.get("files") or {}).get(final_rel)
 
     def published(self, final_rel: str) -> str | None:
         """Where a published file (catalog, hand-off) can be read now.

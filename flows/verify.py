@@ -110,10 +110,7 @@ class _Verifier:
         return self.store._writes(stage, self.seq)
 
     def run_files(self) -> None:
-        publisher: dict[str, str] = {}
-        for r in self.runs:
-            for final in r.manifest.get("publish", {}).values():
-                publisher[final] = r.run_id
+        publisher = {final: r.run_id for final, r in self.store.publishers().items()}
         retired = self.store.retired_changes()
         covered = {s: set((self.store.compaction(s) or {}).get("runs", [])) for s, _ in self.stages}
         floors = {s: self.floors(s) for s, _ in self.stages}
