@@ -145,6 +145,13 @@ class SlowToUnpack:
         return (_sleep_then, (self.seconds, self.value))
 
 
+def imported(names: list[str]) -> list[bool]:
+    """Which of these modules the process has imported (run in a warm worker)."""
+    import sys
+
+    return [n in sys.modules for n in names]
+
+
 def echo(value):
     return value
 

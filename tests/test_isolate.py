@@ -16,6 +16,15 @@ def test_the_clock_starts_when_the_child_starts_the_document():
         assert caller.last_seconds < 0.5
 
 
+def test_a_new_worker_starts_with_the_store_readers_imported():
+    # Its first batch of stored inputs (flows/inputs.py) would otherwise import pyarrow's
+    # dataset layer and pandas in every worker, on the way to the first document.
+    from example_steps import imported
+
+    with IsolatedCaller() as caller:
+        assert caller.call(imported, (["pyarrow.dataset", "pandas"],), 60.0) == [True, True]
+
+
 def test_a_hung_call_is_stopped_within_a_small_margin_of_the_limit_and_says_how_long_it_ran():
     with IsolatedCaller() as caller:
         with pytest.raises(TimeLimitExceeded) as info:
