@@ -109,7 +109,10 @@ def _get_context():
 
 
 def _child_main(conn: Connection) -> None:
+    served = False
     while True:
+        if served and not conn.poll(0):
+            _when_idle()  # nothing queued: a moment no document waits for
         try:
             msg = conn.recv()
         except EOFError:
@@ -117,6 +120,7 @@ def _child_main(conn: Connection) -> None:
         if msg is None:
             return
         fn, args = msg
+        served = True
         conn.send(("started",))  # the document is unpacked here: its clock starts now
         try:
             result = fn(*args)
@@ -129,6 +133,14 @@ def _child_main(conn: Connection) -> None:
         except BaseException as exc:  # noqa: BLE001 - reported to the parent as data
             conn.send(("error", type(exc).__name__, str(exc),
                        "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))))
+
+
+def _when_idle() -> None:
+    try:
+        from thresher.flows.warm import when_idle
+    except ImportError:  # the preload failed: the step reports its own import error
+        return
+    when_idle()
 
 
 class IsolatedCaller:
