@@ -112,6 +112,11 @@ def _look(full: str, rel: str, known: dict | None, verify: bool) -> SourceFile |
                       rec["device"], rec["ctime_ns"], facts=read_facts(full, st))
 
 
+def known_files(catalog_rows: list[dict]) -> dict[str, dict]:
+    """The catalog's present rows by source path: the stat records the scan matches."""
+    return {r["source_path"]: r for r in catalog_rows if r["present"]}
+
+
 def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
          known: dict[str, dict] | None = None, verify: bool = False,
          threads: int = SCAN_THREADS) -> tuple[list[SourceFile], list[ScanProblem]]:

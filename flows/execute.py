@@ -130,13 +130,13 @@ def prewarm_run(definition: FlowDefinition, source_root: str, store_root: str, w
 
 
 def _has_work(definition: FlowDefinition, source_root: str, store: Store) -> bool:
-    from thresher.flows.discover import new_or_changed
+    from thresher.flows.discover import known_files, new_or_changed
 
     try:
         rows = store.catalog().to_pylist()
     except Exception:  # noqa: BLE001 - the run itself reports a store it cannot read
         return False
-    known = {r["source_path"]: r for r in rows if r["present"] and not r.get("container_doc_id")}
+    known = known_files(rows)
     if any(r.get("chain_digest") != definition.chain_digest for r in known.values()):
         return True  # another chain: every document goes through it again
     source = definition.model.source
@@ -218,7 +218,7 @@ def _rows_for(step: ResolvedStep, ctx: RowContext, units: list[Unit]) -> list[di
     return rows
 
 
-def _may_pause(doc: DocJob, indices: list[int]) -> bool:
+def _may_pause(doc: DocJob) -> bool:
     """The worker stops after the first step for this process to act (segment.run_segment)
     on a re-run of chosen units. (It also pauses after extraction when it found documents
     inside one; that is known only then, and a worker holding a queued document is then
@@ -371,7 +371,7 @@ class BatchRunner:
         return its call for a worker's queue; None when it has nothing to run in a worker
         or its segment may pause for this process (a re-run of chosen units)."""
         doc, indices, stored = entry
-        if not indices or _may_pause(doc, indices):
+        if not indices or _may_pause(doc):
             return None
         self._prepared = (doc, self._inputs(doc, indices, stored))
         what, inputs, _ = self._prepared[1]
@@ -469,7 +469,7 @@ class BatchRunner:
                 for done in caller.stream(run_segment, (calls, inputs, doc.doc_id, doc.source_path,
                                                         doc.only is not None and pos == 0),
                                           token=doc if pos == 0 else None,
-                                          following=None if _may_pause(doc, indices) else self._queue_following):
+                                          following=None if _may_pause(doc) else self._queue_following):
                     if isinstance(done, ReadFrom):
                         prev, parents = done.stage, done.locators
                         continue

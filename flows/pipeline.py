@@ -29,7 +29,7 @@ from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
-from thresher.flows.discover import scan
+from thresher.flows.discover import known_files, scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run, unit_kind
 from thresher.flows.isolate import limit_workers
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
@@ -390,7 +390,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         t0 = time.perf_counter()
         if rerun is None:
             catalog = store.catalog().to_pylist()  # read once: the scan's stat records, then the plan
-            known = {r["source_path"]: r for r in catalog if r["present"]}
+            known = known_files(catalog)
             files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
                                    known=known, verify=verify or model.source.verify)
             plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog)
