@@ -123,3 +123,30 @@ def test_estimates_are_as_close_to_exact_jaccard_as_datasketch_s():
     assert rmse_ours == pytest.approx(theory, rel=0.25)
     assert rmse_theirs == pytest.approx(theory, rel=0.25)
     assert rmse_ours <= 1.25 * rmse_theirs
+
+
+def test_punctuation_fold_drops_exactly_the_ucd_punctuation_categories():
+    # Source: UnicodeData.txt of the Unicode Character Database (Debian package
+    # unicode-data, /usr/share/unicode/), field 2 = General_Category; the fold removes
+    # categories P* (Pc, Pd, Ps, Pe, Pi, Pf, Po) and keeps everything else. Characters
+    # Python's unicodedata does not know (assigned after its Unicode version) are left
+    # out: Python cannot classify them.
+    from pathlib import Path
+
+    import unicodedata
+
+    path = Path("/usr/share/unicode/UnicodeData.txt")
+    if not path.is_file():
+        pytest.fail(f"{path} is missing: install the Debian package unicode-data (make system-deps)")
+    params = DedupParams(fold_case=False, fold_unicode=False, fold_whitespace=False)
+    punct, other = [], []
+    for line in path.read_text().splitlines():
+        code, name, category = line.split(";")[:3]
+        ch = chr(int(code, 16))
+        if name.startswith("<") or category.startswith(("C", "Z")) or unicodedata.category(ch) == "Cn":
+            continue  # ranges, controls, surrogates, spaces: not words of a chunk
+        (punct if category.startswith("P") else other).append(ch)
+    assert len(punct) > 700 and len(other) > 30_000
+    assert normalise("a" + "".join(punct) + "b", params) == "ab"
+    kept = "".join(other)
+    assert normalise("a" + kept + "b", params) == "a" + kept + "b"
