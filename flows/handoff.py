@@ -132,6 +132,12 @@ def _plain_hash(text: str) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
+# Stage columns a hand-off row is made of (_group_rows).
+_SOURCE_COLUMNS = ("chunk_id", "doc_id", "status", "run_id", "title", "heading_path", "chunk_index", "page_start",
+                   "page_end", "char_start", "char_end", "prefix_chars", "language", "text", "token_count",
+                   "encoding", "token_counts", "content_hash")
+
+
 def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: list[str],
                 live: dict[str, tuple[int, str, int]], access: Access,
                 copies: dict[str, list[str]]) -> list[dict[str, Any]]:
@@ -145,7 +151,11 @@ def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: lis
     hashes: dict[str, str] = {}
     latest: dict[str, dict[str, Any]] = {}
     for stage, limited in _chunk_stages(definition):
-        rows = store.current(stage, "chunks", docs, include_run=run_id).to_pylist()
+        # Only the columns a hand-off row is made of: the rest (blocks, signatures, band
+        # keys, tracebacks) made up most of the rows' conversion to Python.
+        names = set(schema.stage_schema(stage, "chunks").names)
+        rows = store.current(stage, "chunks", docs, columns=[c for c in _SOURCE_COLUMNS if c in names],
+                             include_run=run_id).to_pylist()
         ok = {r["chunk_id"] for r in rows if r["status"] == OK}
         not_ok |= {r["chunk_id"] for r in rows if r["status"] != OK}
         if not limited:
