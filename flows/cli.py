@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import atexit
 import json
+import logging
 import os
 import sys
 import threading
@@ -905,7 +906,22 @@ COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail, "failures"
             "verify": cmd_verify, "compact": cmd_compact, "retain": cmd_retain}
 
 
+class _QuietDrain(logging.Filter):
+    """Drops Prefect's "Still processing items: N items remaining..." notice. Its event
+    worker prints it whenever the process exits with events still queued (a run's last
+    state changes, nearly always), as a WARNING on the command's output; the events are
+    sent all the same, so it warns of nothing."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return not str(record.msg).startswith("Still processing items")
+
+
+_QUIET_DRAIN = _QuietDrain()
+
+
 def main(argv: list[str] | None = None) -> int:
+    # The event worker logs under its class name (prefect _internal/concurrency/services.py).
+    logging.getLogger("EventsWorker").addFilter(_QUIET_DRAIN)  # once: same object
     parser = build_parser()
     if not (sys.argv[1:] if argv is None else argv):  # plain `thresher`: show what it can do
         parser.print_help()
