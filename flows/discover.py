@@ -6,8 +6,9 @@ import hashlib
 import os
 import re
 import stat
+import threading
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
@@ -18,6 +19,13 @@ HASH_CHUNK = 1 << 20
 SCAN_THREADS = 8
 # The stat fields that must all match the catalog for a path's stored doc_id to be reused.
 STAT_FIELDS = ("size", "mtime_ns", "inode", "device", "ctime_ns")
+# A file the scan reads to hash is kept in memory for its extraction, so a new or
+# changed file is read from the drive once, not once to hash and again to extract: up
+# to KEEP_FILE_BYTES a file and KEEP_BYTES a scan in all (ours: a week's changed files
+# on a working drive mostly fit; a larger file, or one past the budget on a first run,
+# is hashed in blocks and read again when its turn comes).
+KEEP_FILE_BYTES = 16 << 20
+KEEP_BYTES = 64 << 20
 
 
 @dataclass(frozen=True)
@@ -33,6 +41,8 @@ class SourceFile:
     ctime_ns: int = 0
     hashed: bool = True  # False: doc_id reused from the catalog, the bytes were not read
     facts: Any = None  # access.FileFacts: owner, group, mode bits, ACL entries
+    # The bytes the scan hashed, when kept for extraction (KEEP_FILE_BYTES, KEEP_BYTES).
+    data: bytes | None = field(default=None, repr=False, compare=False)
 
 
 @dataclass(frozen=True)
@@ -85,6 +95,32 @@ def file_doc_id(path: str | os.PathLike[str]) -> str:
     return h.hexdigest()
 
 
+class _Keep:
+    """The scan's budget of bytes kept for extraction, shared by its threads."""
+
+    def __init__(self, total: int) -> None:
+        self.left = total
+        self.lock = threading.Lock()
+
+    def take(self, size: int) -> bool:
+        if size > KEEP_FILE_BYTES:
+            return False
+        with self.lock:
+            if size > self.left:
+                return False
+            self.left -= size
+            return True
+
+
+def _read_and_hash(path: str, size: int, keep: _Keep | None) -> tuple[str, bytes | None]:
+    """(doc_id, bytes kept for extraction or None): one read of the file either way."""
+    if keep is None or not keep.take(size):
+        return file_doc_id(path), None
+    with open(path, "rb") as f:
+        data = f.read()
+    return hashlib.sha256(data).hexdigest(), data
+
+
 def stat_record(st: os.stat_result) -> dict[str, int]:
     """The catalog's stat record of a file (see STAT_FIELDS)."""
     # Device numbers can exceed int64 on some systems; the catalog stores int64.
@@ -92,7 +128,8 @@ def stat_record(st: os.stat_result) -> dict[str, int]:
             "device": st.st_dev & 0x7FFF_FFFF_FFFF_FFFF, "ctime_ns": st.st_ctime_ns}
 
 
-def _look(full: str, rel: str, known: dict | None, verify: bool) -> SourceFile | ScanProblem | None:
+def _look(full: str, rel: str, known: dict | None, verify: bool,
+          keep: _Keep | None = None) -> SourceFile | ScanProblem | None:
     """Stat one file; hash it unless the catalog's stat record for its path still matches."""
     from thresher.flows.access import read_facts  # access imports this module's globs
 
@@ -105,11 +142,11 @@ def _look(full: str, rel: str, known: dict | None, verify: bool) -> SourceFile |
             return SourceFile(rel, full, st.st_size, st.st_mtime, known["doc_id"], rec["mtime_ns"],
                               rec["inode"], rec["device"], rec["ctime_ns"], hashed=False,
                               facts=read_facts(full, st))
-        doc_id = file_doc_id(full)
+        doc_id, data = _read_and_hash(full, st.st_size, keep)
     except OSError as exc:
         return ScanProblem(rel, f"cannot read file: {exc.strerror or exc}")
     return SourceFile(rel, full, st.st_size, st.st_mtime, doc_id, rec["mtime_ns"], rec["inode"],
-                      rec["device"], rec["ctime_ns"], facts=read_facts(full, st))
+                      rec["device"], rec["ctime_ns"], facts=read_facts(full, st), data=data)
 
 
 def known_files(catalog_rows: list[dict]) -> dict[str, dict]:
@@ -119,20 +156,23 @@ def known_files(catalog_rows: list[dict]) -> dict[str, dict]:
 
 def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
          known: dict[str, dict] | None = None, verify: bool = False,
-         threads: int = SCAN_THREADS) -> tuple[list[SourceFile], list[ScanProblem]]:
+         threads: int = SCAN_THREADS, keep_bytes: int = KEEP_BYTES) -> tuple[list[SourceFile], list[ScanProblem]]:
     """Every regular file under root that include matches and exclude does not.
 
     `known` maps a source path to its catalog row from the last run: when size,
     modification and change time (ns), inode and device all match, the stored doc_id
-    is reused and the file is not read. `verify` hashes every file regardless.
+    is reused and the file is not read. `verify` hashes every file regardless. A file
+    read to hash keeps its bytes (SourceFile.data) within `keep_bytes` in all, for its
+    extraction to use instead of reading the drive again.
     Symbolic links to folders are not followed (a drive can hold loops); a file that
     cannot be read is reported as a problem, not an error.
     """
     known = known or {}
+    keep = _Keep(keep_bytes)
     found: list[SourceFile] = []
     problems: list[ScanProblem] = []
     with ThreadPoolExecutor(max_workers=max(1, threads), thread_name_prefix="thresher-scan") as pool:
-        for r in pool.map(lambda fr: _look(fr[0], fr[1], known.get(fr[1]), verify),
+        for r in pool.map(lambda fr: _look(fr[0], fr[1], known.get(fr[1]), verify, keep),
                           _candidates(root, include, exclude)):
             if isinstance(r, SourceFile):
                 found.append(r)

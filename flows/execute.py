@@ -45,8 +45,9 @@ class DocJob:
     # and the rest of that stage stays as stored (None: the whole document).
     only: list[str] | None = None
     # A document inside a document: `abs_path` is the drive file that holds it and
-    # `member_of` the member names from there down to it; `data` its bytes when the
-    # container was just read in this batch (else they are unpacked again from abs_path).
+    # `member_of` the member names from there down to it. `data`: the bytes already in
+    # hand, hashed to give doc_id (a member when its container was just read in this
+    # batch, else unpacked again from abs_path; a file the scan read to hash it).
     member_of: tuple[str, ...] = ()
     data: bytes | None = None
 
@@ -347,10 +348,11 @@ class BatchRunner:
             return "run", stored.units, stored.stage
         spec, params = steps[0].spec, steps[0].params
         limit = spec.source_limit(params) if spec.source_limit else None
+        in_hand = doc.data is not None  # the very bytes doc_id was hashed from
         try:
             if limit is not None and doc.size > limit:
                 data = b""
-            elif doc.data is not None:
+            elif in_hand:
                 data = doc.data
             elif doc.member_of:
                 data = self._member_bytes(doc)
@@ -358,7 +360,7 @@ class BatchRunner:
                 data = Path(doc.abs_path).read_bytes()
         except OSError as exc:  # moved, deleted or locked since the scan: this file only
             return "failed", _failed_document_unit("pages", f"cannot read file: {exc.strerror or exc}", exc, []), None
-        if data and hashlib.sha256(data).hexdigest() != doc.doc_id:
+        if data and not in_hand and hashlib.sha256(data).hexdigest() != doc.doc_id:
             # Rewritten between the scan and this read: these bytes are not the
             # document the catalog names; the next run scans the new version.
             return "failed", _failed_document_unit("pages", "file changed while the run read it (its content hash "

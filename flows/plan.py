@@ -199,14 +199,16 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
         path = canonical[d]
         if path in file_at:
             f = file_at[path]
-            abs_path, size, mtime, inside = f.abs_path, f.size, f.mtime, ()
+            abs_path, size, mtime, inside, data = f.abs_path, f.size, f.mtime, (), f.data
         else:
             outer, inside = member_chain(row_at, canonical, path)
             r = row_at[path]
             abs_path = file_at[outer].abs_path
             size, mtime = int(r.get("size") or 0), r["mtime"].timestamp() if r.get("mtime") else 0.0
+            data = None
         jobs.append(DocJob(doc_id=d, source_path=path, abs_path=abs_path, size=size, mtime=mtime,
-                           start=starts.get(d, 0), known=d in processed_with, member_of=inside))
+                           start=starts.get(d, 0), known=d in processed_with, member_of=inside,
+                           data=data if starts.get(d, 0) == 0 else None))
     jobs.sort(key=lambda j: (-j.size, j.source_path))
 
     for r in rows:

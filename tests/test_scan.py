@@ -4,11 +4,13 @@ not re-extracted, an edit that keeps size and modification time is still caught.
 from __future__ import annotations
 
 import os
+import sys
+from collections import Counter
 from pathlib import Path
 
 from thresher.flows import pipeline
 from thresher.flows.config import load_definition
-from thresher.flows.discover import file_doc_id, new_or_changed, scan
+from thresher.flows.discover import file_doc_id, new_or_changed, scan, stat_record
 from thresher.flows.store import Store
 
 
@@ -97,19 +99,40 @@ def test_scan_in_threads_keeps_path_order_and_reports_unreadable_files(tmp_path)
     assert all(f.doc_id == file_doc_id(drive / f.source_path) for f in found)
 
 
+_OPENED: dict[str, Counter] = {}
+_HOOKED: list = []  # an audit hook stays for the process: added once
+
+
+def _count_opens(event: str, args: tuple) -> None:
+    if event == "open" and isinstance(args[0], str):
+        for root, seen in _OPENED.items():
+            if args[0].startswith(root):
+                seen[os.path.relpath(args[0], root)] += 1
+
+
 def test_a_touched_file_is_not_extracted_again_and_verify_rereads_every_file(prefect_harness, tmp_path):
     drive = _drive(tmp_path / "drive")
     (drive / "hours.md").write_text("# Hours\n\nThe reading room opens at nine on weekdays.\n")
     store = tmp_path / "store"
+    # Every open() of a drive file in this process, where the scan and the batches read
+    # them (Python's audit events; workers get the bytes, they do not open files).
+    opened = _OPENED.setdefault(str(drive) + os.sep, Counter())
+    if _count_opens not in _HOOKED:
+        sys.addaudithook(_count_opens)
+        _HOOKED.append(_count_opens)
 
     def run(**kw):
+        opened.clear()
         return pipeline.run(load_definition(), str(drive), str(store), workers=1, quiet=True, **kw)
 
     run()
+    # Each new file is read once: hashed by the scan, extracted from those same bytes.
+    assert opened == {"rota.md": 1, "vans.md": 1, "hours.md": 1}
     os.utime(drive / "rota.md")  # touched, bytes unchanged
     # Same size, same modification time, other bytes: the change time gives it away.
     _same_size_edit(drive / "vans.md", "Monday", "Friday")
     second = run()
+    assert opened == {"rota.md": 1, "vans.md": 1}
     assert second["documents"]["hashed"] == 2  # hours.md was not read
     assert second["documents"]["processed"] == 1  # only vans.md; the touched rota.md is reused
     rows = Store(store).current("extract", "pages", columns=["source_path", "run_id"]).to_pylist()
@@ -117,6 +140,18 @@ def test_a_touched_file_is_not_extracted_again_and_verify_rereads_every_file(pre
 
     verified = run(verify=True)
     assert verified["documents"]["hashed"] == 3 and verified["documents"]["processed"] == 0
+
+
+def test_the_scan_keeps_the_bytes_it_hashed_within_its_budget(tmp_path):
+    drive = _drive(tmp_path / "drive")
+    sizes = {p.name: p.stat().st_size for p in drive.iterdir()}
+    files, _ = scan(drive, ["**/*"], [], keep_bytes=max(sizes.values()))  # room for one file
+    kept = [f for f in files if f.data is not None]
+    assert len(kept) == 1 and kept[0].data == (drive / kept[0].source_path).read_bytes()
+    assert all(f.doc_id == file_doc_id(drive / f.source_path) for f in files)
+    known = {f.source_path: {"doc_id": f.doc_id, **stat_record((drive / f.source_path).stat())} for f in files}
+    again, _ = scan(drive, ["**/*"], [], known=known)
+    assert [f.data for f in again] == [None, None]  # not read, so nothing kept
 
 
 def test_a_path_matches_a_list_of_globs_when_any_one_of_them_matches_it_whole():
