@@ -8,6 +8,11 @@ Two calling conventions (steps/spec.py and steps/incremental.py):
 - plain: the step gets the full units of every live document and returns units;
   rows are written for documents whose input changed this run, and for other
   documents only where a unit's decision differs from its current row.
+- incremental pages (IncrementalPageSpec, the HTML boilerplate step): the step
+  sketches only the pages whose input changed this run; for the other live pages of
+  the groups concerned it gets back its stored sketch and decision columns (no text);
+  only the changed pages and the stored pages whose decision changed are read in full
+  and written.
 - incremental (IncrementalCorpusSpec): the step sketches only the documents whose
   input changed this run, loaded DOCS_PER_BATCH documents at a time; for the other
   live documents it gets back its own stored rows, only the columns it keeps (read
@@ -34,7 +39,7 @@ from thresher.flows.encodings import get_encoding
 from thresher.flows.execute import Unit, applies_to, now_utc, unit_kind, load_units
 from thresher.flows.rows import RowContext, rows_to_table, to_row
 from thresher.flows.store import Store
-from thresher.steps.incremental import IncrementalCorpusSpec
+from thresher.steps.incremental import IncrementalCorpusSpec, IncrementalPageSpec
 from thresher.steps.spec import StepContext
 from thresher.steps.units import OK, DocChunks, DocPages, clear_stale_count
 
@@ -160,6 +165,8 @@ def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index
     step = definition.steps[index]
     if isinstance(step.spec, IncrementalCorpusSpec):
         return _run_incremental(definition, store, run_id, index, live_docs, rewrite_docs)
+    if isinstance(step.spec, IncrementalPageSpec):
+        return _run_incremental_pages(definition, store, run_id, index, live_docs, rewrite_docs, groups)
     kind = unit_kind(step)
     wanted = _of_formats(store, definition, step, sorted(live_docs), run_id)
     stored: Counter[str] = Counter()
@@ -430,3 +437,130 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
             new = revised.get((d, c))
             counts[new["status"] if new is not None else s] += 1
     return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0)
+
+
+# ----------------------------------------------------------------------------- incremental pages
+
+
+def _load_pages(store: Store, definition: FlowDefinition, index: int, doc_ids: list[str],
+                live_docs: dict[str, tuple[int, str, int]], run_id: str) -> tuple[list[DocPages], dict[str, str]]:
+    """These documents' ok pages from the stage before, and which stage each came from."""
+    step = definition.steps[index]
+    loaded = load_units(store, definition, index, doc_ids, run_id)
+    docs, stages = [], {}
+    for d in doc_ids:
+        got = loaded.get(d)
+        if got is None or not got.units or not applies_to(step, got.units):
+            continue
+        docs.append(DocPages(d, live_docs[d][1], live_docs[d][0], list(got.units)))
+        stages[d] = got.stage
+    return docs, stages
+
+
+def _run_incremental_pages(definition: FlowDefinition, store: Store, run_id: str, index: int,
+                           live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str],
+                           groups: set[str] | None) -> CorpusResult:
+    """An IncrementalPageSpec: sketch the changed pages, decide over them plus the
+    stored sketches of the other pages of their groups, and make again from their
+    inputs only the changed pages and the stored pages whose decision changed."""
+    t0 = time.perf_counter()
+    step = definition.steps[index]
+    spec: IncrementalPageSpec = step.spec  # type: ignore[assignment]
+    kind = "pages"
+    ctx = StepContext(encoding=get_encoding)
+    started = now_utc()
+    wanted = _of_formats(store, definition, step, sorted(live_docs), run_id)
+    counts: Counter[str] = Counter()
+    if groups is not None:
+        # Other groups' decisions stand; only their statuses are read, for the counts.
+        inside = {d: spec.group(live_docs[d][1], step.params) in groups for d in wanted}
+        others = [d for d in wanted if not inside[d]]
+        wanted = [d for d in wanted if inside[d]]
+        if others:
+            counts.update(store.current(step.name, kind, others, columns=["status"], include_run=run_id)
+                          .column("status").to_pylist())
+    # Stored rows of the groups' pages: the step's own narrow columns, no text.
+    stored = store.current(step.name, kind, wanted, columns=list(spec.kept_columns), include_run=run_id) \
+        if wanted else schema.stage_schema(step.name, kind).empty_table().select(list(spec.kept_columns))
+    held = set(pc.unique(stored.column("doc_id")).to_pylist()) if stored.num_rows else set()
+    fresh_ids = [d for d in wanted if d in rewrite_docs or d not in held]
+    if fresh_ids and stored.num_rows:  # a rewritten document's stored rows are stale
+        stored = stored.filter(pc.invert(pc.is_in(stored.column("doc_id"), pa.array(fresh_ids, pa.string()))))
+
+    sketches: list[pa.Table] = []
+    batches = _batches(fresh_ids, DOCS_PER_BATCH)
+    kept_batch: tuple[list[DocPages], dict[str, str]] | None = None  # the usual week: one batch, kept
+    for batch in batches:
+        docs, stages = _load_pages(store, definition, index, batch, live_docs, run_id)
+        if docs:
+            sketches.append(spec.sketch(docs, step.params, ctx).select(["doc_id", "locator", *spec.sketch_columns]))
+        if len(batches) == 1:
+            kept_batch = (docs, stages)
+    sch = schema.stage_schema(step.name, kind)
+    decision_types = [sch.field(c).type for c in spec.decision_columns]
+
+    def placed(t: pa.Table, fresh: bool) -> pa.Table:
+        ids = t.column("doc_id").to_pylist()
+        t = t.append_column("source_path", pa.array([live_docs[d][1] for d in ids], pa.string())) \
+            .append_column("fresh", pa.array([fresh] * len(ids), pa.bool_()))
+        if fresh:
+            for c, typ in zip(spec.decision_columns, decision_types):
+                t = t.append_column(c, pa.nulls(t.num_rows, typ))
+        t = t.select(["doc_id", "locator", "source_path", "fresh", *spec.sketch_columns, *spec.decision_columns])
+        return t.cast(pa.schema([f.with_nullable(True) for f in t.schema]))
+
+    parts = [placed(t, True) for t in sketches] + ([placed(stored, False)] if stored.num_rows else [])
+    decisions = spec.decide(pa.concat_tables(parts), step.params, ctx) if parts else None
+    decided: dict[str, dict[str, dict]] = defaultdict(dict)
+    for r in (decisions.to_pylist() if decisions is not None else []):
+        decided[r["doc_id"]][r["locator"]] = r
+    # Stored decisions of the pages not decided anew (a document partly revised keeps them).
+    stored_by_doc: dict[str, dict[str, dict]] = defaultdict(dict)
+    status_of: dict[tuple[str, str], str] = {}
+    for r in stored.select(["doc_id", "locator", "status", *spec.decision_columns]).to_pylist():
+        stored_by_doc[r["doc_id"]][r["locator"]] = r
+        status_of[(r["doc_id"], r["locator"])] = r["status"]
+    fresh_set = set(fresh_ids)
+    revised = sorted(d for d in decided if d not in fresh_set)
+
+    affected: set[str] = set()
+    written, part, read = 0, 0, 0
+    new_status: dict[tuple[str, str], str] = {}
+    # Fresh documents are written whole; revised ones only in their revised pages.
+    jobs = [(b, True) for b in batches] + [(b, False) for b in _batches(revised, DOCS_PER_BATCH)]
+    for batch, fresh in jobs:
+        if fresh and kept_batch is not None:
+            docs, stages = kept_batch
+        else:
+            docs, stages = _load_pages(store, definition, index, batch, live_docs, run_id)
+        read += len(docs)
+        attempts = store.max_attempts(step.name, kind, [d.doc_id for d in docs]) if docs else {}
+        rows: list[dict[str, Any]] = []
+        writes: set[tuple[str, str]] = {(d, "document") for d in batch} if fresh else set()
+        for doc in docs:
+            mine = {**stored_by_doc.get(doc.doc_id, {}), **decided.get(doc.doc_id, {})}
+            missing = [p.locator for p in doc.pages if p.locator not in mine]
+            if missing:
+                raise ValueError(f"step {step.name}: no decision for {len(missing)} page(s) of {doc.source_path}")
+            out = spec.apply(doc, mine, step.params, ctx)
+            units = out.pages if fresh else [p for p in out.pages if p.locator in decided.get(doc.doc_id, {})]
+            rctx = RowContext(run_id, doc.doc_id, live_docs[doc.doc_id][1], step.name, spec.version, step.digest,
+                              kind, stages[doc.doc_id], started, None, attempts)
+            rows.extend(to_row(rctx, u) for u in units)
+            for u in units:
+                new_status[(doc.doc_id, u.locator)] = u.status
+            if not fresh and units:
+                writes.add((doc.doc_id, "units"))
+            affected.add(doc.doc_id)
+        if writes:
+            store.write_stage_part(step.name, run_id, f"corpus-{part:05d}", rows_to_table(step.name, kind, rows),
+                                   sorted(writes))
+            part += 1
+            written += len(rows)
+    # Counts over every live page the groups hold: stored ones as decided.
+    for key, s in status_of.items():
+        counts[new_status.get(key, s)] += 1
+    for key, s in new_status.items():
+        if key not in status_of:
+            counts[s] += 1
+    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0, read)

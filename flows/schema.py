@@ -116,8 +116,11 @@ STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
     ],
     "boilerplate": [
         pa.field("site", pa.string()),
-        pa.field("site_pages", pa.int32()),
         pa.field("removed", pa.list_(REMOVAL)),
+        # Fingerprints (64-bit) of the page's distinct paragraph blocks, and of those it
+        # lost: a later run decides the site from these, without the pages' text.
+        pa.field("block_keys", pa.list_(pa.uint64())),
+        pa.field("removed_keys", pa.list_(pa.uint64())),
     ],
     "clean": [
         pa.field("fixes", pa.map_(pa.string(), pa.int32())),

@@ -36,7 +36,7 @@ the same documents.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable
+from typing import Any, Callable
 
 import pyarrow as pa
 
@@ -63,3 +63,50 @@ class IncrementalCorpusSpec(StepSpec):
         """Columns of the stored rows handed back to `decide` for unchanged documents."""
         return ("doc_id", "chunk_id", "chunk_index", "status", "reason") + self.sketch_columns + \
             self.decision_columns
+
+
+@dataclass(frozen=True)
+class IncrementalPageSpec(StepSpec):
+    """A corpus-wide page step that keeps per-page state in its stage table.
+
+    The page form of IncrementalCorpusSpec, for a step whose decision changes a
+    page's text (so a stored row cannot simply take a new status, as a chunk's can:
+    the page must be made again from its input). Three pure functions:
+
+      sketch(docs: list[DocPages], params, ctx) -> pyarrow.Table
+          For pages whose input changed this run only: doc_id, locator and the
+          `sketch_columns`; depends on one page alone.
+
+      decide(table: pyarrow.Table, params, ctx) -> pyarrow.Table
+          One row per live page of the groups concerned (StepSpec.group; all pages
+          without one): doc_id, locator, source_path (the live path), fresh, the
+          sketch columns, and the decision columns (as stored; null for fresh pages).
+          Returns doc_id, locator and the decision columns for every fresh page and
+          for each stored page whose decision changed.
+
+      apply(doc: DocPages, decisions: dict[locator, dict], params, ctx) -> DocPages
+          The document's pages made from their inputs and their decisions (a dict of
+          the decision columns per locator); each page's payload carries the sketch
+          and decision columns, so the next run reads them back.
+
+    The flows layer reads the input pages in full only for fresh pages and for
+    stored pages whose decision changed. `run` keeps the plain convention and must
+    give what sketch, decide and apply give over the same documents.
+    """
+
+    sketch: Callable[..., pa.Table] | None = None
+    decide: Callable[..., pa.Table] | None = None
+    apply: Callable[..., Any] | None = None
+    sketch_columns: tuple[str, ...] = ()
+    decision_columns: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        if self.scope != "corpus" or self.consumes != "pages" or self.produces != "pages":
+            raise ValueError(f"step {self.name}: an incremental page step takes and gives pages, corpus-wide")
+        if self.sketch is None or self.decide is None or self.apply is None:
+            raise ValueError(f"step {self.name}: an incremental page step needs sketch, decide and apply")
+
+    @property
+    def kept_columns(self) -> tuple[str, ...]:
+        """Columns of the stored rows read back (no text) for pages that did not change."""
+        return ("doc_id", "locator", "status") + self.sketch_columns + self.decision_columns

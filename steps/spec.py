@@ -13,6 +13,9 @@ Calling conventions, by (consumes, scope):
   chunks, corpus    an IncrementalCorpusSpec (steps/incremental.py): sketch(docs, params,
                     ctx) -> pa.Table for changed documents only, then decide(table,
                     params, ctx) -> pa.Table over every live chunk's stored sketch
+  pages,  corpus    an IncrementalPageSpec (same module): sketch changed pages, decide
+                    over stored sketches of the group's pages, apply(doc, decisions,
+                    params, ctx) -> DocPages for the pages whose decision is new
 
 A step with `formats` set applies only to documents of those formats (as extraction
 detected them); other documents pass it by unchanged and it writes no rows for them.
@@ -80,7 +83,7 @@ class StepSpec:
     # layer runs such a step in a child process and kills it at the limit.
     time_limit: Callable[[StepParams], float | None] | None = None
     formats: tuple[str, ...] = ()
-    # For a plain corpus step whose decisions about a document depend only on the
+    # For a plain or incremental-page corpus step whose decisions about a document depend only on the
     # documents of its group (the boilerplate step's site folder): the group of a
     # document, from its live path and the parameters. A run then loads only the
     # groups that hold a document added, changed, moved or removed.
