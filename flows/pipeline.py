@@ -290,8 +290,10 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             else:
                 groups = changed_groups(definition, index, previous, rewrite, affected, plan.live,
                                         plan.previous_live)
+                # A document an earlier corpus step changed has new input here too (two
+                # corpus steps in a row have no document segment between them).
                 res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
-                                         plan.live, rewrite, groups).result()
+                                         plan.live, rewrite | affected, groups).result()
                 affected |= res.affected_docs
                 acc.add(res.stage, res.counts)
                 within = "" if groups is None else f"; {res.read} documents read, of the {len(groups)} group(s) that changed"
