@@ -151,6 +151,17 @@ def _fast_detector_class():
                 result.extend(grams)
             return result
 
+        def cleaning_text(self):
+            # Detector.cleaning_text's two per-character loops as regular expressions:
+            # count the characters from "A" to "z" and those from U+0300 up (its test
+            # for the Latin Extended Additional block compares the block's number with
+            # a name, so it never holds), and when the first are under half the
+            # second, drop the first.
+            text = self.text
+            latin = _LATIN.subn("", text)
+            if latin[1] * 2 < len(_FROM_U0300.findall(text)):
+                self.text = latin[0]
+
         def append(self, text):
             # Detector.append's per-character loop (keep the first max_text_length
             # characters, runs of spaces made one) as one slice and one substitution.
@@ -210,6 +221,8 @@ def _fast_detector_class():
 WORD_CACHE = 200_000
 _word_grams: dict[tuple[str, bool], tuple[str, ...]] = {}
 _SPACES = re.compile(" {2,}")
+_LATIN = re.compile("[A-z]")
+_FROM_U0300 = re.compile("[\u0300-\U0010ffff]")
 # Profile rows (one probability per language) of n-grams drawn, as numpy arrays;
 # emptied past this many (ours: 55 languages x 8 bytes, so at most about 20 MB).
 ROW_CACHE = 50_000

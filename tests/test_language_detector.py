@@ -35,7 +35,8 @@ def _texts() -> list[str]:
         "THE GNU General Public LICENSE, version 3 -- see  https://example.org/x  or mail a@b.org",
         "Ceci est un TEST  avec   des espaces, l'été et des mots EN CAPITALES",
         "Привет, мир! Это проверка.", "日本語のテキストとカタカナ", "中文文本测试", "한국어 텍스트",
-        "Tiếng Việt có dấu", "ends mid-wor", "A", " ", "",
+        "Tiếng Việt có dấu", "ends mid-wor",
+        "Настройка и проверка файла конфигурации: API_[x]", "Ẫẫ Ỗỗ ab", "テキスト ABC def", "A", " ", "",
     ]
     return texts
 
@@ -59,6 +60,7 @@ def test_same_text_ngrams_and_probabilities_as_langdetect():
         assert fast.text == plain.text
         fast.cleaning_text()
         plain.cleaning_text()
+        assert fast.text == plain.text, text[:60]
         assert fast._extract_ngrams() == plain._extract_ngrams(), text[:60]
         fast, plain = _pair(text)
         try:
