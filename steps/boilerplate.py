@@ -46,6 +46,7 @@ import re
 import unicodedata
 from collections import Counter, defaultdict
 from dataclasses import replace
+from functools import lru_cache
 from typing import Literal
 
 import pyarrow as pa
@@ -90,6 +91,7 @@ def block_key(text: str) -> str:
     return _DIGITS.sub("0", _WS.sub(" ", text).strip())
 
 
+@lru_cache(maxsize=8192)  # a site's template blocks recur on every page: normalised once
 def fingerprint(text: str) -> int:
     """A block's fingerprint: 64 bits of BLAKE2b over its block_key. Stored per page, so
     a later run decides a site from its pages' fingerprints without their text (two
@@ -166,9 +168,11 @@ def apply(doc: DocPages, decisions: dict[str, dict], params: BoilerplateParams, 
     for page in doc.pages:
         label = decisions[page.locator]["site"]
         gone = set(decisions[page.locator]["removed_keys"])
+        prints = [fingerprint(b.text) if b.kind == PARAGRAPH else None for b in page.blocks]
+        own = sorted({k for k in prints if k is not None})
         kept, removed = [], []
-        for block in page.blocks:
-            if block.kind == PARAGRAPH and fingerprint(block.text) in gone:
+        for block, key in zip(page.blocks, prints):
+            if key is not None and key in gone:
                 removed.append({
                     "kind": "boilerplate",
                     "text": block.text,
@@ -187,8 +191,8 @@ def apply(doc: DocPages, decisions: dict[str, dict], params: BoilerplateParams, 
                 warnings.append("no text left: every block repeats across the site")
         pages.append(replace(
             page, blocks=kept, parents=[page.locator], warnings=warnings,
-            payload={"site": label, "removed": removed, "block_keys": page_keys(page),
-                     "removed_keys": sorted(gone & set(page_keys(page)))},
+            payload={"site": label, "removed": removed, "block_keys": own,
+                     "removed_keys": sorted(gone.intersection(own))},
         ))
     return DocPages(doc.doc_id, doc.source_path, doc.rank, pages)
 
