@@ -48,6 +48,11 @@ from thresher.steps.units import OK, DocChunks, DocPages, clear_stale_count
 # a run's peak memory then grows 1.27x, not 1.47x, for a 10x larger drive (bench/memory.py);
 # a drive of more than one batch reads its changed chunks twice.
 DOCS_PER_BATCH = 250
+# The same for an incremental page step (HTML pages: one page each, no signatures).
+# Larger, because each read of the stage before costs about 0.16 s however few
+# documents it holds (2,000 pages, bench/sitefolder.py: 18 reads took 4.5 s of the
+# step's 5.7 s at 250); 2,000 pages held about 36 MB there (tracemalloc).
+PAGE_DOCS_PER_BATCH = 2000
 
 
 @dataclass
@@ -488,7 +493,7 @@ def _run_incremental_pages(definition: FlowDefinition, store: Store, run_id: str
         stored = stored.filter(pc.invert(pc.is_in(stored.column("doc_id"), pa.array(fresh_ids, pa.string()))))
 
     sketches: list[pa.Table] = []
-    batches = _batches(fresh_ids, DOCS_PER_BATCH)
+    batches = _batches(fresh_ids, PAGE_DOCS_PER_BATCH)
     kept_batch: tuple[list[DocPages], dict[str, str]] | None = None  # the usual week: one batch, kept
     for batch in batches:
         docs, stages = _load_pages(store, definition, index, batch, live_docs, run_id)
@@ -527,7 +532,7 @@ def _run_incremental_pages(definition: FlowDefinition, store: Store, run_id: str
     written, part, read = 0, 0, 0
     new_status: dict[tuple[str, str], str] = {}
     # Fresh documents are written whole; revised ones only in their revised pages.
-    jobs = [(b, True) for b in batches] + [(b, False) for b in _batches(revised, DOCS_PER_BATCH)]
+    jobs = [(b, True) for b in batches] + [(b, False) for b in _batches(revised, PAGE_DOCS_PER_BATCH)]
     for batch, fresh in jobs:
         if fresh and kept_batch is not None:
             docs, stages = kept_batch

@@ -254,11 +254,15 @@ def _boilerplate_rows(store_dir: Path) -> dict[str, dict]:
             .to_pylist() if r["doc_id"] in live}
 
 
-def test_a_week_reads_only_the_changed_pages_and_ends_as_a_run_from_scratch(prefect_harness, tmp_path, capsys):
-    from thresher.flows import pipeline
+def test_a_week_reads_only_the_changed_pages_and_ends_as_a_run_from_scratch(prefect_harness, tmp_path, capsys,
+                                                                            monkeypatch):
+    from thresher.flows import corpus, pipeline
     from thresher.flows.config import load_definition
     from thresher.flows.store import Store
 
+    # Batches of two pages, so the pages are read in several and read again to be written,
+    # as on a drive of more pages than one batch holds.
+    monkeypatch.setattr(corpus, "PAGE_DOCS_PER_BATCH", 2)
     drive, store_dir = tmp_path / "drive", tmp_path / "store"
     (drive / "branch").mkdir(parents=True)
     (drive / "archive").mkdir()
