@@ -474,20 +474,24 @@ def _run_incremental_pages(definition: FlowDefinition, store: Store, run_id: str
     kind = "pages"
     ctx = StepContext(encoding=get_encoding)
     started = now_utc()
-    wanted = _of_formats(store, definition, step, sorted(live_docs), run_id)
+    wanted = sorted(live_docs)
     counts: Counter[str] = Counter()
     if groups is not None:
-        # Other groups' decisions stand; only their statuses are read, for the counts.
+        # Other groups' decisions stand; only their statuses are read, for the counts
+        # (a document of another format has no row here).
         inside = {d: spec.group(live_docs[d][1], step.params) in groups for d in wanted}
         others = [d for d in wanted if not inside[d]]
         wanted = [d for d in wanted if inside[d]]
         if others:
             counts.update(store.current(step.name, kind, others, columns=["status"], include_run=run_id)
                           .column("status").to_pylist())
-    # Stored rows of the groups' pages: the step's own narrow columns, no text.
+    # Stored rows of the groups' pages: the step's own narrow columns, no text. A
+    # document with rows here is of the step's formats; only the others' formats are read.
     stored = store.current(step.name, kind, wanted, columns=list(spec.kept_columns), include_run=run_id) \
         if wanted else schema.stage_schema(step.name, kind).empty_table().select(list(spec.kept_columns))
     held = set(pc.unique(stored.column("doc_id")).to_pylist()) if stored.num_rows else set()
+    new = set(_of_formats(store, definition, step, [d for d in wanted if d not in held], run_id))
+    wanted = [d for d in wanted if d in held or d in new]
     fresh_ids = [d for d in wanted if d in rewrite_docs or d not in held]
     if fresh_ids and stored.num_rows:  # a rewritten document's stored rows are stale
         stored = stored.filter(pc.invert(pc.is_in(stored.column("doc_id"), pa.array(fresh_ids, pa.string()))))
