@@ -24,3 +24,12 @@ def test_large_documents_are_still_spread_over_batches_for_the_workers():
     # first; the small files share what is left.
     assert [len(b) for b in batches[:4]] == [1, 1, 1, 1]
     assert sum(len(b) for b in batches) == 12
+
+
+def test_a_segment_of_chunk_steps_gets_one_batch_per_worker():
+    # The tokens segment (after dedup): per document it only reads its chunks back and
+    # reuses split's counts, so a batch per worker saves task runs and store reads.
+    jobs = _jobs([1 << 20] * 6)
+    assert len(make_batches(jobs, batch_size=32, workers=2)) == 6  # four per worker by bytes, one file each
+    batches = make_batches(jobs, batch_size=32, workers=2, per_worker=1)
+    assert [len(b) for b in batches] == [3, 3]
