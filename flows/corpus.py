@@ -27,7 +27,7 @@ import hashlib
 import json
 import time
 from collections import Counter, defaultdict
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import pyarrow as pa
@@ -63,6 +63,7 @@ class CorpusResult:
     rows_written: int
     seconds: float
     read: int | None = None  # documents whose units were loaded (a plain step)
+    notes: list[str] = field(default_factory=list)  # lines for the run's log (an incremental page step)
 
 
 def live_inputs(live_docs: dict[str, tuple[int, str, int]]) -> bytes:
@@ -519,7 +520,9 @@ def _run_incremental_pages(definition: FlowDefinition, store: Store, run_id: str
         return t.cast(pa.schema([f.with_nullable(True) for f in t.schema]))
 
     parts = [placed(t, True) for t in sketches] + ([placed(stored, False)] if stored.num_rows else [])
-    decisions = spec.decide(pa.concat_tables(parts), step.params, ctx) if parts else None
+    table = pa.concat_tables(parts) if parts else None
+    decisions = spec.decide(table, step.params, ctx) if table is not None else None
+    notes = spec.describe(table, step.params, ctx) if table is not None and spec.describe is not None else []
     decided: dict[str, dict[str, dict]] = defaultdict(dict)
     for r in (decisions.to_pylist() if decisions is not None else []):
         decided[r["doc_id"]][r["locator"]] = r
@@ -572,4 +575,4 @@ def _run_incremental_pages(definition: FlowDefinition, store: Store, run_id: str
     for key, s in new_status.items():
         if key not in status_of:
             counts[s] += 1
-    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0, read)
+    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0, read, notes)

@@ -128,7 +128,10 @@ def corpus_step(run_id: str, store_root: str, data_json: str, origin: str, index
                 live: dict[str, tuple[int, str, int]], rewrite: set[str], groups: set[str] | None = None):
     result = run_corpus_step(_definition(data_json, origin), Store(store_root), run_id, index, live, rewrite,
                              groups)
-    get_run_logger().info("%s: %s over the corpus, %d rows written", result.stage, result.counts, result.rows_written)
+    logger = get_run_logger()
+    logger.info("%s: %s over the corpus, %d rows written", result.stage, result.counts, result.rows_written)
+    for note in result.notes:
+        logger.info("%s: %s", result.stage, note)
     return result
 
 

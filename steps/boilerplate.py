@@ -36,7 +36,7 @@ text read), and applies the decision to the changed pages and to the stored page
 whose removed blocks changed; no other page is read. Per-row facts are page-local for
 that reason: a row names the rule and the site, not the site's page count nor on how
 many pages a block stands, which a page added elsewhere in the site would change.
-Those counts follow from the stored `block_keys` of the site's pages.
+Those counts are given once per site decided, in the run's log (`describe`).
 """
 
 from __future__ import annotations
@@ -122,17 +122,12 @@ def sketch(docs: list[DocPages], params: BoilerplateParams, ctx: StepContext) ->
                      "block_keys": pa.array([r[2] for r in rows], pa.list_(pa.uint64()))})
 
 
-def decide(table: pa.Table, params: BoilerplateParams, ctx: StepContext) -> pa.Table:
-    """Which blocks each page loses, from every live page's fingerprints.
-
-    `table` holds every page of the sites concerned (fresh sketches and stored rows
-    alike; see steps/incremental.py). A site's repeated set is counted over its pages;
-    a page loses the fingerprints of its own that are in it (`removed_keys`). Returns
-    fresh pages, and stored pages whose site or removed_keys differ from their row.
-    """
-    paths = table.column("source_path").to_pylist()
+def _count(table: pa.Table, params: BoilerplateParams) -> tuple[list[str], list[list[int]], Counter,
+                                                                 dict[str, Counter], dict[str, set[int]]]:
+    """Per page its site and fingerprints; per site its pages, on how many pages each
+    fingerprint stands, and the repeated set."""
     keys = table.column("block_keys").to_pylist()
-    sites = [site_of(p, params.site) for p in paths]
+    sites = [site_of(p, params.site) for p in table.column("source_path").to_pylist()]
     pages: Counter = Counter(sites)
     seen: dict[str, Counter] = defaultdict(Counter)
     for site, ks in zip(sites, keys):
@@ -141,6 +136,33 @@ def decide(table: pa.Table, params: BoilerplateParams, ctx: StepContext) -> pa.T
     for site, n in pages.items():
         need = max(params.min_pages, params.min_share * n)
         repeated[site] = {k for k, c in seen[site].items() if c >= need} if n >= params.min_pages else set()
+    return sites, keys, pages, seen, repeated
+
+
+def describe(table: pa.Table, params: BoilerplateParams, ctx: StepContext) -> list[str]:
+    """One line per site decided, for the run's log: the counts over a site live here,
+    not in its pages' rows."""
+    _, _, pages, seen, repeated = _count(table, params)
+    lines = []
+    for site in sorted(pages):
+        n, rep = pages[site], sorted((seen[site][k] for k in repeated[site]), reverse=True)
+        line = f"site '{_label(site)}': {n} page(s), {len(rep)} block(s) repeated"
+        if rep:
+            shown = ", ".join(map(str, rep[:5])) + (", ..." if len(rep) > 5 else "")
+            line += f" (on {shown} pages; at least {max(params.min_pages, params.min_share * n):g} needed)"
+        lines.append(line)
+    return lines
+
+
+def decide(table: pa.Table, params: BoilerplateParams, ctx: StepContext) -> pa.Table:
+    """Which blocks each page loses, from every live page's fingerprints.
+
+    `table` holds every page of the sites concerned (fresh sketches and stored rows
+    alike; see steps/incremental.py). A site's repeated set is counted over its pages;
+    a page loses the fingerprints of its own that are in it (`removed_keys`). Returns
+    fresh pages, and stored pages whose site or removed_keys differ from their row.
+    """
+    sites, keys, _, _, repeated = _count(table, params)
     out: dict[str, list] = {"doc_id": [], "locator": [], "site": [], "removed_keys": []}
     fresh = table.column("fresh").to_pylist()
     old_site = table.column("site").to_pylist()
@@ -226,6 +248,7 @@ BOILERPLATE = IncrementalPageSpec(
     sketch=sketch,
     decide=decide,
     apply=apply,
+    describe=describe,
     sketch_columns=("block_keys",),
     decision_columns=("site", "removed_keys"),
     summary="Removes blocks that repeat across the HTML pages of one site (menus, footers).",

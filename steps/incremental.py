@@ -97,6 +97,9 @@ class IncrementalPageSpec(StepSpec):
     sketch: Callable[..., pa.Table] | None = None
     decide: Callable[..., pa.Table] | None = None
     apply: Callable[..., Any] | None = None
+    # describe(table, params, ctx) -> list[str]: optional lines for the run's log about
+    # the groups decided (what counts over a group, which no page's row should carry).
+    describe: Callable[..., list[str]] | None = None
     sketch_columns: tuple[str, ...] = ()
     decision_columns: tuple[str, ...] = ()
 

@@ -90,6 +90,23 @@ def test_the_menu_and_the_notice_leave_every_page_of_the_site():
         assert any(w.startswith("removed 2 block(s) repeated across site 'intranet'") for w in page.warnings)
 
 
+def test_the_counts_over_a_site_are_said_once_per_site_not_in_its_rows():
+    import pyarrow as pa
+
+    from thresher.steps.boilerplate import describe, sketch
+
+    from dataclasses import replace
+
+    docs = site("intranet", BODIES) + [replace(d, doc_id="m" + d.doc_id) for d in site("minutes", BODIES[:2])]
+    table = sketch(docs, BoilerplateParams(), StepContext())
+    path = {d.doc_id: d.source_path for d in docs}
+    table = table.append_column("source_path", pa.array([path[d] for d in table.column("doc_id").to_pylist()]))
+    assert describe(table, BoilerplateParams(), StepContext()) == [
+        "site 'intranet': 4 page(s), 2 block(s) repeated (on 4, 4 pages; at least 3 needed)",
+        "site 'minutes': 2 page(s), 0 block(s) repeated",
+    ]
+
+
 def test_a_site_with_too_few_pages_is_left_alone():
     out = run(site("minutes", BODIES[:2]))
     for doc in out.values():
