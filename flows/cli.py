@@ -486,8 +486,10 @@ def cmd_trail(args: argparse.Namespace) -> int:
         rows.sort(key=lambda r: (r.get("chunk_index") or 0, r.get("page") or 0, r["locator"]))
         per_stage[name] = rows
     if args.json:
-        # MinHash signatures and band keys are for the machine that compares, not a reader.
-        slim = {name: [{k: v for k, v in r.items() if k not in ("signature", "band_keys")} for r in rows]
+        # Signatures and fingerprints are for the machine that compares, not a reader.
+        from thresher.flows.schema import MACHINE_COLUMNS
+
+        slim = {name: [{k: v for k, v in r.items() if k not in MACHINE_COLUMNS} for r in rows]
                 for name, rows in per_stage.items()}
         print(json.dumps({"doc_id": doc_id, "catalog": cat_rows, "stages": slim}, indent=2, default=str))
         return 0

@@ -249,6 +249,8 @@ def _unit_at(stage: str, row: dict[str, Any], own: list[str]) -> UnitAtStage:
     facts = []
     removed = []
     for name in own:
+        if name in schema.MACHINE_COLUMNS:
+            continue
         value = row.get(name)
         if name == "removed" and isinstance(value, list):
             removed = [r for r in value if isinstance(r, dict)]

@@ -88,6 +88,10 @@ REMOVAL = pa.struct(
     ]
 )
 
+# Payload columns kept for later runs to decide from (fingerprints, signatures), not
+# for a reader: `trail --json` and the review page leave them out.
+MACHINE_COLUMNS = frozenset({"signature", "band_keys", "block_keys", "removed_keys"})
+
 STAGE_PAYLOAD: dict[str, list[pa.Field]] = {
     "extract": [
         pa.field("method", pa.string()),

@@ -107,6 +107,16 @@ def test_the_counts_over_a_site_are_said_once_per_site_not_in_its_rows():
     ]
 
 
+def test_a_reviewer_sees_the_site_and_the_removals_not_the_fingerprints():
+    from thresher.flows import schema
+    from thresher.flows.report_data import _unit_at, own_columns
+
+    (page,) = run(site("intranet", BODIES))["intranet/page1.html"].pages
+    row = {"status": "ok", **page.payload}
+    shown = _unit_at("boilerplate", row, own_columns(schema.stage_schema("boilerplate", "pages").names, "pages"))
+    assert shown.facts == [("site", "intranet")] and len(shown.removed) == 2
+
+
 def test_a_site_with_too_few_pages_is_left_alone():
     out = run(site("minutes", BODIES[:2]))
     for doc in out.values():
