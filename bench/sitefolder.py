@@ -8,7 +8,7 @@ decided again; `PLAIN_BOILERPLATE` below, the same decisions), one with the ship
 incremental page step (stored block fingerprints; only changed pages read). Each round
 edits one page of the export folder and runs both stores, taking turns which goes
 first; printed per way: pages read in full, rows written, the corpus step's wall and
-CPU time (its thread), and in a last round its peak traced memory (tracemalloc, Python
+process CPU time (pyarrow reads in threads of its own), and in a last round its peak traced memory (tracemalloc, Python
 allocations only, in a round of its own because tracing slows it).
 """
 
@@ -55,7 +55,7 @@ def make_site_drive(root: Path, pages: int) -> Path:
 
 
 class _Recorder:
-    """Wraps the flow's corpus-step call: its wall and process CPU time (pyarrow reads in its own threads), pages read, rows
+    """Wraps the flow's corpus-step call: its wall and process CPU time, pages read, rows
     written, and (when asked) the peak of traced memory during the call."""
 
     def __init__(self) -> None:
