@@ -11,6 +11,13 @@ that keeps one core busy (flow time = its CPU seconds) it can be at most
 
 `python -m bench runners` (about two minutes); THRESHER_BENCH_RUNNERS=threads,processes
 limits the runners, THRESHER_BENCH_ROUNDS=2 repeats the set in alternating order.
+
+`python -m bench.runners --against TREE [--rounds N]`: another checkout (say a git
+worktree of the commit before a change) and this one side by side, one worker and 2
+threads each, alternately, N rounds (3 by default), against one Prefect server: flow
+time, pages/s, 2 threads against one worker, the run's own CPU and the phases that do
+not run on the workers (plan, dedup, tokens, hand-off, counts) as each manifest times
+them. TREE's package is put first on the runs' import path (as bench.chunking does).
 """
 
 from __future__ import annotations
@@ -162,5 +169,75 @@ def main() -> None:
         for (k, w), runs in results.items()))
 
 
+PHASES = ("plan", "dedup", "tokens", "handoff", "counts")
+
+
+def against(tree: str, rounds: int) -> None:
+    """`tree` ("before") and this checkout ("after") alternately; see the module docstring."""
+    import statistics
+
+    from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
+    from prefect.server.api.server import SubprocessASGIServer
+
+    from bench.goals import debian_pdfs, pdf_drive
+    from thresher.flows.pipeline import _free_port
+
+    configs = [("sequential", 1), ("threads", 2)]
+    with tempfile.TemporaryDirectory() as td:
+        tmp = Path(td)
+        paths = debian_pdfs(tmp)
+        if not paths:
+            print("no Debian documentation PDFs here (make bench-deps installs some)")
+            return
+        drive = pdf_drive(paths, tmp)
+        # thresher is the checkout's root directory: a link named thresher puts the other
+        # tree's package first on the import path of the runs.
+        (tmp / "before-path").mkdir()
+        os.symlink(Path(tree).resolve(), tmp / "before-path" / "thresher")
+        server = SubprocessASGIServer(port=_free_port())
+        server.start(timeout=120)
+        base = dict(os.environ, PREFECT_API_URL=server.api_url)
+        envs = {"before": dict(base, PYTHONPATH=str(tmp / "before-path")), "after": base}
+        results: dict[tuple[str, str], list[dict]] = {}
+        n = 0
+        try:
+            for r in range(rounds):
+                order = ["before", "after"] if r % 2 == 0 else ["after", "before"]
+                for kind, workers in configs:
+                    for label in order:
+                        n += 1
+                        res = run_once(drive, tmp / f"store-{n}", {"kind": kind, "workers": workers}, envs[label],
+                                       tmp, server.server_process.pid)
+                        results.setdefault((label, kind), []).append(res)
+                        t = res["manifest"]["timings"]
+                        print(f"  round {r + 1} {label} {kind} x{workers}: flow {res['flow']:.2f} s, CPU parent "
+                              f"{res['parent']:.1f} s, children {res['children']:.1f} s; "
+                              + ", ".join(f"{p} {t.get(p, 0.0):.2f}" for p in PHASES)
+                              + f"; load {res['load'][0]:.1f} -> {res['load'][1]:.1f}", flush=True)
+        finally:
+            server.stop()
+    pages = results[("after", "sequential")][0]["manifest"]["pages"]
+    print(f"{len(paths)} PDFs, {pages} pages; medians of {rounds} rounds, before = {tree}")
+    print(f"{'':<8} {'runner':<12} {'flow s':>7} {'pages/s':>7} {'x2 vs 1':>7} {'CPU parent':>10} "
+          + " ".join(f"{p:>7}" for p in PHASES))
+    for label in ("before", "after"):
+        for kind, workers in configs:
+            runs = results[(label, kind)]
+            one = results[(label, "sequential")]
+            flow = statistics.median(x["flow"] for x in runs)
+            speed = statistics.median(o["flow"] / x["flow"] for o, x in zip(one, runs))
+            print(f"{label:<8} {kind + ' x' + str(workers):<12} {flow:7.2f} {pages / flow:7.1f} {speed:7.2f} "
+                  f"{statistics.median(x['parent'] for x in runs):10.2f} "
+                  + " ".join(f"{statistics.median(x['manifest']['timings'].get(p, 0.0) for x in runs):7.2f}"
+                             for p in PHASES))
+    loads = [x["load"][i] for v in results.values() for x in v for i in (0, 1)]
+    print(f"load average {min(loads):.1f}-{max(loads):.1f}")
+
+
 if __name__ == "__main__":
-    main()
+    if "--against" in sys.argv:
+        args = sys.argv[1:]
+        rounds = int(args[args.index("--rounds") + 1]) if "--rounds" in args else 3
+        against(args[args.index("--against") + 1], rounds)
+    else:
+        main()
