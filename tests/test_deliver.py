@@ -83,6 +83,25 @@ def _same(handoff: dict[str, dict], target: dict[str, dict]) -> None:
             assert got == value, (cid, col)
 
 
+def _keyword_index(db: Path) -> tuple[list, list]:
+    """(chunk_id, text) pairs in the full-text index and in the chunks table."""
+    con = sqlite3.connect(db)
+    out = (sorted(con.execute("SELECT chunk_id, text FROM chunks_fts")),
+           sorted(con.execute("SELECT chunk_id, coalesce(text, '') FROM chunks")))
+    con.close()
+    return out
+
+
+def _index_as_written_before_rowids_from_chunk_ids(db: Path) -> None:
+    """The keyword index as earlier versions wrote it: rowids 1, 2, ... in insert order."""
+    con = sqlite3.connect(db, isolation_level=None)
+    rows = con.execute("SELECT chunk_id, text FROM chunks_fts ORDER BY chunk_id").fetchall()
+    con.execute("DELETE FROM chunks_fts")
+    con.executemany("INSERT INTO chunks_fts (chunk_id, text) VALUES (?, ?)", rows)
+    assert con.execute("SELECT min(rowid) FROM chunks_fts").fetchone()[0] == 1
+    con.close()
+
+
 def test_sqlite_target_follows_three_weekly_runs_exactly(prefect_harness, sample_drive, tmp_path):
     db = tmp_path / "index.sqlite"
     definition = _definition([{"name": "local", "kind": "sqlite", "database": str(db)}], after_run=True)
@@ -90,6 +109,9 @@ def test_sqlite_target_follows_three_weekly_runs_exactly(prefect_harness, sample
     m = _run(definition, sample_drive, store_dir)
     assert m["delivered"]["targets"][0]["mode"] == "full load"
     _same(_handoff(store_dir), _sqlite_rows(db))
+    # A database an earlier version filled: its keyword index is rewritten once, so the
+    # deletes that follow (by rowid) leave no stale text behind.
+    _index_as_written_before_rowids_from_chunk_ids(db)
     for step in (1, 2, 3):
         _edit_rename_delete(sample_drive, step)
         m = _run(definition, sample_drive, store_dir)
@@ -97,6 +119,8 @@ def test_sqlite_target_follows_three_weekly_runs_exactly(prefect_harness, sample
         assert t["mode"] == "changes" and t["runs"] == [m["run_id"]]
         assert (t["upserts"], t["deletes"]) == (m["changes"]["upsert"], m["changes"]["delete"])
         _same(_handoff(store_dir), _sqlite_rows(db))
+        indexed, held = _keyword_index(db)
+        assert indexed == held
     assert m["changes"]["delete"] > 0  # the removed form's chunks went
 
     # Every committed run is recorded once, in order; delivering again changes nothing.
