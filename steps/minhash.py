@@ -234,13 +234,20 @@ def choose_bands(threshold: float, num_perm: int, false_negative_weight: float =
     s = np.linspace(0.0, 1.0, 2001)
     below = s <= threshold
     above = s >= threshold
+    # The curves of every b for one r at once (one array operation per r instead of
+    # one per (b, r) pair: 0.07 s of CPU in the parent at every run before, for k=128).
+    errors: dict[tuple[int, int], float] = {}
+    for r in range(1, num_perm + 1):
+        bs = np.arange(1, num_perm // r + 1)
+        p = 1.0 - (1.0 - s ** r)[None, :] ** bs[:, None].astype(float)
+        fp = np.trapezoid(p[:, below], s[below], axis=1)
+        fn = np.trapezoid(1.0 - p[:, above], s[above], axis=1)
+        err = (1.0 - false_negative_weight) * fp + false_negative_weight * fn
+        errors.update({(int(b), r): float(e) for b, e in zip(bs, err)})
     best: tuple[float, int, int] | None = None
-    for b in range(1, num_perm + 1):
+    for b in range(1, num_perm + 1):  # the order ties are decided in: b, then r, rising
         for r in range(1, num_perm // b + 1):
-            p = 1.0 - (1.0 - s ** r) ** b
-            fp = np.trapezoid(p[below], s[below])
-            fn = np.trapezoid(1.0 - p[above], s[above])
-            err = (1.0 - false_negative_weight) * fp + false_negative_weight * fn
+            err = errors[(b, r)]
             if best is None or err < best[0] - 1e-15 or (abs(err - best[0]) <= 1e-15 and r > best[2]):
                 best = (err, b, r)
     assert best is not None

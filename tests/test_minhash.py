@@ -135,6 +135,27 @@ def test_choose_bands_balances_the_error_areas():
         mh.choose_bands(1.0, 128)
 
 
+def test_choose_bands_picks_what_a_plain_loop_over_every_pair_picks():
+    # The pairs are evaluated r by r, all b at once; the choice (and so every stored band
+    # key) must be the one the pair-by-pair loop makes, ties included.
+    def plain(threshold, k, w):
+        s = np.linspace(0.0, 1.0, 2001)
+        below, above = s <= threshold, s >= threshold
+        best = None
+        for b in range(1, k + 1):
+            for r in range(1, k // b + 1):
+                p = 1.0 - (1.0 - s ** r) ** b
+                err = (1 - w) * np.trapezoid(p[below], s[below]) + w * np.trapezoid(1.0 - p[above], s[above])
+                if best is None or err < best[0] - 1e-15 or (abs(err - best[0]) <= 1e-15 and r > best[2]):
+                    best = (err, b, r)
+        return best[1], best[2]
+
+    for k in (16, 128):
+        for threshold in (0.3, 0.5, 0.7, 0.8, 0.9):
+            for w in (0.5, 0.9):
+                assert mh.choose_bands(threshold, k, w) == plain(threshold, k, w), (threshold, k, w)
+
+
 def test_agreement_is_the_share_of_equal_minima():
     a = np.arange(8, dtype=np.uint32).reshape(1, 8)
     b = a.copy()
