@@ -266,6 +266,18 @@ def _batches(items: list[str], size: int) -> list[list[str]]:
     return [items[i:i + size] for i in range(0, len(items), size)]
 
 
+def _in_part_order(store: Store, definition: FlowDefinition, index: int, run_id: str,
+                   doc_ids: list[str], size: int) -> list[str]:
+    """doc_ids in the order of the part files holding their latest rows at the stage
+    before, so that a batch of `size` reads a few part files, not all of them (each
+    read filters whole files by doc_id: on a 3,169-document drive, 13 batches in doc_id
+    order each read all 174 parts, 8.7 s of reads)."""
+    if len(doc_ids) <= size or index == 0:
+        return doc_ids
+    parts = store.doc_parts(definition.steps[index - 1].name, include_run=run_id)
+    return sorted(doc_ids, key=lambda d: (parts[d][-1] if d in parts else "\uffff", d))
+
+
 def _load_docs(store: Store, definition: FlowDefinition, index: int, doc_ids: list[str],
                live_docs: dict[str, tuple[int, str, int]], run_id: str) -> tuple[list[DocChunks], dict[str, str]]:
     """These documents' ok chunks from the stage before, and which stage each came from."""
@@ -304,6 +316,14 @@ def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str, int]], fre
         .append_column("fresh", pa.array([fresh] * len(ids), pa.bool_()))
 
 
+def _by_chunk(table: pa.Table, rows: list[int]) -> dict[str, dict[str, dict[str, Any]]]:
+    """These rows of the table, as doc_id -> chunk_id -> row."""
+    out: dict[str, dict[str, dict[str, Any]]] = defaultdict(dict)
+    for r in table.take(pa.array(rows, pa.int64())).to_pylist():
+        out[r["doc_id"]][r["chunk_id"]] = r
+    return out
+
+
 def _rows_by_doc(table: pa.Table) -> dict[str, list[int]]:
     out: dict[str, list[int]] = defaultdict(list)
     for i, d in enumerate(table.column("doc_id").to_pylist()):
@@ -330,7 +350,8 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
     fresh_ids = rewritten + [d for d in unchanged if d not in held]
 
     sketches: list[pa.Table] = []
-    batches = _batches(fresh_ids, DOCS_PER_BATCH)
+    batches = _batches(_in_part_order(store, definition, index, run_id, fresh_ids, DOCS_PER_BATCH),
+                       DOCS_PER_BATCH)
     # With a single batch (the usual week) its chunks are kept for writing the rows;
     # with more they are let go and read again, so memory holds one batch at a time.
     kept_batch: tuple[list[DocChunks], dict[str, str]] | None = None
@@ -375,10 +396,12 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
             docs, stages = [], {}
         attempts = store.max_attempts(step.name, kind, [d.doc_id for d in docs]) if docs else {}
         rows: list[dict[str, Any]] = []
+        # The batch's sketches and decisions taken at once: a take per document cost about
+        # 2 ms each (12.8 s for the 3,169 documents of a drive's first run).
+        sk_all = _by_chunk(fresh_sketch, [i for d in docs for i in sketch_rows[d.doc_id]]) if docs else {}
+        dec_all = _by_chunk(decisions, [i for d in docs for i in dec_rows.get(d.doc_id, [])]) if docs else {}
         for doc in docs:
-            sk = {r["chunk_id"]: r for r in fresh_sketch.take(pa.array(sketch_rows[doc.doc_id])).to_pylist()}
-            dec = {r["chunk_id"]: r for r in decisions.take(pa.array(dec_rows.get(doc.doc_id, []), pa.int64()))
-                   .to_pylist()}
+            sk, dec = sk_all.get(doc.doc_id, {}), dec_all.get(doc.doc_id, {})
             missing = [c.chunk_id for c in doc.chunks if c.chunk_id not in dec or c.chunk_id not in sk]
             if missing:
                 raise ValueError(f"step {step.name}: no sketch or decision for {len(missing)} chunk(s) of "
@@ -408,10 +431,9 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
 
     # Stored chunks of unchanged documents whose decision changed: their row, decided anew.
     revised_docs = sorted(d for d in dec_rows if d not in fresh_set)
-    revised: dict[tuple[str, str], dict[str, Any]] = {}
-    for d in revised_docs:
-        for r in decisions.take(pa.array(dec_rows[d])).to_pylist():
-            revised[(d, r["chunk_id"])] = r
+    revised = {(d, c): r for d, by_chunk in
+               _by_chunk(decisions, [i for d in revised_docs for i in dec_rows[d]]).items()
+               for c, r in by_chunk.items()} if revised_docs else {}
     if revised_docs:
         current = store.current(step.name, kind, revised_docs, include_run=run_id).to_pylist()
         attempts = store.max_attempts(step.name, kind, revised_docs)

@@ -775,9 +775,10 @@ class Store:
                 out.setdefault(doc_id, []).append(r.run_id)
         return out
 
-    def doc_parts(self, stage: str) -> dict[str, list[str]]:
-        """doc_id -> the part files of `stage` that hold it (compacted ones first), from
-        the ledgers: a reader that wants a few documents can group them by file."""
+    def doc_parts(self, stage: str, include_run: str | None = None) -> dict[str, list[str]]:
+        """doc_id -> the part files of `stage` that hold it (compacted ones first, then by
+        run, `include_run` last), from the ledgers: a reader that wants a few documents
+        can group them by file."""
         out: dict[str, list[str]] = {}
         covered = set((self.compaction(stage) or {}).get("runs", []))
         compacted = self._compacted_ledger(stage)
@@ -788,6 +789,10 @@ class Store:
             if r.run_id in covered:
                 continue
             for doc_id, files in self._ledger(stage, r.run_id).files.items():
+                out.setdefault(doc_id, []).extend(files)
+        if include_run is not None and include_run not in covered \
+                and include_run not in {r.run_id for r in self.runs()}:
+            for doc_id, files in self._ledger(stage, include_run).files.items():
                 out.setdefault(doc_id, []).extend(files)
         return out
 

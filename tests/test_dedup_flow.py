@@ -201,3 +201,13 @@ def test_a_week_with_no_change_skips_the_corpus_steps_and_a_newer_time_alone_is_
     old_ids = {r["chunk_id"] for r in _split_rows(store, COPY)}
     flipped = {c for c in new_ids if after[c][0] == "dropped" and after[c][2] in old_ids}
     assert flipped and all(before[c][0] == "ok" for c in flipped)
+
+
+def test_a_run_in_many_small_batches_decides_as_one_batch_does(first, tmp_path, monkeypatch):
+    """A drive of more documents than one dedup batch holds (250): its documents are
+    sketched and written batch by batch, in the order of the part files holding them."""
+    from thresher.flows import corpus
+
+    monkeypatch.setattr(corpus, "DOCS_PER_BATCH", 3)
+    _run(first["base"] / "drive", tmp_path / "store")
+    assert _decisions(Store(tmp_path / "store")) == _decisions(first["store"])
