@@ -266,7 +266,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
     names = [s.name for s in definition.steps]
     acc = _Progress()
     processed: set[str] = set()
-    affected: set[str] = set()  # documents whose corpus-step rows changed
+    affected: set[str] = set()  # documents whose ok units a corpus step changed (the steps after redo them)
     jobs_by_doc = {j.doc_id: j for j in plan.jobs}
     live_of, live_enc = None, b""  # plan.live encoded for inputs_key, once
     first_batch_done = False

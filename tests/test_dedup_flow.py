@@ -211,3 +211,59 @@ def test_a_run_in_many_small_batches_decides_as_one_batch_does(first, tmp_path, 
     monkeypatch.setattr(corpus, "DOCS_PER_BATCH", 3)
     _run(first["base"] / "drive", tmp_path / "store")
     assert _decisions(Store(tmp_path / "store")) == _decisions(first["store"])
+
+
+_SHARED = ("Every parcel that reaches the depot before noon is weighed, labelled and placed on the "
+           "afternoon van; parcels that arrive later wait for the morning round unless the duty "
+           "supervisor marks them urgent in the dispatch book. ")
+
+
+def _guide(team: str, note: str) -> str:
+    return (f"# Depot guide\n\n## Dispatch rules\n\n{_SHARED * 6}\n\n"
+            f"## Notes for the {team} team\n\n{note}\n")
+
+
+def test_a_duplicate_that_stays_set_aside_is_not_redone_after_dedup(tmp_path, prefect_harness):
+    """Three guides share a section word for word; the newest holds the copy kept. When
+    it goes, the next newest's copy is kept instead (its document goes on to the tokens
+    step again), and the oldest's stays set aside with a new duplicate_of: its dedup row
+    is revised, but the steps after dedup, which take only kept chunks, are not run for
+    it again. The hand-off equals a first run's over the same files."""
+    drive = tmp_path / "drive"
+    drive.mkdir()
+    notes = {"north": "The north team loads from bay two and signs the key register at six.",
+             "south": "The south team shares the cold room with the florists on Tuesdays.",
+             "east": "The east team keeps the spare trolleys behind the canteen door."}
+    for age, team in enumerate(("north", "south", "east")):  # north newest, east oldest
+        p = drive / f"{team}.md"
+        p.write_text(_guide(team, notes[team]), encoding="utf-8")
+        os.utime(p, (1_700_000_000 - age * 86_400,) * 2)
+    store_dir = tmp_path / "store"
+    week1 = _run(drive, store_dir)
+    store = Store(store_dir)
+    docs = {r["source_path"]: r["doc_id"] for r in store.catalog().to_pylist() if r["present"]}
+
+    def shared_row(path: str) -> dict:
+        return next(r for r in _dedup_rows(store).values()
+                    if r["doc_id"] == docs[path] and _SHARED[:40] in r["text"])
+
+    north, south, east = shared_row("north.md"), shared_row("south.md"), shared_row("east.md")
+    assert north["status"] == "ok"
+    assert (south["status"], south["duplicate_of"]) == ("dropped", north["chunk_id"])
+    assert (east["status"], east["duplicate_of"]) == ("dropped", north["chunk_id"])
+
+    (drive / "north.md").unlink()
+    week2 = _run(drive, store_dir)
+    store = Store(store_dir)
+    south, east = shared_row("south.md"), shared_row("east.md")
+    assert south["status"] == "ok"
+    assert (east["status"], east["duplicate_of"], east["run_id"]) == ("dropped", south["chunk_id"],
+                                                                      week2["run_id"])
+    tokens = {r["doc_id"]: r["run_id"] for r in store.current("tokens", "chunks", list(docs.values())).to_pylist()}
+    assert tokens[docs["south.md"]] == week2["run_id"]
+    assert tokens[docs["east.md"]] == week1["run_id"]
+
+    fresh = tmp_path / "fresh-store"
+    _run(drive, fresh)
+    cols = ["chunk_id", "source_path", "text", "token_count", "content_hash"]
+    assert Store(store_dir).handoff().select(cols).to_pylist() == Store(fresh).handoff().select(cols).to_pylist()
