@@ -29,6 +29,8 @@ DEBIAN_TEST_PACKAGES := poppler-utils shared-mime-info libtasn1-doc libffi-dev \
 # Manuals Debian ships as both PDF and HTML: the retrieval benchmark (bench/retrieval.py)
 # takes its questions from the HTML edition and ranks chunks of the PDF edition.
 BENCH_PACKAGES := debian-faq developers-reference debian-policy
+# The installation guide's PDF is one of the ruled-table PDFs of bench extract and goals.
+BENCH_PACKAGES += installation-guide-amd64
 # The FAQ's PDF (contents and index pages against its outline) is also a test reference.
 DEBIAN_TEST_PACKAGES += debian-faq
 # Reference cards in many scripts (one with a mis-mapped text layer) and Tesseract's
