@@ -8,7 +8,7 @@ from __future__ import annotations
 import importlib
 import sys
 
-BENCHES = ["goals", "runners", "orchestration", "incremental", "sitefolder", "scale", "chunking", "extract", "dedup", "retrieval", "deliver",
+BENCHES = ["goals", "docdrive", "runners", "orchestration", "incremental", "sitefolder", "scale", "chunking", "extract", "dedup", "retrieval", "deliver",
            "formats", "store_growth", "report", "access", "memory"]
 
 

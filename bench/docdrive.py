@@ -1,0 +1,110 @@
+"""A real drive: the documentation this machine's Debian packages ship, three weeks of it.
+
+The drive is built from /usr/share/doc (HTML, plain text, Markdown, PDFs, gzipped PDFs
+unpacked, and every package's copyright file: many are identical or share long
+licence texts, so deduplication has real work). Three runs in this process against
+one Prefect server, as a weekly schedule does them: the first (everything), one with
+nothing changed, and one with 1 % of the files edited (a paragraph appended to text,
+Markdown, HTML and copyright files). Prints each run's wall time, the phases of the
+flow (the manifest's `timings`), and the two weekly runs as shares of the first.
+
+What the drive holds depends on the packages installed (`make test` and `make bench`
+install the ones the tests and benchmarks read), so compare runs on one machine only.
+`python -m bench docdrive`.
+"""
+
+from __future__ import annotations
+
+import gzip
+import os
+import random
+import resource
+import shutil
+import tempfile
+import time
+from pathlib import Path
+
+DOCS = Path("/usr/share/doc")
+KEEP = (".html", ".htm", ".txt", ".md", ".pdf")
+EDITABLE = (".html", ".htm", ".txt", ".md")
+SHARE = 0.01
+# Invented text for the edits (no source).
+ADDED = "\n\nA note added this week: the rota for the quarterly review moves to the second Tuesday.\n"
+
+
+def build(into: Path) -> int:
+    """Copy the documentation files worth reading into `into`; their number."""
+    n = 0
+    for p in sorted(DOCS.rglob("*")):
+        if p.is_symlink() or not p.is_file():
+            continue
+        rel = p.relative_to(DOCS)
+        if p.name.endswith(".pdf.gz"):
+            dest = into / rel.parent / p.name[:-3]
+            data = gzip.decompress(p.read_bytes())
+        elif p.name.lower().endswith(KEEP) or p.name == "copyright":
+            dest, data = into / rel, None
+        else:
+            continue
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        if data is None:
+            shutil.copyfile(p, dest)
+        else:
+            dest.write_bytes(data)
+        n += 1
+    return n
+
+
+def edit(drive: Path, share: float, seed: int = 7) -> list[Path]:
+    """Append a paragraph to `share` of the drive's files (text kinds only), as a week would."""
+    files = sorted(p for p in drive.rglob("*") if p.is_file())
+    editable = [p for p in files if p.suffix.lower() in EDITABLE or p.name == "copyright"]
+    chosen = random.Random(seed).sample(editable, max(1, round(len(files) * share)))
+    for p in chosen:
+        p.write_bytes(p.read_bytes() + ADDED.encode())
+    return chosen
+
+
+def main() -> None:
+    from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
+    from prefect import flow
+
+    from thresher.flows import pipeline
+    from thresher.flows.config import load_definition
+
+    if not DOCS.is_dir():
+        print(f"no {DOCS} here")
+        return
+
+    @flow
+    def warm_up() -> int:
+        return 0
+
+    print(f"load average at start {os.getloadavg()[0]:.1f}, {os.cpu_count()} cores", flush=True)
+    with tempfile.TemporaryDirectory() as td:
+        drive, store = Path(td) / "drive", Path(td) / "store"
+        files = build(drive)
+        warm_up()  # the temporary server's start, paid once as a schedule pays it
+        definition = load_definition()
+        walls: dict[str, float] = {}
+        for label in ("first run", "nothing changed", f"{SHARE:.0%} of the files changed"):
+            if label.startswith(f"{SHARE:.0%}"):
+                label = f"{len(edit(drive, SHARE))} files changed ({SHARE:.0%})"
+            t = time.perf_counter()
+            m = pipeline.run(definition, str(drive), str(store), quiet=True)
+            walls[label] = time.perf_counter() - t
+            docs = m.get("documents") or {}
+            phases = ", ".join(f"{k} {v:.1f}" for k, v in (m.get("timings") or {}).items())
+            print(f"{label}: {walls[label]:.2f} s wall; {docs.get('processed', 0)} of {docs.get('distinct', 0)} "
+                  f"documents processed, {docs.get('hashed', 0)} files read to hash; {m.get('pages')} pages, "
+                  f"{m.get('chunks')} chunks; phases (s): {phases}", flush=True)
+    full = walls.pop("first run")
+    print(f"\n{files} files from {DOCS}; load average at end {os.getloadavg()[0]:.1f}; "
+          f"peak memory of this process over the three runs "
+          f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
+    for label, wall in walls.items():
+        print(f"{label}: {wall / full:.1%} of the first run ({wall:.2f} s against {full:.2f} s)")
+
+
+if __name__ == "__main__":
+    main()
