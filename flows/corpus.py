@@ -64,6 +64,9 @@ class CorpusResult:
     seconds: float
     read: int | None = None  # documents whose units were loaded (a plain step)
     notes: list[str] = field(default_factory=list)  # lines for the run's log (an incremental page step)
+    # Documents whose rows here changed only in units set aside before and after (a
+    # duplicate's new duplicate_of): nothing handed off from them changed.
+    set_aside_docs: set[str] = field(default_factory=set)
 
 
 def live_inputs(live_docs: dict[str, tuple[int, str, int]]) -> bytes:
@@ -470,7 +473,8 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
         for d, c, s in zip(stored_docs, stored_ids, stored_status):
             new = revised.get((d, c))
             counts[new["status"] if new is not None else s] += 1
-    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0)
+    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0,
+                        set_aside_docs=set(revised_docs) - affected)
 
 
 # ----------------------------------------------------------------------------- incremental pages

@@ -228,9 +228,13 @@ def test_a_duplicate_that_stays_set_aside_is_not_redone_after_dedup(tmp_path, pr
     it goes, the next newest's copy is kept instead (its document goes on to the tokens
     step again), and the oldest's stays set aside with a new duplicate_of: its dedup row
     is revised, but the steps after dedup, which take only kept chunks, are not run for
-    it again. The hand-off equals a first run's over the same files."""
+    it again, nor is it read for the hand-off. The hand-off equals a first run's over
+    the same files."""
     drive = tmp_path / "drive"
     drive.mkdir()
+    for n, topic in enumerate(("the loading bays", "the van keys", "the cold room", "the canteen")):
+        (drive / f"about-{n}.md").write_text(f"# About {topic}\n\nWhat every driver should know about {topic}, "
+                                            f"written down in week {n + 3} by the depot office.\n", encoding="utf-8")
     notes = {"north": "The north team loads from bay two and signs the key register at six.",
              "south": "The south team shares the cold room with the florists on Tuesdays.",
              "east": "The east team keeps the spare trolleys behind the canteen door."}
@@ -262,6 +266,8 @@ def test_a_duplicate_that_stays_set_aside_is_not_redone_after_dedup(tmp_path, pr
     tokens = {r["doc_id"]: r["run_id"] for r in store.current("tokens", "chunks", list(docs.values())).to_pylist()}
     assert tokens[docs["south.md"]] == week2["run_id"]
     assert tokens[docs["east.md"]] == week1["run_id"]
+    # Of the six live documents only the one whose kept chunks changed is read.
+    assert week2["handoff"] == "copied forward, 1 of 6 documents read from the stages"
 
     fresh = tmp_path / "fresh-store"
     _run(drive, fresh)
