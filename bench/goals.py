@@ -226,8 +226,8 @@ def main() -> None:
     print(f"{'figure':<{width}} | measured | anchor, same run | goal")
     for figure, measured, anchor, goal in ROWS:
         print(f"{figure:<{width}} | {measured} | {anchor} | {goal}")
-    print("Not measured here: the issue's 2,965-file documentation drive (not on this machine); "
-          "the hand-off's rewrite per million chunks is in `python -m bench access`.")
+    print("Not measured here: a real documentation drive (`python -m bench docdrive`: this machine's "
+          "/usr/share/doc, three weeks); the hand-off's rewrite per million chunks (`python -m bench access`).")
 
 
 if __name__ == "__main__":
