@@ -73,18 +73,14 @@ def throughput() -> None:
 def change_of_access() -> None:
     from thresher.flows import runtime  # noqa: F401
 
-    from prefect import flow
+    from bench.warm import start_prefect
 
     from bench.drive import make_drive
     from thresher.flows import pipeline
     from thresher.flows.config import build_definition, load_definition
     from thresher.flows.handoff import handoff_basis
 
-    @flow
-    def warm_up() -> int:
-        return 0
-
-    warm_up()
+    start_prefect()
     definition = load_definition()
 
     def edited(access: dict, origin: str):

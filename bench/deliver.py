@@ -77,18 +77,14 @@ def _rows(table) -> list[dict]:
 def main() -> None:
     from thresher.flows import runtime  # noqa: F401
 
-    from prefect import flow
+    from bench.warm import start_prefect
 
     from thresher.flows import pipeline
     from thresher.flows.deliver import deliver
     from thresher.flows.probes import Probe, answer_probes
     from thresher.flows.store import Store
 
-    @flow
-    def warm_up() -> int:
-        return 0
-
-    warm_up()
+    start_prefect()
     sys.path.insert(0, str(REPO / "tests"))
     try:
         from pgserver import pg_bin, scratch_server

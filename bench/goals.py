@@ -154,16 +154,12 @@ def text_steps() -> None:
 
 def weekly_runs(tmp: Path) -> None:
     """Full, no change and 1 % changed, in this process against one warm Prefect server."""
-    from prefect import flow
+    from bench.warm import start_prefect
 
     from thresher.flows import pipeline
     from thresher.flows.config import load_definition
 
-    @flow
-    def warm_up() -> int:
-        return 0
-
-    warm_up()
+    start_prefect()
     definition = load_definition()
     drive = make_drive(tmp / "week-drive", WEEK_DOCUMENTS)
     store = tmp / "week-store"

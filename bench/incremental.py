@@ -88,16 +88,12 @@ def _handoff_side_by_side(definition, store_dir: Path, run_id: str, rounds: int 
 def main() -> None:
     from thresher.flows import runtime  # noqa: F401
 
-    from prefect import flow
+    from bench.warm import start_prefect
 
     from thresher.flows import pipeline
     from thresher.flows.config import load_definition
 
-    @flow
-    def warm_up() -> int:
-        return 0
-
-    warm_up()
+    start_prefect()
     definition = load_definition()
     with tempfile.TemporaryDirectory() as tmp:
         drive = make_drive(Path(tmp) / "drive", DOCUMENTS)

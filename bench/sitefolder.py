@@ -86,17 +86,13 @@ def main() -> None:
     from thresher.flows import runtime  # noqa: F401
 
     import yaml
-    from prefect import flow
+    from bench.warm import start_prefect
 
     from thresher.flows import pipeline
     from thresher.flows.config import build_definition, default_config_text
     from thresher.flows.store import Store
 
-    @flow
-    def warm_up() -> int:
-        return 0
-
-    warm_up()
+    start_prefect()
     pages = int(os.environ.get("THRESHER_BENCH_SITE_PAGES", "400"))
     rounds = int(os.environ.get("THRESHER_BENCH_SITE_ROUNDS", "3"))
     data = yaml.safe_load(default_config_text())

@@ -319,12 +319,9 @@ def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str, int]], fre
         .append_column("fresh", pa.array([fresh] * len(ids), pa.bool_()))
 
 
-def _by_chunk(table: pa.Table, rows: list[int]) -> dict[str, dict[str, dict[str, Any]]]:
-    """These rows of the table, as doc_id -> chunk_id -> row."""
-    out: dict[str, dict[str, dict[str, Any]]] = defaultdict(dict)
-    for r in table.take(pa.array(rows, pa.int64())).to_pylist():
-        out[r["doc_id"]][r["chunk_id"]] = r
-    return out
+def _by_chunk(table: pa.Table, rows: list[int]) -> dict[tuple[str, str], dict[str, Any]]:
+    """These rows of the table (one take), as (doc_id, chunk_id) -> row."""
+    return {(r["doc_id"], r["chunk_id"]): r for r in table.take(pa.array(rows, pa.int64())).to_pylist()}
 
 
 def _rows_by_doc(table: pa.Table) -> dict[str, list[int]]:
@@ -404,15 +401,15 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
         sk_all = _by_chunk(fresh_sketch, [i for d in docs for i in sketch_rows[d.doc_id]]) if docs else {}
         dec_all = _by_chunk(decisions, [i for d in docs for i in dec_rows.get(d.doc_id, [])]) if docs else {}
         for doc in docs:
-            sk, dec = sk_all.get(doc.doc_id, {}), dec_all.get(doc.doc_id, {})
-            missing = [c.chunk_id for c in doc.chunks if c.chunk_id not in dec or c.chunk_id not in sk]
+            missing = [c.chunk_id for c in doc.chunks
+                       if (doc.doc_id, c.chunk_id) not in dec_all or (doc.doc_id, c.chunk_id) not in sk_all]
             if missing:
                 raise ValueError(f"step {step.name}: no sketch or decision for {len(missing)} chunk(s) of "
                                  f"{doc.source_path}")
             units: list[Unit] = []
             for chunk in doc.chunks:
-                d = dec[chunk.chunk_id]
-                payload = {c: sk[chunk.chunk_id][c] for c in spec.sketch_columns}
+                d, sk = dec_all[(doc.doc_id, chunk.chunk_id)], sk_all[(doc.doc_id, chunk.chunk_id)]
+                payload = {c: sk[c] for c in spec.sketch_columns}
                 payload.update({c: d[c] for c in spec.decision_columns})
                 unit = replace(chunk, parents=[chunk.locator], warnings=[], payload=payload,
                                heading_path=list(chunk.heading_path), status=OK, reason="")
@@ -434,9 +431,7 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
 
     # Stored chunks of unchanged documents whose decision changed: their row, decided anew.
     revised_docs = sorted(d for d in dec_rows if d not in fresh_set)
-    revised = {(d, c): r for d, by_chunk in
-               _by_chunk(decisions, [i for d in revised_docs for i in dec_rows[d]]).items()
-               for c, r in by_chunk.items()} if revised_docs else {}
+    revised = _by_chunk(decisions, [i for d in revised_docs for i in dec_rows[d]]) if revised_docs else {}
     if revised_docs:
         current = store.current(step.name, kind, revised_docs, include_run=run_id).to_pylist()
         attempts = store.max_attempts(step.name, kind, revised_docs)

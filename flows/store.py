@@ -785,14 +785,10 @@ class Store:
         if compacted is not None:
             for doc_id, entries in compacted.files.items():
                 out[doc_id] = [f for _, f in entries]
-        for r in self.runs():
-            if r.run_id in covered:
+        for run_id in self._sequences(include_run):
+            if run_id in covered:
                 continue
-            for doc_id, files in self._ledger(stage, r.run_id).files.items():
-                out.setdefault(doc_id, []).extend(files)
-        if include_run is not None and include_run not in covered \
-                and include_run not in {r.run_id for r in self.runs()}:
-            for doc_id, files in self._ledger(stage, include_run).files.items():
+            for doc_id, files in self._ledger(stage, run_id).files.items():
                 out.setdefault(doc_id, []).extend(files)
         return out
 
