@@ -5,12 +5,13 @@ from __future__ import annotations
 
 import os
 import sys
+import threading
 from collections import Counter
 from pathlib import Path
 
 from thresher.flows import pipeline
 from thresher.flows.config import load_definition
-from thresher.flows.discover import file_doc_id, new_or_changed, scan, stat_record
+from thresher.flows.discover import SCAN_WINDOW, _each, file_doc_id, new_or_changed, scan, stat_record
 from thresher.flows.store import Store
 
 
@@ -88,15 +89,45 @@ def test_workers_start_early_only_when_the_stat_records_say_a_file_is_new_or_cha
 
 def test_scan_in_threads_keeps_path_order_and_reports_unreadable_files(tmp_path):
     drive = tmp_path / "drive"
-    for i in range(40):
+    n = 3 * SCAN_WINDOW  # past the first window, where a slow file system moves to the pool
+    for i in range(n):
         (drive / f"d{i % 3}").mkdir(parents=True, exist_ok=True)
-        (drive / f"d{i % 3}" / f"f{i:02d}.txt").write_text(f"Quillfern note {i}\n")
+        (drive / f"d{i % 3}" / f"f{i:03d}.txt").write_text(f"Quillfern note {i}\n")
     (drive / "d0" / "dangling.txt").symlink_to(drive / "missing.txt")
-    found, problems = scan(drive, ["**/*"], [], threads=4)
-    paths = [f.source_path for f in found]
-    assert paths == sorted(paths, key=lambda p: (p.split("/")[0], p)) and len(paths) == 40
-    assert [p.source_path for p in problems] == ["d0/dangling.txt"]
-    assert all(f.doc_id == file_doc_id(drive / f.source_path) for f in found)
+    (drive / "d2" / "zz-dangling.txt").symlink_to(drive / "missing.txt")
+    inline = scan(drive, ["**/*"], [], threads=4)
+    pooled = scan(drive, ["**/*"], [], threads=4, slow_call=0.0)  # every call counts as slow
+    for found, problems in (inline, pooled):
+        paths = [f.source_path for f in found]
+        assert paths == sorted(paths, key=lambda p: (p.split("/")[0], p)) and len(paths) == n
+        assert [p.source_path for p in problems] == ["d0/dangling.txt", "d2/zz-dangling.txt"]
+        assert all(f.doc_id == file_doc_id(drive / f.source_path) for f in found)
+    assert inline == pooled
+
+
+def test_the_stat_check_stops_at_the_first_changed_file_and_the_pool_takes_over_when_calls_are_slow():
+    calls = []
+
+    def look(i):
+        calls.append(i)
+        return i == 10
+
+    # Inline, a week with an edited file answers without looking at the rest of the drive.
+    assert any(_each(look, list(range(1000)), threads=8))
+    assert calls == list(range(11))
+    # Calls slower than slow_call: the first window inline, the rest in the pool's threads.
+    threads = []
+
+    def where(i):
+        threads.append(threading.current_thread().name)
+        return i
+
+    assert list(_each(where, list(range(200)), threads=4, slow_call=0.0)) == list(range(200))
+    assert set(threads[:SCAN_WINDOW]) == {threading.current_thread().name}
+    assert all(t.startswith("thresher-scan") for t in threads[SCAN_WINDOW:])
+    threads.clear()
+    assert list(_each(where, list(range(200)), threads=4, slow_call=10.0)) == list(range(200))  # quick: inline
+    assert set(threads) == {threading.current_thread().name}
 
 
 _OPENED: dict[str, Counter] = {}
