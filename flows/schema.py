@@ -322,6 +322,19 @@ WRITES = pa.schema(
     ]
 )
 
+# A committed run's ledgers, every stage in one file (runs/<run_id>/ledger.parquet),
+# written at its commit from its per-part ledgers (WRITES): a new process reads one file
+# per run instead of one per part (942 small files after a documentation drive's first
+# runs). `part` is the part file's name under stages/<stage>/<run_id>/.
+RUN_LEDGER = pa.schema(
+    [
+        pa.field("stage", pa.string(), nullable=False),
+        pa.field("part", pa.string(), nullable=False),
+        pa.field("doc_id", pa.string(), nullable=False),
+        pa.field("scope", pa.string(), nullable=False),
+    ]
+)
+
 # Ledger of a compacted stage: which part holds each (run, document), and the whole-
 # document rewrites of the runs it covers (scope as in WRITES; part "" when the run
 # wrote the document whole but produced no unit for it).

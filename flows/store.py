@@ -3,6 +3,7 @@
 Layout under the store root:
   stages/<stage>/<run_id>/part-<n>.parquet   rows a run wrote, one file per batch
   runs/<run_id>/writes/<stage>/part-<n>.parquet  which documents each part covered, and how
+  runs/<run_id>/ledger.parquet               the same for every stage of the run, one file, at commit
   runs/<run_id>/manifest.json                written last: the run is committed
   runs/<run_id>/staged/...                   catalog and hand-off, published after commit
   catalog.parquet, handoff/chunks.parquet, handoff/changes/<run_id>.parquet
@@ -81,6 +82,8 @@ _MANIFESTS: dict[str, tuple[tuple, "RunInfo"]] = {}
 _RUNNING_LEDGERS: dict[tuple[str, str, str], tuple[tuple[str, ...], "Ledger"]] = {}
 _LEDGERS_LOCK = threading.Lock()
 _COMPACTED: dict[tuple[str, str, str], "CompactedLedger"] = {}
+# (store base, run id) of committed runs whose one ledger file has been read.
+_RUN_LEDGER_READ: set[tuple[str, str]] = set()
 # Up to this many documents, a read of a compacted stage looks up only their ledger
 # entries instead of loading the whole ledger (a trail, a page re-run).
 LEDGER_LOOKUP_DOCS = 64
@@ -501,6 +504,7 @@ class Store:
     def commit(self, run_id: str, manifest: dict[str, Any], before_publish=None) -> None:
         """Write the manifest (the commit point), then publish staged files."""
         manifest = dict(manifest)
+        self._write_run_ledger(run_id)
         manifest["files"] = self.run_files(run_id, manifest.get("publish"))
         self.write_json(f"runs/{run_id}/manifest.json", manifest)
         self._runs_cache = None
@@ -678,13 +682,85 @@ class Store:
     def _committed(self, run_id: str) -> bool:
         return any(r.run_id == run_id for r in self.runs())
 
+    def run_ledger_rel(self, run_id: str) -> str:
+        return f"runs/{run_id}/ledger.parquet"
+
+    def _part_ledgers(self, run_id: str) -> dict[str, list[tuple[str, list[tuple[str, str]]]]]:
+        """stage -> (part name, its (doc_id, scope) entries) for each ledger file the run
+        wrote: the cached ones as they are, the rest read in one parallel scan."""
+        import pyarrow.dataset as ds
+
+        found: dict[str, list[tuple[str, str]]] = {}  # ledger file path -> entries
+        unread: list[str] = []
+        stages: dict[str, list] = {}
+        for info in self._list(f"runs/{run_id}/writes"):
+            if info.type != pafs.FileType.Directory:
+                continue
+            for f in self._list(f"runs/{run_id}/writes/{info.base_name}"):
+                if f.base_name.endswith(".parquet") and not f.base_name.startswith(".tmp-"):
+                    stages.setdefault(info.base_name, []).append(f)
+                    with _LEDGERS_LOCK:
+                        entries = _LEDGER_FILES.get(f.path)
+                    if entries is None:
+                        unread.append(f.path)
+                    else:
+                        found[f.path] = entries
+        if unread:
+            scan = ds.dataset(unread, format="parquet", filesystem=self.fs).scanner(columns=["doc_id", "scope"])
+            for tagged in scan.scan_batches():
+                b = tagged.record_batch
+                found.setdefault(tagged.fragment.path, []).extend(
+                    zip(b.column("doc_id").to_pylist(), b.column("scope").to_pylist()))
+        return {stage: [(f.base_name, found.get(f.path, [])) for f in sorted(files, key=lambda f: f.base_name)]
+                for stage, files in sorted(stages.items())}
+
+    def _write_run_ledger(self, run_id: str) -> None:
+        """runs/<run_id>/ledger.parquet: the run's per-part ledgers in one file (RUN_LEDGER)."""
+        cols: dict[str, list[str]] = {"stage": [], "part": [], "doc_id": [], "scope": []}
+        for stage, parts in self._part_ledgers(run_id).items():
+            for part, entries in parts:
+                for doc_id, scope in entries:
+                    cols["stage"].append(stage)
+                    cols["part"].append(part)
+                    cols["doc_id"].append(doc_id)
+                    cols["scope"].append(scope)
+        self.write_table(self.run_ledger_rel(run_id), pa.table(cols, schema=schema.RUN_LEDGER), run_id=run_id)
+
+    def _from_run_ledger(self, run_id: str) -> bool:
+        """Cache every stage's Ledger of a committed run from its one ledger file; False
+        when it has none (written before this file existed) or it cannot be read, and
+        the per-part files are read instead."""
+        rel = self.run_ledger_rel(run_id)
+        try:
+            t = self.read_table(rel).select(["stage", "part", "doc_id", "scope"])
+        except (OSError, pa.ArrowException, KeyError):
+            with _LEDGERS_LOCK:
+                _RUN_LEDGER_READ.add((self.base, run_id))
+            return False
+        per: dict[str, tuple[dict[str, list[str]], list[str]]] = {}
+        for stage, part, doc_id, scope in zip(*(t.column(c).to_pylist() for c in ("stage", "part", "doc_id", "scope"))):
+            files, full = per.setdefault(stage, ({}, []))
+            files.setdefault(doc_id, []).append(self.path(f"stages/{stage}/{run_id}/{part}"))
+            if scope == "document":
+                full.append(doc_id)
+        with _LEDGERS_LOCK:
+            _RUN_LEDGER_READ.add((self.base, run_id))
+            for stage, (files, full) in per.items():
+                _LEDGERS.setdefault((self.base, stage, run_id), Ledger(files, full))
+        return True
+
     def _ledger(self, stage: str, run_id: str) -> "Ledger":
         """Which documents a run's part files of a stage hold, and with what scope."""
         key = (self.base, stage, run_id)
         with _LEDGERS_LOCK:
             cached = _LEDGERS.get(key)
+            tried = (self.base, run_id) in _RUN_LEDGER_READ
         if cached is not None:
             return cached
+        if not tried and self._committed(run_id) and self._from_run_ledger(run_id):
+            with _LEDGERS_LOCK:
+                # A stage the run wrote nothing at has no entry: an empty ledger.
+                return _LEDGERS.setdefault(key, Ledger({}, []))
         infos = [i for i in self._list(f"runs/{run_id}/writes/{stage}")
                  if i.base_name.endswith(".parquet") and not i.base_name.startswith(".tmp-")]
         # A running run's ledger grows by whole files: while the listing is the same,

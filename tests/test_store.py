@@ -187,3 +187,48 @@ def test_a_running_runs_ledger_shows_each_part_as_it_is_written(tmp_path):
     store.write_stage_part("extract", "r1", "b", _pages("r1", "docB", {"page/1": "two"}), [("docB", "document")])
     assert store.run_docs("extract", "r1") == {"docA", "docB"}
     assert _current_texts(store, "docB", include_run="r1") == {"page/1": "two"}
+
+
+def _forget_ledgers() -> None:
+    """As a new process finds them: nothing of the store's ledgers cached."""
+    from thresher.flows import store as store_module
+
+    for cache in (store_module._LEDGERS, store_module._LEDGER_FILES, store_module._RUNNING_LEDGERS,
+                  store_module._RUN_LEDGER_READ):
+        cache.clear()
+
+
+def test_a_committed_runs_ledgers_come_from_its_one_ledger_file_or_else_from_each_part(tmp_path):
+    root = tmp_path / "s"
+    store = Store(root)
+    store.write_stage_part("extract", "r1", "a", _pages("r1", "docA", {"page/1": "one", "page/2": "two"}),
+                           [("docA", "document")])
+    store.write_stage_part("extract", "r1", "b", _pages("r1", "docB", {"page/1": "uno"}), [("docB", "document")])
+    _commit(store, "r1")
+    store.write_stage_part("extract", "r2", "a", _pages("r2", "docA", {"page/2": "deux"}, {"page/2": 1}),
+                           [("docA", "units")])
+    _commit(store, "r2")
+    manifest = json.loads((root / "runs" / "r2" / "manifest.json").read_text())
+    assert "runs/r2/ledger.parquet" in manifest["files"]  # checked by `thresher verify` like any run file
+
+    def seen() -> tuple:
+        s = Store(root)
+        ledgers = {r: (s._ledger("extract", r).files, sorted(s._ledger("extract", r).full)) for r in ("r1", "r2")}
+        return ledgers, _current_texts(s, "docA"), _current_texts(s, "docB")
+
+    _forget_ledgers()
+    from_parts = seen()
+    assert from_parts[1] == {"page/1": "one", "page/2": "deux"} and from_parts[2] == {"page/1": "uno"}
+    # Without the per-part ledger files, a new process still reads the same view: from
+    # the one file per run.
+    parts_dir = tmp_path / "writes-aside"
+    for r in ("r1", "r2"):
+        (root / "runs" / r / "writes").rename(parts_dir.with_name(f"writes-{r}"))
+    _forget_ledgers()
+    assert seen() == from_parts
+    # A store written before the one file existed: read part by part, as before.
+    for r in ("r1", "r2"):
+        parts_dir.with_name(f"writes-{r}").rename(root / "runs" / r / "writes")
+        (root / "runs" / r / "ledger.parquet").unlink()
+    _forget_ledgers()
+    assert seen() == from_parts
