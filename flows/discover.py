@@ -23,8 +23,8 @@ HASH_CHUNK = 1 << 20
 # 0.26 s when every file was hashed from the page cache (2 cores). So the scan stats
 # inline, a window of SCAN_WINDOW files at a time, and hands the rest to the pool as soon
 # as a window's calls take over SLOW_CALL seconds each on average (a slow file system,
-# or large files to hash, which hashlib does off the interpreter lock; ours: five times
-# what a pool costs per file here).
+# or large files to hash, which hashlib does off the interpreter lock; ours: about four times
+# what the pool cost per file here).
 SCAN_THREADS = 8
 SCAN_WINDOW = 64
 SLOW_CALL = 0.0005

@@ -82,8 +82,9 @@ _MANIFESTS: dict[str, tuple[tuple, "RunInfo"]] = {}
 _RUNNING_LEDGERS: dict[tuple[str, str, str], tuple[tuple[str, ...], "Ledger"]] = {}
 _LEDGERS_LOCK = threading.Lock()
 _COMPACTED: dict[tuple[str, str, str], "CompactedLedger"] = {}
-# (store base, run id) of committed runs whose one ledger file has been read.
-_RUN_LEDGER_READ: set[tuple[str, str]] = set()
+# (store base, run id) of committed runs whose one ledger file was looked for: whether
+# their ledgers came from it (False: none, or unreadable; read part by part).
+_RUN_LEDGER_READ: dict[tuple[str, str], bool] = {}
 # Up to this many documents, a read of a compacted stage looks up only their ledger
 # entries instead of loading the whole ledger (a trail, a page re-run).
 LEDGER_LOOKUP_DOCS = 64
@@ -735,7 +736,7 @@ class Store:
             t = self.read_table(rel).select(["stage", "part", "doc_id", "scope"])
         except (OSError, pa.ArrowException, KeyError):
             with _LEDGERS_LOCK:
-                _RUN_LEDGER_READ.add((self.base, run_id))
+                _RUN_LEDGER_READ[(self.base, run_id)] = False
             return False
         per: dict[str, tuple[dict[str, list[str]], list[str]]] = {}
         for stage, part, doc_id, scope in zip(*(t.column(c).to_pylist() for c in ("stage", "part", "doc_id", "scope"))):
@@ -744,7 +745,7 @@ class Store:
             if scope == "document":
                 full.append(doc_id)
         with _LEDGERS_LOCK:
-            _RUN_LEDGER_READ.add((self.base, run_id))
+            _RUN_LEDGER_READ[(self.base, run_id)] = True
             for stage, (files, full) in per.items():
                 _LEDGERS.setdefault((self.base, stage, run_id), Ledger(files, full))
         return True
@@ -754,10 +755,12 @@ class Store:
         key = (self.base, stage, run_id)
         with _LEDGERS_LOCK:
             cached = _LEDGERS.get(key)
-            tried = (self.base, run_id) in _RUN_LEDGER_READ
+            from_file = _RUN_LEDGER_READ.get((self.base, run_id))
         if cached is not None:
             return cached
-        if not tried and self._committed(run_id) and self._from_run_ledger(run_id):
+        if from_file is None and self._committed(run_id):
+            from_file = self._from_run_ledger(run_id)
+        if from_file:
             with _LEDGERS_LOCK:
                 # A stage the run wrote nothing at has no entry: an empty ledger.
                 return _LEDGERS.setdefault(key, Ledger({}, []))
