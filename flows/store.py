@@ -689,8 +689,6 @@ class Store:
     def _part_ledgers(self, run_id: str) -> dict[str, list[tuple[str, list[tuple[str, str]]]]]:
         """stage -> (part name, its (doc_id, scope) entries) for each ledger file the run
         wrote: the cached ones as they are, the rest read in one parallel scan."""
-        import pyarrow.dataset as ds
-
         found: dict[str, list[tuple[str, str]]] = {}  # ledger file path -> entries
         unread: list[str] = []
         stages: dict[str, list] = {}
@@ -707,6 +705,8 @@ class Store:
                     else:
                         found[f.path] = entries
         if unread:
+            import pyarrow.dataset as ds
+
             scan = ds.dataset(unread, format="parquet", filesystem=self.fs).scanner(columns=["doc_id", "scope"])
             for tagged in scan.scan_batches():
                 b = tagged.record_batch
@@ -716,9 +716,14 @@ class Store:
                 for stage, files in sorted(stages.items())}
 
     def _write_run_ledger(self, run_id: str) -> None:
-        """runs/<run_id>/ledger.parquet: the run's per-part ledgers in one file (RUN_LEDGER)."""
+        """runs/<run_id>/ledger.parquet: the run's per-part ledgers in one file (RUN_LEDGER).
+        None for a run that wrote no part (a quiet week): its readers find no file and
+        list an empty folder, as cheap as reading one."""
+        parts_by_stage = self._part_ledgers(run_id)
+        if not parts_by_stage:
+            return
         cols: dict[str, list[str]] = {"stage": [], "part": [], "doc_id": [], "scope": []}
-        for stage, parts in self._part_ledgers(run_id).items():
+        for stage, parts in parts_by_stage.items():
             for part, entries in parts:
                 for doc_id, scope in entries:
                     cols["stage"].append(stage)
