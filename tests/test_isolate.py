@@ -195,3 +195,36 @@ def test_workers_are_started_ahead_only_for_a_run_that_surely_has_work(tmp_path)
             started, isolate._idle[:] = list(isolate._idle), kept
         for caller in started:
             caller.close()
+
+
+def test_the_run_command_starts_the_workers_before_it_asks_for_prefect(tmp_path, monkeypatch):
+    """A first run's workers start before the Prefect health check and Prefect's import,
+    so their fork server's preload overlaps them (started after, it held up the first
+    document by about half a second)."""
+    from thresher.flows import cli, isolate
+
+    drive = tmp_path / "drive"
+    drive.mkdir()
+    (drive / "note.md").write_text("# Rota\n\nThe Saturday rota changes in March.\n")
+    seen = []
+
+    class Stop(Exception):
+        pass
+
+    def health_check():
+        seen.append(isolate.idle_count())
+        raise Stop  # the test ends here: no flow runs
+
+    monkeypatch.setattr(cli, "_need_prefect_api", health_check)
+    with isolate._idle_lock:
+        kept, isolate._idle[:] = list(isolate._idle), []
+    try:
+        with pytest.raises(Stop):
+            cli.main(["run", "--source", str(drive), "--store", str(tmp_path / "store"), "--workers", "1",
+                      "--quiet"])
+        assert seen == [1]
+    finally:
+        with isolate._idle_lock:
+            started, isolate._idle[:] = list(isolate._idle), kept
+        for caller in started:
+            caller.close()
