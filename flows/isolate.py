@@ -108,11 +108,19 @@ def _get_context():
         return _context
 
 
+# How long a worker waits for the next call before it takes the moment for its deferred
+# imports (warm.when_idle: pyarrow's dataset layer, 0.56-0.88 s). Between two batches the
+# next document arrives a few tens of ms after the last one's rows are recorded; with no
+# grace the import started there and held that document up (a 0.26-0.32 s gap in a
+# one-worker run of the goals' PDFs). Ours: a few times that hand-over.
+IDLE_GRACE = 0.25
+
+
 def _child_main(conn: Connection) -> None:
     served = False
     while True:
-        if served and not conn.poll(0):
-            _when_idle()  # nothing queued: a moment no document waits for
+        if served and not conn.poll(IDLE_GRACE):
+            _when_idle()  # nothing came: a moment no document waits for
         try:
             msg = conn.recv()
         except EOFError:
