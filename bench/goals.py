@@ -115,7 +115,6 @@ def _worker_gaps(store: Path) -> tuple[float, float]:
     """In a one-worker run: the time from the first document's start to the last one's
     end during which the worker ran no step (from each stage's `started_at` and
     `document_ms`), and the longest such gap, in seconds."""
-    import pyarrow.compute as pc
     import pyarrow.dataset as ds
 
     spans = []

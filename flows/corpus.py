@@ -433,10 +433,12 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
     revised_docs = sorted(d for d in dec_rows if d not in fresh_set)
     revised = _by_chunk(decisions, [i for d in revised_docs for i in dec_rows[d]]) if revised_docs else {}
     if revised_docs:
-        rows_t = _revised_rows(store.current(step.name, kind, revised_docs, include_run=run_id), revised,
-                               store.max_attempts(step.name, kind, revised_docs), live_docs, affected,
-                               {"run_id": run_id, "step_version": spec.version, "config_digest": step.digest,
-                                "started_at": started}, spec.decision_columns)
+        rows_t, ok_changed = _revised_rows(
+            store.current(step.name, kind, revised_docs, include_run=run_id), revised,
+            store.max_attempts(step.name, kind, revised_docs), live_docs,
+            {"run_id": run_id, "step_version": spec.version, "config_digest": step.digest, "started_at": started},
+            spec.decision_columns)
+        affected |= ok_changed
         if rows_t.num_rows != len(revised):
             raise ValueError(f"step {step.name}: decided about {len(revised) - rows_t.num_rows} chunk(s) it was "
                              "not given")
@@ -457,26 +459,24 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
 
 
 def _revised_rows(current: pa.Table, revised: dict[tuple[str, str], dict[str, Any]], attempts: dict[str, int],
-                  live_docs: dict[str, tuple[int, str, int]], affected: set[str], same: dict[str, Any],
-                  decision_columns: tuple[str, ...] | list[str]) -> pa.Table:
+                  live_docs: dict[str, tuple[int, str, int]], same: dict[str, Any],
+                  decision_columns: tuple[str, ...] | list[str]) -> tuple[pa.Table, set[str]]:
     """The stored rows of chunks whose decision changed, decided anew: their stored
-    columns kept as they are in Arrow (text, signatures) and the run's, the outcome's
-    and the decision's columns replaced. Adds to `affected` each document one of whose
-    ok units changed. (Built as Python rows before: 0.85 s of a documentation drive's
+    columns kept as they are in Arrow (text, signatures) and the run's (`same`), the
+    outcome's and the decision's columns replaced; and the documents one of whose ok
+    units changed. (Built as Python rows before: 0.85 s of a documentation drive's
     week, for 179 documents revised.)"""
     keys = list(zip(current.column("doc_id").to_pylist(), current.column("chunk_id").to_pylist()))
     hit = [i for i, k in enumerate(keys) if k in revised]
     t = current.take(pa.array(hit, pa.int64()))
     news = [revised[keys[i]] for i in hit]
     docs = [keys[i][0] for i in hit]
-    for d, old_status, new in zip(docs, t.column("status").to_pylist(), news):
-        if OK in (old_status, new["status"]):
-            # The steps after take a document's ok units: only a document whose ok
-            # units changed is theirs to redo. A unit that stays set aside (a
-            # duplicate whose canonical chunk moved) changes this row alone: on a
-            # documentation drive, 19 changed files revised 937 rows of 226
-            # documents, nearly all of them such pointers.
-            affected.add(d)
+    # The steps after take a document's ok units: only a document whose ok units
+    # changed is theirs to redo. A unit that stays set aside (a duplicate whose
+    # canonical chunk moved) changes this row alone: on a documentation drive, 19
+    # changed files revised 937 rows of 226 documents, nearly all of them such pointers.
+    ok_changed = {d for d, old_status, new in zip(docs, t.column("status").to_pylist(), news)
+                  if OK in (old_status, new["status"])}
     n = t.num_rows
     values: dict[str, list[Any]] = {name: [v] * n for name, v in same.items()}
     values.update(source_path=[live_docs[d][1] for d in docs], status=[r["status"] for r in news],
@@ -487,7 +487,7 @@ def _revised_rows(current: pa.Table, revised: dict[tuple[str, str], dict[str, An
     for name, column in values.items():
         at = t.schema.get_field_index(name)
         t = t.set_column(at, t.schema.field(at), pa.array(column, t.schema.field(at).type))
-    return t
+    return t, ok_changed
 
 
 # ----------------------------------------------------------------------------- incremental pages

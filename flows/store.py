@@ -686,34 +686,50 @@ class Store:
     def run_ledger_rel(self, run_id: str) -> str:
         return f"runs/{run_id}/ledger.parquet"
 
-    def _part_ledgers(self, run_id: str) -> dict[str, list[tuple[str, list[tuple[str, str]]]]]:
-        """stage -> (part name, its (doc_id, scope) entries) for each ledger file the run
-        wrote: the cached ones as they are, the rest read in one parallel scan."""
-        found: dict[str, list[tuple[str, str]]] = {}  # ledger file path -> entries
-        unread: list[str] = []
-        stages: dict[str, list] = {}
-        for info in self._list(f"runs/{run_id}/writes"):
-            if info.type != pafs.FileType.Directory:
-                continue
-            for f in self._list(f"runs/{run_id}/writes/{info.base_name}"):
-                if f.base_name.endswith(".parquet") and not f.base_name.startswith(".tmp-"):
-                    stages.setdefault(info.base_name, []).append(f)
-                    with _LEDGERS_LOCK:
-                        entries = _LEDGER_FILES.get(f.path)
-                    if entries is None:
-                        unread.append(f.path)
-                    else:
-                        found[f.path] = entries
-        if unread:
+    def _ledger_files(self, run_id: str, stage: str) -> list[pafs.FileInfo]:
+        """A run's ledger files of a stage, whole ones only (not a write in progress)."""
+        return [i for i in self._list(f"runs/{run_id}/writes/{stage}")
+                if i.base_name.endswith(".parquet") and not i.base_name.startswith(".tmp-")]
+
+    def _ledger_entries(self, paths: list[str]) -> dict[str, list[tuple[str, str]]]:
+        """(doc_id, scope) entries of each ledger file, cached by path: a ledger file is
+        written once, whole. Files not read yet are read in one parallel scan when there
+        are several (a commit's 942 files: 0.24 s against 0.66 s one by one), else, or if
+        that scan fails, one by one, so a damaged file raises as a read of it does."""
+        out: dict[str, list[tuple[str, str]]] = {}
+        with _LEDGERS_LOCK:
+            for path in paths:
+                if path in _LEDGER_FILES:
+                    out[path] = _LEDGER_FILES[path]
+        unread = [p for p in paths if p not in out]
+        if len(unread) > 1:
             import pyarrow.dataset as ds
 
-            scan = ds.dataset(unread, format="parquet", filesystem=self.fs).scanner(columns=["doc_id", "scope"])
-            for tagged in scan.scan_batches():
-                b = tagged.record_batch
-                found.setdefault(tagged.fragment.path, []).extend(
-                    zip(b.column("doc_id").to_pylist(), b.column("scope").to_pylist()))
-        return {stage: [(f.base_name, found.get(f.path, [])) for f in sorted(files, key=lambda f: f.base_name)]
-                for stage, files in sorted(stages.items())}
+            found: dict[str, list[tuple[str, str]]] = {p: [] for p in unread}
+            try:
+                scan = ds.dataset(unread, format="parquet", filesystem=self.fs).scanner(columns=["doc_id", "scope"])
+                for tagged in scan.scan_batches():
+                    b = tagged.record_batch
+                    found[tagged.fragment.path].extend(zip(b.column("doc_id").to_pylist(),
+                                                           b.column("scope").to_pylist()))
+            except (OSError, pa.ArrowException, KeyError):
+                found = {}
+            out.update(found)
+        for path in (p for p in unread if p not in out):
+            with self.fs.open_input_file(path) as f:
+                t = read_parquet(f, ["doc_id", "scope"])
+            out[path] = list(zip(t.column("doc_id").to_pylist(), t.column("scope").to_pylist()))
+        with _LEDGERS_LOCK:
+            for path in unread:
+                _LEDGER_FILES[path] = out[path]
+        return out
+
+    def _part_ledgers(self, run_id: str) -> dict[str, list[tuple[str, list[tuple[str, str]]]]]:
+        """stage -> (part name, its (doc_id, scope) entries) for each ledger file the run wrote."""
+        stages = {info.base_name: sorted(self._ledger_files(run_id, info.base_name), key=lambda f: f.base_name)
+                  for info in self._list(f"runs/{run_id}/writes") if info.type == pafs.FileType.Directory}
+        entries = self._ledger_entries([f.path for files in stages.values() for f in files])
+        return {stage: [(f.base_name, entries[f.path]) for f in files] for stage, files in sorted(stages.items())}
 
     def _write_run_ledger(self, run_id: str) -> None:
         """runs/<run_id>/ledger.parquet: the run's per-part ledgers in one file (RUN_LEDGER).
@@ -769,8 +785,7 @@ class Store:
             with _LEDGERS_LOCK:
                 # A stage the run wrote nothing at has no entry: an empty ledger.
                 return _LEDGERS.setdefault(key, Ledger({}, []))
-        infos = [i for i in self._list(f"runs/{run_id}/writes/{stage}")
-                 if i.base_name.endswith(".parquet") and not i.base_name.startswith(".tmp-")]
+        infos = self._ledger_files(run_id, stage)
         # A running run's ledger grows by whole files: while the listing is the same,
         # so is the ledger (asked at every stage of every read, it was rebuilt each time).
         names = tuple(sorted(i.base_name for i in infos))
@@ -780,19 +795,11 @@ class Store:
             return running[1]
         files: dict[str, list[str]] = {}
         full: list[str] = []
+        # The running run's ledger files are read once each, as they appear.
+        entries_of = self._ledger_entries([i.path for i in infos])
         for info in infos:
-            name = info.base_name
-            # A ledger file is written once, whole; the running run's are read once each.
-            with _LEDGERS_LOCK:
-                entries = _LEDGER_FILES.get(info.path)
-            if entries is None:
-                with self.fs.open_input_file(info.path) as f:
-                    t = read_parquet(f, ["doc_id", "scope"])
-                entries = list(zip(t.column("doc_id").to_pylist(), t.column("scope").to_pylist()))
-                with _LEDGERS_LOCK:
-                    _LEDGER_FILES[info.path] = entries
-            part_file = self.path(f"stages/{stage}/{run_id}/{name}")
-            for doc_id, scope in entries:
+            part_file = self.path(f"stages/{stage}/{run_id}/{info.base_name}")
+            for doc_id, scope in entries_of[info.path]:
                 files.setdefault(doc_id, []).append(part_file)
                 if scope == "document":
                     full.append(doc_id)
