@@ -64,9 +64,6 @@ class CorpusResult:
     seconds: float
     read: int | None = None  # documents whose units were loaded (a plain step)
     notes: list[str] = field(default_factory=list)  # lines for the run's log (an incremental page step)
-    # Documents whose rows here changed only in units set aside before and after (a
-    # duplicate's new duplicate_of): nothing handed off from them changed.
-    set_aside_docs: set[str] = field(default_factory=set)
 
 
 def live_inputs(live_docs: dict[str, tuple[int, str, int]]) -> bytes:
@@ -443,7 +440,7 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
             raise ValueError(f"step {step.name}: decided about {len(revised) - rows_t.num_rows} chunk(s) it was "
                              "not given")
         store.write_stage_part(step.name, run_id, f"corpus-{part:05d}", rows_t,
-                               [(d, "units") for d in revised_docs])
+                               [(d, "units" if d in ok_changed else schema.SET_ASIDE) for d in revised_docs])
         written += rows_t.num_rows
 
     # Counts over every live chunk the stage now holds: stored ones as decided.
@@ -454,8 +451,7 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
         for d, c, s in zip(stored_docs, stored_ids, stored_status):
             new = revised.get((d, c))
             counts[new["status"] if new is not None else s] += 1
-    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0,
-                        set_aside_docs=set(revised_docs) - affected)
+    return CorpusResult(step.name, affected, dict(counts), written, time.perf_counter() - t0)
 
 
 def _revised_rows(current: pa.Table, revised: dict[tuple[str, str], dict[str, Any]], attempts: dict[str, int],

@@ -419,8 +419,7 @@ def _counts_of(store: Store, rel: str) -> tuple[Counter, Counter]:
 
 def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
              order: list[str], old: pa.Table, copies: dict[str, list[str]],
-             previous_live: dict[str, str | None] | None,
-             set_aside_only: set[str] = frozenset()) -> tuple[list[str], int] | None:
+             previous_live: dict[str, str | None] | None) -> tuple[list[str], int] | None:
     """The documents whose hand-off rows must come from the stages, in path order, and
     how many of them for another reason than access; None when the latest run did
     not record what that takes (then everything is rebuilt).
@@ -430,9 +429,8 @@ def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[s
     documents included), or its live path or other paths change (source_path,
     source_paths). A live document the previous hand-off did not hold is read when it
     was withheld, not live or at another path then; one that was live at the same path
-    and allowed had no live chunk. `set_aside_only`: documents the run wrote only in
-    rows of units that were not handed off before and are not now (the chain says so),
-    which leave the document's hand-off rows as they were.
+    and allowed had no live chunk. A document the run wrote only in rows of units not
+    handed off before nor now (the ledger's schema.SET_ASIDE) keeps its hand-off rows.
     """
     latest = store.latest_run()
     manifest = latest.manifest if latest is not None else {}
@@ -440,7 +438,7 @@ def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[s
     withheld_before = manifest.get("withheld")
     if copies_before is None or withheld_before is None or previous_live is None:
         return None
-    written = set().union(*(store.run_docs(s.name, run_id) for s in definition.steps)) - set_aside_only
+    written = set().union(*(store.run_docs(s.name, run_id, handed_off=True) for s in definition.steps))
     held = highest_per_key(old.column("doc_id"), old.column("source_path"), lowest=True)
     out, not_access = [], 0
     for d in order:
@@ -457,8 +455,7 @@ def _to_read(definition: FlowDefinition, store: Store, run_id: str, live: dict[s
 def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
                   access: Access, chunks_rel: str, digests_rel: str, changes_rel: str,
                   basis: str = "", copies: dict[str, list[str]] | None = None,
-                  previous_live: dict[str, str | None] | None = None,
-                  set_aside_only: set[str] = frozenset()) -> HandoffResult:
+                  previous_live: dict[str, str | None] | None = None) -> HandoffResult:
     """Write the hand-off, its digests and the change set to the given (staged) paths.
 
     `copies` (doc_id -> the document's other paths) fills each chunk's source_paths.
@@ -480,7 +477,7 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     previous_rel, previous_basis = _previous_basis(store) if basis else (None, None)
     reading = None
     if previous_rel is not None and previous_basis == basis:
-        reading = _to_read(definition, store, run_id, live, order, old, copies, previous_live, set_aside_only)
+        reading = _to_read(definition, store, run_id, live, order, old, copies, previous_live)
         if reading is not None and len(reading[0]) * 2 > len(order):
             reading = None  # reading most of it anyway: a rebuild has no copy to make
     if reading is not None and not reading[0] and _unchanged(old, order, access):

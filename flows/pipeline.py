@@ -248,9 +248,6 @@ class _Progress:
     failures: list[tuple[str, str, str]] = field(default_factory=list)
     step_seconds: float = 0.0
     corpus_inputs: dict[str, str] = field(default_factory=dict)  # stage -> inputs_key
-    # Documents written this run only in rows of units set aside before and after: the
-    # hand-off need not read them (their hand-off rows are as published).
-    set_aside_only: set[str] = field(default_factory=set)
 
     def add(self, stage: str, by_status: dict[str, int]) -> None:
         bucket = self.counts.setdefault(stage, {})
@@ -301,7 +298,6 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
                                          plan.live, rewrite | affected, groups).result()
                 affected |= res.affected_docs
-                acc.set_aside_only |= res.set_aside_docs
                 acc.add(res.stage, res.counts)
                 within = "" if groups is None else f"; {res.read} documents read, of the {len(groups)} group(s) that changed"
                 _emit(progress, f"{label}: {sum(res.counts.values())} units compared, "
@@ -370,7 +366,6 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                                     f"{len(inside)} of them read")
             _live(progress, "finish", label)
         timings[label] = time.perf_counter() - t0
-    acc.set_aside_only -= processed | affected
     return acc
 
 
@@ -439,7 +434,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         handoff = build_handoff(definition, store, run_id, plan.live, plan.access, f"{staged}/chunks.parquet",
                                 f"{staged}/digests.parquet", f"{staged}/changes.parquet",
                                 basis=handoff_basis(definition), copies=plan.copies,
-                                previous_live=plan.previous_live, set_aside_only=acc.set_aside_only)
+                                previous_live=plan.previous_live)
         publish = {"staged/chunks.parquet": "handoff/chunks.parquet",
                    "staged/digests.parquet": "handoff/digests.parquet",
                    "staged/changes.parquet": f"handoff/changes/{run_id}.parquet"}

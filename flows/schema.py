@@ -317,10 +317,13 @@ WRITES = pa.schema(
         pa.field("stage", pa.string(), nullable=False),
         pa.field("doc_id", pa.string(), nullable=False),
         # "document": every unit of the document at this stage was written (older
-        # rows of that document stop being current); "units": only some units were.
+        # rows of that document stop being current); "units": only some units were;
+        # SET_ASIDE: only some units, each set aside before and after the write (a
+        # duplicate's new duplicate_of), so nothing the hand-off holds of it changed.
         pa.field("scope", pa.string(), nullable=False),
     ]
 )
+SET_ASIDE = "units-set-aside"
 
 # A committed run's ledgers, every stage in one file (runs/<run_id>/ledger.parquet),
 # written at its commit from its per-part ledgers (WRITES): a new process reads one file

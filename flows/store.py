@@ -145,10 +145,25 @@ def _latest_attempts(rows: pa.Table, seq: dict[str, int], floors: dict[str, int]
 class Ledger:
     files: dict[str, list[str]]  # doc_id -> part files holding its rows
     full: list[str]  # doc_ids the run rewrote whole at the stage
+    set_aside: frozenset = frozenset()  # doc_ids whose every write there was schema.SET_ASIDE
     full_set: frozenset = frozenset()
 
     def __post_init__(self):
         self.full_set = frozenset(self.full)
+
+    @classmethod
+    def of(cls, entries: Iterable[tuple[str, str, str]]) -> "Ledger":
+        """From (doc_id, scope, part file) entries, in the order the parts were written."""
+        files: dict[str, list[str]] = {}
+        full: list[str] = []
+        handed: set[str] = set()
+        for doc_id, scope, part_file in entries:
+            files.setdefault(doc_id, []).append(part_file)
+            if scope == "document":
+                full.append(doc_id)
+            if scope != schema.SET_ASIDE:
+                handed.add(doc_id)
+        return cls(files, full, frozenset(files.keys() - handed))
 
 
 @dataclass
@@ -759,16 +774,13 @@ class Store:
             with _LEDGERS_LOCK:
                 _RUN_LEDGER_READ[(self.base, run_id)] = False
             return False
-        per: dict[str, tuple[dict[str, list[str]], list[str]]] = {}
+        per: dict[str, list[tuple[str, str, str]]] = {}
         for stage, part, doc_id, scope in zip(*(t.column(c).to_pylist() for c in ("stage", "part", "doc_id", "scope"))):
-            files, full = per.setdefault(stage, ({}, []))
-            files.setdefault(doc_id, []).append(self.path(f"stages/{stage}/{run_id}/{part}"))
-            if scope == "document":
-                full.append(doc_id)
+            per.setdefault(stage, []).append((doc_id, scope, self.path(f"stages/{stage}/{run_id}/{part}")))
         with _LEDGERS_LOCK:
             _RUN_LEDGER_READ[(self.base, run_id)] = True
-            for stage, (files, full) in per.items():
-                _LEDGERS.setdefault((self.base, stage, run_id), Ledger(files, full))
+            for stage, entries in per.items():
+                _LEDGERS.setdefault((self.base, stage, run_id), Ledger.of(entries))
         return True
 
     def _ledger(self, stage: str, run_id: str) -> "Ledger":
@@ -793,17 +805,10 @@ class Store:
             running = _RUNNING_LEDGERS.get(key)
         if running is not None and running[0] == names:
             return running[1]
-        files: dict[str, list[str]] = {}
-        full: list[str] = []
         # The running run's ledger files are read once each, as they appear.
         entries_of = self._ledger_entries([i.path for i in infos])
-        for info in infos:
-            part_file = self.path(f"stages/{stage}/{run_id}/{info.base_name}")
-            for doc_id, scope in entries_of[info.path]:
-                files.setdefault(doc_id, []).append(part_file)
-                if scope == "document":
-                    full.append(doc_id)
-        ledger = Ledger(files, full)
+        ledger = Ledger.of((doc_id, scope, self.path(f"stages/{stage}/{run_id}/{info.base_name}"))
+                           for info in infos for doc_id, scope in entries_of[info.path])
         committed = self._committed(run_id)
         with _LEDGERS_LOCK:
             if committed:
@@ -813,9 +818,12 @@ class Store:
                 _RUNNING_LEDGERS[key] = (names, ledger)
         return ledger
 
-    def run_docs(self, stage: str, run_id: str) -> set[str]:
-        """The documents a run (running or committed) wrote rows of at a stage."""
-        return set(self._ledger(stage, run_id).files)
+    def run_docs(self, stage: str, run_id: str, handed_off: bool = False) -> set[str]:
+        """The documents a run (running or committed) wrote rows of at a stage; with
+        `handed_off`, less those it wrote there only as schema.SET_ASIDE (nothing of
+        them the hand-off holds changed there)."""
+        ledger = self._ledger(stage, run_id)
+        return set(ledger.files) - ledger.set_aside if handed_off else set(ledger.files)
 
     def _stage_files(self, stage: str, seq: dict[str, int], doc_ids: Iterable[str] | None = None,
                      floors: dict[str, int] | None = None) -> list[str]:
