@@ -31,7 +31,7 @@ from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
 from thresher.flows.discover import known_files, scan
 from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run, unit_kind
-from thresher.flows.isolate import limit_workers
+from thresher.flows.isolate import limit_workers, prewarm
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
 from thresher.flows.plan import Plan, add_members, make_plan
@@ -178,8 +178,11 @@ def _versions() -> dict[str, str]:
 
 
 def _task_runner(kind: str, workers: int, address: str | None = None):
+    # A pool process or Dask worker is started for the run's first batches, and its
+    # warm worker (the batches' documents run there) starts preloading at once, beside
+    # the pool process's own start of its first task, not when that task asks for it.
     if kind == "processes":
-        return ProcessPoolTaskRunner(max_workers=workers)
+        return ProcessPoolTaskRunner(max_workers=workers, initializer=prewarm, initargs=(1,))
     if kind == "dask":
         from prefect_dask import DaskTaskRunner
 
@@ -192,7 +195,8 @@ def _task_runner(kind: str, workers: int, address: str | None = None):
         dask.config.set({"distributed.worker.daemon": False})
         return DaskTaskRunner(cluster_class="distributed.LocalCluster",
                               cluster_kwargs={"n_workers": workers, "threads_per_worker": 1, "processes": True,
-                                              "dashboard_address": None, "host": "127.0.0.1"})
+                                              "dashboard_address": None, "host": "127.0.0.1",
+                                              "preload": ["thresher.flows.dask_setup"]})
     # One thread more than warm workers: the next batch starts (its task run, its first
     # document read) while the workers are busy, and waits for one (isolate.take_worker).
     return ThreadPoolTaskRunner(max_workers=local_workers(kind, workers) + 1)
