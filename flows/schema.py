@@ -12,6 +12,8 @@ from functools import lru_cache
 
 import pyarrow as pa
 
+from thresher.flows import arrow_setup  # noqa: F401 - before any table is built: no pandas import
+
 TS = pa.timestamp("us", tz="UTC")
 STR_LIST = pa.list_(pa.string())
 

@@ -12,7 +12,8 @@ from thresher.steps import clean, language, personal, split, tokens  # noqa: F40
 
 
 # What a worker's first read of stored inputs imports (inputs.read_units): pyarrow's
-# dataset layer, which imports pandas (0.56-0.88 s in a fresh process). Not in the
+# dataset layer, which imported pandas with it (0.56-0.88 s in a fresh process; since
+# flows/arrow_setup.py keeps pandas out, about 0.01 s after the preload). Not in the
 # preload, which holds up a run's first document (its first document waited 1.4-1.8 s
 # against 0.1-1.4 s without it, bench runners, load 1.2-2.1); a worker imports it the
 # first time it waits for work after a call (isolate._child_main), with the default

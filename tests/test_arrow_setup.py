@@ -1,0 +1,47 @@
+"""A thresher process reads and writes its tables without importing pandas, and pyarrow
+still converts pandas objects for code that uses them (flows/arrow_setup.py)."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import textwrap
+
+
+def _run(code: str) -> str:
+    # A new interpreter: pandas may be imported in this one already.
+    out = subprocess.run([sys.executable, "-c", textwrap.dedent(code)], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    return out.stdout.strip()
+
+
+def test_a_store_round_trip_does_not_import_pandas(tmp_path):
+    got = _run(f"""
+        import sys
+        import pyarrow as pa
+        from thresher.flows.store import Store
+        import pyarrow.dataset  # noqa: F401 - as a worker imports it when idle (flows/warm.py)
+
+        store = Store({str(tmp_path)!r})
+        assert store.catalog().num_rows == 0
+        store.write_table("t.parquet", pa.table({{"doc_id": ["a", "b"]}}))
+        assert store.read_table("t.parquet").column("doc_id").to_pylist() == ["a", "b"]
+        print("pandas" in sys.modules)
+    """)
+    assert got == "False"
+
+
+def test_pandas_objects_still_convert_both_ways():
+    got = _run("""
+        from thresher.flows import schema  # noqa: F401 - pyarrow's look for pandas answered
+        import pandas as pd
+        import pyarrow as pa
+
+        df = pd.DataFrame({"chunk": ["a", "b"], "tokens": [3, 4]})
+        t = pa.table(df)
+        assert pa.Table.from_pandas(df).num_rows == 2
+        assert str(pa.array(df["tokens"]).type) == "int64"
+        back = t.to_pandas()
+        print(type(back).__name__, back["tokens"].sum())
+    """)
+    assert got == "DataFrame 7"
