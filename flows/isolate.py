@@ -108,19 +108,8 @@ def _get_context():
         return _context
 
 
-# How long a worker waits for the next call before it takes the moment for its deferred
-# imports (warm.when_idle: pyarrow's dataset layer, 0.56-0.88 s). Between two batches the
-# next document arrives a few tens of ms after the last one's rows are recorded; with no
-# grace the import started there and held that document up (a 0.26-0.32 s gap in a
-# one-worker run of the goals' PDFs). Ours: a few times that hand-over.
-IDLE_GRACE = 0.25
-
-
 def _child_main(conn: Connection) -> None:
-    served = False
     while True:
-        if served and not conn.poll(IDLE_GRACE):
-            _when_idle()  # nothing came: a moment no document waits for
         try:
             msg = conn.recv()
         except EOFError:
@@ -128,7 +117,6 @@ def _child_main(conn: Connection) -> None:
         if msg is None:
             return
         fn, args = msg
-        served = True
         conn.send(("started",))  # the document is unpacked here: its clock starts now
         try:
             result = fn(*args)
@@ -141,14 +129,6 @@ def _child_main(conn: Connection) -> None:
         except BaseException as exc:  # noqa: BLE001 - reported to the parent as data
             conn.send(("error", type(exc).__name__, str(exc),
                        "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))))
-
-
-def _when_idle() -> None:
-    try:
-        from thresher.flows.warm import when_idle
-    except ImportError:  # the preload failed: the step reports its own import error
-        return
-    when_idle()
 
 
 class IsolatedCaller:
