@@ -217,7 +217,7 @@ def collision_probability(s, bands: int, rows: int):
 
 
 @lru_cache(maxsize=64)
-@lru_cache(maxsize=16)  # a pure function of the parameters, asked twice a run (sketch, decide): 0.02-0.04 s each
+@lru_cache(maxsize=16)  # a pure function of the parameters, asked twice a run (sketch, decide): 0.05 s each
 def choose_bands(threshold: float, num_perm: int, false_negative_weight: float = 0.5) -> tuple[int, int]:
     """Bands b and rows r (b*r <= num_perm) that minimise the weighted error area.
 

@@ -20,7 +20,7 @@ def test_a_store_round_trip_does_not_import_pandas(tmp_path):
         import sys
         import pyarrow as pa
         from thresher.flows.store import Store
-        import pyarrow.dataset  # noqa: F401 - as a worker imports it when idle (flows/warm.py)
+        import pyarrow.dataset  # noqa: F401 - after the store, as a worker's preload imports it (flows/warm.py)
 
         store = Store({str(tmp_path)!r})
         assert store.catalog().num_rows == 0
