@@ -160,17 +160,18 @@ def _decision(row: dict[str, Any], payload_names: list[str]) -> tuple:
 
 def run_corpus_step(definition: FlowDefinition, store: Store, run_id: str, index: int,
                     live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str],
-                    groups: set[str] | None = None) -> CorpusResult:
+                    groups: set[str] | None = None, sketched: list[pa.Table] | None = None) -> CorpusResult:
     """Run the corpus-wide step at `index` over all live documents.
 
     live_docs maps doc_id -> (rank, source path). Documents in rewrite_docs get every
     unit written (their input changed this run); for the rest only units whose
     decision changed are written, so unchanged weeks write next to nothing.
+    `sketched`: an incremental step's sketches the workers made this run (execute.BatchRunner).
     """
     t0 = time.perf_counter()
     step = definition.steps[index]
     if isinstance(step.spec, IncrementalCorpusSpec):
-        return _run_incremental(definition, store, run_id, index, live_docs, rewrite_docs)
+        return _run_incremental(definition, store, run_id, index, live_docs, rewrite_docs, sketched)
     if isinstance(step.spec, IncrementalPageSpec):
         return _run_incremental_pages(definition, store, run_id, index, live_docs, rewrite_docs, groups)
     kind = unit_kind(step)
@@ -306,6 +307,39 @@ def _check_sketch(step: ResolvedStep, table: pa.Table, docs: list[DocChunks]) ->
     return table.select(need).cast(pa.schema([sch.field(c) for c in need]))
 
 
+@dataclass
+class _Made:
+    """Sketches the workers made (segment.sketch_here), one table, with each document's rows."""
+
+    table: pa.Table | None = None
+    rows: dict[str, list[int]] = field(default_factory=dict)
+    chunk_ids: list[str] = field(default_factory=list)
+
+    @classmethod
+    def of(cls, tables: list[pa.Table] | None) -> "_Made":
+        if not tables:
+            return cls()
+        table = pa.concat_tables(tables)
+        return cls(table, _rows_by_doc(table), table.column("chunk_id").to_pylist())
+
+    def sketch(self, step: ResolvedStep, docs: list[DocChunks], ctx: StepContext) -> pa.Table:
+        """The sketch of these documents: a worker's where it covers exactly the document's
+        ok chunks as loaded here (not a document sketched twice, or whose chunks the store
+        holds otherwise), the step's own for the rest."""
+        take: list[int] = []
+        todo: list[DocChunks] = []
+        for doc in docs:
+            rows = self.rows.get(doc.doc_id)
+            if rows is not None and [self.chunk_ids[i] for i in rows] == [c.chunk_id for c in doc.chunks if c.ok]:
+                take.extend(rows)
+            else:
+                todo.append(doc)
+        parts = [self.table.take(pa.array(take, pa.int64()))] if take else []
+        if todo:
+            parts.append(step.spec.sketch(todo, step.params, ctx))
+        return parts[0] if len(parts) == 1 else pa.concat_tables(parts, promote_options="default")
+
+
 def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str, int]], fresh: bool) -> pa.Table:
     """Add each row's document rank, current path and its modification time, and
     whether it is fresh."""
@@ -329,7 +363,8 @@ def _rows_by_doc(table: pa.Table) -> dict[str, list[int]]:
 
 
 def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, index: int,
-                     live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str]) -> CorpusResult:
+                     live_docs: dict[str, tuple[int, str, int]], rewrite_docs: set[str],
+                     sketched: list[pa.Table] | None = None) -> CorpusResult:
     t0 = time.perf_counter()
     step = definition.steps[index]
     spec: IncrementalCorpusSpec = step.spec  # type: ignore[assignment]
@@ -352,12 +387,14 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
     # With a single batch (the usual week) its chunks are kept for writing the rows;
     # with more they are let go and read again, so memory holds one batch at a time.
     kept_batch: tuple[list[DocChunks], dict[str, str]] | None = None
+    made = _Made.of(sketched)
     for batch in batches:
         docs, stages = _load_docs(store, definition, index, batch, live_docs, run_id)
         if docs:
-            sketches.append(_check_sketch(step, spec.sketch(docs, step.params, ctx), docs))
+            sketches.append(_check_sketch(step, made.sketch(step, docs, ctx), docs))
         if len(batches) == 1:
             kept_batch = (docs, stages)
+    del made
     parts = [_with_place(t, live_docs, True) for t in sketches]
     if kept.num_rows:
         parts.append(_with_place(kept, live_docs, False))

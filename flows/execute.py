@@ -17,6 +17,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
+import pyarrow as pa
+
 from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
 from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_units
@@ -24,8 +26,10 @@ from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, R
                                     claim_waiting, give_back, idle_count, isolation_available, prewarm,
                                     take_worker)
 from thresher.flows.rows import RowContext, rows_to_table, to_row
-from thresher.flows.segment import PassedOn, StepCall, StepDone, failed_document_unit, order_key, run_segment
+from thresher.flows.segment import (SKETCH_TAG, PassedOn, Sketched, StepCall, StepDone, failed_document_unit,
+                                    order_key, run_segment)
 from thresher.flows.store import Store
+from thresher.steps.incremental import IncrementalCorpusSpec
 from thresher.steps.spec import StepContext
 from thresher.steps.units import DOCUMENT_LOCATOR, OK, Chunk, Page, Source
 
@@ -91,6 +95,9 @@ class BatchResult:
     # Documents that went on past the segment's corpus step (it passes them by): the
     # document segment after that step has run for them already.
     through: list[str] = field(default_factory=list)
+    # Sketches the workers made for the incremental corpus step right after the
+    # segment: step index -> one table for the batch (corpus.run_corpus_step takes them).
+    sketches: dict[int, Any] = field(default_factory=dict)
 
 
 def now_utc() -> datetime:
@@ -246,6 +253,7 @@ class BatchRunner:
         # A batch waiting for a worker whose first call this batch queued in its own
         # (isolate.claim_waiting): the worker goes to it.
         self._promised: Any = None
+        self._sketch: StepCall | None = None  # the sketch call of the batch's documents, if any
 
     def _caller_for(self, step: ResolvedStep) -> IsolatedCaller | None:
         if step.spec.time_limit is None or step.spec.time_limit(step.params) is None:
@@ -260,6 +268,7 @@ class BatchRunner:
         t0 = time.perf_counter()
         result = BatchResult(part=job.part, documents=len(job.docs))
         self._force = job.force
+        self._sketch = self._sketch_call(job.segment[-1] + 1) if job.segment else None
         rows: dict[str, list[dict[str, Any]]] = defaultdict(list)
         writes: dict[str, list[tuple[str, str]]] = defaultdict(list)
         # Documents that start past the first step read their input from the store.
@@ -310,6 +319,7 @@ class BatchRunner:
             unit = unit_kind(self.definition.step(stage))
             self.store.write_stage_part(stage, self.run_id, job.part, rows_to_table(stage, unit, stage_rows),
                                         writes[stage])
+        result.sketches = {i: pa.concat_tables(tables) for i, tables in result.sketches.items()}
         result.seconds = time.perf_counter() - t0
         return result
 
@@ -379,8 +389,7 @@ class BatchRunner:
         what, inputs, _ = self._prepared[1]
         if what != "run":
             return None
-        calls = [self._step_call(i) for i in indices]
-        return run_segment, (calls, inputs, doc.doc_id, doc.source_path, False), doc
+        return run_segment, (self._calls(doc, indices), inputs, doc.doc_id, doc.source_path, False), doc
 
     def _queue_following(self) -> tuple | None:
         """Once the worker has started a document: the batch's next one, made ready and
@@ -450,6 +459,26 @@ class BatchRunner:
                             barrier=True)
         return StepCall(i, step.name, spec.produces, spec.run, step.params, frozenset(spec.formats or ()), limit)
 
+    def _sketch_call(self, index: int) -> StepCall | None:
+        """A sketch call for the step at `index` when it is an incremental corpus step:
+        its sketch depends on one document's chunks alone, so the worker that made them
+        makes it (segment.sketch_here), in parallel, instead of the corpus step, serial."""
+        steps = self.definition.steps
+        if index >= len(steps) or not isinstance(steps[index].spec, IncrementalCorpusSpec):
+            return None
+        step = steps[index]
+        return StepCall(index, step.name, step.spec.produces, step.spec.sketch, step.params,
+                        frozenset(step.spec.formats or ()), None, sketch=True)
+
+    def _calls(self, doc: DocJob, indices: list[int]) -> list[StepCall]:
+        """The worker's calls for these steps of the document, and the sketch after the
+        segment's last step (not for a re-run of chosen units: those chunks are merged
+        with stored ones first)."""
+        calls = [self._step_call(i) for i in indices]
+        if self._sketch is not None and doc.only is None and indices and indices[-1] + 1 == self._sketch.index:
+            calls.append(self._sketch)
+        return calls
+
     def _run_in_worker(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
                        rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
                        result: BatchResult) -> None:
@@ -461,7 +490,7 @@ class BatchRunner:
         caller = self._caller
         pos = 0
         while pos < len(indices):
-            calls = [self._step_call(i) for i in indices[pos:]]
+            calls = self._calls(doc, indices[pos:])
             last: tuple[StepDone, list[Unit], str] | None = None
             first_out: list[Unit] | None = None
             # The locators of the units the running step reads: a failure's parents.
@@ -477,6 +506,9 @@ class BatchRunner:
                         continue
                     if isinstance(done, PassedOn):
                         result.through.append(doc.doc_id)
+                        continue
+                    if isinstance(done, Sketched):
+                        result.sketches.setdefault(done.index, []).append(done.table)
                         continue
                     step = steps[done.index]
                     out, scope = done.units, "document"
@@ -505,21 +537,22 @@ class BatchRunner:
                 self._run_here(doc, indices[pos:], inputs, prev, rows, writes, result)
                 return
             except (TimeLimitExceeded, ChildCrashed, RemoteError) as exc:
-                if isinstance(inputs, StoredInputs) and last is None and caller.current is None:
-                    # The worker failed reading the inputs, before any step: read them
-                    # here, so a damaged store fails the batch as a read here would.
-                    loaded = load_units(self.store, self.definition, indices[0], [doc.doc_id], self.run_id)
-                    got = loaded.get(doc.doc_id)
-                    if got is None or not got.units:
-                        return
-                    inputs, prev = got.units, got.stage
-                    continue
-                index = caller.current if isinstance(caller.current, int) else calls[0].index
-                step = steps[index]
-                ms = (exc.taken if isinstance(exc, TimeLimitExceeded) else time.perf_counter() - t_mark) * 1000.0
-                self._record(doc, step, prev, [_worker_failure(step, exc, parents)], now_utc(), ms,
-                             rows, writes, result)
-                return
+                if caller.current != SKETCH_TAG:  # (lost while sketching: every step's rows are in hand)
+                    if isinstance(inputs, StoredInputs) and last is None and caller.current is None:
+                        # The worker failed reading the inputs, before any step: read them
+                        # here, so a damaged store fails the batch as a read here would.
+                        loaded = load_units(self.store, self.definition, indices[0], [doc.doc_id], self.run_id)
+                        got = loaded.get(doc.doc_id)
+                        if got is None or not got.units:
+                            return
+                        inputs, prev = got.units, got.stage
+                        continue
+                    index = caller.current if isinstance(caller.current, int) else calls[0].index
+                    step = steps[index]
+                    ms = (exc.taken if isinstance(exc, TimeLimitExceeded) else time.perf_counter() - t_mark) * 1000.0
+                    self._record(doc, step, prev, [_worker_failure(step, exc, parents)], now_utc(), ms,
+                                 rows, writes, result)
+                    return
             if first_out is not None:
                 self._run_members(doc, first_out, indices, rows, writes, result)
             if last is None or not last[0].paused:

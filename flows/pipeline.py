@@ -126,9 +126,10 @@ def process_batch(job: BatchJob, data_json: str, origin: str) -> BatchResult:
 
 @task(name="corpus-step", cache_policy=NO_CACHE)
 def corpus_step(run_id: str, store_root: str, data_json: str, origin: str, index: int,
-                live: dict[str, tuple[int, str, int]], rewrite: set[str], groups: set[str] | None = None):
+                live: dict[str, tuple[int, str, int]], rewrite: set[str], groups: set[str] | None = None,
+                sketched: list | None = None):
     result = run_corpus_step(_definition(data_json, origin), Store(store_root), run_id, index, live, rewrite,
-                             groups)
+                             groups, sketched)
     logger = get_run_logger()
     logger.info("%s: %s over the corpus, %d rows written", result.stage, result.counts, result.rows_written)
     for note in result.notes:
@@ -287,6 +288,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
     # going on past a corpus step there.
     chosen = any(j.only is not None for j in plan.jobs)
     passed_on: set[str] = set()  # documents whose next segment ran with the one before
+    sketched: dict[int, list] = {}  # corpus step index -> the sketch tables the workers made for it
     unwalked = _unwalked(model.runner.kind)
     for pos, (kind, indices) in enumerate(segments):
         t0 = time.perf_counter()
@@ -294,6 +296,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
         if kind == "corpus":
             index = indices[0]
             step = definition.steps[index]
+            made = sketched.pop(index, None)
             rewrite = set(processed) | {j.doc_id for j in plan.jobs if j.start <= index}
             if live_of is not plan.live:  # the live set is final once the first segment found members
                 live_of, live_enc = plan.live, live_inputs(plan.live)
@@ -310,7 +313,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 # corpus steps in a row have no document segment between them).
                 res = corpus_step.submit(run_id, store_root, data_json, definition.origin, index,
                                          unwalked(plan.live), unwalked(rewrite | affected),
-                                         unwalked(groups)).result()
+                                         unwalked(groups), unwalked(made)).result()
                 affected |= res.affected_docs
                 acc.add(res.stage, res.counts)
                 within = "" if groups is None else f"; {res.read} documents read, of the {len(groups)} group(s) that changed"
@@ -357,6 +360,8 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
                 res: BatchResult = fut.result()
                 found += res.members
                 passed_on.update(res.through)
+                for at, table in res.sketches.items():
+                    sketched.setdefault(at, []).append(table)
                 done += 1
                 acc.step_seconds += res.step_seconds
                 acc.failures.extend(res.failures)

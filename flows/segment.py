@@ -20,7 +20,7 @@ from thresher.flows.inputs import ReadFrom, StoredInputs, order_key, resolve
 from thresher.flows.isolate import Clock
 from thresher.flows.rows import unit_id
 from thresher.steps.spec import StepContext, StepParams
-from thresher.steps.units import DOCUMENT_LOCATOR, Chunk, Page, Source, clear_stale_count
+from thresher.steps.units import DOCUMENT_LOCATOR, Chunk, DocChunks, Page, Source, clear_stale_count
 
 Unit = Page | Chunk
 
@@ -40,6 +40,10 @@ class StepCall:
     # of its units is of those formats (then the step passes it by, as it passes by
     # any document of other formats); otherwise it stops here for the corpus step.
     barrier: bool = False
+    # The sketch of an incremental corpus step (steps/incremental.py) that comes right
+    # after the segment: `run` is the step's sketch, made here on the chunks the segment
+    # just made, so that the corpus step, serial in the flow's process, need not.
+    sketch: bool = False
 
 
 @dataclass
@@ -51,6 +55,20 @@ class StepDone:
     started: datetime
     ms: float
     paused: bool = False  # the worker stopped here so the parent can act first
+
+
+@dataclass
+class Sketched:
+    """A sketch call's table for the document (doc_id, chunk_id, chunk_index and the
+    step's sketch columns, one row per ok chunk)."""
+
+    index: int
+    table: Any
+
+
+# The clock tag of a sketch call: a worker lost while sketching costs the document
+# nothing, as the corpus step then sketches it itself.
+SKETCH_TAG = "sketch"
 
 
 @dataclass
@@ -81,6 +99,20 @@ def call_here(name: str, kind: str, run: Callable[..., list], params: StepParams
         return [failed_document_unit(kind, f"{name} failed: {type(exc).__name__}: {exc}", exc, parents)]
 
 
+def sketch_here(call: StepCall, chunks: list, doc_id: str, source_path: str) -> Any:
+    """The sketch of one document's ok chunks, or None when there is none to give: the
+    corpus step then sketches the document itself, and meets any error there."""
+    if not chunks or not all(isinstance(u, Chunk) for u in chunks):
+        return None
+    # A sketch reads the document's id and chunks only (IncrementalCorpusSpec), so
+    # rank and modification time, which the worker does not know, are left at 0.
+    ctx = StepContext(doc_id=doc_id, source_path=source_path, encoding=get_encoding)
+    try:
+        return call.run([DocChunks(doc_id, source_path, 0, chunks)], call.params, ctx)
+    except Exception:  # noqa: BLE001 - not this document's failure: the corpus step retries it
+        return None
+
+
 def passes_by(call: StepCall, units: Any) -> bool:
     """A format-limited step writes nothing for a document of other formats."""
     return call.index > 0 and bool(call.formats) and not any(u.format in call.formats for u in units)
@@ -103,6 +135,13 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
         yield ReadFrom(loaded.stage, [u.locator for u in loaded.units])
         inputs = loaded.units
     for k, call in enumerate(calls):
+        if call.sketch:
+            if not passes_by(call, inputs):
+                yield Clock(None, SKETCH_TAG)
+                table = sketch_here(call, inputs, doc_id, source_path)
+                if table is not None:
+                    yield Sketched(call.index, table)
+            return
         if call.barrier:
             if not passes_by(call, inputs):
                 return  # the corpus step decides about this document first
@@ -126,7 +165,7 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
                 if len(u.parents) == 1:
                     clear_stale_count(came_from.get(u.parents[0]), u)
         members = call.index == 0 and any(isinstance(u, Page) and u.members for u in out)
-        paused = k == 0 and (pause_first or members) and k + 1 < len(calls)
+        paused = k == 0 and (pause_first or members) and k + 1 < len(calls) and not calls[k + 1].sketch
         yield StepDone(call.index, out, started, ms, paused)
         if paused:
             return

@@ -9,7 +9,10 @@ work in two pure functions instead:
       Called only for documents whose input changed this run (in batches of
       documents, so a batch's text can be let go once sketched). Returns one row per
       input chunk: doc_id, chunk_id, chunk_index and the `sketch_columns`. A sketch
-      depends on one document alone, never on the rest of the corpus.
+      depends on one document alone, never on the rest of the corpus, and reads only
+      its doc_id and chunks (not rank, source_path or modified): the flows make it in
+      the warm worker that has just made the chunks, one document at a time, when the
+      step comes right after a document segment, and sketch only what that missed.
 
   decide(table: pyarrow.Table, params, ctx) -> pyarrow.Table
       Called once per run with one row per chunk of every live document: the
