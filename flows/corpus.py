@@ -27,7 +27,7 @@ import hashlib
 import json
 import time
 from collections import Counter, defaultdict
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import pyarrow as pa
@@ -36,8 +36,9 @@ import pyarrow.compute as pc
 from thresher.flows import schema
 from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
-from thresher.flows.execute import Unit, applies_to, now_utc, unit_kind, load_units
-from thresher.flows.rows import RowContext, rows_to_table, to_row
+from thresher.flows.execute import Unit, applies_to, load_units, now_utc, trail, unit_kind
+from thresher.flows.inputs import read_chunk_table
+from thresher.flows.rows import RowContext, row_to_chunk, rows_to_table, to_row, unit_id
 from thresher.flows.store import Store
 from thresher.steps.incremental import IncrementalCorpusSpec, IncrementalPageSpec
 from thresher.steps.spec import StepContext
@@ -279,28 +280,43 @@ def _in_part_order(store: Store, definition: FlowDefinition, index: int, run_id:
     return sorted(doc_ids, key=lambda d: (parts[d][-1] if d in parts else "\uffff", d))
 
 
-def _load_docs(store: Store, definition: FlowDefinition, index: int, doc_ids: list[str],
-               live_docs: dict[str, tuple[int, str, int]], run_id: str) -> tuple[list[DocChunks], dict[str, str]]:
-    """These documents' ok chunks from the stage before, and which stage each came from."""
+# The columns of a chunk's stored row that a corpus chunk step's own row is made from
+# (schema.CHUNK_COLUMNS and the common columns it keeps or derives from).
+_INPUT_COLUMNS = ["doc_id", "unit_id", "locator", "status", "chunk_id", "chunk_index", "text", "heading_path",
+                  "page_start", "page_end", "char_start", "char_end", "prefix_chars", "title", "format",
+                  "language", "language_prob", "token_count", "encoding"]
+
+
+def _read_inputs(store: Store, definition: FlowDefinition, index: int, doc_ids: list[str],
+                 run_id: str) -> tuple[pa.Table, dict[str, str]]:
+    """These documents' ok chunks from the stage before, as rows in Arrow, in the order the
+    step receives them, and which stage each came from (documents of no format the step
+    takes are left out)."""
     step = definition.steps[index]
-    loaded = load_units(store, definition, index, doc_ids, run_id)
-    docs, stages = [], {}
-    for d in doc_ids:
-        got = loaded.get(d)
-        if got is None or not got.units or not applies_to(step, got.units):
-            continue
-        docs.append(DocChunks(d, live_docs[d][1], live_docs[d][0], list(got.units), live_docs[d][2]))
-        stages[d] = got.stage
-    return docs, stages
+    table, stage_of = read_chunk_table(store, trail(definition, index), doc_ids, run_id, _INPUT_COLUMNS)
+    if step.spec.formats and table.num_rows:
+        takes = pc.is_in(table.column("format"), pa.array(sorted(step.spec.formats)))
+        wanted = pc.unique(table.filter(takes).column("doc_id"))
+        table = table.filter(pc.is_in(table.column("doc_id"), wanted))
+    return table, stage_of
 
 
-def _check_sketch(step: ResolvedStep, table: pa.Table, docs: list[DocChunks]) -> pa.Table:
+def _docs_of(table: pa.Table, doc_ids: list[str], live_docs: dict[str, tuple[int, str, int]]) -> list[DocChunks]:
+    """Some documents of an input table as the step's DocChunks (Python objects)."""
+    wanted = set(doc_ids)
+    rows = table.filter(pc.is_in(table.column("doc_id"), pa.array(sorted(wanted), pa.string()))).to_pylist()
+    chunks: dict[str, list] = defaultdict(list)
+    for row in rows:
+        chunks[row["doc_id"]].append(row_to_chunk("", row))
+    return [DocChunks(d, live_docs[d][1], live_docs[d][0], chunks[d], live_docs[d][2]) for d in doc_ids if chunks[d]]
+
+
+def _check_sketch(step: ResolvedStep, table: pa.Table, expected: int) -> pa.Table:
     spec = step.spec
     need = ["doc_id", "chunk_id", "chunk_index", *spec.sketch_columns]
     missing = [c for c in need if c not in table.column_names]
     if missing:
         raise ValueError(f"step {step.name}: sketch lacks columns {missing}")
-    expected = sum(1 for d in docs for c in d.chunks if c.ok)
     if table.num_rows != expected:
         raise ValueError(f"step {step.name}: sketch gave {table.num_rows} rows for {expected} ok chunks")
     sch = schema.stage_schema(step.name, "chunks")
@@ -319,25 +335,35 @@ class _Made:
     def of(cls, tables: list[pa.Table] | None) -> "_Made":
         if not tables:
             return cls()
-        table = pa.concat_tables(tables)
+        table = pa.concat_tables(tables).combine_chunks()
         return cls(table, _rows_by_doc(table), table.column("chunk_id").to_pylist())
 
-    def sketch(self, step: ResolvedStep, docs: list[DocChunks], ctx: StepContext) -> pa.Table:
-        """The sketch of these documents: a worker's where it covers exactly the document's
-        ok chunks as loaded here (not a document sketched twice, or whose chunks the store
-        holds otherwise), the step's own for the rest."""
+    def sketch(self, step: ResolvedStep, inputs: pa.Table, live_docs: dict[str, tuple[int, str, int]],
+               ctx: StepContext) -> pa.Table:
+        """The sketch of the documents of this input table: a worker's where it covers
+        exactly the document's ok chunks as read here (not a document sketched twice, or
+        whose chunks the store holds otherwise), the step's own for the rest, which
+        alone are made into Python objects."""
         take: list[int] = []
-        todo: list[DocChunks] = []
-        for doc in docs:
-            rows = self.rows.get(doc.doc_id)
-            if rows is not None and [self.chunk_ids[i] for i in rows] == [c.chunk_id for c in doc.chunks if c.ok]:
+        todo: list[str] = []
+        for doc_id, ids in _chunk_ids_by_doc(inputs).items():
+            rows = self.rows.get(doc_id)
+            if rows is not None and [self.chunk_ids[i] for i in rows] == ids:
                 take.extend(rows)
             else:
-                todo.append(doc)
+                todo.append(doc_id)
         parts = [self.table.take(pa.array(take, pa.int64()))] if take else []
         if todo:
-            parts.append(step.spec.sketch(todo, step.params, ctx))
+            parts.append(step.spec.sketch(_docs_of(inputs, todo, live_docs), step.params, ctx))
         return parts[0] if len(parts) == 1 else pa.concat_tables(parts, promote_options="default")
+
+
+def _chunk_ids_by_doc(inputs: pa.Table) -> dict[str, list[str]]:
+    """Each document's chunk ids in the input table's order (documents in order too)."""
+    out: dict[str, list[str]] = {}
+    for d, c in zip(inputs.column("doc_id").to_pylist(), inputs.column("chunk_id").to_pylist()):
+        out.setdefault(d, []).append(c)
+    return out
 
 
 def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str, int]], fresh: bool) -> pa.Table:
@@ -348,6 +374,104 @@ def _with_place(table: pa.Table, live_docs: dict[str, tuple[int, str, int]], fre
         .append_column("source_path", pa.array([live_docs[d][1] for d in ids], pa.string())) \
         .append_column("modified", pa.array([live_docs[d][2] for d in ids], pa.int64())) \
         .append_column("fresh", pa.array([fresh] * len(ids), pa.bool_()))
+
+
+@dataclass
+class _Positions:
+    """Where each (doc_id, chunk_id) of a table is, and the documents it holds."""
+
+    at: dict[tuple[str, str], int]
+    docs: set[str]
+
+    def of(self, doc_ids: list[str], chunk_ids: list[str], what: str, step: str,
+           paths: list[str]) -> pa.Array:
+        """The positions of these chunks; a chunk missing fails the step, naming its file."""
+        found = [self.at.get(k) for k in zip(doc_ids, chunk_ids)]
+        if None in found:
+            missing = [i for i, f in enumerate(found) if f is None]
+            raise ValueError(f"step {step}: no {what} for {len(missing)} chunk(s) of {paths[missing[0]]}")
+        return pa.array(found, pa.int64())
+
+
+def _positions(table: pa.Table | None) -> _Positions:
+    if table is None:
+        return _Positions({}, set())
+    at = {k: i for i, k in enumerate(zip(table.column("doc_id").to_pylist(), table.column("chunk_id").to_pylist()))}
+    return _Positions(at, {d for d, _ in at})
+
+
+def _fresh_rows(step: ResolvedStep, inputs: pa.Table, stage_of: dict[str, str], sketch: pa.Table,
+                sketch_at: _Positions, decisions: pa.Table | None, decision_at: _Positions,
+                live_docs: dict[str, tuple[int, str, int]], attempts: dict[str, int],
+                same: dict[str, Any]) -> pa.Table:
+    """Rewritten documents' rows, made in Arrow from their input rows: what rows.chunk_row
+    makes of each input chunk (read back as rows.row_to_chunk reads it) as the step's
+    unit: lineage to the input row, the input's chunk columns, the sketch's and the
+    decision's columns as payload, the decision's status and reason. (Made as Python
+    objects and rows before: 7.7 of the 15 s dedup took on a documentation drive's
+    first run of 55,688 chunks, under cProfile.)"""
+    spec: IncrementalCorpusSpec = step.spec  # type: ignore[assignment]
+    sch = schema.stage_schema(step.name, "chunks")
+    names = {f.name for f in schema.payload_fields(step.name, "chunks")}
+    unknown = sorted(set(spec.sketch_columns + spec.decision_columns) - names)
+    if step.name not in schema.STAGE_PAYLOAD or unknown:
+        raise ValueError(f"step {step.name}: its sketch and decision columns {unknown or ''} need columns of "
+                         "their own in flows/schema.py (STAGE_PAYLOAD)")
+    n = inputs.num_rows
+    docs = inputs.column("doc_id").to_pylist()
+    locators = inputs.column("locator").to_pylist()
+    ids = inputs.column("chunk_id").to_pylist()
+    paths = [live_docs[d][1] for d in docs]
+    sk = sketch.take(sketch_at.of(docs, ids, "sketch or decision", step.name, paths))
+    if decisions is None:
+        raise ValueError(f"step {step.name}: no sketch or decision for {n} chunk(s) of {paths[0]}")
+    dec = decisions.take(decision_at.of(docs, ids, "sketch or decision", step.name, paths))
+    uids = [unit_id(d, step.name, loc) for d, loc in zip(docs, locators)]
+    status = dec.column("status")
+    reason = pc.if_else(pc.equal(status, OK), pa.scalar(None, pa.string()),
+                        pc.if_else(pc.equal(dec.column("reason"), ""), pa.scalar(None, pa.string()),
+                                   dec.column("reason")))
+    chunk_id = inputs.column("chunk_id")
+    empty_id = pc.or_kleene(pc.is_null(chunk_id), pc.equal(chunk_id, ""))
+    heading = inputs.column("heading_path")
+    if heading.null_count:
+        heading = pa.array([h or [] for h in heading.to_pylist()], schema.STR_LIST)
+    values: dict[str, Any] = {
+        "run_id": [same["run_id"]] * n,
+        "doc_id": inputs.column("doc_id"),
+        "source_path": paths,
+        "unit_id": uids,
+        "parent_ids": [[unit_id(d, stage_of[d], loc)] for d, loc in zip(docs, locators)],
+        "locator": inputs.column("locator"),
+        "page": inputs.column("page_start"),
+        "step": [step.name] * n,
+        "step_version": [spec.version] * n,
+        "config_digest": [step.digest] * n,
+        "status": status,
+        "reason": reason,
+        "attempt": [attempts.get(u, 0) + 1 for u in uids],
+        "started_at": [same["started_at"]] * n,
+        "warnings": [[]] * n,
+        "chunk_id": pc.if_else(pc.fill_null(empty_id, True), pa.array(uids, pa.string()), chunk_id),
+        "heading_path": heading,
+    }
+    for name, blank in (("chunk_index", 0), ("text", ""), ("char_start", 0), ("char_end", 0),
+                        ("prefix_chars", 0), ("title", ""), ("format", "")):
+        values[name] = pc.fill_null(inputs.column(name), blank)
+    for name in ("page_start", "page_end", "language", "language_prob", "token_count", "encoding"):
+        values[name] = inputs.column(name)
+    values.update({c: sk.column(c) for c in spec.sketch_columns})
+    values.update({c: dec.column(c) for c in spec.decision_columns})
+    columns = []
+    for f in sch:
+        v = values.get(f.name)
+        if v is None:  # error_type, traceback, duration_ms, document_ms, payload the step gave none of
+            columns.append(pa.nulls(n, f.type))
+        elif isinstance(v, list):
+            columns.append(pa.array(v, f.type))
+        else:
+            columns.append(v.cast(f.type))
+    return pa.Table.from_arrays(columns, schema=sch)
 
 
 def _by_chunk(table: pa.Table, rows: list[int]) -> dict[tuple[str, str], dict[str, Any]]:
@@ -384,16 +508,16 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
     sketches: list[pa.Table] = []
     batches = _batches(_in_part_order(store, definition, index, run_id, fresh_ids, DOCS_PER_BATCH),
                        DOCS_PER_BATCH)
-    # With a single batch (the usual week) its chunks are kept for writing the rows;
+    # With a single batch (the usual week) its input rows are kept for writing the rows;
     # with more they are let go and read again, so memory holds one batch at a time.
-    kept_batch: tuple[list[DocChunks], dict[str, str]] | None = None
+    kept_batch: tuple[pa.Table, dict[str, str]] | None = None
     made = _Made.of(sketched)
     for batch in batches:
-        docs, stages = _load_docs(store, definition, index, batch, live_docs, run_id)
-        if docs:
-            sketches.append(_check_sketch(step, made.sketch(step, docs, ctx), docs))
+        inputs, stage_of = _read_inputs(store, definition, index, batch, run_id)
+        if inputs.num_rows:
+            sketches.append(_check_sketch(step, made.sketch(step, inputs, live_docs, ctx), inputs.num_rows))
         if len(batches) == 1:
-            kept_batch = (docs, stages)
+            kept_batch = (inputs, stage_of)
     del made
     parts = [_with_place(t, live_docs, True) for t in sketches]
     if kept.num_rows:
@@ -409,59 +533,41 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
             raise ValueError(f"step {step.name}: decisions lack columns {missing}")
 
     dec_rows = _rows_by_doc(decisions) if decisions is not None else {}
-    fresh_sketch = pa.concat_tables(sketches) if sketches else None
-    sketch_rows = _rows_by_doc(fresh_sketch) if fresh_sketch is not None else {}
+    fresh_sketch = pa.concat_tables(sketches).combine_chunks() if sketches else None
+    del sketches, table
     affected: set[str] = set()
     counts: Counter[str] = Counter()
     written = 0
     part = 0
 
-    # Documents whose input changed: rewritten whole, from their input chunks.
+    # Documents whose input changed: rewritten whole, from their input rows.
     fresh_set = set(fresh_ids)
     rewritten_set = set(rewritten)
+    sketch_at = _positions(fresh_sketch)
+    decision_at = _positions(decisions)
     for batch in batches:
-        with_sketch = [d for d in batch if d in sketch_rows]
         if kept_batch is not None:
-            docs = [d for d in kept_batch[0] if d.doc_id in sketch_rows]
-            stages = kept_batch[1]
-        elif with_sketch:
-            docs, stages = _load_docs(store, definition, index, with_sketch, live_docs, run_id)
+            inputs, stage_of = kept_batch
+        elif any(d in sketch_at.docs for d in batch):
+            inputs, stage_of = _read_inputs(store, definition, index, [d for d in batch if d in sketch_at.docs],
+                                            run_id)
         else:
-            docs, stages = [], {}
-        attempts = store.max_attempts(step.name, kind, [d.doc_id for d in docs]) if docs else {}
-        rows: list[dict[str, Any]] = []
-        # The batch's sketches and decisions taken at once: a take per document cost about
-        # 2 ms each (12.8 s for the 3,169 documents of a drive's first run).
-        sk_all = _by_chunk(fresh_sketch, [i for d in docs for i in sketch_rows[d.doc_id]]) if docs else {}
-        dec_all = _by_chunk(decisions, [i for d in docs for i in dec_rows.get(d.doc_id, [])]) if docs else {}
-        for doc in docs:
-            missing = [c.chunk_id for c in doc.chunks
-                       if (doc.doc_id, c.chunk_id) not in dec_all or (doc.doc_id, c.chunk_id) not in sk_all]
-            if missing:
-                raise ValueError(f"step {step.name}: no sketch or decision for {len(missing)} chunk(s) of "
-                                 f"{doc.source_path}")
-            units: list[Unit] = []
-            for chunk in doc.chunks:
-                d, sk = dec_all[(doc.doc_id, chunk.chunk_id)], sk_all[(doc.doc_id, chunk.chunk_id)]
-                payload = {c: sk[c] for c in spec.sketch_columns}
-                payload.update({c: d[c] for c in spec.decision_columns})
-                unit = replace(chunk, parents=[chunk.locator], warnings=[], payload=payload,
-                               heading_path=list(chunk.heading_path), status=OK, reason="")
-                if d["status"] != OK:
-                    unit.status, unit.reason = d["status"], d["reason"] or ""
-                units.append(unit)
-                counts[unit.status] += 1
-            rctx = RowContext(run_id, doc.doc_id, doc.source_path, step.name, spec.version, step.digest, kind,
-                              stages[doc.doc_id], started, None, attempts)
-            rows.extend(to_row(rctx, u) for u in units)
-            affected.add(doc.doc_id)
+            inputs, stage_of = None, {}
+        if inputs is not None and inputs.num_rows:
+            doc_ids = pc.unique(inputs.column("doc_id")).to_pylist()
+            rows_t = _fresh_rows(step, inputs, stage_of, fresh_sketch, sketch_at, decisions, decision_at, live_docs,
+                                 store.max_attempts(step.name, kind, doc_ids),
+                                 {"run_id": run_id, "started_at": started})
+            counts.update(rows_t.column("status").to_pylist())
+            affected.update(doc_ids)
+        else:
+            doc_ids, rows_t = [], schema.stage_schema(step.name, kind).empty_table()
         # A rewritten document with no chunks now still retires its older rows.
-        writes = sorted({(d, "document") for d in batch if d in rewritten_set} |
-                        {(d.doc_id, "document") for d in docs})
+        writes = sorted({(d, "document") for d in batch if d in rewritten_set} | {(d, "document") for d in doc_ids})
         if writes:
-            store.write_stage_part(step.name, run_id, f"corpus-{part:05d}", rows_to_table(step.name, kind, rows), writes)
+            store.write_stage_part(step.name, run_id, f"corpus-{part:05d}", rows_t, writes)
             part += 1
-            written += len(rows)
+            written += rows_t.num_rows
 
     # Stored chunks of unchanged documents whose decision changed: their row, decided anew.
     revised_docs = sorted(d for d in dec_rows if d not in fresh_set)

@@ -9,7 +9,7 @@ import pyarrow as pa
 import yaml
 
 from thresher.flows.config import build_definition, default_config_text
-from thresher.flows.corpus import _load_docs, run_corpus_step
+from thresher.flows.corpus import _docs_of, _read_inputs, run_corpus_step
 from thresher.flows.execute import BatchJob, BatchRunner, DocJob
 from thresher.flows.store import Store
 from thresher.steps.dedup import sketch
@@ -56,7 +56,8 @@ def _sorted(table: pa.Table) -> pa.Table:
 def test_the_worker_sketches_each_document_as_the_corpus_step_would_from_the_stored_chunks(tmp_path):
     definition, store, dedup, live, result = _processed(tmp_path)
     made = result.sketches[dedup]
-    docs, _ = _load_docs(store, definition, dedup, sorted(live), live, "r1")
+    inputs, _ = _read_inputs(store, definition, dedup, sorted(live), "r1")
+    docs = _docs_of(inputs, sorted(live), live)
     own = sketch(docs, definition.steps[dedup].params)
     assert own.num_rows == sum(len(d.chunks) for d in docs) >= 4
     assert _sorted(made).equals(_sorted(own))
