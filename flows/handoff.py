@@ -136,6 +136,8 @@ def _plain_hash(text: str) -> str:
 _SOURCE_COLUMNS = ("chunk_id", "doc_id", "status", "run_id", "title", "heading_path", "chunk_index", "page_start",
                    "page_end", "char_start", "char_end", "prefix_chars", "language", "text", "token_count",
                    "encoding", "token_counts", "content_hash")
+# What is read of a chunk stage before the last one every live chunk passes whole.
+_STATUS_COLUMNS = ("chunk_id", "doc_id", "status", "content_hash")
 
 
 def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: list[str],
@@ -150,11 +152,17 @@ def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: lis
     not_ok: set[str] = set()
     hashes: dict[str, str] = {}
     latest: dict[str, dict[str, Any]] = {}
-    for stage, limited in _chunk_stages(definition):
+    stages = _chunk_stages(definition)
+    # A live chunk is ok at the last stage not limited to some formats, so its columns
+    # come from there or a later stage: the stages before it are read for their
+    # statuses and content hashes only (not the text of every chunk once per stage).
+    last_whole = max((i for i, (_, limited) in enumerate(stages) if not limited), default=0)
+    for i, (stage, limited) in enumerate(stages):
         # Only the columns a hand-off row is made of: the rest (blocks, signatures, band
         # keys, tracebacks) made up most of the rows' conversion to Python.
         names = set(schema.stage_schema(stage, "chunks").names)
-        rows = store.current(stage, "chunks", docs, columns=[c for c in _SOURCE_COLUMNS if c in names],
+        wanted = _SOURCE_COLUMNS if i >= last_whole else _STATUS_COLUMNS
+        rows = store.current(stage, "chunks", docs, columns=[c for c in wanted if c in names],
                              include_run=run_id).to_pylist()
         ok = {r["chunk_id"] for r in rows if r["status"] == OK}
         not_ok |= {r["chunk_id"] for r in rows if r["status"] != OK}
