@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any, NoReturn
 
 from thresher.flows.config import ConfigError, FlowDefinition, load_definition
+from thresher.flows.runtime import collect_after_imports
 
 EXIT_USAGE = 2
 
@@ -905,6 +906,10 @@ def cmd_schedule(args: argparse.Namespace) -> int:
     return 0
 
 
+# Commands that run a flow: pipeline.run turns the garbage collector back on once
+# they have imported what a run needs (the others turn it on as they start).
+FLOW_VERBS = ("run", "rerun")
+
 COMMANDS = {"run": cmd_run, "status": cmd_status, "trail": cmd_trail, "failures": cmd_failures,
             "rerun": cmd_rerun, "report": cmd_report, "export": cmd_export, "deliver": cmd_deliver,
             "schedule": cmd_schedule,
@@ -932,6 +937,8 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 0
     args = parser.parse_args(argv)
+    if args.verb not in FLOW_VERBS:
+        collect_after_imports()
     try:
         return COMMANDS[args.verb](args)
     except UsageError as exc:
@@ -952,7 +959,13 @@ def console_main() -> None:
     every command, longer than a run that changes nothing. By then the run is committed;
     what must still happen does here, in the interpreter's own order: Prefect's log and
     event workers drain (threading's exit hooks), then atexit handlers (worker processes
-    stopped, logging flushed), then the standard streams."""
+    stopped, logging flushed), then the standard streams.
+
+    The cyclic collector is off while the command imports what it needs
+    (runtime.collect_after_imports turns it on)."""
+    import gc
+
+    gc.disable()
     code = main()
     shutdown = getattr(threading, "_shutdown", None)  # what Py_FinalizeEx calls first
     # A profiler or coverage tracer writes its results at the ordinary exit.

@@ -655,8 +655,9 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
     The store's lock is taken before Prefect starts, so a second run on the same
     store is refused at once with the holder's name, not after a server start.
     """
-    from thresher.flows.runtime import client_context, run_overrides, run_settings
+    from thresher.flows.runtime import client_context, collect_after_imports, run_overrides, run_settings
 
+    collect_after_imports()
     run_id = new_run_id()
     store = Store(store_root)
     store.acquire_lock(run_id)
