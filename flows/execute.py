@@ -25,9 +25,9 @@ from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_un
 from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, RemoteError, TimeLimitExceeded,
                                     claim_waiting, give_back, idle_count, isolation_available, prewarm,
                                     take_worker)
-from thresher.flows.rows import RowContext
-from thresher.flows.segment import (SKETCH_TAG, PassedOn, Sketched, StepCall, StepDone, StepRows,
-                                    failed_document_unit, order_key, run_segment, table_for)
+from thresher.flows.rows import RowContext, rows_to_table, to_row
+from thresher.flows.segment import (SKETCH_TAG, PassedOn, Sketched, StepCall, StepDone, failed_document_unit,
+                                    order_key, run_segment)
 from thresher.flows.store import Store
 from thresher.steps.incremental import IncrementalCorpusSpec
 from thresher.steps.spec import StepContext
@@ -210,6 +210,22 @@ def _call_step(step: ResolvedStep, inputs: Any, ctx: StepContext,
         return [_failed_document_unit(kind, f"{step.name} failed: {type(exc).__name__}: {exc}", exc, parents)]
 
 
+def _rows_for(step: ResolvedStep, ctx: RowContext, units: list[Unit]) -> list[dict[str, Any]]:
+    try:
+        rows = [to_row(ctx, u) for u in units]
+    except Exception as exc:  # noqa: BLE001 - e.g. a payload the table has no column for
+        failed = _failed_document_unit(ctx.unit, f"{step.name} output could not be stored: {exc}", exc,
+                                       [p for u in units for p in u.parents])
+        rows = [to_row(ctx, failed)]
+        units[:] = [failed]
+    for row in rows[1:]:
+        row["document_ms"] = None  # the document's time once, so a sum over rows is real time
+    if ctx.unit == "chunks":
+        for unit, row in zip(units, rows):
+            unit.chunk_id = row["chunk_id"]
+    return rows
+
+
 def _may_pause(doc: DocJob) -> bool:
     """The worker stops after the first step for this process to act (segment.run_segment)
     on a re-run of chosen units. (It also pauses after extraction when it found documents
@@ -253,7 +269,7 @@ class BatchRunner:
         result = BatchResult(part=job.part, documents=len(job.docs))
         self._force = job.force
         self._sketch = self._sketch_call(job.segment[-1] + 1) if job.segment else None
-        rows: dict[str, list[pa.Table]] = defaultdict(list)  # stage -> one table per document
+        rows: dict[str, list[dict[str, Any]]] = defaultdict(list)
         writes: dict[str, list[tuple[str, str]]] = defaultdict(list)
         # Documents that start past the first step read their input from the store.
         by_start: dict[int, list[DocJob]] = defaultdict(list)
@@ -299,14 +315,16 @@ class BatchRunner:
                 give_back(self._caller, self._promised)
                 self._caller = None
             self._promised = None
-        for stage, tables in rows.items():
-            self.store.write_stage_part(stage, self.run_id, job.part, pa.concat_tables(tables), writes[stage])
+        for stage, stage_rows in rows.items():
+            unit = unit_kind(self.definition.step(stage))
+            self.store.write_stage_part(stage, self.run_id, job.part, rows_to_table(stage, unit, stage_rows),
+                                        writes[stage])
         result.sketches = {i: pa.concat_tables(tables) for i, tables in result.sketches.items()}
         result.seconds = time.perf_counter() - t0
         return result
 
     def _run_document(self, doc: DocJob, indices: list[int], stored: Loaded | StoredInputs | None,
-                      rows: dict[str, list[pa.Table]], writes: dict[str, list[tuple[str, str]]],
+                      rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
                       result: BatchResult) -> None:
         if not indices:
             return
@@ -371,8 +389,7 @@ class BatchRunner:
         what, inputs, _ = self._prepared[1]
         if what != "run":
             return None
-        return run_segment, (self._calls(doc, indices), inputs, doc.doc_id, doc.source_path, False, self.run_id,
-                             self._prepared[1][2]), doc
+        return run_segment, (self._calls(doc, indices), inputs, doc.doc_id, doc.source_path, False), doc
 
     def _queue_following(self) -> tuple | None:
         """Once the worker has started a document: the batch's next one, made ready and
@@ -391,7 +408,7 @@ class BatchRunner:
         return None
 
     def _run_here(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
-                  rows: dict[str, list[pa.Table]], writes: dict[str, list[tuple[str, str]]],
+                  rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
                   result: BatchResult) -> None:
         """The document's steps in this process (a step with a time limit in a child)."""
         steps = self.definition.steps
@@ -440,8 +457,7 @@ class BatchRunner:
         if spec.scope == "corpus":  # a barrier: the worker only checks the formats
             return StepCall(i, step.name, spec.produces, None, step.params, frozenset(spec.formats or ()), None,
                             barrier=True)
-        return StepCall(i, step.name, spec.produces, spec.run, step.params, frozenset(spec.formats or ()), limit,
-                        version=spec.version, digest=step.digest)
+        return StepCall(i, step.name, spec.produces, spec.run, step.params, frozenset(spec.formats or ()), limit)
 
     def _sketch_call(self, index: int) -> StepCall | None:
         """A sketch call for the step at `index` when it is an incremental corpus step:
@@ -464,7 +480,7 @@ class BatchRunner:
         return calls
 
     def _run_in_worker(self, doc: DocJob, indices: list[int], inputs: Any, prev: str | None,
-                       rows: dict[str, list[pa.Table]], writes: dict[str, list[tuple[str, str]]],
+                       rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
                        result: BatchResult) -> None:
         """The document's steps in a warm worker process (flows/segment.py): each step
         still within its own time limit, its rows stored here as soon as it is done."""
@@ -482,7 +498,7 @@ class BatchRunner:
             t_mark = time.perf_counter()
             try:
                 for done in caller.stream(run_segment, (calls, inputs, doc.doc_id, doc.source_path,
-                                                        doc.only is not None and pos == 0, self.run_id, prev),
+                                                        doc.only is not None and pos == 0),
                                           token=doc if pos == 0 else None,
                                           following=None if _may_pause(doc) else self._queue_following):
                     if isinstance(done, ReadFrom):
@@ -495,10 +511,6 @@ class BatchRunner:
                         result.sketches.setdefault(done.index, []).append(done.table)
                         continue
                     step = steps[done.index]
-                    if done.rows is not None:  # made in the worker: stored as they are
-                        self._take_rows(doc, step, done.rows, done.ms, rows, writes, result)
-                        prev, parents, t_mark = step.name, done.rows.ok_locators, time.perf_counter()
-                        continue
                     out, scope = done.units, "document"
                     if doc.only is not None and done.index == indices[0]:
                         out, scope = self._keep_chosen(doc, out), "units"
@@ -555,7 +567,7 @@ class BatchRunner:
             pos = indices.index(done.index) + 1
 
     def _run_members(self, container: DocJob, out: list[Unit], indices: list[int],
-                     rows: dict[str, list[pa.Table]], writes: dict[str, list[tuple[str, str]]],
+                     rows: dict[str, list[dict[str, Any]]], writes: dict[str, list[tuple[str, str]]],
                      result: BatchResult) -> None:
         """Documents that extraction found inside `container` go through the same steps
         now, as documents of their own (doc_id from their bytes), unless the store holds
@@ -627,7 +639,7 @@ class BatchRunner:
         return sorted(current.values(), key=_order_key)
 
     def _record(self, doc: DocJob, step: ResolvedStep, prev: str | None, out: list[Unit],
-                started: datetime, ms: float, rows: dict[str, list[pa.Table]],
+                started: datetime, ms: float, rows: dict[str, list[dict[str, Any]]],
                 writes: dict[str, list[tuple[str, str]]], result: BatchResult, scope: str = "document") -> None:
         """Turn one step's units for one document into rows, and count them."""
         kind = unit_kind(step)
@@ -635,31 +647,10 @@ class BatchRunner:
         result.step_seconds += ms / 1000.0
         rctx = RowContext(self.run_id, doc.doc_id, doc.source_path, step.name, step.spec.version,
                           step.digest, kind, prev, started, round(ms, 3), attempts)
-        rows[step.name].append(table_for(step.name, rctx, out))
+        rows[step.name].extend(_rows_for(step, rctx, out))
         writes[step.name].append((doc.doc_id, scope))
         counts = result.counts.setdefault(step.name, {})
         for u in out:
             counts[u.status] = counts.get(u.status, 0) + 1
             if u.status == "failed":
                 result.failures.append((doc.source_path, step.name, u.reason))
-
-    def _take_rows(self, doc: DocJob, step: ResolvedStep, made: StepRows, ms: float,
-                   rows: dict[str, list[pa.Table]], writes: dict[str, list[tuple[str, str]]],
-                   result: BatchResult) -> None:
-        """Rows a worker made for one step of one document (segment.step_rows), with the
-        attempts this store holds already set, and counted."""
-        table = made.table
-        attempts = self._attempts.get(step.name, {}) if doc.known else {}
-        if attempts:
-            ids = table.column("unit_id").to_pylist()
-            if any(u in attempts for u in ids):
-                at = table.schema.get_field_index("attempt")
-                table = table.set_column(at, table.schema.field(at),
-                                         pa.array([attempts.get(u, 0) + 1 for u in ids], pa.int32()))
-        result.step_seconds += ms / 1000.0
-        rows[step.name].append(table)
-        writes[step.name].append((doc.doc_id, "document"))
-        counts = result.counts.setdefault(step.name, {})
-        for status, n in made.counts.items():
-            counts[status] = counts.get(status, 0) + n
-        result.failures.extend((doc.source_path, step.name, reason) for reason in made.failures)

@@ -2,10 +2,7 @@
 
 The parent (execute.BatchRunner) sends a document's input and the steps of a segment;
 `run_segment` runs them one after the other in the worker and yields each step's
-rows as soon as they are ready (made here, as an Arrow table: the parent, one process
-for every worker, only stores them), so the parent stores them while the next step runs.
-The units themselves go to the parent only where it acts on them before the next step
-(a re-run of chosen units, documents found inside a document).
+units as soon as they are ready, so the parent stores rows while the next step runs.
 Before each step it yields a Clock with that step's time limit: the parent times each
 step from its own start. A document whose inputs are stored is read here first
 (flows/inputs.py). No Prefect here; the store only to read inputs.
@@ -18,12 +15,10 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import Any, Callable
 
-import pyarrow as pa
-
 from thresher.flows.encodings import get_encoding
 from thresher.flows.inputs import ReadFrom, StoredInputs, order_key, resolve
 from thresher.flows.isolate import Clock
-from thresher.flows.rows import RowContext, rows_to_table, to_row, unit_id
+from thresher.flows.rows import unit_id
 from thresher.steps.spec import StepContext, StepParams
 from thresher.steps.units import DOCUMENT_LOCATOR, Chunk, DocChunks, Page, Source, clear_stale_count
 
@@ -49,34 +44,17 @@ class StepCall:
     # after the segment: `run` is the step's sketch, made here on the chunks the segment
     # just made, so that the corpus step, serial in the flow's process, need not.
     sketch: bool = False
-    version: str = ""  # the step's version and config digest, for its rows
-    digest: str = ""
-
-
-@dataclass
-class StepRows:
-    """A step's rows for the document, made where it ran, and what the parent needs of
-    its units besides: how many of each status, why any failed, and the ok units'
-    locators (the parents of a failure the next step may record)."""
-
-    table: pa.Table
-    counts: dict[str, int]
-    failures: list[str]
-    ok_locators: list[str]
 
 
 @dataclass
 class StepDone:
-    """One step's output for the document: its rows, or its units where the parent acts
-    on them first (the worker's first step on a re-run of chosen units, or documents
-    found inside the document)."""
+    """One step's output for the document."""
 
     index: int
     units: list
     started: datetime
     ms: float
     paused: bool = False  # the worker stopped here so the parent can act first
-    rows: StepRows | None = None
 
 
 @dataclass
@@ -121,51 +99,6 @@ def call_here(name: str, kind: str, run: Callable[..., list], params: StepParams
         return [failed_document_unit(kind, f"{name} failed: {type(exc).__name__}: {exc}", exc, parents)]
 
 
-def rows_for(step: str, ctx: RowContext, units: list[Unit]) -> list[dict[str, Any]]:
-    """The units' stage rows; units the table cannot hold fail the document instead (the
-    list of units is then that one failure)."""
-    try:
-        rows = [to_row(ctx, u) for u in units]
-    except Exception as exc:  # noqa: BLE001 - e.g. a payload the table has no column for
-        failed = failed_document_unit(ctx.unit, f"{step} output could not be stored: {exc}", exc,
-                                      [p for u in units for p in u.parents])
-        rows = [to_row(ctx, failed)]
-        units[:] = [failed]
-    for row in rows[1:]:
-        row["document_ms"] = None  # the document's time once, so a sum over rows is real time
-    if ctx.unit == "chunks":
-        for unit, row in zip(units, rows):
-            unit.chunk_id = row["chunk_id"]
-    return rows
-
-
-def table_for(step: str, ctx: RowContext, units: list[Unit]) -> pa.Table:
-    """rows_for as a stage table; a value the table's types cannot hold fails the
-    document alone (not the batch whose part it would have been written in)."""
-    rows = rows_for(step, ctx, units)
-    try:
-        return rows_to_table(step, ctx.unit, rows)
-    except (pa.ArrowException, TypeError, ValueError, OverflowError) as exc:
-        failed = failed_document_unit(ctx.unit, f"{step} output could not be stored: {type(exc).__name__}: {exc}",
-                                      exc, [p for u in units for p in u.parents])
-        units[:] = [failed]
-        return rows_to_table(step, ctx.unit, rows_for(step, ctx, units))
-
-
-def step_rows(call: StepCall, run_id: str, doc_id: str, source_path: str, prev: str | None,
-              started: datetime, ms: float, units: list[Unit]) -> StepRows:
-    """The step's rows as the parent would make them, with attempt 1 throughout (the
-    parent knows the attempts stored before and sets them: BatchRunner._take_rows)."""
-    ctx = RowContext(run_id, doc_id, source_path, call.name, call.version, call.digest, call.produces, prev,
-                     started, round(ms, 3), {})
-    table = table_for(call.name, ctx, units)
-    counts: dict[str, int] = {}
-    for u in units:
-        counts[u.status] = counts.get(u.status, 0) + 1
-    return StepRows(table, counts, [u.reason for u in units if u.status == "failed"],
-                    [u.locator for u in sorted((u for u in units if u.ok), key=order_key)])
-
-
 def sketch_here(call: StepCall, chunks: list, doc_id: str, source_path: str) -> Any:
     """The sketch of one document's ok chunks, or None when there is none to give: the
     corpus step then sketches the document itself, and meets any error there."""
@@ -185,11 +118,8 @@ def passes_by(call: StepCall, units: Any) -> bool:
     return call.index > 0 and bool(call.formats) and not any(u.format in call.formats for u in units)
 
 
-def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: str, pause_first: bool,
-                run_id: str, prev: str | None):
+def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: str, pause_first: bool):
     """Yield Clock, StepDone, Clock, StepDone... for the steps in `calls`.
-
-    `prev`: the stage `inputs` came from (None for a source file or stored inputs).
 
     The worker stops after the first step when `pause_first` (a re-run of chosen units:
     the parent merges them with the stored ones) or when extraction found documents
@@ -203,7 +133,7 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
         if loaded is None or not loaded.units:
             return
         yield ReadFrom(loaded.stage, [u.locator for u in loaded.units])
-        inputs, prev = loaded.units, loaded.stage
+        inputs = loaded.units
     for k, call in enumerate(calls):
         if call.sketch:
             if not passes_by(call, inputs):
@@ -236,15 +166,9 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
                     clear_stale_count(came_from.get(u.parents[0]), u)
         members = call.index == 0 and any(isinstance(u, Page) and u.members for u in out)
         paused = k == 0 and (pause_first or members) and k + 1 < len(calls) and not calls[k + 1].sketch
-        if (k == 0 and pause_first) or members:
-            yield StepDone(call.index, out, started, ms, paused)  # the parent acts on the units first
-        else:
-            # (Rows the table cannot hold leave `out` that one failure: no step goes on.)
-            yield StepDone(call.index, [], started, ms, paused,
-                           step_rows(call, run_id, doc_id, source_path, prev, started, ms, out))
+        yield StepDone(call.index, out, started, ms, paused)
         if paused:
             return
-        prev = call.name
         inputs = sorted((u for u in out if u.ok), key=order_key)
         if not inputs:
             return

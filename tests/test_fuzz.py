@@ -24,10 +24,9 @@ from conftest import SAMPLE
 import yaml
 
 from thresher.flows.config import build_definition, default_config_text
-from thresher.flows.execute import _call_step
+from thresher.flows.execute import _call_step, _rows_for
 from thresher.flows.isolate import IsolatedCaller
 from thresher.flows.rows import RowContext
-from thresher.flows.segment import table_for
 from thresher.steps.extract.sniff import sniff
 from thresher.steps.spec import StepContext
 from thresher.steps.units import FAILED, OK, SKIPPED, Source
@@ -92,7 +91,7 @@ def test_mutated_files_give_a_row_each_never_a_crash_or_a_hang():
             assert elapsed < TIME_LIMIT + 15, f"case {n} ({fmt}, {kind}, seed {SEED}) took {elapsed:.0f} s"
             ctx = RowContext("fuzz", source.doc_id, path, "extract", step.spec.version, step.digest, "pages", None,
                              datetime(2026, 1, 1, tzinfo=timezone.utc), elapsed * 1000, {})
-            rows = table_for(step.name, ctx, units).to_pylist()  # rows that fit the stage table
+            rows = _rows_for(step, ctx, units)
             assert rows, f"case {n} ({fmt}, {kind}, seed {SEED}) gave no row"
             for r in rows:
                 if r["status"] in (FAILED, SKIPPED):  # skipped: a container's own unit, a non-document
