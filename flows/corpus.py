@@ -281,24 +281,21 @@ def _in_part_order(store: Store, definition: FlowDefinition, index: int, run_id:
 
 
 # The columns of a chunk's stored row that a corpus chunk step's own row is made from
-# (schema.CHUNK_COLUMNS and the common columns it keeps or derives from).
-_INPUT_COLUMNS = ["doc_id", "unit_id", "locator", "status", "chunk_id", "chunk_index", "text", "heading_path",
-                  "page_start", "page_end", "char_start", "char_end", "prefix_chars", "title", "format",
-                  "language", "language_prob", "token_count", "encoding"]
+# (the unit's columns and the common columns it keeps or derives from).
+_INPUT_COLUMNS = ["doc_id", "unit_id", "locator", "status", *(f.name for f in schema.CHUNK_COLUMNS)]
 
 
 def _read_inputs(store: Store, definition: FlowDefinition, index: int, doc_ids: list[str],
-                 run_id: str) -> tuple[pa.Table, dict[str, str]]:
+                 run_id: str) -> pa.Table:
     """These documents' ok chunks from the stage before, as rows in Arrow, in the order the
-    step receives them, and which stage each came from (documents of no format the step
-    takes are left out)."""
+    step receives them (documents of no format the step takes are left out)."""
     step = definition.steps[index]
-    table, stage_of = read_chunk_table(store, trail(definition, index), doc_ids, run_id, _INPUT_COLUMNS)
+    table = read_chunk_table(store, trail(definition, index), doc_ids, run_id, _INPUT_COLUMNS)
     if step.spec.formats and table.num_rows:
         takes = pc.is_in(table.column("format"), pa.array(sorted(step.spec.formats)))
         wanted = pc.unique(table.filter(takes).column("doc_id"))
         table = table.filter(pc.is_in(table.column("doc_id"), wanted))
-    return table, stage_of
+    return table
 
 
 def _docs_of(table: pa.Table, doc_ids: list[str], live_docs: dict[str, tuple[int, str, int]]) -> list[DocChunks]:
@@ -383,13 +380,13 @@ class _Positions:
     at: dict[tuple[str, str], int]
     docs: set[str]
 
-    def of(self, doc_ids: list[str], chunk_ids: list[str], what: str, step: str,
-           paths: list[str]) -> pa.Array:
+    def of(self, doc_ids: list[str], chunk_ids: list[str], step: str, paths: list[str]) -> pa.Array:
         """The positions of these chunks; a chunk missing fails the step, naming its file."""
         found = [self.at.get(k) for k in zip(doc_ids, chunk_ids)]
         if None in found:
             missing = [i for i, f in enumerate(found) if f is None]
-            raise ValueError(f"step {step}: no {what} for {len(missing)} chunk(s) of {paths[missing[0]]}")
+            raise ValueError(f"step {step}: no sketch or decision for {len(missing)} chunk(s) of "
+                             f"{paths[missing[0]]}")
         return pa.array(found, pa.int64())
 
 
@@ -400,7 +397,7 @@ def _positions(table: pa.Table | None) -> _Positions:
     return _Positions(at, {d for d, _ in at})
 
 
-def _fresh_rows(step: ResolvedStep, inputs: pa.Table, stage_of: dict[str, str], sketch: pa.Table,
+def _fresh_rows(step: ResolvedStep, inputs: pa.Table, sketch: pa.Table,
                 sketch_at: _Positions, decisions: pa.Table | None, decision_at: _Positions,
                 live_docs: dict[str, tuple[int, str, int]], attempts: dict[str, int],
                 same: dict[str, Any]) -> pa.Table:
@@ -422,10 +419,10 @@ def _fresh_rows(step: ResolvedStep, inputs: pa.Table, stage_of: dict[str, str], 
     locators = inputs.column("locator").to_pylist()
     ids = inputs.column("chunk_id").to_pylist()
     paths = [live_docs[d][1] for d in docs]
-    sk = sketch.take(sketch_at.of(docs, ids, "sketch or decision", step.name, paths))
+    sk = sketch.take(sketch_at.of(docs, ids, step.name, paths))
     if decisions is None:
         raise ValueError(f"step {step.name}: no sketch or decision for {n} chunk(s) of {paths[0]}")
-    dec = decisions.take(decision_at.of(docs, ids, "sketch or decision", step.name, paths))
+    dec = decisions.take(decision_at.of(docs, ids, step.name, paths))
     uids = [unit_id(d, step.name, loc) for d, loc in zip(docs, locators)]
     status = dec.column("status")
     reason = pc.if_else(pc.equal(status, OK), pa.scalar(None, pa.string()),
@@ -441,7 +438,7 @@ def _fresh_rows(step: ResolvedStep, inputs: pa.Table, stage_of: dict[str, str], 
         "doc_id": inputs.column("doc_id"),
         "source_path": paths,
         "unit_id": uids,
-        "parent_ids": [[unit_id(d, stage_of[d], loc)] for d, loc in zip(docs, locators)],
+        "parent_ids": [[u] for u in inputs.column("unit_id").to_pylist()],  # the input row's own id
         "locator": inputs.column("locator"),
         "page": inputs.column("page_start"),
         "step": [step.name] * n,
@@ -510,14 +507,14 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
                        DOCS_PER_BATCH)
     # With a single batch (the usual week) its input rows are kept for writing the rows;
     # with more they are let go and read again, so memory holds one batch at a time.
-    kept_batch: tuple[pa.Table, dict[str, str]] | None = None
+    kept_batch: pa.Table | None = None
     made = _Made.of(sketched)
     for batch in batches:
-        inputs, stage_of = _read_inputs(store, definition, index, batch, run_id)
+        inputs = _read_inputs(store, definition, index, batch, run_id)
         if inputs.num_rows:
             sketches.append(_check_sketch(step, made.sketch(step, inputs, live_docs, ctx), inputs.num_rows))
         if len(batches) == 1:
-            kept_batch = (inputs, stage_of)
+            kept_batch = inputs
     del made
     parts = [_with_place(t, live_docs, True) for t in sketches]
     if kept.num_rows:
@@ -547,15 +544,14 @@ def _run_incremental(definition: FlowDefinition, store: Store, run_id: str, inde
     decision_at = _positions(decisions)
     for batch in batches:
         if kept_batch is not None:
-            inputs, stage_of = kept_batch
+            inputs = kept_batch
         elif any(d in sketch_at.docs for d in batch):
-            inputs, stage_of = _read_inputs(store, definition, index, [d for d in batch if d in sketch_at.docs],
-                                            run_id)
+            inputs = _read_inputs(store, definition, index, [d for d in batch if d in sketch_at.docs], run_id)
         else:
-            inputs, stage_of = None, {}
+            inputs = None
         if inputs is not None and inputs.num_rows:
             doc_ids = pc.unique(inputs.column("doc_id")).to_pylist()
-            rows_t = _fresh_rows(step, inputs, stage_of, fresh_sketch, sketch_at, decisions, decision_at, live_docs,
+            rows_t = _fresh_rows(step, inputs, fresh_sketch, sketch_at, decisions, decision_at, live_docs,
                                  store.max_attempts(step.name, kind, doc_ids),
                                  {"run_id": run_id, "started_at": started})
             counts.update(rows_t.column("status").to_pylist())

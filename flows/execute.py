@@ -537,16 +537,18 @@ class BatchRunner:
                 self._run_here(doc, indices[pos:], inputs, prev, rows, writes, result)
                 return
             except (TimeLimitExceeded, ChildCrashed, RemoteError) as exc:
-                if caller.current != SKETCH_TAG:  # (lost while sketching: every step's rows are in hand)
-                    if isinstance(inputs, StoredInputs) and last is None and caller.current is None:
-                        # The worker failed reading the inputs, before any step: read them
-                        # here, so a damaged store fails the batch as a read here would.
-                        loaded = load_units(self.store, self.definition, indices[0], [doc.doc_id], self.run_id)
-                        got = loaded.get(doc.doc_id)
-                        if got is None or not got.units:
-                            return
-                        inputs, prev = got.units, got.stage
-                        continue
+                if caller.current == SKETCH_TAG:
+                    pass  # lost while sketching: every step's rows are in hand; the corpus step sketches it
+                elif isinstance(inputs, StoredInputs) and last is None and caller.current is None:
+                    # The worker failed reading the inputs, before any step: read them
+                    # here, so a damaged store fails the batch as a read here would.
+                    loaded = load_units(self.store, self.definition, indices[0], [doc.doc_id], self.run_id)
+                    got = loaded.get(doc.doc_id)
+                    if got is None or not got.units:
+                        return
+                    inputs, prev = got.units, got.stage
+                    continue
+                else:
                     index = caller.current if isinstance(caller.current, int) else calls[0].index
                     step = steps[index]
                     ms = (exc.taken if isinstance(exc, TimeLimitExceeded) else time.perf_counter() - t_mark) * 1000.0

@@ -95,35 +95,33 @@ def read_units(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: li
 
 
 def read_chunk_table(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: list[str], run_id: str,
-                     columns: list[str]) -> tuple[pa.Table, dict[str, str]]:
+                     columns: list[str]) -> pa.Table:
     """read_units for chunks, kept in Arrow: the ok rows (these `columns`, which must
     hold doc_id, status, chunk_index and locator) of the nearest chunk stage in `trail`
     that holds each document, in the order a step receives them (documents in the
-    order of `doc_ids`, then order_key), and the stage each document was read from.
+    order of `doc_ids`, then order_key). A row's unit_id says which stage it came from.
     No Python object per row: a corpus step that writes its rows from its input's
     (corpus._fresh_rows) reads 40,000 chunks this way, not as Chunk objects."""
     parts: list[pa.Table] = []
-    stage_of: dict[str, str] = {}
     remaining = set(doc_ids)
     for stage in reversed(trail):
         if not remaining or stage.kind != "chunks":
             break
         table = store.current(stage.name, "chunks", sorted(remaining), columns=columns, include_run=run_id)
         held = set(pc.unique(table.column("doc_id")).to_pylist()) if table.num_rows else set()
-        stage_of.update((d, stage.name) for d in held)
         parts.append(table.filter(pc.equal(table.column("status"), OK)))
         remaining -= held
         if not stage.limited:
             break
     if not parts:
-        return pa.table({c: [] for c in columns}), stage_of
+        return pa.table({c: [] for c in columns})
     table = pa.concat_tables(parts) if len(parts) > 1 else parts[0]
     pos = {d: i for i, d in enumerate(doc_ids)}
     order = pa.table({"pos": pa.array([pos[d] for d in table.column("doc_id").to_pylist()], pa.int64()),
                       "index": pc.fill_null(table.column("chunk_index"), 0),
                       "locator": table.column("locator")})
     return table.take(pc.sort_indices(order, sort_keys=[("pos", "ascending"), ("index", "ascending"),
-                                                         ("locator", "ascending")])), stage_of
+                                                         ("locator", "ascending")]))
 
 
 # The batch a worker read last: (key, doc_id -> Loaded). One batch at a time.

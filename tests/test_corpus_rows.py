@@ -31,7 +31,8 @@ def _with_nulls(inputs: pa.Table) -> pa.Table:
 def test_rows_made_in_arrow_are_the_row_models_rows_of_the_steps_units(tmp_path):
     definition, store, dedup, live, result = _processed(tmp_path)
     step = definition.steps[dedup]
-    inputs, stage_of = _read_inputs(store, definition, dedup, sorted(live), "r1")
+    inputs = _read_inputs(store, definition, dedup, sorted(live), "r1")
+    before = definition.steps[dedup - 1].name  # the stage the inputs were read from
     inputs = _with_nulls(inputs)
     sketch = result.sketches[dedup]
     ids = inputs.column("chunk_id").to_pylist()
@@ -49,14 +50,14 @@ def test_rows_made_in_arrow_are_the_row_models_rows_of_the_steps_units(tmp_path)
                           "similarity": [None, 1.0, 0.85] + [None] * (n - 3)}, schema=DECISIONS)
     started = datetime(2026, 12, 4, 9, 30, tzinfo=timezone.utc)
     attempts = {}
-    made = _fresh_rows(step, inputs, stage_of, sketch, _positions(sketch), decisions, _positions(decisions), live,
+    made = _fresh_rows(step, inputs, sketch, _positions(sketch), decisions, _positions(decisions), live,
                        attempts, {"run_id": "r2", "started_at": started})
 
     sk = {(r["doc_id"], r["chunk_id"]): r for r in sketch.to_pylist()}
     dec = {(r["doc_id"], r["chunk_id"]): r for r in decisions.to_pylist()}
     rows = []
     for row in inputs.to_pylist():
-        chunk = row_to_chunk(stage_of[row["doc_id"]], row)
+        chunk = row_to_chunk(before, row)
         key = (row["doc_id"], chunk.chunk_id)
         payload = {c: sk[key][c] for c in step.spec.sketch_columns}
         payload.update({c: dec[key][c] for c in step.spec.decision_columns})
@@ -64,7 +65,7 @@ def test_rows_made_in_arrow_are_the_row_models_rows_of_the_steps_units(tmp_path)
         if dec[key]["status"] != OK:
             unit.status, unit.reason = dec[key]["status"], dec[key]["reason"] or ""
         ctx = RowContext("r2", row["doc_id"], live[row["doc_id"]][1], step.name, step.spec.version, step.digest,
-                         "chunks", stage_of[row["doc_id"]], started, None, attempts)
+                         "chunks", before, started, None, attempts)
         rows.append(to_row(ctx, unit))
     expected = rows_to_table(step.name, "chunks", rows)
     assert made.schema.equals(schema.stage_schema(step.name, "chunks"))

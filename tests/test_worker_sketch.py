@@ -56,7 +56,7 @@ def _sorted(table: pa.Table) -> pa.Table:
 def test_the_worker_sketches_each_document_as_the_corpus_step_would_from_the_stored_chunks(tmp_path):
     definition, store, dedup, live, result = _processed(tmp_path)
     made = result.sketches[dedup]
-    inputs, _ = _read_inputs(store, definition, dedup, sorted(live), "r1")
+    inputs = _read_inputs(store, definition, dedup, sorted(live), "r1")
     docs = _docs_of(inputs, sorted(live), live)
     own = sketch(docs, definition.steps[dedup].params)
     assert own.num_rows == sum(len(d.chunks) for d in docs) >= 4
