@@ -304,7 +304,7 @@ def _docs_of(table: pa.Table, doc_ids: list[str], live_docs: dict[str, tuple[int
     rows = table.filter(pc.is_in(table.column("doc_id"), pa.array(sorted(wanted), pa.string()))).to_pylist()
     chunks: dict[str, list] = defaultdict(list)
     for row in rows:
-        chunks[row["doc_id"]].append(row_to_chunk("", row))
+        chunks[row["doc_id"]].append(row_to_chunk(row))
     return [DocChunks(d, live_docs[d][1], live_docs[d][0], chunks[d], live_docs[d][2]) for d in doc_ids if chunks[d]]
 
 

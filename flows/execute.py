@@ -425,6 +425,7 @@ class BatchRunner:
             if i > 0:
                 for u in inputs:  # a time the previous step measured is not this step's
                     u.duration_ms = None
+                    u.payload = {}  # nor its payload: as when read from the store (rows.row_to_page)
             started = now_utc()
             t0 = time.perf_counter()
             caller = self._caller_for(step)

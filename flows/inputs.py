@@ -17,6 +17,7 @@ from dataclasses import dataclass
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from thresher.flows import schema
 from thresher.flows.rows import row_to_unit
 from thresher.flows.store import Store
 from thresher.steps.units import OK, Chunk, Page
@@ -79,13 +80,16 @@ def read_units(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: li
     for stage in reversed(trail):
         if not remaining:
             break
-        table = store.current(stage.name, stage.kind, sorted(remaining), include_run=run_id)
+        # No payload columns: a step reads none of the stage before's (dedup's signatures
+        # were nearly half the bytes the tokens segment read).
+        table = store.current(stage.name, stage.kind, sorted(remaining), columns=schema.unit_columns(stage.kind),
+                              include_run=run_id)
         found: dict[str, list[Unit]] = defaultdict(list)
         held = set()
         for row in table.to_pylist():
             held.add(row["doc_id"])
             if row["status"] == OK:
-                found[row["doc_id"]].append(row_to_unit(stage.name, stage.kind, row))
+                found[row["doc_id"]].append(row_to_unit(stage.kind, row))
         for d in held:
             out[d] = Loaded(stage.name, sorted(found.get(d, []), key=order_key))
         remaining -= held

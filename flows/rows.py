@@ -137,21 +137,10 @@ def _outcome(row: dict[str, Any]) -> dict[str, Any]:
     }
 
 
-def _stored_payload(stage: str, unit: str, row: dict[str, Any]) -> dict[str, Any]:
-    fields = schema.payload_fields(stage, unit)
-    if stage not in schema.STAGE_PAYLOAD:
-        return dict(row.get("notes") or {})
-    out = {}
-    for f in fields:
-        value = row.get(f.name)
-        if pa.types.is_map(f.type) and value is not None and not isinstance(value, dict):
-            value = dict(value)
-        out[f.name] = value
-    return out
-
-
-def row_to_page(stage: str, row: dict[str, Any]) -> Page:
-    """A stored page row as the next step's input unit (its locator is kept)."""
+def row_to_page(row: dict[str, Any]) -> Page:
+    """A stored page row as the next step's input unit (its locator is kept). An input
+    unit carries no payload: a stage's payload columns are the step's that wrote them
+    (steps.units), and no step reads another's (inputs.read_units leaves them unread)."""
     return Page(
         locator=row["locator"],
         page=row.get("page"),
@@ -163,12 +152,12 @@ def row_to_page(stage: str, row: dict[str, Any]) -> Page:
         language=row.get("language"),
         language_prob=row.get("language_prob"),
         parents=[],
-        payload=_stored_payload(stage, "pages", row),
+        payload={},
         **_outcome(row),
     )
 
 
-def row_to_chunk(stage: str, row: dict[str, Any]) -> Chunk:
+def row_to_chunk(row: dict[str, Any]) -> Chunk:
     return Chunk(
         locator=row["locator"],
         index=int(row.get("chunk_index") or 0),
@@ -187,10 +176,10 @@ def row_to_chunk(stage: str, row: dict[str, Any]) -> Chunk:
         encoding=row.get("encoding"),
         chunk_id=row.get("chunk_id") or "",
         parents=[],
-        payload=_stored_payload(stage, "chunks", row),
+        payload={},
         **_outcome(row),
     )
 
 
-def row_to_unit(stage: str, unit: str, row: dict[str, Any]) -> Page | Chunk:
-    return row_to_page(stage, row) if unit == "pages" else row_to_chunk(stage, row)
+def row_to_unit(unit: str, row: dict[str, Any]) -> Page | Chunk:
+    return row_to_page(row) if unit == "pages" else row_to_chunk(row)

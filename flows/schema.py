@@ -180,6 +180,12 @@ def stage_schema(stage: str, unit: str) -> pa.Schema:
     return pa.schema(COMMON + unit_cols + payload)
 
 
+def unit_columns(unit: str) -> list[str]:
+    """The columns a stored row of `unit` becomes a step's input unit from: the common
+    and unit columns, not the stage's payload (rows.row_to_page, rows.row_to_chunk)."""
+    return [f.name for f in COMMON + (PAGE_COLUMNS if unit == "pages" else CHUNK_COLUMNS)]
+
+
 @lru_cache(maxsize=None)
 def payload_fields(stage: str, unit: str) -> tuple[pa.Field, ...]:
     # Kept once per stage: asked for every row written or read (167,238 times, 1.3 s, in

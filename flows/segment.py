@@ -152,6 +152,7 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
         if call.index > 0:
             for u in inputs:  # a time the previous step measured is not this step's
                 u.duration_ms = None
+                u.payload = {}  # nor its payload: as when read from the store (rows.row_to_page)
         ctx = StepContext(doc_id=doc_id, source_path=source_path, encoding=get_encoding)
         yield Clock(call.limit, call.index)
         started = datetime.now(timezone.utc)

@@ -169,3 +169,14 @@ def timed_pieces(pieces):
         yield Clock(limit, n)
         time.sleep(seconds)
         yield (n, os.getpid())
+
+
+def pass_chunks_along(chunks, params, ctx):
+    """A chunk step that hands its input chunks on as they are (payload included)."""
+    return [replace(c, parents=[c.locator]) for c in chunks]
+
+
+PASS_ALONG = StepSpec(name="pass_along", version="1", consumes="chunks", produces="chunks",
+                      scope="document", params=NoParams, run=pass_chunks_along)
+PASS_ALONG_LATER = StepSpec(name="pass_along_later", version="1", consumes="chunks", produces="chunks",
+                            scope="document", params=NoParams, run=pass_chunks_along)

@@ -57,7 +57,7 @@ def test_rows_made_in_arrow_are_the_row_models_rows_of_the_steps_units(tmp_path)
     dec = {(r["doc_id"], r["chunk_id"]): r for r in decisions.to_pylist()}
     rows = []
     for row in inputs.to_pylist():
-        chunk = row_to_chunk(before, row)
+        chunk = row_to_chunk(row)
         key = (row["doc_id"], chunk.chunk_id)
         payload = {c: sk[key][c] for c in step.spec.sketch_columns}
         payload.update({c: dec[key][c] for c in step.spec.decision_columns})
