@@ -4,10 +4,13 @@ parts), its child processes (warm workers, fork servers, pool or Dask workers), 
 Prefect server.
 
 On a shared machine the wall-clock ratios move with the load; the CPU seconds hardly do.
-From them: a 2-worker run needs at least its CPU seconds spread over the 2 cores, and at
-least the parent's own CPU seconds (one interpreter lock), so against a one-worker run
-that keeps one core busy (flow time = its CPU seconds) it can be at most
-2 * CPU(1) / CPU(2) times faster, and at most CPU(1) / parent CPU(2).
+The columns CPU parent, children and server are whole-run totals (imports and the
+warm workers' preload included). "in flow" is the CPU all of them spent between the
+flow's start and end (polled every 50 ms); spread over the cores it is a floor no
+schedule can beat ("floor s"). "flow/floor" near 1 says the run is CPU-bound: the
+2 workers are busy and only less CPU, not better parallelism, makes it faster.
+"bound" is one worker's flow time over that floor: the most 2 workers could gain
+while they spend that much CPU.
 
 `python -m bench runners` (about two minutes); THRESHER_BENCH_RUNNERS=threads,processes
 limits the runners, THRESHER_BENCH_ROUNDS=2 repeats the set in alternating order.
@@ -43,13 +46,17 @@ class TreeCPU:
     """CPU seconds of a process and of its descendants, polled: a descendant that ends
     between two polls loses at most one poll's worth (warm workers live for the run)."""
 
-    def __init__(self, pid: int, every: float = 0.05):
+    def __init__(self, pid: int, every: float = 0.05, server_pid: int | None = None):
         import psutil
 
         self.root = psutil.Process(pid)
+        self.server = psutil.Process(server_pid) if server_pid else None
         self.own = 0.0
         self.children: dict[int, float] = {}
         self.every = every
+        # (wall clock, own, children, server) at each poll: the CPU spent between the
+        # flow's start and end is read off these (`during`).
+        self.polls: list[tuple[float, float, float, float]] = []
         self._done = threading.Event()
         self._thread = threading.Thread(target=self._poll, daemon=True)
         self._thread.start()
@@ -68,12 +75,23 @@ class TreeCPU:
                     self.children[k.pid] = _cpu_of(k)
                 except psutil.NoSuchProcess:
                     pass
+            server = _cpu_of(self.server) if self.server else 0.0
+            self.polls.append((time.time(), self.own, sum(self.children.values()), server))
             self._done.wait(self.every)
 
     def stop(self) -> tuple[float, float]:
         self._done.set()
         self._thread.join()
         return self.own, sum(self.children.values())
+
+    def during(self, start: float, end: float) -> tuple[float, float, float]:
+        """CPU seconds of the process, its descendants and the server between two
+        wall-clock times: from the last poll before `start` to the first after `end`
+        (so up to one poll interval more on each side)."""
+        before = [p for p in self.polls if p[0] <= start] or self.polls[:1]
+        after = [p for p in self.polls if p[0] >= end] or self.polls[-1:]
+        a, b = before[-1], after[0]
+        return b[1] - a[1], b[2] - a[2], b[3] - a[3]
 
 
 def first_document(store: Path, manifest: dict) -> float:
@@ -105,14 +123,19 @@ def run_once(drive: Path, store: Path, runner: dict, env: dict, tmp: Path, serve
     proc = subprocess.Popen([str(Path(sys.executable).with_name("thresher")), "run", "--config", str(flow),
                              "--source", str(drive), "--store", str(store), "--quiet", "--json"],
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=REPO)
-    tree = TreeCPU(proc.pid)
+    tree = TreeCPU(proc.pid, server_pid=server_pid)
     out, err = proc.communicate()
     wall = time.perf_counter() - t
     parent, children = tree.stop()
     if proc.returncode != 0:
         raise RuntimeError(f"thresher run failed: {err[-2000:]}")
     m = json.loads(out)
+    from datetime import datetime
+
+    flow_cpu = tree.during(datetime.fromisoformat(m["started_at"]).timestamp(),
+                           datetime.fromisoformat(m["finished_at"]).timestamp())
     return {"wall": wall, "flow": m["seconds"], "manifest": m, "parent": parent, "children": children,
+            "flow_cpu": flow_cpu,
             "first": first_document(store, m),
             "server": (_cpu_of(server) - server_before) if server else 0.0, "load": (load, os.getloadavg()[0])}
 
@@ -147,22 +170,29 @@ def main() -> None:
                     results[(kind, workers)].append(res)
                     print(f"  round {r + 1} {kind} x{workers}: flow {res['flow']:.2f} s, wall {res['wall']:.2f} s, "
                           f"CPU parent {res['parent']:.1f} s, children {res['children']:.1f} s, server "
-                          f"{res['server']:.1f} s; first document after {res['first']:.2f} s; load {res['load'][0]:.1f} -> {res['load'][1]:.1f}", flush=True)
+                          f"{res['server']:.1f} s (in the flow {res['flow_cpu'][0]:.2f}, {res['flow_cpu'][1]:.2f}, "
+                          f"{res['flow_cpu'][2]:.2f} s); first document after {res['first']:.2f} s; "
+                          f"load {res['load'][0]:.1f} -> {res['load'][1]:.1f}", flush=True)
         finally:
             server.stop()
     one = results[("sequential", 1)]
     pages = one[0]["manifest"]["pages"]
     print(f"{len(paths)} PDFs, {pages} pages, {os.cpu_count()} cores")
     print(f"{'runner':<16} {'flow s':>7} {'speed-up':>8} {'CPU parent':>10} {'children':>8} {'server':>6} "
-          f"{'CPU vs 1':>8} {'bound 2C1/C2':>12} {'bound C1/P2':>11} {'load':>9}")
+          f"{'CPU vs 1':>8} {'in flow':>7} {'floor s':>7} {'flow/floor':>10} {'bound':>5} {'load':>9}")
     for (kind, workers), runs in results.items():
         for r, res in enumerate(runs):
             base = one[r]
             c1 = base["parent"] + base["children"] + base["server"]
             c2 = res["parent"] + res["children"] + res["server"]
+            # The CPU the run's processes and the server spent while the flow ran, over
+            # the cores: no schedule can end the flow sooner. bound = one worker's flow
+            # time over that floor, the most 2 workers could gain with that much CPU.
+            inside = sum(res["flow_cpu"])
+            floor = inside / min(workers, os.cpu_count() or 1)
             print(f"{kind + ' x' + str(workers):<16} {res['flow']:7.2f} {base['flow'] / res['flow']:8.2f} "
                   f"{res['parent']:10.1f} {res['children']:8.1f} {res['server']:6.1f} {c2 / c1:8.2f} "
-                  f"{2 * c1 / c2:12.2f} {c1 / max(res['parent'], 1e-9):11.2f} "
+                  f"{inside:7.2f} {floor:7.2f} {res['flow'] / floor:10.2f} {base['flow'] / floor:5.2f} "
                   f"{res['load'][0]:4.1f}-{res['load'][1]:.1f}")
     print("flow time per part, s: " + "; ".join(
         f"{k} x{w}: " + ", ".join(f"{p} {v:.2f}" for p, v in runs[0]["manifest"]["timings"].items())
