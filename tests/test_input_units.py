@@ -7,11 +7,10 @@ from __future__ import annotations
 
 import yaml
 
-from tests.test_worker_sketch import FILES
+from tests.test_worker_sketch import _processed
 from thresher.flows.config import build_definition, default_config_text
 from thresher.flows.corpus import run_corpus_step
 from thresher.flows.execute import BatchJob, BatchRunner, DocJob, load_units
-from thresher.flows.store import Store
 
 
 def _definition():
@@ -27,21 +26,10 @@ def _definition():
 
 
 def test_input_units_carry_no_payload_of_the_stage_before_on_either_path(tmp_path):
-    import hashlib
-
-    definition = _definition()
-    names = [s.name for s in definition.steps]
-    dedup, later = names.index("dedup"), names.index("pass_along_later")
-    store = Store(tmp_path / "store")
-    docs, live = [], {}
-    for rank, (path, text) in enumerate(sorted(FILES.items())):
-        (tmp_path / path).write_text(text)
-        doc_id = hashlib.sha256(text.encode()).hexdigest()
-        docs.append(DocJob(doc_id, path, str(tmp_path / path), len(text), 0.0, 0, False))
-        live[doc_id] = (rank, path, 0)
-    BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, list(range(dedup)), "b0", docs))
+    definition, store, dedup, live, _ = _processed(tmp_path, definition=_definition())
+    later = [s.name for s in definition.steps].index("pass_along_later")
     run_corpus_step(definition, store, "r1", dedup, live, set(live))
-    after = [DocJob(d.doc_id, d.source_path, d.abs_path, d.size, d.mtime, later, False) for d in docs]
+    after = [DocJob(d, path, str(tmp_path / path), 0, 0.0, later, False) for d, (_, path, _) in live.items()]
     BatchRunner(definition, store, "r1").run(BatchJob("r1", store.root, [later], "b1", after))
 
     # A step that hands its inputs on writes no notes, on both paths: personal's payload

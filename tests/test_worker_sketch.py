@@ -35,8 +35,10 @@ def _definition():
     return build_definition(data, "test")
 
 
-def _processed(tmp_path, name: str = "store"):
-    definition = _definition()
+def _processed(tmp_path, name: str = "store", definition=None):
+    """The document steps before dedup run on FILES in one batch: (definition, store,
+    dedup's index, live documents, the batch's result)."""
+    definition = definition or _definition()
     dedup = [s.name for s in definition.steps].index("dedup")
     store = Store(tmp_path / name)
     docs, live = [], {}
