@@ -102,3 +102,17 @@ def test_markdown_that_shows_html_is_still_markdown():
     page = one("```html\n<html><body>example</body></html>\n```\n\nThat is a page.\n", "howto.md")
     assert page.format == "markdown"
     assert page.blocks[0].kind == CODE and page.blocks[0].text == "<html><body>example</body></html>"
+
+
+def test_a_link_keeps_its_text_and_drops_its_target_whatever_the_target_holds():
+    # Targets as written in changelogs and wikis: non-ASCII, spaces in angle brackets,
+    # percent signs, a reference link; and one with a scheme markdown-it refuses
+    # (CommonMark's own rule, markdown-it-py's validateLink), left as the text it was.
+    page = one("See [Straße](https://example.invalid/Straße?q=a+b), [the rota](<rota 2026.md>), "
+               "[50 %](https://example.invalid/%zz) and [minutes][m].\n\n"
+               "[m]: https://example.invalid/minutes\n\n"
+               "Not a link: [click](javascript:alert(1)).\n")
+    assert [b.text for b in page.blocks] == [
+        "See Straße, the rota, 50 % and minutes.",
+        "Not a link: [click](javascript:alert(1)).",
+    ]
