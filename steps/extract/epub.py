@@ -12,15 +12,13 @@ from __future__ import annotations
 
 import io
 import posixpath
-import warnings
 import zipfile
 from urllib.parse import unquote
 
-from bs4 import BeautifulSoup, XMLParsedAsHTMLWarning
 from lxml import etree
 
 from .blocks import DocumentFailure, PagePart, ReaderInput, ReadResult, inline
-from .html_walk import Walker
+from .html_walk import Walker, parse_html
 
 _CONTAINER_NS = {"c": "urn:oasis:names:tc:opendocument:xmlns:container"}
 _OPF_NS = {"opf": "http://www.idpf.org/2007/opf", "dc": "http://purl.org/dc/elements/1.1/"}
@@ -36,9 +34,7 @@ def _xml(data: bytes, what: str):
 
 
 def _html_blocks(data: bytes) -> list:
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", XMLParsedAsHTMLWarning)
-        soup = BeautifulSoup(data, "lxml")
+    soup = parse_html(data)
     walker = Walker()
     walker.walk(soup.body or soup)
     walker.flush()

@@ -3,20 +3,13 @@
 
 from __future__ import annotations
 
-import warnings
-
-from bs4 import BeautifulSoup, XMLParsedAsHTMLWarning
-
 from .blocks import PagePart, ReaderInput, ReadResult, inline
-from .html_walk import Walker
+from .html_walk import Walker, parse_html
 
 
 def read_html(inp: ReaderInput) -> ReadResult:
     text, encoding = inp.text or "", inp.encoding
-    with warnings.catch_warnings():
-        # XHTML is read as HTML on purpose: browsers do so for pages served as HTML.
-        warnings.simplefilter("ignore", XMLParsedAsHTMLWarning)
-        soup = BeautifulSoup(text, "lxml")
+    soup = parse_html(text)
     title_tag = soup.find("title")
     title = inline(title_tag.get_text()) if title_tag else ""
     walker = Walker()

@@ -14,14 +14,12 @@ from __future__ import annotations
 import email
 import email.policy
 import re
-import warnings
 from email.message import EmailMessage
 
-from bs4 import BeautifulSoup, XMLParsedAsHTMLWarning
 
 from ..units import Member
 from .blocks import DocumentFailure, PagePart, ReaderInput, ReadResult, inline, paragraph_block
-from .html_walk import Walker
+from .html_walk import Walker, parse_html
 from .unpack import budget_for, check_count, check_nesting, unique_names
 
 _QUOTED = re.compile(r"^\s*>")
@@ -56,9 +54,7 @@ def _body_blocks(text: str) -> list:
 
 
 def _html_blocks(html: str) -> list:
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", XMLParsedAsHTMLWarning)
-        soup = BeautifulSoup(html, "lxml")
+    soup = parse_html(html)
     walker = Walker()
     walker.walk(soup)
     walker.flush()
