@@ -34,9 +34,13 @@ def _xml(data: bytes, what: str):
 
 
 def _html_blocks(data: bytes) -> list:
-    soup = parse_html(data)
+    root = parse_html(data)
+    body = next(root.iter("body"), None) if root is not None else None
     walker = Walker()
-    walker.walk(soup.body or soup)
+    if body is not None:
+        walker.walk(body)
+    else:
+        walker.walk_document(root)
     walker.flush()
     return walker.blocks
 

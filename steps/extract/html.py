@@ -3,17 +3,16 @@
 
 from __future__ import annotations
 
-from .blocks import PagePart, ReaderInput, ReadResult, inline
-from .html_walk import Walker, parse_html
+from .blocks import PagePart, ReaderInput, ReadResult
+from .html_walk import Walker, parse_html, title_text
 
 
 def read_html(inp: ReaderInput) -> ReadResult:
     text, encoding = inp.text or "", inp.encoding
-    soup = parse_html(text)
-    title_tag = soup.find("title")
-    title = inline(title_tag.get_text()) if title_tag else ""
+    root = parse_html(text)
+    title = title_text(root)
     walker = Walker()
-    walker.walk(soup)
+    walker.walk_document(root)
     walker.flush()
     part = PagePart(page=None, blocks=walker.blocks)
     if not walker.blocks:

@@ -1,4 +1,5 @@
-"""HTML to blocks, parsed with beautifulsoup4 on lxml (shared by every reader that meets HTML).
+"""HTML to blocks, parsed by lxml (libxml2's HTML parser) and walked as lxml elements
+(shared by every reader that meets HTML).
 
 Dropped with everything inside: script, style, noscript, template, nav, aside, form
 and form controls, embedded objects, anything marked hidden (the `hidden` attribute,
@@ -20,10 +21,9 @@ The title is <title>, else the first heading.
 from __future__ import annotations
 
 import re
-import warnings
 
-from bs4 import BeautifulSoup, NavigableString, Tag, XMLParsedAsHTMLWarning
-from bs4.element import PreformattedString
+from bs4.dammit import UnicodeDammit
+from lxml import etree
 
 from .blocks import (
     code_block,
@@ -57,27 +57,67 @@ BLOCKISH = {
 _HIDDEN_STYLE = re.compile(r"display\s*:\s*none|visibility\s*:\s*hidden", re.IGNORECASE)
 
 
-def parse_html(markup: str | bytes) -> BeautifulSoup:
-    """The soup every reader walks. XHTML is read as HTML on purpose (browsers do so for
-    pages served as HTML). Attributes stay strings: splitting `class` and the like into
-    lists, which no rule here reads, was 8 % of reading the HTML of the Debian
-    documentation drive (cProfile)."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", XMLParsedAsHTMLWarning)
-        return BeautifulSoup(markup, "lxml", multi_valued_attributes=None)
+# Elements whose own text a reader never sees: get_text leaves it out of <pre> (and
+# beautifulsoup4, the reference in tests/test_html_walk.py, does the same).
+_UNSEEN_TEXT = {"script", "style", "template"}
 
 
-def _tags(children, names) -> list[Tag]:
-    """The elements among `children` named in `names`. (bs4's find_all builds a filter
-    on every call: 6.6 s of the 86 s cProfile gave that drive's HTML.)"""
-    return [c for c in children if isinstance(c, Tag) and c.name in names]
+def parse_html(markup: str | bytes):
+    """The document's root element (None for a document with no element), parsed the
+    way beautifulsoup4 parses with its "lxml" builder: libxml2's HTML parser, recovering
+    from errors, fed the whole text. XHTML is read as HTML on purpose (browsers do so
+    for pages served as HTML). Bytes are decoded first with beautifulsoup4's own
+    detector (UnicodeDammit: byte-order mark, declared encoding, UTF-8, windows-1252).
+
+    Not beautifulsoup4's tree: building it called back into Python for every element
+    and string, 77 % of reading the Debian documentation drive's HTML (cProfile, 1,901
+    files, 42 MB); the same walk over lxml's own tree gives the same blocks
+    (tests/test_html_walk.py)."""
+    if isinstance(markup, bytes):
+        markup = UnicodeDammit(markup, is_html=True).unicode_markup or ""
+    parser = etree.HTMLParser(recover=True)
+    parser.feed(markup)
+    return parser.close()
 
 
-def _dropped(tag: Tag) -> bool:
-    name = tag.name
+def _element(node) -> bool:
+    return isinstance(node.tag, str)  # comments, processing instructions and entities are not
+
+
+def _nodes(el):
+    """The children of `el` in document order: its strings and its elements (comments
+    and processing instructions leave out their own text, not the text after them)."""
+    if el.text:
+        yield el.text
+    for child in el:
+        if isinstance(child.tag, str):
+            yield child
+        if child.tail:
+            yield child.tail
+
+
+def _text(el) -> str:
+    """All the text inside `el`, as beautifulsoup4's get_text gives it."""
+    out: list[str] = []
+
+    def add(e) -> None:
+        if e.tag not in _UNSEEN_TEXT and e.text:
+            out.append(e.text)
+        for child in e:
+            if _element(child):
+                add(child)
+            if child.tail:
+                out.append(child.tail)
+
+    add(el)
+    return "".join(out)
+
+
+def _dropped(tag) -> bool:
+    name = tag.tag
     if name in DROP:
         return True
-    attrs = tag.attrs or {}
+    attrs = tag.attrib
     if "hidden" in attrs or str(attrs.get("aria-hidden", "")).lower() == "true":
         return True
     if _HIDDEN_STYLE.search(str(attrs.get("style", ""))):
@@ -85,55 +125,69 @@ def _dropped(tag: Tag) -> bool:
     if str(attrs.get("role", "")).lower() in DROP_ROLES:
         return True
     if name in ("header", "footer"):
-        return not any(p.name in SECTIONING for p in tag.parents if isinstance(p, Tag))
+        return not any(p.tag in SECTIONING for p in tag.iterancestors())
     return False
 
 
-def inline_text(node: Tag) -> str:
+def inline_text(node) -> str:
     """The text of an element as one line; block boundaries and <br> become spaces."""
     out: list[str] = []
 
-    def walk(el: Tag) -> None:
-        for child in el.children:
-            if isinstance(child, NavigableString):
-                if not isinstance(child, PreformattedString):
-                    out.append(str(child))
-            elif isinstance(child, Tag) and not _dropped(child):
-                if child.name == "br" or child.name in BLOCKISH:
+    def walk(el) -> None:
+        for child in _nodes(el):
+            if isinstance(child, str):
+                out.append(child)
+            elif not _dropped(child):
+                name = child.tag
+                if name == "br" or name in BLOCKISH:
                     out.append(" ")
                 walk(child)
-                if child.name in BLOCKISH:
+                if name in BLOCKISH:
                     out.append(" ")
-                if child.name == "img" and child.get("alt"):
+                if name == "img" and child.get("alt"):
                     out.append(str(child.get("alt")))
 
     walk(node)
     return inline("".join(out))
 
 
-def _rows(table: Tag) -> list[list[str]] | None:
+def _rows(table) -> list[list[str]] | None:
     """Rows of a data table, or None when the table is layout."""
-    if _tags(table.descendants, ("table",)):
+    if next(table.iterdescendants("table"), None) is not None:
         return None
     head, body, foot = [], [], []
-    for tr in _tags(table.descendants, ("tr",)):
-        section = next((p for p in tr.parents if p.name in ("thead", "tfoot", "table")), None)
+    for tr in table.iterdescendants("tr"):
+        section = next((p for p in tr.iterancestors() if p.tag in ("thead", "tfoot", "table")), None)
         row: list[str] = []
-        for cell in _tags(tr.children, ("td", "th")):
+        for cell in tr:
+            if cell.tag not in ("td", "th"):
+                continue
             row.append(inline_text(cell))
             try:
                 span = int(str(cell.get("colspan", "1")).strip() or 1)
             except ValueError:
                 span = 1
             row.extend([""] * max(0, min(span, 100) - 1))
-        target = head if section is not None and section.name == "thead" else (
-            foot if section is not None and section.name == "tfoot" else body)
+        target = head if section is not None and section.tag == "thead" else (
+            foot if section is not None and section.tag == "tfoot" else body)
         target.append(row)
     rows = head + body + foot
     n_rows, n_cols = table_shape(rows)
     if n_rows < 2 or n_cols < 2:
         return None
     return rows
+
+
+def _detach(el) -> None:
+    """Take `el` out of its parent, leaving the text after it where it was."""
+    parent = el.getparent()
+    if el.tail:
+        before = el.getprevious()
+        if before is not None:
+            before.tail = (before.tail or "") + el.tail
+        else:
+            parent.text = (parent.text or "") + el.tail
+    parent.remove(el)
 
 
 class Walker:
@@ -155,18 +209,18 @@ class Walker:
             self.flush()
             self.blocks.append(block)
 
-    def list_lines(self, node: Tag, depth: int, out: list[str]) -> None:
-        ordered = node.name == "ol"
+    def list_lines(self, node, depth: int, out: list[str]) -> None:
+        ordered = node.tag == "ol"
         try:
             number = int(str(node.get("start", "1")).strip() or 1)
         except ValueError:
             number = 1
-        for li in _tags(node.children, ("li",)):
+        for li in [c for c in node if c.tag == "li"]:
             if _dropped(li):
                 continue
-            nested = [c for c in li.children if isinstance(c, Tag) and c.name in LISTS]
+            nested = [c for c in li if c.tag in LISTS]
             for sub in nested:
-                sub.extract()
+                _detach(sub)
             text = inline_text(li)
             marker = f"{number}." if ordered else "-"
             if text:
@@ -176,53 +230,63 @@ class Walker:
                 if not _dropped(sub):
                     self.list_lines(sub, depth + 1, out)
         # Stray text directly in the list (invalid, but seen): keep it as a line.
-        loose = inline("".join(str(c) for c in node.children
-                               if isinstance(c, NavigableString)
-                               and not isinstance(c, PreformattedString)))
+        loose = inline("".join(c for c in _nodes(node) if isinstance(c, str)))
         if loose:
             out.append("  " * depth + loose)
 
-    def walk(self, node: Tag) -> None:
-        for child in node.children:
-            if isinstance(child, NavigableString):
-                if not isinstance(child, PreformattedString):
-                    self.buf.append(str(child).replace("\n", " "))
-                continue
-            if not isinstance(child, Tag) or _dropped(child):
-                continue
-            name = child.name
-            if name in HEADINGS:
-                self.emit(heading_block(inline_text(child), HEADINGS[name]))
-            elif name in LISTS:
-                lines: list[str] = []
-                self.list_lines(child, 0, lines)
-                self.emit(list_block(lines))
-            elif name == "pre":
-                self.emit(code_block(child.get_text()))
-            elif name == "table":
-                rows = _rows(child)
-                if rows is None:
-                    self.flush()
-                    self.walk(child)
-                    self.flush()
-                else:
-                    self.emit(table_block(rows))
-            elif name == "br":
-                self.buf.append("\n")
-            elif name in BLOCKISH:
+    def walk_document(self, root) -> None:
+        """The whole document (root: parse_html's), as its children are walked."""
+        if root is not None:
+            self.visit(root)
+
+    def walk(self, node) -> None:
+        for child in _nodes(node):
+            self.visit(child)
+
+    def visit(self, child) -> None:
+        if isinstance(child, str):
+            self.buf.append(child.replace("\n", " "))
+            return
+        if _dropped(child):
+            return
+        name = child.tag
+        if name in HEADINGS:
+            self.emit(heading_block(inline_text(child), HEADINGS[name]))
+        elif name in LISTS:
+            lines: list[str] = []
+            self.list_lines(child, 0, lines)
+            self.emit(list_block(lines))
+        elif name == "pre":
+            self.emit(code_block(_text(child)))
+        elif name == "table":
+            rows = _rows(child)
+            if rows is None:
                 self.flush()
                 self.walk(child)
                 self.flush()
             else:
-                if name == "img" and child.get("alt"):
-                    self.buf.append(f" {child.get('alt')} ")
-                self.walk(child)
+                self.emit(table_block(rows))
+        elif name == "br":
+            self.buf.append("\n")
+        elif name in BLOCKISH:
+            self.flush()
+            self.walk(child)
+            self.flush()
+        else:
+            if name == "img" and child.get("alt"):
+                self.buf.append(f" {child.get('alt')} ")
+            self.walk(child)
+
+
+def title_text(root) -> str:
+    """The text of the document's first <title>, as one line ("" without one)."""
+    title = next(root.iter("title"), None) if root is not None else None
+    return inline(_text(title)) if title is not None else ""
 
 
 def visible_text(html: str) -> str:
     """The text a reader would see in an HTML fragment, as one line (same drop rules)."""
-    soup = parse_html(html)
     walker = Walker()
-    walker.walk(soup)
+    walker.walk_document(parse_html(html))
     walker.flush()
     return inline(" ".join(b.text for b in walker.blocks))

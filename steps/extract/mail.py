@@ -54,9 +54,8 @@ def _body_blocks(text: str) -> list:
 
 
 def _html_blocks(html: str) -> list:
-    soup = parse_html(html)
     walker = Walker()
-    walker.walk(soup)
+    walker.walk_document(parse_html(html))
     walker.flush()
     return walker.blocks
 
