@@ -153,3 +153,15 @@ def test_page_without_visible_content():
     page = one("<html><head><title>Empty</title></head><body><script>x()</script></body></html>")
     assert page.status == OK and page.blocks == []
     assert page.warnings == ["no text (the page has no visible content)"]
+
+
+def test_text_after_the_closing_html_tag_is_kept():
+    # A page a script or a person appended to after </html>: browsers show that text, and
+    # libxml2 puts it in an <html> element of its own after the first.
+    page = one("<html><head><title>Rota</title></head><body><h1>Rota</h1><p>Tuesday: Ann.</p></body></html>"
+               "\n\nA note added this week: the review moves to Thursday.\n<p>Second note.</p>")
+    assert page.title == "Rota"
+    assert [(b.kind, b.text) for b in page.blocks] == [
+        (HEADING, "Rota"), (PARAGRAPH, "Tuesday: Ann."),
+        (PARAGRAPH, "A note added this week: the review moves to Thursday."), (PARAGRAPH, "Second note."),
+    ]

@@ -16,7 +16,7 @@ import pytest
 from bs4 import BeautifulSoup, NavigableString, Tag, XMLParsedAsHTMLWarning
 from bs4.element import PreformattedString
 
-from thresher.steps.extract.html_walk import parse_html
+from thresher.steps.extract.html_walk import parse_html, top_elements
 
 MANUALS = sorted(p for p in glob.glob("/usr/share/doc/debian-policy/**/*.html", recursive=True)
                  + glob.glob("/usr/share/doc/libxslt1-dev/**/*.html", recursive=True) if os.path.isfile(p))
@@ -87,8 +87,10 @@ def _reference(markup: str | bytes) -> list:
 
 
 def _ours(markup: str | bytes) -> list:
-    root = parse_html(markup)
-    return [] if root is None else _merged(_lxml_events(root, []))
+    out: list = []
+    for top in top_elements(parse_html(markup)):
+        _lxml_events(top, out)
+    return _merged(out)
 
 
 @pytest.mark.skipif(not MANUALS, reason="the debian-policy and libxslt1-dev HTML manuals are not installed")
@@ -116,6 +118,9 @@ def test_the_tree_is_beautifulsoup4s_on_broken_and_odd_markup():
         '<?xml version="1.0" encoding="utf-8"?><html xmlns="http://www.w3.org/1999/xhtml">'
         '<body><p class="a b" hidden>Hidden</p><p>Straße</p></body></html>',
         "<div>unclosed <span>spans <i>and <u>more",
+        # Text and elements after </html>, as a week's edit appends them.
+        "<html><body><p>Rota</p></body></html>\n\nA note added this week.\n",
+        "<html><body><p>Rota</p></body></html><!-- c --><p>Added</p> and more",
     ]
     for page in pages:
         assert _ours(page) == _reference(page), page

@@ -80,6 +80,14 @@ def parse_html(markup: str | bytes):
     return parser.close()
 
 
+def top_elements(root) -> list:
+    """The document's top-level elements: the root, and the further <html> elements
+    libxml2 makes for content after </html> (text appended to an exported page)."""
+    if root is None:
+        return []
+    return [root] + [e for e in root.itersiblings() if isinstance(e.tag, str)]
+
+
 def _element(node) -> bool:
     return isinstance(node.tag, str)  # comments, processing instructions and entities are not
 
@@ -235,9 +243,9 @@ class Walker:
             out.append("  " * depth + loose)
 
     def walk_document(self, root) -> None:
-        """The whole document (root: parse_html's), as its children are walked."""
-        if root is not None:
-            self.visit(root)
+        """The whole document (root: parse_html's)."""
+        for top in top_elements(root):
+            self.visit(top)
 
     def walk(self, node) -> None:
         for child in _nodes(node):
@@ -280,7 +288,7 @@ class Walker:
 
 def title_text(root) -> str:
     """The text of the document's first <title>, as one line ("" without one)."""
-    title = next(root.iter("title"), None) if root is not None else None
+    title = next((t for top in top_elements(root) for t in top.iter("title")), None)
     return inline(_text(title)) if title is not None else ""
 
 
