@@ -127,3 +127,23 @@ def test_the_tree_is_beautifulsoup4s_on_broken_and_odd_markup():
     # Windows-1252 bytes with no declared encoding: both fall back to it.
     data = "<p>Caf\u00e9 \u2013 \u201cquiet room\u201d</p>".encode("cp1252")
     assert _ours(data) == _reference(data)
+
+
+@pytest.mark.skipif(not MANUALS, reason="the debian-policy and libxslt1-dev HTML manuals are not installed")
+def test_the_tree_is_beautifulsoup4s_on_cut_and_spliced_manuals():
+    """Pages broken the ways exports and edits break them: cut anywhere, with a stray
+    tag, an unclosed element or text after </html> spliced in (seeded, so a failure
+    repeats)."""
+    import random
+
+    rng = random.Random(20261204)
+    splices = ["</html>", "</html>\nadded text", "<p>", "</td>", "<table><tr><td>", "</li>",
+               "<!-- cut", "]]>", "<?php echo 1 ?>", "&nbsp", "<pre>", "</body><p>late"]
+    pages = [open(p, "rb").read().decode("utf-8", errors="replace") for p in rng.sample(MANUALS, 12)]
+    for k in range(400):
+        page = rng.choice(pages)
+        start = rng.randrange(len(page))
+        end = min(len(page), start + rng.randrange(200, 6000))
+        at = rng.randrange(start, end)
+        markup = page[start:at] + rng.choice(splices) + page[at:end]
+        assert _ours(markup) == _reference(markup), (k, markup[:300])

@@ -57,8 +57,8 @@ BLOCKISH = {
 _HIDDEN_STYLE = re.compile(r"display\s*:\s*none|visibility\s*:\s*hidden", re.IGNORECASE)
 
 
-# Elements whose own text a reader never sees: get_text leaves it out of <pre> (and
-# beautifulsoup4, the reference in tests/test_html_walk.py, does the same).
+# Elements whose own text a <pre>'s text leaves out, as beautifulsoup4's get_text does
+# (the walk drops these elements everywhere else).
 _UNSEEN_TEXT = {"script", "style", "template"}
 
 
@@ -80,16 +80,16 @@ def parse_html(markup: str | bytes):
     return parser.close()
 
 
+def _element(node) -> bool:
+    return isinstance(node.tag, str)  # comments, processing instructions and entities are not
+
+
 def top_elements(root) -> list:
     """The document's top-level elements: the root, and the further <html> elements
     libxml2 makes for content after </html> (text appended to an exported page)."""
     if root is None:
         return []
-    return [root] + [e for e in root.itersiblings() if isinstance(e.tag, str)]
-
-
-def _element(node) -> bool:
-    return isinstance(node.tag, str)  # comments, processing instructions and entities are not
+    return [root] + [e for e in root.itersiblings() if _element(e)]
 
 
 def _nodes(el):
@@ -98,7 +98,7 @@ def _nodes(el):
     if el.text:
         yield el.text
     for child in el:
-        if isinstance(child.tag, str):
+        if _element(child):
             yield child
         if child.tail:
             yield child.tail
