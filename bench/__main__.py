@@ -9,7 +9,7 @@ import importlib
 import sys
 
 BENCHES = ["goals", "docdrive", "runners", "orchestration", "incremental", "sitefolder", "scale", "chunking", "extract", "dedup", "retrieval", "deliver",
-           "formats", "store_growth", "report", "access", "memory"]
+           "formats", "markup", "store_growth", "report", "access", "memory"]
 
 
 def main(argv: list[str]) -> int:
