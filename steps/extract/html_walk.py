@@ -125,13 +125,14 @@ def _dropped(tag) -> bool:
     name = tag.tag
     if name in DROP:
         return True
-    attrs = tag.attrib
-    if "hidden" in attrs or str(attrs.get("aria-hidden", "")).lower() == "true":
-        return True
-    if _HIDDEN_STYLE.search(str(attrs.get("style", ""))):
-        return True
-    if str(attrs.get("role", "")).lower() in DROP_ROLES:
-        return True
+    keys = tag.keys()
+    if keys:  # most elements have no attribute: nothing more to look up
+        if "hidden" in keys or str(tag.get("aria-hidden", "")).lower() == "true":
+            return True
+        if _HIDDEN_STYLE.search(str(tag.get("style", ""))):
+            return True
+        if str(tag.get("role", "")).lower() in DROP_ROLES:
+            return True
     if name in ("header", "footer"):
         return not any(p.tag in SECTIONING for p in tag.iterancestors())
     return False
@@ -206,6 +207,8 @@ class Walker:
     def flush(self) -> None:
         text = "".join(self.buf)
         self.buf.clear()
+        if not text or text.isspace():
+            return  # most flushes: a block element's edge with only whitespace before it
         # Collapse whitespace, keeping <br> line breaks (marked "\n") as lines.
         lines = [inline(part) for part in text.split("\n")]
         block = paragraph_block("\n".join(line for line in lines if line))
