@@ -116,3 +116,20 @@ def test_a_link_keeps_its_text_and_drops_its_target_whatever_the_target_holds():
         "See Straße, the rota, 50 % and minutes.",
         "Not a link: [click](javascript:alert(1)).",
     ]
+
+
+def test_plain_and_marked_up_paragraphs_give_the_same_kind_of_text():
+    # Paragraphs with no inline markup skip markdown-it's inline parse (markdown.py
+    # _mark_plain); each kind of markup still goes through it.
+    page = one("# Rota for May\n\n"
+               "Line one  \n   line two\twith a tab\nand a third line.\n\n"
+               "The *mobile* library visits on `Tuesdays`.\n\n"
+               "Tea &amp; biscuits at the **hall**_s_ door.\n\n"
+               "Escaped \\*stars\\* and an <https://example.invalid/rota> link.\n")
+    assert [(b.kind, b.text) for b in page.blocks] == [
+        (HEADING, "Rota for May"),
+        (PARAGRAPH, "Line one line two with a tab and a third line."),
+        (PARAGRAPH, "The mobile library visits on Tuesdays."),
+        (PARAGRAPH, "Tea & biscuits at the halls door."),
+        (PARAGRAPH, "Escaped *stars* and an https://example.invalid/rota link."),
+    ]

@@ -36,8 +36,26 @@ _FRONT_KEY = re.compile(r"^[A-Za-z_][\w-]*\s*:")
 _FRONT_TITLE = re.compile(r"^title\s*:\s*(.+?)\s*$", re.MULTILINE | re.IGNORECASE)
 
 
+# The characters markdown-it's inline rules act on in the "commonmark" preset (escape,
+# backticks, emphasis, link, image, autolink, HTML, entity); line breaks only become
+# spaces, which the blocks' whitespace collapse (blocks.inline) does anyway.
+_INLINE_MARKUP = re.compile(r"[\\`*_\[\]!<&]")
+# An inline token with none of them: its content is its text, unparsed.
+PLAIN_INLINE = "inline_plain"
+
+
+def _mark_plain(state) -> None:
+    """A core rule run before markdown-it's "inline": inline parsing of content with no
+    markup character gives back the content itself (one text token, line breaks as soft
+    breaks), so such tokens are renamed and not parsed."""
+    for token in state.tokens:
+        if token.type == "inline" and not _INLINE_MARKUP.search(token.content):
+            token.type = PLAIN_INLINE
+
+
 def _parser() -> MarkdownIt:
     md = MarkdownIt("commonmark").enable("table")
+    md.core.ruler.before("inline", "plain_inline", _mark_plain)
     # A link's target is dropped (only its text is kept), so it need not be normalised:
     # percent-encoding every target was 18 % of the parse on the Debian documentation
     # drive's 195 Markdown files (14 MB, mostly changelogs full of links). Whether a
@@ -64,6 +82,8 @@ def split_front_matter(text: str) -> tuple[str, str]:
 
 
 def _inline_text(token: Token) -> str:
+    if token.type == PLAIN_INLINE:
+        return token.content
     out: list[str] = []
     for child in token.children or []:
         if child.type in ("text", "code_inline"):
@@ -134,7 +154,7 @@ def markdown_blocks(text: str) -> list:
             item_open.pop()
             if lists and lists[-1][0]:
                 lists[-1][1] += 1
-        elif kind == "inline":
+        elif kind in ("inline", PLAIN_INLINE):
             add_text(_inline_text(tok))
         elif kind in ("fence", "code_block"):
             end_list()
@@ -149,7 +169,7 @@ def markdown_blocks(text: str) -> list:
                 t = tokens[i]
                 if t.type == "tr_open":
                     rows.append([])
-                elif t.type == "inline" and rows:
+                elif t.type in ("inline", PLAIN_INLINE) and rows:
                     rows[-1].append(_inline_text(t))
                 i += 1
             block = table_block(rows)
