@@ -289,9 +289,14 @@ class Walker:
             self.walk(child)
 
 
+def first_element(root, name: str):
+    """The document's first element named `name`, in document order, or None."""
+    return next((e for top in top_elements(root) for e in top.iter(name)), None)
+
+
 def title_text(root) -> str:
     """The text of the document's first <title>, as one line ("" without one)."""
-    title = next((t for top in top_elements(root) for t in top.iter("title")), None)
+    title = first_element(root, "title")
     return inline(_text(title)) if title is not None else ""
 
 
