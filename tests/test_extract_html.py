@@ -165,3 +165,14 @@ def test_text_after_the_closing_html_tag_is_kept():
         (HEADING, "Rota"), (PARAGRAPH, "Tuesday: Ann."),
         (PARAGRAPH, "A note added this week: the review moves to Thursday."), (PARAGRAPH, "Second note."),
     ]
+
+
+def test_deep_nesting_is_read_or_fails_the_page_never_dropped_in_silence():
+    # libxml2 keeps 256 levels unless told otherwise and drops what is deeper, and what
+    # follows it, without a word; generated pages nest that deep. 300 levels are read.
+    page = one("<div>" * 300 + "Deep notice." + "</div>" * 300 + "<p>After the nest.</p>")
+    assert page.status == OK
+    assert [b.text for b in page.blocks] == ["Deep notice.", "After the nest."]
+    # Far deeper than any page needs: the page fails with a reason, it is not "ok, empty".
+    page = one("<div>" * 50000 + "lost")
+    assert page.status == "failed" and "could not extract HTML" in page.reason

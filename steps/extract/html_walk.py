@@ -72,10 +72,13 @@ def parse_html(markup: str | bytes):
     Not beautifulsoup4's tree: building it called back into Python for every element
     and string, 77 % of reading the Debian documentation drive's HTML (cProfile, 1,901
     files, 42 MB); the same walk over lxml's own tree gives the same blocks
-    (tests/test_html_walk.py)."""
+    (tests/test_html_walk.py). `huge_tree`: without it libxml2's tree keeps 256 levels
+    and drops what is deeper, and what follows, without an error (bs4, fed the parse
+    events, saw it all); with it, a page nested too deep for the walk fails with a
+    reason instead (tests/test_extract_html.py)."""
     if isinstance(markup, bytes):
         markup = UnicodeDammit(markup, is_html=True).unicode_markup or ""
-    parser = etree.HTMLParser(recover=True)
+    parser = etree.HTMLParser(recover=True, huge_tree=True)
     parser.feed(markup)
     return parser.close()
 
