@@ -26,6 +26,16 @@ def _files(suffixes: tuple[str, ...]) -> list[Path]:
             and not p.is_symlink()]
 
 
+def _corpus(suffixes: tuple[str, ...], what: str):
+    """(paths, bytes, text, MB) of the files with these suffixes, or None (said why)."""
+    paths = _files(suffixes)
+    if not paths:
+        print(f"no {what} under {DOCS}")
+        return None
+    data = [p.read_bytes() for p in paths]
+    return paths, data, [d.decode("utf-8", errors="replace") for d in data], sum(len(d) for d in data) / 1e6
+
+
 def _best(run, rounds: int = 2) -> float:
     best = 1e9
     for _ in range(rounds):
@@ -50,13 +60,10 @@ def html() -> None:
     from bs4 import BeautifulSoup, XMLParsedAsHTMLWarning
     from lxml import etree
 
-    paths = _files((".html", ".htm", ".xhtml"))
-    if not paths:
-        print("no HTML under /usr/share/doc")
+    corpus = _corpus((".html", ".htm", ".xhtml"), "HTML")
+    if corpus is None:
         return
-    data = [p.read_bytes() for p in paths]
-    texts = [d.decode("utf-8", errors="replace") for d in data]
-    mb = sum(len(d) for d in data) / 1e6
+    paths, data, texts, mb = corpus
 
     def parse_only() -> None:
         for t in texts:
@@ -81,13 +88,10 @@ def html() -> None:
 def markdown() -> None:
     from markdown_it import MarkdownIt
 
-    paths = _files((".md", ".markdown"))
-    if not paths:
-        print("no Markdown under /usr/share/doc")
+    corpus = _corpus((".md", ".markdown"), "Markdown")
+    if corpus is None:
         return
-    data = [p.read_bytes() for p in paths]
-    texts = [d.decode("utf-8", errors="replace") for d in data]
-    mb = sum(len(d) for d in data) / 1e6
+    paths, data, texts, mb = corpus
     md = MarkdownIt("commonmark").enable("table")
     ours = _best(lambda: _extract_all(paths, data))
     parse = _best(lambda: [md.parse(t) for t in texts])

@@ -26,8 +26,8 @@ from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, R
                                     claim_waiting, give_back, idle_count, isolation_available, prewarm,
                                     take_worker)
 from thresher.flows.rows import RowContext, rows_to_table, to_row
-from thresher.flows.segment import (SKETCH_TAG, PassedOn, Sketched, StepCall, StepDone, failed_document_unit,
-                                    order_key, run_segment)
+from thresher.flows.segment import (SKETCH_TAG, PassedOn, Sketched, StepCall, StepDone, as_next_inputs,
+                                    failed_document_unit, order_key, run_segment)
 from thresher.flows.store import Store
 from thresher.steps.incremental import IncrementalCorpusSpec
 from thresher.steps.spec import StepContext
@@ -423,9 +423,7 @@ class BatchRunner:
                 continue  # passed by: the next step reads what this one would have read
             ctx = StepContext(doc_id=doc.doc_id, source_path=doc.source_path, encoding=get_encoding)
             if i > 0:
-                for u in inputs:  # a time the previous step measured is not this step's
-                    u.duration_ms = None
-                    u.payload = {}  # nor its payload: as when read from the store (rows.row_to_page)
+                as_next_inputs(inputs)
             started = now_utc()
             t0 = time.perf_counter()
             caller = self._caller_for(step)

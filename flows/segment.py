@@ -113,6 +113,15 @@ def sketch_here(call: StepCall, chunks: list, doc_id: str, source_path: str) -> 
         return None
 
 
+def as_next_inputs(units: list) -> None:
+    """Units handed to the next step lose what belonged to the step before: its time
+    (duration_ms) and its payload, as when they are read back from the store
+    (rows.row_to_page)."""
+    for u in units:
+        u.duration_ms = None
+        u.payload = {}
+
+
 def passes_by(call: StepCall, units: Any) -> bool:
     """A format-limited step writes nothing for a document of other formats."""
     return call.index > 0 and bool(call.formats) and not any(u.format in call.formats for u in units)
@@ -150,9 +159,7 @@ def run_segment(calls: list[StepCall], inputs: Any, doc_id: str, source_path: st
         if passes_by(call, inputs):
             continue
         if call.index > 0:
-            for u in inputs:  # a time the previous step measured is not this step's
-                u.duration_ms = None
-                u.payload = {}  # nor its payload: as when read from the store (rows.row_to_page)
+            as_next_inputs(inputs)
         ctx = StepContext(doc_id=doc_id, source_path=source_path, encoding=get_encoding)
         yield Clock(call.limit, call.index)
         started = datetime.now(timezone.utc)

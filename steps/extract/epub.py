@@ -18,7 +18,7 @@ from urllib.parse import unquote
 from lxml import etree
 
 from .blocks import DocumentFailure, PagePart, ReaderInput, ReadResult, inline
-from .html_walk import Walker, first_element, parse_html
+from .html_walk import document_blocks, parse_html
 
 _CONTAINER_NS = {"c": "urn:oasis:names:tc:opendocument:xmlns:container"}
 _OPF_NS = {"opf": "http://www.idpf.org/2007/opf", "dc": "http://purl.org/dc/elements/1.1/"}
@@ -34,15 +34,7 @@ def _xml(data: bytes, what: str):
 
 
 def _html_blocks(data: bytes) -> list:
-    root = parse_html(data)
-    body = first_element(root, "body")
-    walker = Walker()
-    if body is not None:
-        walker.walk(body)
-    else:
-        walker.walk_document(root)
-    walker.flush()
-    return walker.blocks
+    return document_blocks(parse_html(data), within="body")
 
 
 def read_epub(inp: ReaderInput) -> ReadResult:

@@ -297,6 +297,19 @@ def first_element(root, name: str):
     return next((e for top in top_elements(root) for e in top.iter(name)), None)
 
 
+def document_blocks(root, within: str | None = None) -> list:
+    """The blocks of a parsed document (parse_html's root): the content of its first
+    `within` element when it has one (an EPUB chapter's body), else the whole document."""
+    walker = Walker()
+    part = first_element(root, within) if within else None
+    if part is not None:
+        walker.walk(part)
+    else:
+        walker.walk_document(root)
+    walker.flush()
+    return walker.blocks
+
+
 def title_text(root) -> str:
     """The text of the document's first <title>, as one line ("" without one)."""
     title = first_element(root, "title")
@@ -305,7 +318,4 @@ def title_text(root) -> str:
 
 def visible_text(html: str) -> str:
     """The text a reader would see in an HTML fragment, as one line (same drop rules)."""
-    walker = Walker()
-    walker.walk_document(parse_html(html))
-    walker.flush()
-    return inline(" ".join(b.text for b in walker.blocks))
+    return inline(" ".join(b.text for b in document_blocks(parse_html(html))))

@@ -19,7 +19,7 @@ from email.message import EmailMessage
 
 from ..units import Member
 from .blocks import DocumentFailure, PagePart, ReaderInput, ReadResult, inline, paragraph_block
-from .html_walk import Walker, parse_html
+from .html_walk import document_blocks, parse_html
 from .unpack import budget_for, check_count, check_nesting, unique_names
 
 _QUOTED = re.compile(r"^\s*>")
@@ -54,10 +54,7 @@ def _body_blocks(text: str) -> list:
 
 
 def _html_blocks(html: str) -> list:
-    walker = Walker()
-    walker.walk_document(parse_html(html))
-    walker.flush()
-    return walker.blocks
+    return document_blocks(parse_html(html))
 
 
 def _text_of(part: EmailMessage) -> str:

@@ -14,6 +14,7 @@
 from __future__ import annotations
 
 import re
+from functools import lru_cache
 
 from markdown_it import MarkdownIt
 from markdown_it.token import Token
@@ -42,6 +43,7 @@ _FRONT_TITLE = re.compile(r"^title\s*:\s*(.+?)\s*$", re.MULTILINE | re.IGNORECAS
 _INLINE_MARKUP = re.compile(r"[\\`*_\[\]!<&]")
 # An inline token with none of them: its content is its text, unparsed.
 PLAIN_INLINE = "inline_plain"
+_INLINE_KINDS = ("inline", PLAIN_INLINE)
 
 
 def _mark_plain(state) -> None:
@@ -53,7 +55,9 @@ def _mark_plain(state) -> None:
             token.type = PLAIN_INLINE
 
 
+@lru_cache(maxsize=1)
 def _parser() -> MarkdownIt:
+    """Made once per process: parse keeps its state per call, not in the parser."""
     md = MarkdownIt("commonmark").enable("table")
     md.core.ruler.before("inline", "plain_inline", _mark_plain)
     # A link's target is dropped (only its text is kept), so it need not be normalised:
@@ -154,7 +158,7 @@ def markdown_blocks(text: str) -> list:
             item_open.pop()
             if lists and lists[-1][0]:
                 lists[-1][1] += 1
-        elif kind in ("inline", PLAIN_INLINE):
+        elif kind in _INLINE_KINDS:
             add_text(_inline_text(tok))
         elif kind in ("fence", "code_block"):
             end_list()
@@ -169,7 +173,7 @@ def markdown_blocks(text: str) -> list:
                 t = tokens[i]
                 if t.type == "tr_open":
                     rows.append([])
-                elif t.type in ("inline", PLAIN_INLINE) and rows:
+                elif t.type in _INLINE_KINDS and rows:
                     rows[-1].append(_inline_text(t))
                 i += 1
             block = table_block(rows)
