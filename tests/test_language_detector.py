@@ -5,7 +5,8 @@ text with the same seed: the n-grams it extracts, the text it keeps, and the
 probabilities it ends with must be exactly equal. Text: the first translated manual
 pages Debian ships in `manpages-de`, `manpages-fr` and `manpages-es` (read as in
 tests/test_language_mixed.py), plus short texts in other scripts and with capital
-words, runs of spaces and a text that stops mid-word.
+words, runs of spaces and a text that stops mid-word, and long texts with URLs and
+addresses where the detector cuts them.
 """
 
 from __future__ import annotations
@@ -36,6 +37,16 @@ def _texts() -> list[str]:
         "Ceci est un TEST  avec   des espaces, l'été et des mots EN CAPITALES",
         "Привет, мир! Это проверка.", "日本語のテキストとカタカナ", "中文文本测试", "한국어 텍스트",
         "Tiếng Việt có dấu", "ends mid-wor",
+        # Past twice langdetect's 10,000 characters, where the detector cuts a long text
+        # at a space before removing URLs and addresses: a URL and an address across
+        # character 20,000, a text whose start is nearly all URLs, and one where the
+        # 10,000th character kept is the start of a URL across character 20,000
+        # (9,523 characters of words and 238 URLs of 43 characters keep 9,999).
+        "word " * 3999 + "xyhttps://example.org/path/to/page and more words" * 800,
+        "mot " * 4999 + "jean.dupont@example.org, des mots " * 900,
+        "https://example.org/a " * 3000 + "Ceci est la fin du texte, en français cette fois. " * 400,
+        "word " * 1904 + "abc" + ("https://example.org/" + "p" * 23 + " ") * 238
+        + "https://example.org/last and then more words" * 500,
         "Настройка и проверка файла конфигурации: API_[x]", "Ẫẫ Ỗỗ ab", "テキスト ABC def", "A", " ", "",
     ]
     return texts
