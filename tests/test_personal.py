@@ -17,7 +17,8 @@ import phonenumbers
 import pytest
 from bs4 import BeautifulSoup, XMLParsedAsHTMLWarning
 
-from thresher.steps.personal import PersonalParams, card_issuer_ok, find, find_personal, marker
+from thresher.steps.personal import (PersonalParams, _phone_findings, _phones, card_issuer_ok, find,
+                                     find_personal, marker)
 from thresher.steps.units import Chunk
 
 GB = PersonalParams(region="GB", countries=["fi", "se", "nl", "no"])
@@ -83,6 +84,33 @@ def test_the_libraries_example_numbers_are_found(region):
     assert _kinds(f"Call the desk on {national} after ten.", params) == [("phone", national)]
 
 
+def test_skipping_the_phone_matcher_loses_no_number():
+    # The step skips phonenumbers' matcher on text with fewer than six digits, and on
+    # text with no plus sign when no region is set; the matcher run on every text is the
+    # reference. Texts: phonenumbers' example number for every region it supports (its
+    # metadata, from Google's libphonenumber), written in international form with an
+    # ASCII and a full-width plus sign and in national form, and short texts below six
+    # digits; each judged without a region and with the number's own.
+    checked = found = 0
+    for region in sorted(phonenumbers.SUPPORTED_REGIONS):
+        number = phonenumbers.example_number(region)
+        if number is None:
+            continue
+        intl = phonenumbers.format_number(number, phonenumbers.PhoneNumberFormat.INTERNATIONAL)
+        national = phonenumbers.format_number(number, phonenumbers.PhoneNumberFormat.NATIONAL)
+        texts = [f"Call the desk on {intl} after ten.", f"Call the desk on {intl.replace('+', '＋')}.",
+                 f"Call the desk on {national} after ten.", f"Room {national[:4]}, desk 5."]
+        for text in texts:
+            for judged_in in (None, region):
+                want = _phone_findings(text, judged_in)
+                assert _phones(text, judged_in) == want, (region, text, judged_in)
+                checked += 1
+                found += bool(want)
+    # Most regions' numbers are found, written either way (a few regions' example
+    # numbers are too short for the step's six-digit rule).
+    assert checked > 1500 and found > 700
+
+
 # National IDs with check digits, from the issuing authorities' published examples
 # (from memory): Finland's personal identity code as the Digital and Population Data
 # Services Agency explains it (131052-308T); Sweden's personnummer as Skatteverket's
@@ -100,6 +128,15 @@ def test_emails_and_ips():
     text = "Write to desk.clerk@example.org or log in from 192.0.2.14 or 2001:db8::8a2e:370:7334 today."
     assert _kinds(text) == [("email", "desk.clerk@example.org"), ("ip", "192.0.2.14"),
                             ("ip", "2001:db8::8a2e:370:7334")]
+
+
+def test_the_shortest_addresses_are_found():
+    # The step looks for an "@", four digits and three dots, or two colons with at most
+    # four hex digits between them, before running each pattern; the shortest forms
+    # must still be found. RFC 4291 writes the link-local prefix as fe80::/10.
+    assert _kinds("Mail x@example.org now") == [("email", "x@example.org")]
+    assert _kinds("Ping 1.2.3.4 now") == [("ip", "1.2.3.4")]
+    assert _kinds("Ping fe80::1 now") == [("ip", "fe80::1")]
 
 
 def test_versions_dates_isbns_and_numbers_are_not_phones_or_cards():
