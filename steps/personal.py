@@ -248,10 +248,10 @@ def _date_like(raw: str) -> bool:
 _PLUS_SIGNS = ("+", "\uff0b")
 
 
-def _phones(text: str, region: str | None, digits: int | None = None) -> list[Finding]:
+def _phones(text: str, region: str | None, digits: int) -> list[Finding]:
     if region is None and not any(sign in text for sign in _PLUS_SIGNS):
         return []
-    if (_digit_count(text) if digits is None else digits) < 6:
+    if digits < 6:
         return []
     return _phone_findings(text, region)
 
