@@ -133,3 +133,36 @@ def test_plain_and_marked_up_paragraphs_give_the_same_kind_of_text():
         (PARAGRAPH, "Tea & biscuits at the halls door."),
         (PARAGRAPH, "Escaped *stars* and an https://example.invalid/rota link."),
     ]
+
+
+def test_link_targets_end_where_markdown_its_own_parser_ends_them():
+    # Reference: markdown-it-py's parseLinkDestination (PyPI markdown-it-py), which the
+    # reader replaces for targets without angle brackets (markdown.link_destination).
+    # Seeded random strings of the characters it acts on (spaces, controls, backslash
+    # escapes, brackets, angle brackets, line breaks) among ordinary and non-ASCII ones,
+    # at random start and end positions, and brackets nested 32 and 33 deep (its limit).
+    import random
+
+    from markdown_it import helpers
+
+    from thresher.steps.extract.markdown import link_destination
+
+    def same(string: str, pos: int, maximum: int) -> None:
+        want = helpers.parseLinkDestination(string, pos, maximum)
+        got = link_destination(string, pos, maximum)
+        assert (got.ok, got.pos, got.str) == (want.ok, want.pos, want.str), (string, pos, maximum)
+
+    rng = random.Random(11)
+    pieces = list("ab( )\\<>\n\x00\x1f\x7f\t\u00a0é.:/#%&") + ["\\ ", "\\(", "\\)", "((", "))", "&amp;"]
+    ended = 0
+    for _ in range(20_000):
+        string = "".join(rng.choice(pieces) for _ in range(rng.randint(0, 30)))
+        pos = rng.randint(0, len(string))
+        maximum = rng.randint(pos, len(string))
+        same(string, pos, maximum)
+        ended += helpers.parseLinkDestination(string, pos, maximum).ok
+    assert ended > 2_000
+    for depth in (32, 33):
+        target = "(" * depth + "x" + ")" * depth + " tail"
+        same(target, 0, len(target))
+        same("\\" + target, 0, len(target) + 1)
