@@ -297,15 +297,25 @@ def first_element(root, name: str):
     return next((e for top in top_elements(root) for e in top.iter(name)), None)
 
 
+class NestedTooDeep(ValueError):
+    """Elements nested deeper than the walk follows (it recurses once per level)."""
+
+
 def document_blocks(root, within: str | None = None) -> list:
     """The blocks of a parsed document (parse_html's root): the content of its first
     `within` element when it has one (an EPUB chapter's body), else the whole document."""
     walker = Walker()
     part = first_element(root, within) if within else None
-    if part is not None:
-        walker.walk(part)
-    else:
-        walker.walk_document(root)
+    try:
+        if part is not None:
+            walker.walk(part)
+        else:
+            walker.walk_document(root)
+    except RecursionError:
+        # Python's own message ("maximum recursion depth exceeded") says nothing about
+        # the page. The walk follows about 490 levels from the extract step (measured).
+        raise NestedTooDeep("elements nested too deep to read (hundreds of levels, one inside "
+                            "another; pages people write nest a few dozen)") from None
     walker.flush()
     return walker.blocks
 
