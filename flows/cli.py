@@ -228,10 +228,30 @@ def cmd_run(args: argparse.Namespace) -> int:
     # run's first document by 0.56 s.
     from thresher.flows.execute import prewarm_run
 
+    if not os.environ.get("PREFECT_API_URL"):
+        _need_prefect_api()  # a local port: microseconds to ask, so no worker starts for nothing
     prewarm_run(definition, source, store_root, args.workers, args.force)
+    try:
+        _run_checks(args, definition)
+    except UsageError:
+        from thresher.flows.isolate import close_idle
+
+        close_idle()  # refused: its one line, not the fork server's traceback
+        raise
+    if not args.quiet:
+        print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
+              "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
+    code = _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
+                           probes=args.probes, verify=args.verify)
+    return code
+
+
+def _run_checks(args: argparse.Namespace, definition: FlowDefinition) -> None:
+    """What `run` refuses before starting Prefect: a missing encoding, a bad probe file,
+    no Prefect server to reach."""
     from thresher.flows.encodings import EncodingUnavailable, check_encoding
 
-    for step in definition.steps:  # fail before starting Prefect if an encoding is missing
+    for step in definition.steps:
         for name in step.spec.encoding_params:
             value = getattr(step.params, name)
             for enc in ([value] if isinstance(value, str) else list(value)):
@@ -251,12 +271,6 @@ def cmd_run(args: argparse.Namespace) -> int:
     elif args.fail_on_regression:
         raise UsageError("--fail-on-regression needs probes: --probes FILE or `probes:` in the definition")
     _need_prefect_api()
-    if not args.quiet:
-        print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
-              "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
-    code = _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
-                           probes=args.probes, verify=args.verify)
-    return code
 
 
 def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source: str, store_root: str,

@@ -440,6 +440,17 @@ def idle_count() -> int:
         return len(_idle)
 
 
+def close_idle() -> None:
+    """Stop the warm workers no batch has taken (a run refused before its flow starts).
+    Each first waits for its start to finish: a process that exits while the fork server
+    is half-way through a spawn leaves it printing a traceback of its own on stderr."""
+    with _idle_lock:
+        callers = list(_idle)
+        _idle.clear()
+    for caller in callers:
+        caller.close()
+
+
 def prewarm(workers: int) -> None:
     """Have `workers` warm workers starting in the background (idle workers left by an
     earlier run in this process count); the first batches take them from the pool."""
