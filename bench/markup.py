@@ -45,15 +45,15 @@ def _best(run, rounds: int = 2) -> float:
     return best
 
 
-def _extract_all(paths: list[Path], texts: list[bytes]) -> None:
+def _extract_all(paths: list[Path], data: list[bytes]) -> None:
     from thresher.steps.extract.step import ExtractParams, extract
     from thresher.steps.spec import StepContext
     from thresher.steps.units import Source
 
     params = ExtractParams()
-    for p, data in zip(paths, texts):
+    for p, raw in zip(paths, data):
         rel = str(p.relative_to(DOCS))
-        extract(Source("bench", rel, data, len(data), 0.0), params, StepContext(doc_id="bench", source_path=rel))
+        extract(Source("bench", rel, raw, len(raw), 0.0), params, StepContext(doc_id="bench", source_path=rel))
 
 
 def html() -> None:

@@ -241,9 +241,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     if not args.quiet:
         print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
               "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
-    code = _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
+    return _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
                            probes=args.probes, verify=args.verify)
-    return code
 
 
 def _run_checks(args: argparse.Namespace, definition: FlowDefinition) -> None:
