@@ -37,7 +37,7 @@ from thresher.flows import schema
 from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
 from thresher.flows.execute import Unit, applies_to, load_units, now_utc, trail, unit_kind
-from thresher.flows.inputs import read_chunk_table
+from thresher.flows.inputs import read_chunk_table, read_order
 from thresher.flows.rows import RowContext, row_to_chunk, rows_to_table, to_row, unit_id
 from thresher.flows.store import Store
 from thresher.steps.incremental import IncrementalCorpusSpec, IncrementalPageSpec
@@ -270,14 +270,12 @@ def _batches(items: list[str], size: int) -> list[list[str]]:
 
 def _in_part_order(store: Store, definition: FlowDefinition, index: int, run_id: str,
                    doc_ids: list[str], size: int) -> list[str]:
-    """doc_ids in the order of the part files holding their latest rows at the stage
-    before, so that a batch of `size` reads a few part files, not all of them (each
-    read filters whole files by doc_id: on a 3,169-document drive, 13 batches in doc_id
-    order each read all 174 parts, 8.7 s of reads)."""
+    """doc_ids in inputs.read_order, so that a batch of `size` reads a few part files, not
+    all of them (each read filters whole files by doc_id: on a 3,169-document drive, 13
+    batches in doc_id order each read all 174 parts, 8.7 s of reads)."""
     if len(doc_ids) <= size or index == 0:
         return doc_ids
-    parts = store.doc_parts(definition.steps[index - 1].name, include_run=run_id)
-    return sorted(doc_ids, key=lambda d: (parts[d][-1] if d in parts else "\uffff", d))
+    return read_order(store, trail(definition, index), doc_ids, run_id)
 
 
 # The columns of a chunk's stored row that a corpus chunk step's own row is made from

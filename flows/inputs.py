@@ -98,6 +98,30 @@ def read_units(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: li
     return out
 
 
+def read_order(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: list[str],
+               run_id: str) -> list[str]:
+    """doc_ids in an order in which a run of consecutive ones is cheap to read: grouped by
+    the part file holding each one's latest rows at the stage read_units reads it from,
+    in doc_id order within a file. A part's rows are sorted by doc_id, so a reader of
+    such a run touches few files and, by Parquet's statistics, few row groups in each;
+    a run of documents in any other order decodes most of every file it touches (a
+    batch of 32 documents after dedup on a 3,159-document drive: 0.16 s of CPU against
+    0.02 s)."""
+    where: dict[str, tuple[int, str]] = {}
+    remaining = set(doc_ids)
+    for k, stage in enumerate(reversed(trail)):
+        if not remaining:
+            break
+        parts = store.doc_parts(stage.name, include_run=run_id)
+        for d in [d for d in remaining if parts.get(d)]:
+            where[d] = (k, parts[d][-1])
+            remaining.discard(d)
+        if not stage.limited:
+            break
+    unknown = (len(trail), "")
+    return sorted(doc_ids, key=lambda d: (where.get(d, unknown), d))
+
+
 def read_chunk_table(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: list[str], run_id: str,
                      columns: list[str]) -> pa.Table:
     """read_units for chunks, kept in Arrow: the ok rows (these `columns`, which must

@@ -31,7 +31,9 @@ from prefect.utilities.annotations import quote
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
 from thresher.flows.discover import known_files, scan
-from thresher.flows.execute import BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run, unit_kind
+from thresher.flows.execute import (BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run, trail,
+                                    unit_kind)
+from thresher.flows.inputs import read_order
 from thresher.flows.isolate import limit_workers, prewarm
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
@@ -84,7 +86,8 @@ def _live(progress: Callable[[str], None] | None, event: str, *args: Any) -> boo
 
 
 def make_batches(jobs: list[DocJob], batch_size: int, workers: int = 1,
-                 batch_bytes: int = BATCH_BYTES, per_worker: int = BATCHES_PER_WORKER) -> list[list[DocJob]]:
+                 batch_bytes: int = BATCH_BYTES, per_worker: int = BATCHES_PER_WORKER,
+                 order: list[str] | None = None) -> list[list[DocJob]]:
     """Group documents into batches, largest documents first.
 
     A batch is closed at `batch_size` documents or at a byte budget: the drive's bytes
@@ -92,8 +95,16 @@ def make_batches(jobs: list[DocJob], batch_size: int, workers: int = 1,
     huge PDFs each get a batch of their own and start first, and the many small files
     fill the remaining batches, which keeps every worker busy to the end. A segment of
     under SMALL_SEGMENT_BYTES in all (a quiet week's few edits) is not split by bytes.
+
+    With `order` (doc_ids, inputs.read_order: a segment that reads its inputs from the
+    store) batches are filled in that order, so each reads few part files and row
+    groups, and then the batches holding the largest documents go first.
     """
-    jobs = sorted(jobs, key=lambda j: (-j.size, j.source_path))
+    if order is None:
+        jobs = sorted(jobs, key=lambda j: (-j.size, j.source_path))
+    else:
+        at = {d: k for k, d in enumerate(order)}
+        jobs = sorted(jobs, key=lambda j: at.get(j.doc_id, len(at)))
     total = sum(j.size for j in jobs)
     budget = min(batch_bytes, max(1, total // max(1, workers * per_worker)))
     if total < SMALL_SEGMENT_BYTES:
@@ -109,6 +120,8 @@ def make_batches(jobs: list[DocJob], batch_size: int, workers: int = 1,
         size += job.size
     if current:
         batches.append(current)
+    if order is not None:
+        batches.sort(key=lambda b: -max(j.size for j in b))
     return batches
 
 
@@ -341,8 +354,12 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             # one batch per worker, not four, saves task runs and reads of stored inputs
             # (the goals' 8 PDFs, 2 threads: 7 batches -> 3).
             chunk_steps = definition.steps[first].spec.consumes == "chunks"
+            # Documents read back from the store (after a corpus step) are batched in the
+            # order that reads fewest part files and row groups; a few fit one batch anyway.
+            order = (read_order(Store(store_root), trail(definition, first), [j.doc_id for j in seg_jobs], run_id)
+                     if first > 0 and len(seg_jobs) > model.runner.batch_size else None)
             batches = make_batches(seg_jobs, model.runner.batch_size, workers,
-                                   per_worker=1 if chunk_steps else BATCHES_PER_WORKER)
+                                   per_worker=1 if chunk_steps else BATCHES_PER_WORKER, order=order)
             if not batches:
                 if first == 0 and plan.run_id:
                     add_members(plan, [])  # members of removed containers leave
