@@ -317,3 +317,33 @@ def test_target_settings_are_checked_with_the_key_named():
         _definition([{"name": "a", "kind": "oracle"}])
     with pytest.raises(ConfigError, match=r"deliver\.targets.*unique"):
         _definition([{"name": "a", "kind": "sqlite", "database": "x"}, {"name": "a", "kind": "sqlite", "database": "y"}])
+
+
+def test_sqlite_values_made_a_column_at_a_time_are_those_of_a_row_at_a_time():
+    # The SQLite target turns a table's cells into parameters a column at a time
+    # (sqlite.table_rows); each must be what _value gives the cell as a row holds it:
+    # JSON for lists, maps and structs, ISO 8601 for timestamps, 0/1 for booleans.
+    from datetime import datetime, timezone
+
+    import pyarrow as pa
+
+    from thresher.flows.deliver import row_values
+    from thresher.flows.targets.sqlite import _value, table_rows
+
+    when = datetime(2026, 3, 1, 9, 30, tzinfo=timezone.utc)
+    table = pa.table({
+        "chunk_id": pa.array(["b", "a", None], pa.string()),
+        "token_count": pa.array([3, None, 7], pa.int64()),
+        "language_prob": pa.array([0.5, 0.99, None], pa.float64()),
+        "heading_path": pa.array([["Rota", "Tuesday"], [], None], pa.list_(pa.string())),
+        "token_counts": pa.array([[("cl100k_base", 3)], None, []], pa.map_(pa.string(), pa.int64())),
+        "span": pa.array([{"start": 1, "end": 2}, None, {"start": 0, "end": 0}],
+                         pa.struct([("start", pa.int64()), ("end", pa.int64())])),
+        "started_at": pa.array([when, None, when], pa.timestamp("us", tz="UTC")),
+        "personal": pa.array([True, False, None], pa.bool_()),
+    })
+    by_row = [tuple(_value(r[n]) for n in table.schema.names) for r in row_values(table)]
+
+    assert table_rows(table) == by_row
+    assert by_row[0][4] == '{"cl100k_base": 3}' and by_row[0][6] == "2026-03-01T09:30:00+00:00"
+    assert by_row[0][7] == 1 and by_row[1][7] == 0

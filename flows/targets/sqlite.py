@@ -19,7 +19,7 @@ import pyarrow as pa
 
 from thresher.flows.config import TargetEntry
 from thresher.flows.faults import fault
-from thresher.flows.deliver import Delivery, DeliveryError, row_values
+from thresher.flows.deliver import Delivery, DeliveryError
 from thresher.flows.store import Store
 
 RUNS_TABLE = "thresher_runs"
@@ -64,6 +64,28 @@ def _value(v: Any) -> Any:
     if isinstance(v, bool):
         return int(v)
     return v
+
+
+def _plain(t: pa.DataType) -> bool:
+    """A column whose Python values SQLite takes as they are (_value leaves them)."""
+    return pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_string(t) or pa.types.is_large_string(t)
+
+
+def column_values(column: pa.ChunkedArray) -> list[Any]:
+    """_value of every cell of a column, worked out a column at a time (map cells as
+    dicts, as deliver.row_values gives them): a row at a time, with a type test per
+    cell, it was 1.0 s of a 41,370-chunk full load (scratch timing)."""
+    values = column.to_pylist()
+    if _plain(column.type):
+        return values
+    if pa.types.is_map(column.type):
+        return [None if v is None else _value(dict(v)) for v in values]
+    return [_value(v) for v in values]
+
+
+def table_rows(table: pa.Table) -> list[tuple]:
+    """The table's rows as SQLite parameters, in column order."""
+    return list(zip(*(column_values(table.column(n)) for n in table.schema.names)))
 
 
 class SqliteTarget:
@@ -165,16 +187,20 @@ class SqliteTarget:
         updates = ", ".join(f'"{n}" = excluded."{n}"' for n in names if n != "chunk_id")
         sql = (f"INSERT INTO {self.table} ({quoted}) VALUES ({marks}) "
                f"ON CONFLICT(chunk_id) DO UPDATE SET {updates}")
+        # In key order: SQLite appends to the table's B-tree instead of splitting pages
+        # all over it (0.49 -> 0.35 s for a 41,370-chunk full load, scratch timing).
+        table = table.sort_by("chunk_id")
         ids = table.column("chunk_id").to_pylist()
         texts = [t or "" for t in table.column("text").to_pylist()]
         held = self._texts(ids)
         for start in range(0, table.num_rows, 5000):
-            part = table.slice(start, 5000)
-            rows = [tuple(_value(r[n]) for n in names) for r in row_values(part)]
-            self.db.executemany(sql, rows)
+            self.db.executemany(sql, table_rows(table.slice(start, 5000)))
         # The keyword index is rewritten only where the text changed: a change of access
-        # alone (readers, label) leaves it as it is.
-        stale = [(text_rowid(c), c, t) for c, t in zip(ids, texts) if held.get(c) != t]
+        # alone (readers, label) leaves it as it is. In rowid order: FTS5 flushes its
+        # pending terms when a rowid is not above the last one written (fts5_index.c,
+        # from memory of SQLite's source); 41,370 chunks' text took 3.7-3.8 s to index
+        # in hashed order, 2.1-2.4 s in rowid order (scratch timing).
+        stale = sorted((text_rowid(c), c, t) for c, t in zip(ids, texts) if held.get(c) != t)
         self.db.executemany(f"DELETE FROM {self.table}_fts WHERE rowid = ?",
                             [(r,) for r, c, _ in stale if c in held])
         self.db.executemany(f"INSERT INTO {self.table}_fts (rowid, chunk_id, text) VALUES (?, ?, ?)", stale)
