@@ -1016,7 +1016,10 @@ class Store:
         if rows.num_rows == 0:
             return rows if columns is None else rows.select(columns)
         winners = _latest_attempts(rows, seq, floors)
-        out = rows.take(pa.array(winners))
+        # Every row the latest (the usual case): no copy. A week's read of dedup's stored
+        # signatures for 55,418 chunks: 0.18-0.37 s with the copy, 0.14-0.24 s without
+        # (scratch timing, three rounds each).
+        out = rows if len(winners) == rows.num_rows else rows.take(pa.array(winners))
         return out if columns is None else out.select(columns)
 
     def max_attempts(self, stage: str, unit: str, doc_ids: Iterable[str]) -> dict[str, int]:
