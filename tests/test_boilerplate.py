@@ -90,6 +90,33 @@ def test_the_menu_and_the_notice_leave_every_page_of_the_site():
         assert any(w.startswith("removed 2 block(s) repeated across site 'intranet'") for w in page.warnings)
 
 
+def test_fingerprints_are_the_same_with_the_memo_emptied_often_and_it_stays_in_its_bound(monkeypatch):
+    # The step keeps block fingerprints it has worked out (boilerplate._prints) up to a
+    # number of characters; past it the memo starts again. A tiny bound must give the
+    # very same pages, and the memo never hold more than the bound.
+    from thresher.steps import boilerplate
+
+    docs = site("intranet", BODIES) + site("minutes", [b.replace("the", "a") for b in BODIES])
+    expected = run(docs)
+    monkeypatch.setattr(boilerplate, "FINGERPRINT_CHARS", 120)
+    monkeypatch.setattr(boilerplate, "_prints", {})
+    monkeypatch.setattr(boilerplate, "_held", 0)
+    held = []
+    fingerprint = boilerplate.fingerprint
+
+    def watched(text: str) -> int:
+        key = fingerprint(text)
+        held.append(boilerplate._held)
+        return key
+
+    monkeypatch.setattr(boilerplate, "fingerprint", watched)
+    got = run(docs)
+
+    assert max(held) <= 120 and len(set(held)) > 3  # emptied and filled again, within the bound
+    assert {p: [(pg.blocks, pg.payload) for pg in d.pages] for p, d in got.items()} == \
+        {p: [(pg.blocks, pg.payload) for pg in d.pages] for p, d in expected.items()}
+
+
 def test_the_counts_over_a_site_are_said_once_per_site_not_in_its_rows():
     import pyarrow as pa
 
