@@ -21,7 +21,7 @@ import pyarrow as pa
 
 from thresher.flows.config import FlowDefinition, ResolvedStep
 from thresher.flows.encodings import get_encoding
-from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_units
+from thresher.flows.inputs import Loaded, ReadFrom, Stage, StoredInputs, read_order, read_units
 from thresher.flows.isolate import (ChildCrashed, IsolatedCaller, NotSendable, RemoteError, TimeLimitExceeded,
                                     claim_waiting, give_back, idle_count, isolation_available, prewarm,
                                     take_worker)
@@ -160,6 +160,18 @@ def applies_to(step: ResolvedStep, units: list[Unit]) -> bool:
 def trail(definition: FlowDefinition, before: int) -> tuple[Stage, ...]:
     """The steps before step `before`, as a read of their stored units needs them."""
     return tuple(Stage(s.name, unit_kind(s), bool(s.spec.formats)) for s in definition.steps[:before])
+
+
+def stored_read_order(definition: FlowDefinition, store: Store, first: int, doc_ids: list[str], run_id: str,
+                      batch_size: int) -> list[str] | None:
+    """For a segment or corpus step that starts at step `first`: None when its documents'
+    inputs are not read back from the store (the first step) or fit one batch anyway;
+    else the order in which batches of them read fewest part files and row groups
+    (inputs.read_order). Dedup's batches in doc_id order, on a 3,169-document drive,
+    each read all 174 parts: 8.7 s of reads."""
+    if first == 0 or len(doc_ids) <= batch_size:
+        return None
+    return read_order(store, trail(definition, first), doc_ids, run_id)
 
 
 def load_units(store: Store, definition: FlowDefinition, before: int, doc_ids: list[str],

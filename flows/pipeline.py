@@ -31,9 +31,8 @@ from prefect.utilities.annotations import quote
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
 from thresher.flows.discover import known_files, scan
-from thresher.flows.execute import (BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run, trail,
-                                    unit_kind)
-from thresher.flows.inputs import read_order
+from thresher.flows.execute import (BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run,
+                                    stored_read_order, unit_kind)
 from thresher.flows.isolate import limit_workers, prewarm
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
@@ -354,10 +353,8 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
             # one batch per worker, not four, saves task runs and reads of stored inputs
             # (the goals' 8 PDFs, 2 threads: 7 batches -> 3).
             chunk_steps = definition.steps[first].spec.consumes == "chunks"
-            # Documents read back from the store (after a corpus step) are batched in the
-            # order that reads fewest part files and row groups; a few fit one batch anyway.
-            order = (read_order(Store(store_root), trail(definition, first), [j.doc_id for j in seg_jobs], run_id)
-                     if first > 0 and len(seg_jobs) > model.runner.batch_size else None)
+            order = stored_read_order(definition, Store(store_root), first, [j.doc_id for j in seg_jobs], run_id,
+                                      model.runner.batch_size)
             batches = make_batches(seg_jobs, model.runner.batch_size, workers,
                                    per_worker=1 if chunk_steps else BATCHES_PER_WORKER, order=order)
             if not batches:

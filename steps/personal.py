@@ -283,15 +283,24 @@ def _phone_findings(text: str, region: str | None) -> list[Finding]:
     return out
 
 
-def _ips(text: str, digits: int) -> list[Finding]:
+def _ipv4s(text: str, digits: int) -> list[Finding]:
+    if digits < 4 or text.count(".") < 3:  # the shortest address, 1.2.3.4
+        return []
     out = []
-    for m in _IPV4.finditer(text) if digits >= 4 and text.count(".") >= 3 else ():
+    for m in _IPV4.finditer(text):
         try:
             ipaddress.IPv4Address(m.group(0))
         except ValueError:
             continue
         out.append(("ip", m.start(), m.end()))
-    for m in _IPV6.finditer(text) if _IPV6_COLONS.search(text) else ():
+    return out
+
+
+def _ipv6s(text: str) -> list[Finding]:
+    if not _IPV6_COLONS.search(text):
+        return []
+    out = []
+    for m in _IPV6.finditer(text):
         raw = m.group(0)
         if raw.count(":") < 2 or not re.search(r"[0-9A-Fa-f]", raw) or len(raw) < 6:
             continue
@@ -306,7 +315,7 @@ def _ips(text: str, digits: int) -> list[Finding]:
 def find(text: str, params: PersonalParams) -> list[Finding]:
     """Every finding in text, overlaps resolved by kind priority, in text order."""
     digits = _digit_count(text)
-    found = _emails(text) + _ibans(text) + _cards(text, digits) + _ips(text, digits)
+    found = _emails(text) + _ibans(text) + _cards(text, digits) + _ipv4s(text, digits) + _ipv6s(text)
     found += _checked(text, "national_id", NATIONAL_IDS, params.countries)
     found += _checked(text, "bank_account", BANK_ACCOUNTS, params.countries)
     found += _phones(text, params.region, digits)
