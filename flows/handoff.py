@@ -21,8 +21,11 @@ from __future__ import annotations
 import bisect
 import hashlib
 import json
+import tempfile
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any
 
 import pyarrow as pa
@@ -33,6 +36,7 @@ from thresher.flows import schema
 from thresher.flows.arrow_groups import count_and_sum_per_key, highest_per_key
 from thresher.flows.config import FlowDefinition
 from thresher.flows.faults import fault
+from thresher.flows.regroup import Regrouped
 from thresher.flows.store import Store
 from thresher.steps.units import OK
 
@@ -87,11 +91,6 @@ class HandoffResult:
 Access = dict[str, tuple[list[str], "str | None", str]]  # doc_id -> (readers, label, rule key)
 
 
-def _chunk_stages(definition: FlowDefinition) -> list[tuple[str, bool]]:
-    """(stage, format-limited) for every stage that holds chunks, in chain order."""
-    return [(s.name, bool(s.spec.formats)) for s in definition.steps if s.spec.produces == "chunks"]
-
-
 def _body_digest(row: dict[str, Any]) -> str:
     """Every hand-off column but the producing run and the access columns."""
     body = {k: v for k, v in row.items() if k != "run_id" and k not in ACCESS_COLUMNS}
@@ -140,10 +139,36 @@ _SOURCE_COLUMNS = ("chunk_id", "doc_id", "status", "run_id", "title", "heading_p
 _STATUS_COLUMNS = ("chunk_id", "doc_id", "status", "content_hash")
 
 
-def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: list[str],
-                live: dict[str, tuple[int, str, int]], access: Access,
-                copies: dict[str, list[str]]) -> list[dict[str, Any]]:
-    """Hand-off rows of one group of documents, in (path, chunk index) order.
+def _stage_columns(definition: FlowDefinition) -> list[tuple[str, bool, list[str]]]:
+    """(stage, format-limited, columns to read) for every chunk stage, in chain order.
+
+    A live chunk is ok at the last stage not limited to some formats, so its columns
+    come from there or a later stage: the stages before it are read for their statuses
+    and content hashes only (not the text of every chunk once per stage). Only the
+    columns a hand-off row is made of: the rest (blocks, signatures, band keys,
+    tracebacks) made up most of the rows' conversion to Python."""
+    stages = [(s.name, bool(s.spec.formats)) for s in definition.steps if s.spec.produces == "chunks"]
+    last_whole = max((i for i, (_, limited) in enumerate(stages) if not limited), default=0)
+    out = []
+    for i, (stage, limited) in enumerate(stages):
+        names = set(schema.stage_schema(stage, "chunks").names)
+        wanted = _SOURCE_COLUMNS if i >= last_whole else _STATUS_COLUMNS
+        out.append((stage, limited, [c for c in wanted if c in names]))
+    return out
+
+
+# Reads a stage's current chunk rows (these columns) of one group of documents.
+StageReader = Callable[[str, list[str]], pa.Table]
+
+
+def _from_store(store: Store, run_id: str, docs: list[str]) -> StageReader:
+    return lambda stage, columns: store.current(stage, "chunks", docs, columns=columns, include_run=run_id)
+
+
+def _group_rows(definition: FlowDefinition, read: StageReader, live: dict[str, tuple[int, str, int]],
+                access: Access, copies: dict[str, list[str]]) -> list[dict[str, Any]]:
+    """Hand-off rows of one group of documents (`read` gives their stage rows), in
+    (path, chunk index) order.
 
     A chunk is live when every chunk stage holds it as ok, except that a stage limited
     to some formats may have passed it by. Its columns come from the last stage holding it.
@@ -152,18 +177,8 @@ def _group_rows(definition: FlowDefinition, store: Store, run_id: str, docs: lis
     not_ok: set[str] = set()
     hashes: dict[str, str] = {}
     latest: dict[str, dict[str, Any]] = {}
-    stages = _chunk_stages(definition)
-    # A live chunk is ok at the last stage not limited to some formats, so its columns
-    # come from there or a later stage: the stages before it are read for their
-    # statuses and content hashes only (not the text of every chunk once per stage).
-    last_whole = max((i for i, (_, limited) in enumerate(stages) if not limited), default=0)
-    for i, (stage, limited) in enumerate(stages):
-        # Only the columns a hand-off row is made of: the rest (blocks, signatures, band
-        # keys, tracebacks) made up most of the rows' conversion to Python.
-        names = set(schema.stage_schema(stage, "chunks").names)
-        wanted = _SOURCE_COLUMNS if i >= last_whole else _STATUS_COLUMNS
-        rows = store.current(stage, "chunks", docs, columns=[c for c in wanted if c in names],
-                             include_run=run_id).to_pylist()
+    for stage, limited, columns in _stage_columns(definition):
+        rows = read(stage, columns).to_pylist()
         ok = {r["chunk_id"] for r in rows if r["status"] == OK}
         not_ok |= {r["chunk_id"] for r in rows if r["status"] != OK}
         if not limited:
@@ -280,15 +295,31 @@ class _Output:
 
 def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[str, tuple[int, str, int]],
              access: Access, order: list[str], out: _Output, copies: dict[str, list[str]]) -> pa.Table:
-    """Every live chunk read from the chunk stages, a group of documents at a time."""
+    """Every live chunk read from the chunk stages, a group of documents at a time.
+
+    With more than one group the stages are first sorted into the groups
+    (regroup.Regrouped): read from the store group by group, each group decoded most
+    of every part file (a 3,159-document drive's first run, 7 groups: 5.1 s of CPU in
+    the reads against 1.0 s for the same rows read once)."""
     digest_parts: list[pa.Table] = []
-    for start in range(0, len(order), GROUP_DOCS):
-        rows = _group_rows(definition, store, run_id, order[start:start + GROUP_DOCS], live, access, copies)
-        if not rows:
-            continue
-        out.write(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
-        digest_parts.append(pa.Table.from_pylist([_digest_row(r) for r in rows], schema=DIGESTS))
+    groups = [order[start:start + GROUP_DOCS] for start in range(0, len(order), GROUP_DOCS)]
+    with tempfile.TemporaryDirectory(prefix="thresher-handoff-") as scratch:
+        regrouped = None
+        if len(groups) > 1:
+            regrouped = Regrouped(store, run_id, [(stage, columns) for stage, _, columns in _stage_columns(definition)],
+                                  groups, scratch)
+        for k, docs in enumerate(groups):
+            read = _from_store(store, run_id, docs) if regrouped is None else partial(_regrouped_read, regrouped, k)
+            rows = _group_rows(definition, read, live, access, copies)
+            if not rows:
+                continue
+            out.write(pa.Table.from_pylist(rows, schema=schema.HANDOFF))
+            digest_parts.append(pa.Table.from_pylist([_digest_row(r) for r in rows], schema=DIGESTS))
     return pa.concat_tables(digest_parts) if digest_parts else DIGESTS.empty_table()
+
+
+def _regrouped_read(regrouped: Regrouped, group: int, stage: str, columns: list[str]) -> pa.Table:
+    return regrouped.read(stage, group)
 
 
 class _FreshRows:
@@ -308,8 +339,8 @@ class _FreshRows:
         """The live path of the next document waiting, or None when none is left."""
         while self.at >= len(self.rows) and self.groups:
             definition, store, run_id = self.args
-            self.rows = _group_rows(definition, store, run_id, self.groups.pop(0), self.live, self.access,
-                                    self.copies)
+            self.rows = _group_rows(definition, _from_store(store, run_id, self.groups.pop(0)), self.live,
+                                    self.access, self.copies)
             self.at = 0
             self.digests += [_digest_row(r) for r in self.rows]
         return self.rows[self.at]["source_path"] if self.at < len(self.rows) else None

@@ -154,3 +154,43 @@ def test_a_copied_forward_handoff_is_byte_for_byte_a_rebuild(prefect_harness, tm
     rechained = _run(drive, store_dir, other)
     assert rechained["handoff"] == "rebuilt"
     _same_as_rebuild(store_dir, other, rechained)
+
+
+@pytest.mark.timeout(300)
+def test_a_rebuild_sorted_into_groups_through_scratch_files_writes_what_one_group_writes(
+        prefect_harness, tmp_path, monkeypatch):
+    # More than one group: the stages are read once in stored order and sorted into the
+    # groups through local files (regroup.Regrouped). A second run leaves two attempts
+    # of the edited documents in the stages, of which only the latest may be read.
+    from thresher.flows import handoff, regroup
+    from thresher.flows.regroup import Regrouped
+
+    drive, store_dir = tmp_path / "drive", tmp_path / "store"
+    (drive / "notes").mkdir(parents=True)
+    for i, topic in enumerate(TOPICS):
+        (drive / "notes" / f"{i:02d}.md").write_text(_note(topic, i))
+    (drive / "renewals.md").write_text(f"# Renewals\n\n{SHARED}\n")
+    definition = _definition()
+    _run(drive, store_dir, definition)
+    (drive / "notes" / "03.md").write_text(_note("van route", 3).replace("branch 3", "the north branch"))
+    (drive / "notes" / "08.md").write_text(_note("lost property", 8) + "\nFound items wait a month.\n")
+    edited = _run(drive, store_dir, definition)
+    assert edited["documents"]["processed"] == 2
+
+    monkeypatch.setattr(handoff, "GROUP_DOCS", 10_000)
+    whole = _rebuilt_bytes(store_dir, definition, edited["run_id"])
+    monkeypatch.setattr(handoff, "GROUP_DOCS", 3)
+    monkeypatch.setattr(regroup, "READ_DOCS", 2)
+    assert _rebuilt_bytes(store_dir, definition, edited["run_id"]) == whole
+
+    # Each group's rows of each stage are the store's current rows of its documents.
+    store = Store(store_dir)
+    docs = sorted(r["doc_id"] for r in store.catalog().to_pylist())
+    groups = [docs[i:i + 4] for i in range(0, len(docs), 4)]
+    stages = [(stage, columns) for stage, _, columns in handoff._stage_columns(definition)]
+    regrouped = Regrouped(store, None, stages, groups, str(tmp_path))
+    for stage, columns in stages:
+        for k, group in enumerate(groups):
+            held = regrouped.read(stage, k).sort_by("chunk_id")
+            assert held.num_rows > 0
+            assert held == store.current(stage, "chunks", group, columns=columns).sort_by("chunk_id")
