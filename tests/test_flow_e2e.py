@@ -64,6 +64,26 @@ def test_every_stage_table_and_the_handoff_are_written(first_run):
     assert {"en", "de", "fr"} <= langs
 
 
+def test_the_handoff_is_in_path_then_chunk_order_with_the_normalised_text_hash(first_run):
+    # The output contract (README, "The hand-off table"): rows sorted by source_path, then
+    # chunk_index; content_hash the SHA-256 of the chunk's normalised text (the dedup
+    # step's exact-duplicate key), not of the text as it stands.
+    import hashlib
+
+    from thresher.steps.dedup import DedupParams, normalise
+
+    rows = first_run["store"].handoff().to_pylist()
+    keys = [(r["source_path"], r["chunk_index"]) for r in rows]
+    assert keys == sorted(keys) and len(set(keys)) == len(keys)
+    # Chunk ids are hashes: they alone would put a document's chunks in another order.
+    assert any(a["chunk_id"] > b["chunk_id"] for a, b in zip(rows, rows[1:]) if a["doc_id"] == b["doc_id"])
+    params = DedupParams(**next(s.get("params") or {} for s in yaml.safe_load(default_config_text())["steps"]
+                                if s["step"] == "dedup"))
+    for r in rows:
+        assert r["content_hash"] == hashlib.sha256(normalise(r["text"], params).encode("utf-8")).hexdigest()
+    assert any(normalise(r["text"], params) != r["text"] for r in rows)
+
+
 def test_nothing_but_loopback_was_contacted(first_run):
     # The embedded Prefect server listens on 127.0.0.1; anything else would be telemetry
     # or a download (tiktoken encodings, analytics) that must not happen offline.
@@ -300,6 +320,26 @@ def test_token_counts_follow_text_that_steps_after_split_change(prefect_harness,
     for path, row in handoff.items():
         assert row["token_count"] == len(enc.encode_ordinary(row["text"])), path
         assert row["token_count"] != split_counts[path], path  # the text's count did change
+
+
+def test_a_chain_without_dedup_and_tokens_still_hands_off_counts_and_hashes(prefect_harness, tmp_path):
+    # Without the tokens step a chunk's token_counts is split's own count; without
+    # dedup its content_hash is the SHA-256 of its text as it stands (README, output
+    # contract). Reference: tiktoken's encode_ordinary, hashlib.
+    import hashlib
+
+    from thresher.flows.encodings import get_encoding
+
+    data = yaml.safe_load(default_config_text())
+    data["steps"] = [s for s in data["steps"] if s["step"] not in ("dedup", "tokens")]
+    drive = _small_drive(tmp_path / "drive")
+    _run(drive, tmp_path / "store", definition=build_definition(data, "test"))
+    rows = Store(tmp_path / "store").handoff().to_pylist()
+    enc = get_encoding("cl100k_base")
+    assert {r["source_path"] for r in rows} == {"notes.md", "rota.html", "vans.html"}
+    for r in rows:
+        assert dict(r["token_counts"]) == {"cl100k_base": len(enc.encode_ordinary(r["text"]))}
+        assert r["content_hash"] == hashlib.sha256(r["text"].encode("utf-8")).hexdigest()
 
 
 def test_a_corpus_page_step_rewrites_documents_when_the_corpus_changes(prefect_harness, tmp_path):
