@@ -24,6 +24,7 @@ import json
 import tempfile
 from collections import Counter
 from collections.abc import Callable
+from contextlib import ExitStack
 from dataclasses import dataclass, field
 from functools import partial
 from typing import Any
@@ -364,11 +365,15 @@ def _rebuild(definition: FlowDefinition, store: Store, run_id: str, live: dict[s
     the reads against 1.0 s for the same rows read once)."""
     digest_parts: list[pa.Table] = []
     groups = [order[start:start + GROUP_DOCS] for start in range(0, len(order), GROUP_DOCS)]
-    with tempfile.TemporaryDirectory(prefix="thresher-handoff-") as scratch:
+    with ExitStack() as scratch:
         regrouped = None
         if len(groups) > 1:
-            regrouped = Regrouped(store, run_id, [(stage, columns) for stage, _, columns in _stage_columns(definition)],
-                                  groups, scratch)
+            stages = [(stage, columns) for stage, _, columns in _stage_columns(definition)]
+            try:
+                into = scratch.enter_context(tempfile.TemporaryDirectory(prefix="thresher-handoff-"))
+                regrouped = Regrouped(store, run_id, stages, groups, into)
+            except OSError:
+                regrouped = None  # no room in the temporary folder (TMPDIR): the slower reads, same rows
         for k, docs in enumerate(groups):
             read = _from_store(store, run_id, docs) if regrouped is None else partial(_regrouped_read, regrouped, k)
             rows = _group_table(definition, read, live, access, copies)

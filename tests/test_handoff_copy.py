@@ -182,6 +182,12 @@ def test_a_rebuild_sorted_into_groups_through_scratch_files_writes_what_one_grou
     monkeypatch.setattr(handoff, "GROUP_DOCS", 3)
     monkeypatch.setattr(regroup, "READ_DOCS", 2)
     assert _rebuilt_bytes(store_dir, definition, edited["run_id"]) == whole
+    # No temporary folder to sort through: the groups are read from the store instead.
+    import tempfile
+
+    with monkeypatch.context() as m:
+        m.setattr(tempfile, "tempdir", str(tmp_path / "no-such-folder"))
+        assert _rebuilt_bytes(store_dir, definition, edited["run_id"]) == whole
 
     # Each group's rows of each stage are the store's current rows of its documents.
     store = Store(store_dir)
