@@ -88,7 +88,13 @@ _RUN_LEDGER_READ: dict[tuple[str, str], bool] = {}
 # Up to this many documents, a read of a compacted stage looks up only their ledger
 # entries instead of loading the whole ledger (a trail, a page re-run).
 LEDGER_LOOKUP_DOCS = 64
-COMPRESSION = "zstd"
+# How every Parquet file of the store is written: zstd, and no dictionary encoding. The
+# store's columns are mostly unique (ids, text, signatures) or few-valued and repeated
+# in runs that zstd folds as well; Parquet's writer tried a dictionary for each column
+# until it gave up. On the documentation drive's stage parts, without it: writing 15-45 %
+# less CPU, reading whole parts 10-50 % less, dedup's parts 58 MB against 73 MB; the
+# hand-off streamed 0.05 s against 0.13 s (scratch `pqw.py`, `pqr.py`, `pqh.py`).
+WRITE_OPTIONS = {"compression": "zstd", "use_dictionary": False}
 COMPACTED = "_compacted"
 # Rows per row group of a file the store writes, at most.
 ROW_GROUP_ROWS = 2048
@@ -271,7 +277,7 @@ class Store:
         else:
             target = final
         try:
-            with self.fs.open_output_stream(target) as out, pq.ParquetWriter(out, sch, compression=COMPRESSION) as w:
+            with self.fs.open_output_stream(target) as out, pq.ParquetWriter(out, sch, **WRITE_OPTIONS) as w:
                 yield w
             if target != final:
                 self.fs.move(target, final)
@@ -290,7 +296,7 @@ class Store:
             meta[RUN_META_KEY] = run_id.encode()
             table = table.replace_schema_metadata(meta)
         self._atomic_write(
-            rel, lambda out: pq.write_table(table, out, compression=COMPRESSION, row_group_size=group_rows)
+            rel, lambda out: pq.write_table(table, out, row_group_size=group_rows, **WRITE_OPTIONS)
         )
 
     def write_json(self, rel: str, obj: Any) -> None:
