@@ -181,6 +181,8 @@ def test_a_rebuild_sorted_into_groups_through_scratch_files_writes_what_one_grou
     whole = _rebuilt_bytes(store_dir, definition, edited["run_id"])
     monkeypatch.setattr(handoff, "GROUP_DOCS", 3)
     monkeypatch.setattr(regroup, "READ_DOCS", 2)
+    monkeypatch.setattr(regroup, "BUCKET_GROUPS", 1)
+    monkeypatch.setattr(regroup, "MAX_BUCKETS", 2)  # so two groups to a bucket file
     assert _rebuilt_bytes(store_dir, definition, edited["run_id"]) == whole
     # No temporary folder to sort through: the groups are read from the store instead.
     import tempfile
@@ -194,9 +196,10 @@ def test_a_rebuild_sorted_into_groups_through_scratch_files_writes_what_one_grou
     docs = sorted(r["doc_id"] for r in store.catalog().to_pylist())
     groups = [docs[i:i + 4] for i in range(0, len(docs), 4)]
     stages = [(stage, columns) for stage, _, columns in handoff._stage_columns(definition)]
+    monkeypatch.setattr(regroup, "MAX_BUCKETS", 256)  # a bucket file per group
     regrouped = Regrouped(store, None, stages, groups, str(tmp_path))
     for stage, columns in stages:
-        for k, group in enumerate(groups):
+        for k, group in reversed(list(enumerate(groups))):
             held = regrouped.read(stage, k).sort_by("chunk_id")
             assert held.num_rows > 0
             assert held == store.current(stage, "chunks", group, columns=columns).sort_by("chunk_id")
