@@ -198,8 +198,9 @@ def _group_table(definition: FlowDefinition, read: StageReader, live: dict[str, 
 
     A chunk is live when every chunk stage holds it as ok, except that a stage limited
     to some formats may have passed it by. Its columns come from the last stage holding
-    it; its content hash from the last stage giving one. Made in Arrow: as Python rows,
-    this made up half the hand-off's time (a 41,370-chunk first run: 1.6 s of 3.3 s).
+    it; its content hash from the last stage giving one. Made in Arrow: as Python rows
+    (dicts, then back to Arrow) this took 1.6 s of a 41,370-chunk rebuild's 4.1 s under
+    cProfile.
     """
     live_ids: pa.Array | None = None
     not_ok: list[pa.Array] = []
