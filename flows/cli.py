@@ -364,6 +364,13 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
             lines.append(f"    {path}  {why}")
         if len(withheld) > 10:
             lines.append(f"    ... and {len(withheld) - 10} more")
+    unread = m.get("scan_problems") or []
+    if unread:
+        lines.append(f"  {len(unread)} file(s) the scan could not read:")
+        for p in unread[:10]:
+            lines.append(f"    {p['source_path']}  {p['reason']}")
+        if len(unread) > 10:
+            lines.append(f"    ... and {len(unread) - 10} more")
     if m.get("failures"):
         lines.append(f"  {m['failures']} unit(s) failed this run; `thresher trail PATH` shows each one's way:")
         shown = m.get("failed_units", [])[:10]

@@ -139,11 +139,32 @@ def stat_record(st: os.stat_result) -> dict[str, int]:
             "device": st.st_dev & 0x7FFF_FFFF_FFFF_FFFF, "ctime_ns": st.st_ctime_ns}
 
 
+def _utf8(rel: str) -> bool:
+    """Whether a path can be stored: Python gives a name's bytes that are not UTF-8 as
+    lone surrogates, which no Parquet string, JSON consumer or terminal takes."""
+    try:
+        rel.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
+def shown(rel: str) -> str:
+    """A path as it can be printed and stored: bytes that are not UTF-8 as \\xNN."""
+    return rel if _utf8(rel) else os.fsencode(rel).decode("utf-8", "backslashreplace")
+
+
+NOT_UTF8 = ("the file name is not valid UTF-8 (the bytes that are not are shown as \\xNN); "
+            "rename the file, or its folder, to read it")
+
+
 def _look(full: str, rel: str, known: dict | None, verify: bool,
           keep: _Keep | None = None) -> SourceFile | ScanProblem | None:
     """Stat one file; hash it unless the catalog's stat record for its path still matches."""
     from thresher.flows.access import read_facts  # access imports this module's globs
 
+    if not _utf8(rel):
+        return ScanProblem(shown(rel), NOT_UTF8) if os.path.isfile(full) else None
     try:
         st = os.stat(full)
         if not stat.S_ISREG(st.st_mode):  # what is_file() asks, without a second stat
@@ -239,6 +260,8 @@ def new_or_changed(root: str | os.PathLike[str], include: list[str], exclude: li
     source path) or has another stat record: the scan's question, asked without
     reading a byte, before a run decides to start its workers."""
     def differs(fr: tuple[str, str]) -> bool:
+        if not _utf8(fr[1]):
+            return False  # the scan reports it; no document to process
         row = known.get(fr[1])
         if row is None:
             return True

@@ -87,6 +87,35 @@ def test_workers_start_early_only_when_the_stat_records_say_a_file_is_new_or_cha
     assert new_or_changed(drive, ["**/*"], [], known)
 
 
+def test_a_file_name_that_is_not_utf8_is_reported_and_the_run_goes_on(prefect_harness, tmp_path):
+    # A share written by an older system can hold names in another encoding (here
+    # Latin-1's "é" as the byte 0xE9, in a folder name and a file name). Python gives such
+    # bytes as lone surrogates, which no Parquet string takes: the run stopped with a
+    # UnicodeEncodeError in its plan. Now each such file is a problem of its own.
+    from thresher.flows.cli import run_summary_lines
+    from thresher.flows.discover import NOT_UTF8
+
+    drive = _drive(tmp_path / "drive")
+    os.mkdir(os.path.join(os.fsencode(drive), b"caf\xe9"))
+    for name in (b"caf\xe9/menu.txt", b"r\xe9sum\xe9.txt"):
+        with open(os.path.join(os.fsencode(drive), name), "wb") as f:
+            f.write(b"Opening hours of the reading room: nine to five on weekdays.\n")
+    found, problems = scan(drive, ["**/*"], [])
+    assert [f.source_path for f in found] == ["rota.md", "vans.md"]
+    assert [(p.source_path, p.reason) for p in problems] == [("r\\xe9sum\\xe9.txt", NOT_UTF8),
+                                                             ("caf\\xe9/menu.txt", NOT_UTF8)]
+    known = {f.source_path: {"doc_id": f.doc_id, "size": f.size, "mtime_ns": f.mtime_ns, "inode": f.inode,
+                             "device": f.device, "ctime_ns": f.ctime_ns} for f in found}
+    assert not new_or_changed(drive, ["**/*"], [], known)  # nothing the scan would read
+
+    m = pipeline.run(load_definition(), str(drive), str(tmp_path / "store"), workers=1, quiet=True)
+    assert {r["source_path"] for r in Store(tmp_path / "store").handoff().to_pylist()} == {"rota.md", "vans.md"}
+    assert [p["source_path"] for p in m["scan_problems"]] == ["r\\xe9sum\\xe9.txt", "caf\\xe9/menu.txt"]
+    lines = run_summary_lines(m)
+    assert "  2 file(s) the scan could not read:" in lines
+    assert f"    r\\xe9sum\\xe9.txt  {NOT_UTF8}" in lines
+
+
 def test_scan_in_threads_keeps_path_order_and_reports_unreadable_files(tmp_path):
     drive = tmp_path / "drive"
     n = 3 * SCAN_WINDOW  # past the first window, where a slow file system moves to the pool
