@@ -15,6 +15,8 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
+from thresher.steps.units import spelled
+
 HASH_CHUNK = 1 << 20
 # Stat and hash run in a few threads where that pays: on a network share each call waits
 # on the server (common practice: a small fixed bound). On a local disk a pool costs more
@@ -140,18 +142,8 @@ def stat_record(st: os.stat_result) -> dict[str, int]:
 
 
 def _utf8(rel: str) -> bool:
-    """Whether a path can be stored: Python gives a name's bytes that are not UTF-8 as
-    lone surrogates, which no Parquet string, JSON consumer or terminal takes."""
-    try:
-        rel.encode("utf-8")
-    except UnicodeEncodeError:
-        return False
-    return True
-
-
-def shown(rel: str) -> str:
-    """A path as it can be printed and stored: bytes that are not UTF-8 as \\xNN."""
-    return rel if _utf8(rel) else os.fsencode(rel).decode("utf-8", "backslashreplace")
+    """Whether a path can be stored as it is (units.spelled)."""
+    return spelled(rel) == rel
 
 
 NOT_UTF8 = ("the file name is not valid UTF-8 (the bytes that are not are shown as \\xNN); "
@@ -164,7 +156,7 @@ def _look(full: str, rel: str, known: dict | None, verify: bool,
     from thresher.flows.access import read_facts  # access imports this module's globs
 
     if not _utf8(rel):
-        return ScanProblem(shown(rel), NOT_UTF8) if os.path.isfile(full) else None
+        return ScanProblem(spelled(rel), NOT_UTF8) if os.path.isfile(full) else None
     try:
         st = os.stat(full)
         if not stat.S_ISREG(st.st_mode):  # what is_file() asks, without a second stat

@@ -65,6 +65,17 @@ class Source:
     depth: int = 0
 
 
+def spelled(name: str) -> str:
+    """A name as it can be stored and printed: the bytes of it that are not UTF-8, which
+    Python carries as lone surrogates (a file system's names, a tar's member names) and
+    no Parquet string takes, spelled \\xNN."""
+    try:
+        name.encode("utf-8")
+    except UnicodeEncodeError:
+        return name.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    return name
+
+
 @dataclass
 class Member:
     """A document inside a document (an archive member, an e-mail's attachment or an

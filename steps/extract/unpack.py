@@ -17,7 +17,7 @@ import re
 import zlib
 from dataclasses import dataclass, field
 
-from ..units import Member
+from ..units import Member, spelled
 from .blocks import DocumentFailure, ReaderInput
 
 MB = 1_000_000
@@ -57,7 +57,8 @@ def safe_member_name(name: str, what: str) -> str:
     parts = clean.split("/")
     if clean.startswith("/") or _DRIVE.match(clean) or ".." in parts:
         raise DocumentFailure(f"member name escapes the {what}: {name!r}")
-    return "/".join(p for p in parts if p not in ("", "."))
+    # A tar's names are the bytes it holds: those that are not UTF-8 are spelled \xNN.
+    return "/".join(spelled(p) for p in parts if p not in ("", "."))
 
 
 @dataclass
