@@ -146,6 +146,8 @@ def _utf8(rel: str) -> bool:
     return spelled(rel) == rel
 
 
+CANNOT_LIST = ("cannot list the folder, so its files are not in this run (documents of it that earlier "
+               "runs read count as removed)")
 NOT_UTF8 = ("the file name is not valid UTF-8 (the bytes that are not are shown as \\xNN); "
             "rename the file, or its folder, to read it")
 
@@ -198,7 +200,7 @@ def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
     found: list[SourceFile] = []
     problems: list[ScanProblem] = []
     for r in _each(lambda fr: _look(fr[0], fr[1], known.get(fr[1]), verify, keep),
-                   _candidates(root, include, exclude), threads, slow_call):
+                   _candidates(root, include, exclude, problems), threads, slow_call):
         if isinstance(r, SourceFile):
             found.append(r)
         elif isinstance(r, ScanProblem):
@@ -228,12 +230,21 @@ def _each(fn: Callable[[Any], Any], items: list, threads: int, slow_call: float 
         pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _candidates(root: str | os.PathLike[str], include: list[str], exclude: list[str]) -> list[tuple[str, str]]:
-    """(full path, source path) of every file name under root the globs select, sorted."""
+def _candidates(root: str | os.PathLike[str], include: list[str], exclude: list[str],
+                unlisted: list[ScanProblem] | None = None) -> list[tuple[str, str]]:
+    """(full path, source path) of every file name under root the globs select, sorted.
+    A folder that cannot be listed is added to `unlisted` (os.walk would skip it in
+    silence, and its files would look removed)."""
     todo: list[tuple[str, str]] = []
     # Paths as strings: pathlib's parsing per file was most of a quiet week's scan.
     top = str(Path(root))
-    for dirpath, dirnames, filenames in os.walk(top, followlinks=False):
+
+    def cannot_list(exc: OSError) -> None:
+        if unlisted is not None:
+            folder = os.path.relpath(exc.filename, top).replace(os.sep, "/") if exc.filename else "."
+            unlisted.append(ScanProblem(spelled(folder) + "/", f"{CANNOT_LIST}: {exc.strerror or exc}"))
+
+    for dirpath, dirnames, filenames in os.walk(top, followlinks=False, onerror=cannot_list):
         dirnames.sort()
         base = str(Path(dirpath))  # the folder as pathlib spells it, once per folder
         folder = os.path.relpath(dirpath, top).replace(os.sep, "/")

@@ -116,6 +116,30 @@ def test_a_file_name_that_is_not_utf8_is_reported_and_the_run_goes_on(prefect_ha
     assert f"    r\\xe9sum\\xe9.txt  {NOT_UTF8}" in lines
 
 
+def test_a_folder_that_cannot_be_listed_is_reported_not_skipped_in_silence(tmp_path):
+    # os.walk skips a folder it cannot list unless asked (its onerror); its files then
+    # look removed. Here the real error, even as root: a folder whose path is longer
+    # than Linux's PATH_MAX (4,096 bytes) cannot be listed (ENAMETOOLONG), made level by
+    # level through folder descriptors.
+    from thresher.flows.discover import CANNOT_LIST
+
+    drive = _drive(tmp_path / "drive")
+    fd = os.open(drive, os.O_RDONLY)
+    try:
+        for _ in range(24):  # 24 levels of 201 bytes: past 4,096 at the 20th or so
+            os.mkdir("d" * 200, dir_fd=fd)
+            inner = os.open("d" * 200, os.O_RDONLY, dir_fd=fd)
+            os.close(fd)
+            fd = inner
+    finally:
+        os.close(fd)
+    found, problems = scan(drive, ["**/*"], [])
+    assert [f.source_path for f in found] == ["rota.md", "vans.md"]
+    assert len(problems) == 1 and problems[0].source_path.startswith("d" * 200 + "/")
+    assert problems[0].source_path.endswith("/") and len(os.path.join(drive, problems[0].source_path)) > 4096
+    assert problems[0].reason == f"{CANNOT_LIST}: File name too long"
+
+
 def test_scan_in_threads_keeps_path_order_and_reports_unreadable_files(tmp_path):
     drive = tmp_path / "drive"
     n = 3 * SCAN_WINDOW  # past the first window, where a slow file system moves to the pool
