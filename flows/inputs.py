@@ -99,7 +99,7 @@ def read_units(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: li
 
 
 def read_order(store: Store, trail: tuple[Stage, ...] | list[Stage], doc_ids: list[str],
-               run_id: str) -> list[str]:
+               run_id: str | None) -> list[str]:
     """doc_ids in an order in which a run of consecutive ones is cheap to read: grouped by
     the part file holding each one's latest rows at the stage read_units reads it from,
     in doc_id order within a file. A part's rows are sorted by doc_id, so a reader of

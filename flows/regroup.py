@@ -22,6 +22,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from thresher.flows import schema
+from thresher.flows.inputs import Stage, read_order
 from thresher.flows.store import Store
 
 # Documents per read of the store: neighbours in stored order, so a read touches few
@@ -57,8 +58,7 @@ class Regrouped:
         group_arr = pa.array(np.repeat(np.arange(len(groups)), [len(g) for g in groups]), pa.int64())
         for stage, columns in stages:
             self.schemas[stage] = schema.stage_schema(stage, "chunks").empty_table().select(columns).schema
-            parts = store.doc_parts(stage, include_run=run_id)
-            stored = sorted(docs, key=lambda d: ((parts.get(d) or [""])[-1], d))
+            stored = read_order(store, [Stage(stage, "chunks", False)], docs, run_id)
             writers: dict[int, tuple[pa.OSFile, pa.ipc.RecordBatchFileWriter]] = {}
             try:
                 for start in range(0, len(stored), READ_DOCS):
