@@ -335,7 +335,8 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
          f"  documents  {d['files']} files, {d['distinct']} distinct"
          + (f" ({d['inside']} inside other documents)" if d.get("inside") else "")
          + f"; {d['processed']} processed, "
-         f"{d['unchanged']} unchanged, {d['removed']} removed"),
+         f"{d['unchanged']} unchanged, {d['removed']} removed"
+         + (f", {d['held']} held (unreadable this run, kept as stored)" if d.get("held") else "")),
         f"  hand-off   {m['chunks']} chunks, {m['tokens']:,} tokens "
         f"({m['changes']['upsert']} to upsert, {m['changes']['delete']} to delete)",
         "  stage       units  by status (current view)",

@@ -147,7 +147,7 @@ def _utf8(rel: str) -> bool:
 
 
 CANNOT_LIST = ("cannot list the folder, so its files are not in this run (documents of it that earlier "
-               "runs read count as removed)")
+               "runs read are kept as stored)")
 NOT_UTF8 = ("the file name is not valid UTF-8 (the bytes that are not are shown as \\xNN); "
             "rename the file, or its folder, to read it")
 

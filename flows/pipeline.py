@@ -36,7 +36,7 @@ from thresher.flows.execute import (BatchJob, BatchResult, BatchRunner, DocJob, 
 from thresher.flows.isolate import limit_workers, prewarm
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
-from thresher.flows.plan import Plan, add_members, make_plan
+from thresher.flows.plan import Plan, add_members, inside_count, make_plan
 from thresher.flows.progress import for_run as progress_for_run
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
@@ -439,9 +439,12 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             known = known_files(catalog)
             files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
                                    known=known, verify=verify or model.source.verify)
-            plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog)
+            plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog,
+                             unread=[p.source_path for p in problems])
+            held = f", {len(plan.held)} held (kept as stored: unreadable this run)" if plan.held else ""
             _emit(progress, f"found {len(files)} files ({len(plan.live)} distinct documents): "
-                            f"{len(plan.jobs)} to process, {len(plan.skipped)} unchanged, {len(plan.deleted)} removed; "
+                            f"{len(plan.jobs)} to process, {len(plan.skipped) - len(plan.held)} unchanged, "
+                            f"{len(plan.deleted)} removed{held}; "
                             f"{sum(f.hashed for f in files)} files read to hash (the rest matched their stat record)")
             for p in problems:
                 _emit(progress, f"  cannot read {p.source_path}: {p.reason}")
@@ -520,9 +523,9 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "versions": _versions(),
             "documents": {"files": len(files), "hashed": sum(f.hashed for f in files),
                           "distinct": len(plan.live), "processed": len(plan.jobs),
-                          "inside": len(plan.live) - len({f.doc_id for f in files} & set(plan.live))
-                          if rerun is None else 0,
-                          "unchanged": len(plan.skipped), "removed": len(plan.deleted),
+                          "inside": inside_count(plan) if rerun is None else 0,
+                          "unchanged": len(plan.skipped) - len(plan.held), "removed": len(plan.deleted),
+                          "held": len(plan.held),
                           "copies": {d: p for d, p in plan.copies.items()}},
             "scan_problems": [asdict(p) for p in problems],
             "written": acc.counts,

@@ -8,7 +8,7 @@ stage whose stored rows were made with a different step version or parameters.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Callable
 from datetime import datetime, timezone
 
 import pyarrow as pa
@@ -44,6 +44,9 @@ class Plan:
     # doc_id -> live path of the documents live after the latest run (its catalog), so
     # the hand-off knows which documents it held or withheld; None: unknown.
     previous_live: dict[str, str | None] | None = None
+    # doc_ids kept as stored because the scan could not read their files this run (they
+    # are among `skipped`; see held_paths).
+    held: list[str] = field(default_factory=list)
 
 
 def _ts(epoch: float) -> datetime:
@@ -126,9 +129,25 @@ def source_path_key(row: dict, source: SourceSection) -> tuple:
     return (bool(row.get("container_doc_id")), archived, newest, path)
 
 
+def held_paths(unread: list[str]) -> Callable[[str], bool]:
+    """Whether a source path is one the scan could not read this run: a file it could
+    not read, or a file under a folder it could not list (such a problem's path ends
+    with "/"; "./" is the source folder itself)."""
+    files = {p for p in unread if not p.endswith("/")}
+    folders = tuple("" if p == "./" else p for p in unread if p.endswith("/"))
+    return lambda path: path in files or (bool(folders) and path.startswith(folders))
+
+
 def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile], run_id: str,
-              sequence: int, force: bool = False, catalog: list[dict] | None = None) -> Plan:
-    """`catalog`: the store's catalog rows when the caller has read them already."""
+              sequence: int, force: bool = False, catalog: list[dict] | None = None,
+              unread: list[str] = ()) -> Plan:
+    """`catalog`: the store's catalog rows when the caller has read them already.
+
+    `unread`: the paths of the scan's problems. A document the catalog has at such a
+    path only is held: kept as stored, neither removed nor processed, until a run can read
+    it again. A drive that cannot be read for a week (a share's folder off line, a
+    file locked or its permissions changed) must not lose its chunks.
+    """
     old = store.catalog().to_pylist() if catalog is None else catalog
     old_by_path = {r["source_path"]: r for r in old}
     seq_of = {r.run_id: r.sequence for r in store.runs()}
@@ -155,11 +174,15 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
         seen_paths.add(f.source_path)
     drive_docs = {f.doc_id for f in files}
     members = [r for r in old if r.get("container_doc_id") and r["source_path"] not in seen_paths]
+    unreadable = held_paths(list(unread))
+    held: set[str] = set()
     for r in old:
         if r["source_path"] not in seen_paths and not r.get("container_doc_id"):
-            gone = dict(r)
-            gone["present"] = False
-            rows.append(gone)
+            # A document also read at another path is not held: it lives on there.
+            keep = r["present"] and r["doc_id"] not in drive_docs and unreadable(r["source_path"])
+            if keep:
+                held.add(r["doc_id"])
+            rows.append(dict(r) if keep else dict(r, present=False))
 
     # Which drive documents start at extraction: those re-read their members in the run.
     to_do_drive = {d for d in drive_docs if force or chain not in processed_with.get(d, set())}
@@ -167,7 +190,7 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
     starts = start_stages(definition, store, known_drive) if known_drive and not force else {}
     reread = {d for d in to_do_drive if starts.get(d, 0) == 0}
     # Members of containers that are not read again stay as they are (transitively).
-    live_ids = set(drive_docs)
+    live_ids = drive_docs | held
     carried: list[dict] = []
     pending = members
     while True:
@@ -178,7 +201,9 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
         carried += keep
         live_ids |= {r["doc_id"] for r in keep}
         pending = [r for r in pending if r not in keep]
-    for r in carried:
+    for r in carried:  # in layers, containers before their members
+        if r["container_doc_id"] in held and r["doc_id"] not in drive_docs:
+            held.add(r["doc_id"])
         rows.append(dict(r, last_run=run_id))
     for r in pending:
         rows.append(dict(r, present=False))
@@ -189,7 +214,8 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
 
     file_at = {f.source_path: f for f in files}
     row_at = {r["source_path"]: r for r in rows}
-    to_do = [d for d in canonical if force or chain not in processed_with.get(d, set())]
+    # A held document is not processed even when forced or out of date: its file cannot be read.
+    to_do = [d for d in canonical if d not in held and (force or chain not in processed_with.get(d, set()))]
     skipped = sorted(set(canonical) - set(to_do))
     more = [d for d in to_do if d in processed_with and d not in to_do_drive]
     if more and not force:
@@ -213,9 +239,10 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
 
     for r in rows:
         if r["present"]:
-            # After this run every present document is processed with this chain.
             r["canonical_path"] = canonical[r["doc_id"]]
-            r["chain_digest"] = chain
+            if r["doc_id"] not in held:  # a held one keeps its chain, for a later run to redo
+                # After this run every other present document is processed with this chain.
+                r["chain_digest"] = chain
     rows.sort(key=lambda r: r["source_path"])
     inherit_container_access(rows)
     deleted = sorted({r["doc_id"] for r in old if r["present"]} - set(canonical)
@@ -225,7 +252,15 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
                 seq_of=seq_of, sequence=sequence, run_id=run_id, chain=chain, awaited=awaited,
                 access=document_access(rows, definition.model.access), access_section=definition.model.access,
                 source_section=definition.model.source,
-                previous_live={r["doc_id"]: r.get("canonical_path") for r in old if r["present"]})
+                previous_live={r["doc_id"]: r.get("canonical_path") for r in old if r["present"]},
+                held=sorted(held))
+
+
+def inside_count(plan: Plan) -> int:
+    """How many live documents live inside other documents (their live path is a member's)."""
+    members = {p for p, c in zip(plan.catalog.column("source_path").to_pylist(),
+                                 plan.catalog.column("container_doc_id").to_pylist()) if c}
+    return sum(1 for _, path, _ in plan.live.values() if path in members)
 
 
 def member_chain(row_at: dict[str, dict], canonical: dict[str, str], path: str) -> tuple[str, tuple[str, ...]]:

@@ -70,6 +70,7 @@ def summary_context(ov: Overview) -> dict[str, Any]:
         (_n(processed), "processed (run and reruns)" if several else "processed this run"),
         (_n(d.get("unchanged")), "unchanged (reused)"),
         (_n(d.get("removed")), "removed"),
+        *([(_n(d["held"]), "held (unreadable this run, kept as stored)")] if d.get("held") else []),
         (_n(last.get("pages")), "page units"),
         (_n(last.get("chunks")), "chunks handed off"),
         (_n(last.get("tokens")), "tokens"),
