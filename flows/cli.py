@@ -64,6 +64,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="process every document again, even unchanged ones")
     p.add_argument("--verify", action="store_true",
                    help="read and hash every file, even those whose size, times, inode and device are unchanged")
+    p.add_argument("--accept-removals", action="store_true",
+                   help="remove the documents this run no longer finds even when they are more than "
+                        "source.removal_limit of the drive")
     p.add_argument("--quiet", action="store_true", help="no progress lines, only the summary")
     p.add_argument("--probes", metavar="FILE", help="probe file to check after the run (default: the definition's probes)")
     p.add_argument("--fail-on-regression", action="store_true",
@@ -242,7 +245,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(f"thresher: running {definition.model.name} on {source} -> store {store_root} "
               "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
     return _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
-                           probes=args.probes, verify=args.verify)
+                           probes=args.probes, verify=args.verify, accept_removals=args.accept_removals)
 
 
 def _run_checks(args: argparse.Namespace, definition: FlowDefinition) -> None:
@@ -276,6 +279,7 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
                     **options: Any) -> int:
     """Run the flow, then print its manifest (--json) or the summary."""
     from thresher.flows import pipeline
+    from thresher.flows.plan import TooManyRemovals
     from thresher.flows.rerun import RerunError
     from thresher.flows.store import StoreError
 
@@ -283,7 +287,7 @@ def _run_and_report(args: argparse.Namespace, definition: FlowDefinition, source
     try:
         manifest = pipeline.run(definition, source, store_root, quiet=args.quiet,
                                 live=not getattr(args, "json", False), **options)
-    except (StoreError, RerunError) as exc:
+    except (StoreError, RerunError, TooManyRemovals) as exc:
         raise UsageError(str(exc)) from None
     if args.json:
         print(json.dumps(manifest, indent=2, default=str))

@@ -44,6 +44,11 @@ class SourceSection(_Strict):
     # Which of several copies of the same bytes (outside archive folders) is named:
     # newest = the one modified last; path = the first in path order. Ties go to path order.
     copies_by: Literal["newest", "path"] = "newest"
+    # A run that would remove more than this share of the documents the last run held
+    # (and at least plan.REMOVAL_FLOOR of them) stops before it changes anything: an
+    # unmounted share looks like an empty folder. 1.0 turns the check off. Common
+    # practice, no source.
+    removal_limit: float = Field(default=0.5, ge=0.0, le=1.0)
 
 
 class RunnerSection(_Strict):

@@ -25,6 +25,7 @@ from prefect import flow, get_run_logger, task
 from prefect.artifacts import create_markdown_artifact, create_table_artifact
 from prefect.cache_policies import NO_CACHE
 from prefect.futures import as_completed
+from prefect.states import Failed
 from prefect.task_runners import ProcessPoolTaskRunner, ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
@@ -36,7 +37,7 @@ from thresher.flows.execute import (BatchJob, BatchResult, BatchRunner, DocJob, 
 from thresher.flows.isolate import limit_workers, prewarm
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
-from thresher.flows.plan import Plan, add_members, inside_count, make_plan
+from thresher.flows.plan import Plan, TooManyRemovals, add_members, check_removals, inside_count, make_plan
 from thresher.flows.progress import for_run as progress_for_run
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
@@ -407,7 +408,7 @@ def _run_chain(definition: FlowDefinition, plan: Plan, store_root: str, run_id: 
 def execute_run(definition: FlowDefinition, source_root: str, store_root: str, run_id: str,
                 progress: Callable[[str], None] | None, force: bool = False,
                 rerun: dict[str, Any] | None = None, workers: int | None = None,
-                probes: str | None = None, verify: bool = False) -> RunOutcome:
+                probes: str | None = None, verify: bool = False, accept_removals: bool = False) -> RunOutcome:
     """Body of the flows; runs inside a Prefect flow run so tasks are tracked.
 
     `rerun` None: a run over the source folder. Otherwise what to re-run:
@@ -441,6 +442,8 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
                                    known=known, verify=verify or model.source.verify)
             plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog,
                              unread=[p.source_path for p in problems])
+            if not accept_removals:
+                check_removals(plan, model.source.removal_limit, source_root)
             held = f", {len(plan.held)} held (kept as stored: unreadable this run)" if plan.held else ""
             _emit(progress, f"found {len(files)} files ({len(plan.live)} distinct documents): "
                             f"{len(plan.jobs)} to process, {len(plan.skipped) - len(plan.held)} unchanged, "
@@ -598,7 +601,8 @@ def _rerun_plan(definition: FlowDefinition, store: Store, rerun: dict[str, Any],
 def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store_root: str,
            run_id: str | None = None, force: bool = False, quiet: bool = False,
            rerun: dict[str, Any] | None = None, workers: int | None = None,
-           probes: str | None = None, verify: bool = False, live: bool = False) -> "RunResult":
+           probes: str | None = None, verify: bool = False, live: bool = False,
+           accept_removals: bool = False) -> "RunResult":
     """One run of the chain over the source root (or a re-run of chosen units), then the
     delivery of its change set to the definition's targets when it asks for that.
 
@@ -607,7 +611,12 @@ def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store
     progress = progress_for_run(quiet, live)
     try:
         outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(), progress,
-                              force=force, rerun=rerun, workers=workers, probes=probes, verify=verify)
+                              force=force, rerun=rerun, workers=workers, probes=probes, verify=verify,
+                              accept_removals=accept_removals)
+    except TooManyRemovals as exc:
+        # The run's Failed state with the reason, and the error for the caller, but no
+        # traceback in the log: a refusal, not a fault.
+        return Failed(message=str(exc), data=exc)
     finally:
         if hasattr(progress, "close"):
             progress.close()
@@ -668,7 +677,8 @@ def _json_parameters(parameters: dict[str, Any]) -> dict[str, Any]:
 
 def run(definition: FlowDefinition, source_root: str, store_root: str, workers: int | None = None,
         force: bool = False, quiet: bool = False, rerun: dict[str, Any] | None = None,
-        probes: str | None = None, verify: bool = False, live: bool = False) -> dict[str, Any]:
+        probes: str | None = None, verify: bool = False, live: bool = False,
+        accept_removals: bool = False) -> dict[str, Any]:
     """Run the flow (embedded Prefect unless PREFECT_API_URL is set).
 
     The store's lock is taken before Prefect starts, so a second run on the same
@@ -689,7 +699,7 @@ def run(definition: FlowDefinition, source_root: str, store_root: str, workers: 
                                   name=None if rerun is None else f"{definition.model.name}-rerun")
             out = flow_obj(definition.model.model_dump(mode="json"), definition.origin, source_root, store_root,
                            run_id=run_id, force=force, quiet=quiet, rerun=rerun, workers=workers, probes=probes,
-                           verify=verify, live=live)
+                           verify=verify, live=live, accept_removals=accept_removals)
             return out.manifest if isinstance(out, RunResult) else out
     finally:
         store.release_lock(run_id)

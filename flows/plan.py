@@ -21,6 +21,15 @@ from thresher.flows.execute import DocJob, MemberInfo
 from thresher.flows.store import Store
 
 
+# Fewer removals than this are never refused, whatever their share (a small drive
+# tidied). Common practice, no source.
+REMOVAL_FLOOR = 10
+
+
+class TooManyRemovals(RuntimeError):
+    """A run would remove more of the drive's documents than the definition allows."""
+
+
 @dataclass
 class Plan:
     catalog: pa.Table
@@ -254,6 +263,19 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
                 source_section=definition.model.source,
                 previous_live={r["doc_id"]: r.get("canonical_path") for r in old if r["present"]},
                 held=sorted(held))
+
+
+def check_removals(plan: Plan, limit: float, source_root: str) -> None:
+    """Refuse a run that would remove more than `limit` of the documents the last run
+    held (an unmounted share, a wrong --source, an include glob gone wrong), before it
+    writes anything."""
+    before = len(plan.previous_live or {})
+    n = len(plan.deleted)
+    if n >= REMOVAL_FLOOR and n > limit * before:
+        raise TooManyRemovals(
+            f"this run would remove {n:,} of the {before:,} documents the last run held ({n / before:.0%}), "
+            f"more than source.removal_limit ({limit:.0%}) allows. Is {source_root} the whole drive, "
+            f"mounted and readable? Nothing was changed. To remove them, run again with --accept-removals.")
 
 
 def inside_count(plan: Plan) -> int:

@@ -10,16 +10,19 @@ folder whose path grows past Linux's PATH_MAX (4,096 bytes) when the drive is mo
 from __future__ import annotations
 
 import os
+import subprocess
+import sys
 import zipfile
 from pathlib import Path
 
+import pytest
 import yaml
 
 from thresher.flows import pipeline
 from thresher.flows.cli import run_summary_lines
 from thresher.flows.config import build_definition, default_config_text
 from thresher.flows.discover import CANNOT_LIST
-from thresher.flows.plan import held_paths
+from thresher.flows.plan import REMOVAL_FLOOR, TooManyRemovals, held_paths
 from thresher.flows.report import write_report
 from thresher.flows.store import Store
 from thresher.flows.verify import verify
@@ -157,3 +160,37 @@ def test_held_paths_are_the_unreadable_files_and_everything_under_unlistable_fol
     everything = held_paths(["./"])  # the source folder itself could not be listed
     assert everything("x.md") and everything("a/b/c.md")
     assert not held_paths([])("x.md")
+
+
+def test_a_run_that_would_remove_most_of_the_drive_stops_before_it_changes_anything(prefect_harness, tmp_path):
+    # An unmounted share is an empty folder where the drive was.
+    drive = tmp_path / "share"
+    drive.mkdir()
+    for i in range(12):
+        (drive / f"branch-{i:02d}.md").write_text(f"# Branch {i}\n\nBranch {i} of Quillfern opens at nine.\n")
+    store = tmp_path / "store"
+    first = _run(drive, store)
+    before = (_chunks(store), Store(store).catalog(), Store(store).latest_run().run_id)
+    for f in sorted(drive.iterdir())[:11]:
+        f.rename(tmp_path / f.name)
+    with pytest.raises(TooManyRemovals, match=r"would remove 11 of the 12 documents .* \(92%\), more than "
+                                              r"source.removal_limit \(50%\)"):
+        _run(drive, store)
+    assert (_chunks(store), Store(store).catalog(), Store(store).latest_run().run_id) == before
+    assert verify(Store(store)) == []
+    r = subprocess.run([str(Path(sys.executable).parent / "thresher"), "run", "--source", str(drive),
+                        "--store", str(store), "--quiet"], capture_output=True, text=True,
+                       env=dict(os.environ, PREFECT_API_URL=_api_url()))
+    assert r.returncode == 2 and "--accept-removals" in r.stderr and "Traceback" not in r.stderr, r.stderr
+    assert Store(store).latest_run().run_id == first["run_id"]
+
+    # Fewer than REMOVAL_FLOOR removals go ahead whatever their share; so do these, asked for.
+    accepted = pipeline.run(_definition(), str(drive), str(store), workers=1, quiet=True, accept_removals=True)
+    assert accepted["documents"]["removed"] == 11 and set(_chunks(store)) == {"branch-11.md"}
+    assert REMOVAL_FLOOR > 1
+
+
+def _api_url() -> str:
+    from prefect.settings import PREFECT_API_URL
+
+    return PREFECT_API_URL.value()
