@@ -15,6 +15,7 @@ from typing import Any, NoReturn
 
 from thresher.flows.config import ConfigError, FlowDefinition, load_definition
 from thresher.flows.runtime import collect_after_imports
+from thresher.steps.units import shown
 
 EXIT_USAGE = 2
 
@@ -366,24 +367,24 @@ def run_summary_lines(m: dict[str, Any]) -> list[str]:
     if withheld:
         lines.append(f"  {len(withheld)} document(s) left out of the hand-off:")
         for path, why in sorted(withheld.items())[:10]:
-            lines.append(f"    {path}  {why}")
+            lines.append(f"    {shown(path)}  {why}")
         if len(withheld) > 10:
             lines.append(f"    ... and {len(withheld) - 10} more")
     unread = m.get("scan_problems") or []
     if unread:
         lines.append(f"  {len(unread)} file(s) the scan could not read:")
         for p in unread[:10]:
-            lines.append(f"    {p['source_path']}  {p['reason']}")
+            lines.append(f"    {shown(p['source_path'])}  {p['reason']}")
         if len(unread) > 10:
             lines.append(f"    ... and {len(unread) - 10} more")
     if m.get("failures"):
         lines.append(f"  {m['failures']} unit(s) failed this run; `thresher trail PATH` shows each one's way:")
-        shown = m.get("failed_units", [])[:10]
-        width = max((len(f["source_path"]) for f in shown), default=0)
-        for f in shown:
-            lines.append(f"    {f['source_path']:<{width}}  {f['stage']}: {f['reason']}")
-        if m["failures"] > len(shown):
-            lines.append(f"    ... and {m['failures'] - len(shown)} more")
+        first = m.get("failed_units", [])[:10]
+        width = max((len(shown(f["source_path"])) for f in first), default=0)
+        for f in first:
+            lines.append(f"    {shown(f['source_path']):<{width}}  {f['stage']}: {f['reason']}")
+        if m["failures"] > len(first):
+            lines.append(f"    ... and {m['failures'] - len(first)} more")
     return lines
 
 
@@ -523,26 +524,26 @@ def cmd_trail(args: argparse.Namespace) -> int:
         print(json.dumps({"doc_id": doc_id, "catalog": cat_rows, "stages": slim}, indent=2, default=str))
         return 0
     present = [r for r in cat_rows if r["present"]]
-    print((present or cat_rows)[0]["source_path"])
+    print(shown((present or cat_rows)[0]["source_path"]))
     print(f"  doc_id {doc_id}")
     if present:
         r = present[0]
         print(f"  {r['size']:,} bytes, first seen in run {r['first_run']}, last seen in run {r['last_run']}")
         if len(present) > 1:
-            others = ", ".join(x["source_path"] for x in present[1:])
+            others = ", ".join(shown(x["source_path"]) for x in present[1:])
             live = r["canonical_path"]
             print(f"  the same bytes sit at {len(present)} paths; also at {others}")
-            print(f"  the hand-off names {'this path' if live == r['source_path'] else live} for all of them "
+            print(f"  the hand-off names {'this path' if live == r['source_path'] else shown(live)} for all of them "
                   f"(source.archive_folders, source.copies_by)")
         catalog = store.catalog().to_pylist()
         for c in present:
             if c.get("container_doc_id"):
                 holder = next((x["canonical_path"] for x in catalog if x["doc_id"] == c["container_doc_id"]
                                and x["present"]), c["container_doc_id"])
-                print(f"  inside {holder} (doc_id {c['container_doc_id'][:12]}) as {c['member_name']}")
+                print(f"  inside {shown(holder)} (doc_id {c['container_doc_id'][:12]}) as {c['member_name']}")
         inside = sorted(x["source_path"] for x in catalog if x.get("container_doc_id") == doc_id and x["present"])
         if inside:
-            print(f"  holds {len(inside)} document(s): {', '.join(inside[:10])}"
+            print(f"  holds {len(inside)} document(s): {', '.join(map(shown, inside[:10]))}"
                   + (f" and {len(inside) - 10} more" if len(inside) > 10 else ""))
     else:
         print("  removed from the source folder (no present path)")
@@ -595,7 +596,7 @@ def _access_lines(present: list[dict[str, Any]]) -> list[str]:
     for r in present:
         if r.get("mode") is not None:
             acl = f"; ACL {', '.join(r['acl'])}" if r.get("acl") else ""
-            lines.append(f"    {r['source_path']}: owner {r['owner']} ({r['owner_uid']}), group {r['group']} "
+            lines.append(f"    {shown(r['source_path'])}: owner {r['owner']} ({r['owner_uid']}), group {r['group']} "
                          f"({r['group_gid']}), mode {r['mode']:04o}{acl}; gives {', '.join(r['readers']) or 'nobody'}"
                          f" by {r['access_rule']}")
     return lines
@@ -699,7 +700,7 @@ def cmd_failures(args: argparse.Namespace) -> int:
         else:  # the same kind of reason with different ids, paths or numbers: show the first in full
             print(f"  {len(g.units)} units with reasons like: {g.units[0]['reason']}")
         for u in g.units[:8]:
-            print(f"    {u['source_path']}  {u['locator']}")
+            print(f"    {shown(u['source_path'])}  {u['locator']}")
         if len(g.units) > 8:
             print(f"    ... and {len(g.units) - 8} more")
     return 0

@@ -42,6 +42,7 @@ from thresher.flows.progress import for_run as progress_for_run
 from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
 from thresher.flows.summary import STATUS_ORDER, carried_counts, counts_rel, document_rows
+from thresher.steps.units import shown
 
 # A batch holds at most this many bytes of source files besides its document count,
 # so one huge PDF does not share a task with many others (common practice: size
@@ -450,7 +451,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
                             f"{len(plan.deleted)} removed{held}; "
                             f"{sum(f.hashed for f in files)} files read to hash (the rest matched their stat record)")
             for p in problems:
-                _emit(progress, f"  cannot read {p.source_path}: {p.reason}")
+                _emit(progress, f"  cannot read {shown(p.source_path)}: {p.reason}")
         else:
             plan = _rerun_plan(definition, store, rerun, source_root, sequence)
             targets_text = rerun.get("_described", [])

@@ -76,6 +76,17 @@ def spelled(name: str) -> str:
     return name
 
 
+# Control characters as Python writes them in a string literal (\n, \r, \t, \x07).
+_CONTROL = {c: repr(chr(c))[1:-1] for c in (*range(32), 127)}
+
+
+def shown(name: str) -> str:
+    """A name as one line of a terminal shows it: its control characters escaped. A
+    macOS folder's icon file is "Icon\r", whose carriage return would send the rest of
+    a line back over its start; a line break would split one entry in two."""
+    return name.translate(_CONTROL)
+
+
 @dataclass
 class Member:
     """A document inside a document (an archive member, an e-mail's attachment or an

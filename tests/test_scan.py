@@ -242,11 +242,34 @@ def test_a_path_matches_a_list_of_globs_when_any_one_of_them_matches_it_whole():
     from thresher.flows.discover import matches
 
     # The default definition's exclude list (config/default.yaml).
-    exclude = ["**/.*", "**/~$*", "**/Thumbs.db"]
+    exclude = load_definition().model.source.exclude
     assert matches(".git", exclude) and matches("notes/.hidden", exclude) and matches("a/b/~$draft.docx", exclude)
     assert matches("Thumbs.db", exclude) and matches("photos/Thumbs.db", exclude)
+    assert matches("minutes/desktop.ini", exclude) and matches("minutes/Icon\r", exclude)
+    assert not matches("minutes/Icon.png", exclude) and not matches("minutes/Icons.md", exclude)
     assert not matches("notes/a.md", exclude) and not matches("photos/Thumbs.db.bak", exclude)
     assert not matches("notes/a.md", [])
     # '*' stays within a folder, '**/' spans any number of them (or none).
     assert matches("a/x.txt", ["b/*", "a/*.txt"]) and not matches("a/b/x.txt", ["a/*.txt"])
     assert matches("a/b/c/x.pdf", ["q", "a/**/x.pdf"]) and matches("a/x.pdf", ["a/**/x.pdf"])
+
+
+def test_folder_litter_is_left_out_and_control_characters_in_names_are_shown_escaped(prefect_harness, tmp_path, capsys):
+    from thresher.flows import cli
+    from thresher.flows.cli import run_summary_lines
+
+    drive = _drive(tmp_path / "drive")
+    (drive / "minutes").mkdir()
+    (drive / "minutes" / "Icon\r").write_bytes(b"")  # a macOS folder's custom icon
+    (drive / "minutes" / "desktop.ini").write_text("[.ShellClassInfo]\nIconResource=minutes.ico,0\n")
+    (drive / "minutes" / "draft\nold.md").write_bytes(b"")  # empty: fails, with its name in the summary
+    m = pipeline.run(load_definition(), str(drive), str(tmp_path / "store"), workers=1, quiet=True)
+    assert m["documents"]["files"] == 3  # rota.md, vans.md and the draft; not the litter
+    lines = run_summary_lines(m)
+    assert not any("\n" in line or "\r" in line for line in lines)
+    assert any(line.strip().startswith("minutes/draft\\nold.md  extract: empty file") for line in lines)
+    assert cli.main(["failures", "--store", str(tmp_path / "store")]) == 0
+    out = capsys.readouterr().out
+    assert "    minutes/draft\\nold.md  document\n" in out
+    assert cli.main(["trail", "minutes/draft\nold.md", "--store", str(tmp_path / "store")]) == 0
+    assert capsys.readouterr().out.startswith("minutes/draft\\nold.md\n")
