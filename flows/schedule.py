@@ -15,6 +15,7 @@ from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefe
 from prefect import flow
 from prefect.deployments.runner import EntrypointType
 from prefect.schedules import Cron
+from prefect.states import Failed
 
 from thresher.flows.config import FlowDefinition, build_definition
 
@@ -26,9 +27,13 @@ def scheduled(definition_data: dict[str, Any], origin: str, source_root: str, st
               workers: int | None = None) -> dict[str, Any]:
     """One scheduled run of the flow definition over the source folder."""
     from thresher.flows import pipeline
+    from thresher.flows.plan import TooManyRemovals
 
     definition = build_definition(definition_data, origin)
-    return pipeline.run(definition, source_root, store_root, workers=workers, quiet=True)
+    try:
+        return pipeline.run(definition, source_root, store_root, workers=workers, quiet=True)
+    except TooManyRemovals as exc:  # refused before any change: Failed with the reason, no traceback
+        return Failed(message=str(exc), data=exc)
 
 
 def deployment_name(definition: FlowDefinition) -> str:

@@ -77,8 +77,10 @@ def carried_counts(store: Store, stages: list[tuple[str, str]], live_docs: list[
     that stage. The others (written there this run, or live now and not counted then)
     are counted afresh at that stage.
     Without a usable previous record (none, other stages, a file that does not match
-    its manifest's checksum) every stage is counted in full. Returns the counts and
-    this run's per-document table (schema.STAGE_COUNTS), to be stored for the next run.
+    its manifest's checksum) every stage is counted in full. Returns the counts by
+    stage; units by status and pages of the documents counted afresh (the ones this
+    run changed: a quiet week on a large drive sums none); and this run's per-document
+    table (schema.STAGE_COUNTS), to be stored for the next run.
     """
     live = set(live_docs)
     prev = _previous_counts(store, stages, previous)
@@ -104,13 +106,15 @@ def carried_counts(store: Store, stages: list[tuple[str, str]], live_docs: list[
         parts.append(pa.Table.from_pylist(rows, schema=schema.STAGE_COUNTS))
     table = pa.concat_tables(parts).cast(schema.STAGE_COUNTS) if parts else schema.STAGE_COUNTS.empty_table()
     table = table.sort_by([("doc_id", "ascending"), ("stage", "ascending"), ("status", "ascending")])
-    return (*_fold(stages, table), table)
+    touched = set().union(*recount.values()) if recount else set()
+    return (*_fold(stages, table, touched), table)
 
 
-def _fold(stages: list[tuple[str, str]], t: pa.Table
-                ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
+def _fold(stages: list[tuple[str, str]], t: pa.Table, docs: set[str] | None = None
+          ) -> tuple[list[StageCounts], dict[str, Counter], Counter]:
     """Per stage by status, per document by status, pages per document, from a
-    STAGE_COUNTS table (summed per key in Arrow: arrow_groups)."""
+    STAGE_COUNTS table (summed per key in Arrow: arrow_groups). `docs`: the documents
+    to give per-document figures for (None: all)."""
     sep = "\x1f"  # a control character: in no doc_id, stage or status name
     units = t.column("units")
     totals = {name: Counter() for name, _ in stages}
@@ -118,6 +122,9 @@ def _fold(stages: list[tuple[str, str]], t: pa.Table
                                            units):
         stage, status = key.split(sep)
         totals[stage][status] += n
+    if docs is not None:
+        t = t.filter(pc.is_in(t.column("doc_id"), value_set=pa.array(sorted(docs), pa.string())))
+        units = t.column("units")
     by_doc: dict[str, Counter] = {}
     for key, _, n in count_and_sum_per_key(pc.binary_join_element_wise(t.column("doc_id"), t.column("status"), sep),
                                            units):
@@ -149,17 +156,33 @@ def _previous_counts(store: Store, stages: list[tuple[str, str]], previous: Any)
     return table if found == record else None
 
 
+# Rows of a run's per-document artifact at most: Prefect keeps every run's artifacts
+# in its database, and its UI pages through them; the report has every document.
+ARTIFACT_ROWS = 1000
+
+
 def document_rows(live: dict[str, tuple[int, str, int]], by_doc: dict[str, Counter], pages: Counter,
-                  handoff_docs: dict[str, tuple[int, int]]) -> list[dict[str, Any]]:
-    """One row per live document (path order): pages, chunks, tokens, failed and dropped units."""
+                  handoff_docs: dict[str, tuple[int, int]], removed: dict[str, str | None] | None = None
+                  ) -> list[dict[str, Any]]:
+    """One row per document of `by_doc` that is live, and per removed doc_id (-> its
+    last path) whose path is not live now (an edited file is its new version's row):
+    pages, chunks, tokens, failed and dropped units; failed first, then in path order."""
     rows = []
-    for d, (_, path, _) in sorted(live.items(), key=lambda kv: kv[1][1]):
-        c = by_doc.get(d, Counter())
+    for d, c in by_doc.items():
+        if d not in live:
+            continue
         chunks, tokens = handoff_docs.get(d, (0, 0))
-        rows.append({"document": path, "pages": pages[d], "chunks": chunks, "tokens": tokens,
+        rows.append({"document": live[d][1], "pages": pages[d], "chunks": chunks, "tokens": tokens,
                      "failed units": c["failed"], "dropped units": c["dropped"],
                      "status": "failed" if c["failed"] else ("ok" if chunks else
                                                              "skipped" if c["skipped"] else "no chunks")})
+    paths = {path for _, path, _ in live.values()}
+    for d, path in (removed or {}).items():
+        if path in paths:
+            continue
+        rows.append({"document": path or d, "pages": 0, "chunks": 0, "tokens": 0, "failed units": 0,
+                     "dropped units": 0, "status": "removed"})
+    rows.sort(key=lambda r: (r["status"] != "failed", r["document"]))
     return rows
 
 

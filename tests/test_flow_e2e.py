@@ -451,6 +451,45 @@ def test_prefect_receives_the_run_logs_and_a_per_document_artifact(first_run):
     by_doc = {row["document"]: row for row in table}
     assert by_doc["hr/salary-review-2026-protected.pdf"]["status"] == "failed"
     assert by_doc["policies/lending-policy-2025.pdf"]["chunks"] > 0
+    assert table[0]["status"] == "failed"  # failed first
+
+
+def _artifacts(flow_run_id: str) -> dict[str, list]:
+    import asyncio
+
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterKey, FlowRunFilter, FlowRunFilterId
+
+    async def fetch():
+        async with get_client() as client:
+            return await client.read_artifacts(
+                artifact_filter=ArtifactFilter(key=ArtifactFilterKey(any_=["thresher-documents", "thresher-run-summary"])),
+                flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[flow_run_id])))
+
+    out: dict[str, list] = {}
+    for a in asyncio.run(fetch()):
+        out[a.key] = a.data if isinstance(a.data, list) else __import__("json").loads(a.data) \
+            if a.key == "thresher-documents" else a.data
+    return out
+
+
+def test_the_per_document_artifact_lists_what_the_run_changed_and_a_quiet_week_has_none(prefect_harness, tmp_path):
+    # Prefect keeps every run's artifacts: one row per live document every week would
+    # grow its database by the whole drive each run.
+    drive = tmp_path / "drive"
+    drive.mkdir()
+    for name in ("rota", "vans", "hours"):
+        (drive / f"{name}.md").write_text(f"# {name.title()}\n\nThe {name} of Quillfern change in spring.\n")
+    first = _run(drive, tmp_path / "store", workers=1)
+    assert {r["document"] for r in _artifacts(first["prefect_flow_run_id"])["thresher-documents"]} \
+        == {"rota.md", "vans.md", "hours.md"}
+    quiet = _artifacts(_run(drive, tmp_path / "store", workers=1)["prefect_flow_run_id"])
+    assert "thresher-documents" not in quiet and "thresher-run-summary" in quiet
+    (drive / "vans.md").write_text("# Vans\n\nThe van of Quillfern now visits on Thursdays.\n")
+    (drive / "hours.md").unlink()
+    week = _artifacts(_run(drive, tmp_path / "store", workers=1)["prefect_flow_run_id"])
+    assert [(r["document"], r["status"]) for r in week["thresher-documents"]] == [("hours.md", "removed"),
+                                                                                   ("vans.md", "ok")]
 
 
 def test_a_copy_saved_by_another_program_is_dropped_as_a_copy_of_the_original(first_run):
