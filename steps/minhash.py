@@ -216,7 +216,6 @@ def collision_probability(s, bands: int, rows: int):
     return 1.0 - (1.0 - s ** rows) ** bands
 
 
-@lru_cache(maxsize=64)
 @lru_cache(maxsize=16)  # a pure function of the parameters, asked twice a run (sketch, decide): 0.05 s each
 def choose_bands(threshold: float, num_perm: int, false_negative_weight: float = 0.5) -> tuple[int, int]:
     """Bands b and rows r (b*r <= num_perm) that minimise the weighted error area.
