@@ -65,6 +65,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="process every document again, even unchanged ones")
     p.add_argument("--verify", action="store_true",
                    help="read and hash every file, even those whose size, times, inode and device are unchanged")
+    p.add_argument("--dry-run", action="store_true",
+                   help="scan and plan only: print what the run would process, remove and hold; change nothing")
     p.add_argument("--accept-removals", action="store_true",
                    help="remove the documents this run no longer finds even when they are more than "
                         "source.removal_limit of the drive")
@@ -226,6 +228,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     store_root = _store_root(args, definition)
     if Path(store_root).exists() and not Path(store_root).is_dir():
         raise UsageError(f"store path exists and is not a folder: {store_root}")
+    if args.dry_run:
+        return _dry_run(args, definition, source, store_root)
     # The warm workers start now, if the run surely has documents to process: their fork
     # server's preload (1.3 s on 2 cores) then overlaps the checks below, Prefect's import
     # and its start of the flow. Started after the health check, it still held up a first
@@ -247,6 +251,21 @@ def cmd_run(args: argparse.Namespace) -> int:
               "(starting embedded Prefect unless PREFECT_API_URL is set)", file=sys.stderr, flush=True)
     return _run_and_report(args, definition, source, store_root, workers=args.workers, force=args.force,
                            probes=args.probes, verify=args.verify, accept_removals=args.accept_removals)
+
+
+def _dry_run(args: argparse.Namespace, definition: FlowDefinition, source: str, store_root: str) -> int:
+    from dataclasses import asdict
+
+    from thresher.flows.preview import preview, preview_lines
+
+    collect_after_imports()
+    p = preview(definition, source, store_root, force=args.force, verify=args.verify)
+    if args.json:
+        print(json.dumps(asdict(p), indent=2))
+    else:
+        print(f"dry run of {definition.model.name} on {source} (store {store_root}): nothing was written")
+        print("\n".join(preview_lines(p)))
+    return 0
 
 
 def _run_checks(args: argparse.Namespace, definition: FlowDefinition) -> None:

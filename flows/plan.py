@@ -275,7 +275,8 @@ def check_removals(plan: Plan, limit: float, source_root: str) -> None:
         raise TooManyRemovals(
             f"this run would remove {n:,} of the {before:,} documents the last run held ({n / before:.0%}), "
             f"more than source.removal_limit ({limit:.0%}) allows. Is {source_root} the whole drive, "
-            f"mounted and readable? Nothing was changed. To remove them, run again with --accept-removals.")
+            f"mounted and readable? Nothing was changed. `thresher run --dry-run` lists them; to remove them, "
+            f"run again with --accept-removals.")
 
 
 def inside_count(plan: Plan) -> int:

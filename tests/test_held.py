@@ -19,10 +19,12 @@ import pytest
 import yaml
 
 from thresher.flows import pipeline
+from thresher.flows import cli
 from thresher.flows.cli import run_summary_lines
 from thresher.flows.config import build_definition, default_config_text
 from thresher.flows.discover import CANNOT_LIST
 from thresher.flows.plan import REMOVAL_FLOOR, TooManyRemovals, held_paths
+from thresher.flows.preview import preview
 from thresher.flows.report import write_report
 from thresher.flows.store import Store
 from thresher.flows.verify import verify
@@ -74,6 +76,11 @@ def test_a_file_that_cannot_be_read_keeps_its_chunks_until_it_is_read_or_gone(pr
 
     # The other share is off line, and the definition changed this week.
     (elsewhere / "policy.md").unlink()
+    # What the run will do, asked first (`thresher run --dry-run`): nothing is written.
+    ahead = preview(_definition(300), str(drive), str(store))
+    assert ahead.process == [("rota.md", "processed before with another definition: from step split")]
+    assert (ahead.held, ahead.removed, ahead.refusal) == (["policy.md"], [], None)
+    assert Store(store).latest_run().run_id == first["run_id"]
     second = _run(drive, store, max_tokens=300)
     d = second["documents"]
     assert (d["processed"], d["held"], d["removed"], d["unchanged"], d["inside"]) == (1, 1, 0, 0, 0)
@@ -162,7 +169,8 @@ def test_held_paths_are_the_unreadable_files_and_everything_under_unlistable_fol
     assert not held_paths([])("x.md")
 
 
-def test_a_run_that_would_remove_most_of_the_drive_stops_before_it_changes_anything(prefect_harness, tmp_path):
+def test_a_run_that_would_remove_most_of_the_drive_stops_before_it_changes_anything(prefect_harness, tmp_path,
+                                                                                      capsys):
     # An unmounted share is an empty folder where the drive was.
     drive = tmp_path / "share"
     drive.mkdir()
@@ -182,6 +190,12 @@ def test_a_run_that_would_remove_most_of_the_drive_stops_before_it_changes_anyth
                         "--store", str(store), "--quiet"], capture_output=True, text=True,
                        env=dict(os.environ, PREFECT_API_URL=_api_url()))
     assert r.returncode == 2 and "--accept-removals" in r.stderr and "Traceback" not in r.stderr, r.stderr
+    assert Store(store).latest_run().run_id == first["run_id"]
+    # The dry run names them, says the run would stop, and writes nothing either.
+    assert cli.main(["run", "--dry-run", "--source", str(drive), "--store", str(store)]) == 0
+    out = capsys.readouterr().out
+    assert "0 to process, 1 unchanged, 11 removed" in out and "the run would stop: this run would remove 11" in out
+    assert "  removed:\n" + "".join(f"    branch-{i:02d}.md\n" for i in range(11)) in out
     assert Store(store).latest_run().run_id == first["run_id"]
 
     # Fewer than REMOVAL_FLOOR removals go ahead whatever their share; so do these, asked for.
