@@ -447,7 +447,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
                 check_removals(plan, model.source.removal_limit, source_root)
             held = f", {len(plan.held)} held (kept as stored: unreadable this run)" if plan.held else ""
             _emit(progress, f"found {len(files)} files ({len(plan.live)} distinct documents): "
-                            f"{len(plan.jobs)} to process, {len(plan.skipped) - len(plan.held)} unchanged, "
+                            f"{len(plan.jobs)} to process, {plan.unchanged} unchanged, "
                             f"{len(plan.deleted)} removed{held}; "
                             f"{sum(f.hashed for f in files)} files read to hash (the rest matched their stat record)")
             for p in problems:
@@ -530,7 +530,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             "documents": {"files": len(files), "hashed": sum(f.hashed for f in files),
                           "distinct": len(plan.live), "processed": len(plan.jobs),
                           "inside": inside_count(plan) if rerun is None else 0,
-                          "unchanged": len(plan.skipped) - len(plan.held), "removed": len(plan.deleted),
+                          "unchanged": plan.unchanged, "removed": len(plan.deleted),
                           "held": len(plan.held),
                           "copies": {d: p for d, p in plan.copies.items()}},
             "scan_problems": [asdict(p) for p in problems],

@@ -8,7 +8,7 @@ stage whose stored rows were made with a different step version or parameters.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 from datetime import datetime, timezone
 
 import pyarrow as pa
@@ -56,6 +56,11 @@ class Plan:
     # doc_ids kept as stored because the scan could not read their files this run (they
     # are among `skipped`; see held_paths).
     held: list[str] = field(default_factory=list)
+
+    @property
+    def unchanged(self) -> int:
+        """Documents reused as stored because they are current (not held)."""
+        return len(self.skipped) - len(self.held)
 
 
 def _ts(epoch: float) -> datetime:
@@ -138,18 +143,18 @@ def source_path_key(row: dict, source: SourceSection) -> tuple:
     return (bool(row.get("container_doc_id")), archived, newest, path)
 
 
-def held_paths(unread: list[str]) -> Callable[[str], bool]:
+def held_paths(unread: Sequence[str]) -> Callable[[str], bool]:
     """Whether a source path is one the scan could not read this run: a file it could
     not read, or a file under a folder it could not list (such a problem's path ends
     with "/"; "./" is the source folder itself)."""
     files = {p for p in unread if not p.endswith("/")}
     folders = tuple("" if p == "./" else p for p in unread if p.endswith("/"))
-    return lambda path: path in files or (bool(folders) and path.startswith(folders))
+    return lambda path: path in files or path.startswith(folders)
 
 
 def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile], run_id: str,
               sequence: int, force: bool = False, catalog: list[dict] | None = None,
-              unread: list[str] = ()) -> Plan:
+              unread: Sequence[str] = ()) -> Plan:
     """`catalog`: the store's catalog rows when the caller has read them already.
 
     `unread`: the paths of the scan's problems. A document the catalog has at such a
@@ -183,7 +188,7 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
         seen_paths.add(f.source_path)
     drive_docs = {f.doc_id for f in files}
     members = [r for r in old if r.get("container_doc_id") and r["source_path"] not in seen_paths]
-    unreadable = held_paths(list(unread))
+    unreadable = held_paths(unread)
     held: set[str] = set()
     for r in old:
         if r["source_path"] not in seen_paths and not r.get("container_doc_id"):

@@ -56,7 +56,7 @@ def preview(definition: FlowDefinition, source_root: str, store_root: str, force
     previous = plan.previous_live or {}
     return Preview(
         files=len(files), hashed=sum(f.hashed for f in files), live=len(plan.live),
-        unchanged=len(plan.skipped) - len(plan.held),
+        unchanged=plan.unchanged,
         process=sorted((j.source_path, why(j.known, j.start)) for j in plan.jobs),
         removed=sorted(previous.get(d) or d for d in plan.deleted),
         held=sorted(plan.live[d][1] for d in plan.held),
