@@ -39,7 +39,7 @@ from thresher.flows.faults import fault as _fault  # fault points: see flows/fau
 from thresher.flows.handoff import build_handoff, handoff_basis
 from thresher.flows.plan import Plan, TooManyRemovals, add_members, check_removals, inside_count, make_plan
 from thresher.flows.progress import for_run as progress_for_run
-from thresher.flows.rerun import describe, make_rerun_plan, target_for_document, targets_for_failed
+from thresher.flows.rerun import RerunError, describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
 from thresher.flows.summary import ARTIFACT_ROWS, STATUS_ORDER, carried_counts, counts_rel, document_rows
 from thresher.steps.units import shown
@@ -621,9 +621,9 @@ def ingest(definition_data: dict[str, Any], origin: str, source_root: str, store
         outcome = execute_run(definition, source_root, store_root, run_id or new_run_id(), progress,
                               force=force, rerun=rerun, workers=workers, probes=probes, verify=verify,
                               accept_removals=accept_removals)
-    except TooManyRemovals as exc:
+    except (TooManyRemovals, RerunError) as exc:
         # The run's Failed state with the reason, and the error for the caller, but no
-        # traceback in the log: a refusal, not a fault.
+        # traceback in the log: a refusal before any change, not a fault.
         return Failed(message=str(exc), data=exc)
     finally:
         if hasattr(progress, "close"):

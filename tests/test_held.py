@@ -96,6 +96,13 @@ def test_a_file_that_cannot_be_read_keeps_its_chunks_until_it_is_read_or_gone(pr
     assert "1 held (unreadable this run, kept as stored)" in summary and "policy.md" in summary
     page = write_report(Store(store), tmp_path / "report.html").summary.read_text()
     assert "held (unreadable this run, kept as stored)" in page
+    # Re-running the held document is refused with the reason, before any change.
+    r = subprocess.run([str(Path(sys.executable).parent / "thresher"), "rerun", "--path", "policy.md", "--source",
+                        str(drive), "--store", str(store)], capture_output=True, text=True,
+                       env=dict(os.environ, PREFECT_API_URL=_api_url()))
+    assert r.returncode == 2 and "Traceback" not in r.stderr, r.stderr
+    assert f"cannot read {drive / 'policy.md'}: No such file or directory" in r.stderr
+    assert Store(store).latest_run().run_id == second["run_id"]
 
     # Back on line with the same bytes: read, and processed with this week's definition.
     (elsewhere / "policy.md").write_text(POLICY)
