@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
 import re
@@ -62,6 +63,14 @@ class SourceFile:
 class ScanProblem:
     source_path: str
     reason: str
+    # True: reading was refused (EACCES, EPERM). Access taken away is meant, so what
+    # the store last read there is removed; any other error (a share off line, a link
+    # whose target is gone) holds it as stored (plan.make_plan).
+    denied: bool = False
+
+
+def _denied(exc: OSError) -> bool:
+    return exc.errno in (errno.EACCES, errno.EPERM)
 
 
 @lru_cache(maxsize=256)
@@ -147,7 +156,7 @@ def _utf8(rel: str) -> bool:
 
 
 CANNOT_LIST = ("cannot list the folder, so its files are not in this run (documents of it that earlier "
-               "runs read are kept as stored)")
+               "runs read are kept as stored, or removed where reading was refused)")
 NOT_UTF8 = ("the file name is not valid UTF-8 (the bytes that are not are shown as \\xNN); "
             "rename the file, or its folder, to read it")
 
@@ -170,7 +179,7 @@ def _look(full: str, rel: str, known: dict | None, verify: bool,
                               facts=read_facts(full, st))
         doc_id, data = _read_and_hash(full, st.st_size, keep)
     except OSError as exc:
-        return ScanProblem(rel, f"cannot read file: {exc.strerror or exc}")
+        return ScanProblem(rel, f"cannot read file: {exc.strerror or exc}", _denied(exc))
     return SourceFile(rel, full, st.st_size, st.st_mtime, doc_id, rec["mtime_ns"], rec["inode"],
                       rec["device"], rec["ctime_ns"], facts=read_facts(full, st), data=data)
 
@@ -242,7 +251,8 @@ def _candidates(root: str | os.PathLike[str], include: list[str], exclude: list[
     def cannot_list(exc: OSError) -> None:
         if unlisted is not None:
             folder = os.path.relpath(exc.filename, top).replace(os.sep, "/") if exc.filename else "."
-            unlisted.append(ScanProblem(spelled(folder) + "/", f"{CANNOT_LIST}: {exc.strerror or exc}"))
+            unlisted.append(ScanProblem(spelled(folder) + "/", f"{CANNOT_LIST}: {exc.strerror or exc}",
+                                        _denied(exc)))
 
     for dirpath, dirnames, filenames in os.walk(top, followlinks=False, onerror=cannot_list):
         dirnames.sort()

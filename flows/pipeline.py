@@ -442,7 +442,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
                                    known=known, verify=verify or model.source.verify)
             plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog,
-                             unread=[p.source_path for p in problems])
+                             unread=[p.source_path for p in problems if not p.denied])
             if not accept_removals:
                 check_removals(plan, model.source.removal_limit, source_root)
             held = f", {len(plan.held)} held (kept as stored: unreadable this run)" if plan.held else ""

@@ -157,10 +157,11 @@ def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile],
               unread: Sequence[str] = ()) -> Plan:
     """`catalog`: the store's catalog rows when the caller has read them already.
 
-    `unread`: the paths of the scan's problems. A document the catalog has at such a
-    path only is held: kept as stored, neither removed nor processed, until a run can read
-    it again. A drive that cannot be read for a week (a share's folder off line, a
-    file locked or its permissions changed) must not lose its chunks.
+    `unread`: the paths of the scan's problems, but those where reading was refused. A
+    document the catalog has at such a path only is held: kept as stored, neither
+    removed nor processed, until a run can read it again. A drive that cannot be read
+    for a week (a share's folder off line, a link to a mount that is down) must not
+    lose its chunks; a permission taken away is meant, and removes them.
     """
     old = store.catalog().to_pylist() if catalog is None else catalog
     old_by_path = {r["source_path"]: r for r in old}

@@ -38,7 +38,7 @@ def preview(definition: FlowDefinition, source_root: str, store_root: str, force
     files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
                            known=known_files(catalog), verify=verify or model.source.verify)
     plan = make_plan(definition, store, files, "dry-run", store.next_sequence(), force=force, catalog=catalog,
-                     unread=[p.source_path for p in problems])
+                     unread=[p.source_path for p in problems if not p.denied])
     refusal = None
     try:
         check_removals(plan, model.source.removal_limit, source_root)

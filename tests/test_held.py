@@ -9,6 +9,7 @@ folder whose path grows past Linux's PATH_MAX (4,096 bytes) when the drive is mo
 
 from __future__ import annotations
 
+import json
 import os
 import subprocess
 import sys
@@ -215,3 +216,47 @@ def _api_url() -> str:
     from prefect.settings import PREFECT_API_URL
 
     return PREFECT_API_URL.value()
+
+
+# Root reads every file; without these two capabilities it is refused as anyone else is
+# (capabilities(7)). setpriv (util-linux) drops them for the one command it starts.
+_NO_DAC = ["setpriv", "--bounding-set=-dac_override,-dac_read_search"]
+
+
+def _refusals_are_real(tmp_path: Path) -> bool:
+    probe = tmp_path / "probe.txt"
+    probe.write_text("x")
+    probe.chmod(0)
+    try:
+        r = subprocess.run(_NO_DAC + [sys.executable, "-c", f"open({str(probe)!r}).read()"],
+                           capture_output=True, text=True)
+    except FileNotFoundError:
+        return False
+    return r.returncode != 0 and "PermissionError" in r.stderr
+
+
+def test_a_file_or_folder_whose_read_permission_is_taken_away_is_removed_not_held(prefect_harness, tmp_path):
+    if not _refusals_are_real(tmp_path):
+        pytest.skip("cannot drop the read-everything capabilities here (setpriv missing or not allowed)")
+    drive = tmp_path / "drive"
+    (drive / "private").mkdir(parents=True)
+    (drive / "rota.md").write_text("# Rota\n\nThe Saturday rota changes from March at every branch of Quillfern.\n")
+    (drive / "vans.md").write_text("# Vans\n\nThe mobile library van is serviced on the first Monday.\n")
+    (drive / "private" / "pay.md").write_text("# Pay\n\nPay scales for the branch staff of Quillfern, 2026.\n")
+    store = tmp_path / "store"
+    _run(drive, store)
+    assert set(_chunks(store)) == {"rota.md", "vans.md", "private/pay.md"}
+
+    # Someone took the scanning account's access away: meant, so the chunks go.
+    (drive / "vans.md").chmod(0)
+    (drive / "private").chmod(0)
+    r = subprocess.run(_NO_DAC + [str(Path(sys.executable).parent / "thresher"), "run", "--source", str(drive),
+                                  "--store", str(store), "--json"], capture_output=True, text=True,
+                       env=dict(os.environ, PREFECT_API_URL=_api_url()))
+    assert r.returncode == 0, r.stderr
+    m = json.loads(r.stdout)
+    assert (m["documents"]["removed"], m["documents"]["held"]) == (2, 0)
+    assert sorted((p["source_path"], p["reason"], p["denied"]) for p in m["scan_problems"]) == [
+        ("private/", f"{CANNOT_LIST}: Permission denied", True),
+        ("vans.md", "cannot read file: Permission denied", True)]
+    assert set(_chunks(store)) == {"rota.md"}
