@@ -246,6 +246,13 @@ class FlowDefinition:
     def chain_digest(self) -> str:
         return self.steps[-1].digest
 
+    @property
+    def source_limit(self) -> int | None:
+        """The most bytes of a source file the chain's first step accepts (StepSpec.
+        source_limit); a larger file is neither read to extract nor read to hash."""
+        first = self.steps[0]
+        return first.spec.source_limit(first.params) if first.spec.source_limit else None
+
     def step(self, name: str) -> ResolvedStep:
         for s in self.steps:
             if s.name == name:

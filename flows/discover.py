@@ -143,6 +143,14 @@ def _read_and_hash(path: str, size: int, keep: _Keep | None) -> tuple[str, bytes
     return hashlib.sha256(data).hexdigest(), data
 
 
+def unread_id(rel: str, st: os.stat_result) -> str:
+    """The doc_id of a file larger than the chain reads (FlowDefinition.source_limit):
+    not the hash of bytes never read, but one fixed by its path, size and modification
+    time, so any change to the file makes a new one. The chain fails it as too large."""
+    return hashlib.sha256(f"thresher: not read, too large\x1f{rel}\x1f{st.st_size}\x1f{st.st_mtime_ns}"
+                          .encode("utf-8")).hexdigest()
+
+
 def stat_record(st: os.stat_result) -> dict[str, int]:
     """The catalog's stat record of a file (see STAT_FIELDS)."""
     # Device numbers can exceed int64 on some systems; the catalog stores int64.
@@ -162,8 +170,9 @@ NOT_UTF8 = ("the file name is not valid UTF-8 (the bytes that are not are shown 
 
 
 def _look(full: str, rel: str, known: dict | None, verify: bool,
-          keep: _Keep | None = None) -> SourceFile | ScanProblem | None:
-    """Stat one file; hash it unless the catalog's stat record for its path still matches."""
+          keep: _Keep | None = None, read_limit: int | None = None) -> SourceFile | ScanProblem | None:
+    """Stat one file; hash it unless the catalog's stat record for its path still matches,
+    or it is larger than `read_limit` (unread_id)."""
     from thresher.flows.access import read_facts  # access imports this module's globs
 
     if not _utf8(rel):
@@ -173,8 +182,14 @@ def _look(full: str, rel: str, known: dict | None, verify: bool,
         if not stat.S_ISREG(st.st_mode):  # what is_file() asks, without a second stat
             return None
         rec = stat_record(st)
-        if not verify and known is not None and known.get("doc_id") and all(known.get(k) == rec[k] for k in STAT_FIELDS):
+        too_large = read_limit is not None and st.st_size > read_limit
+        if not verify and known is not None and known.get("doc_id") and all(known.get(k) == rec[k] for k in STAT_FIELDS) \
+                and (too_large or known["doc_id"] != unread_id(rel, st)):  # left unread: read once the limit allows
             return SourceFile(rel, full, st.st_size, st.st_mtime, known["doc_id"], rec["mtime_ns"],
+                              rec["inode"], rec["device"], rec["ctime_ns"], hashed=False,
+                              facts=read_facts(full, st))
+        if too_large:  # a drive's disk images and videos: the chain would not read them either
+            return SourceFile(rel, full, st.st_size, st.st_mtime, unread_id(rel, st), rec["mtime_ns"],
                               rec["inode"], rec["device"], rec["ctime_ns"], hashed=False,
                               facts=read_facts(full, st))
         doc_id, data = _read_and_hash(full, st.st_size, keep)
@@ -192,7 +207,7 @@ def known_files(catalog_rows: list[dict]) -> dict[str, dict]:
 def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
          known: dict[str, dict] | None = None, verify: bool = False,
          threads: int = SCAN_THREADS, keep_bytes: int = KEEP_BYTES,
-         slow_call: float = SLOW_CALL) -> tuple[list[SourceFile], list[ScanProblem]]:
+         slow_call: float = SLOW_CALL, read_limit: int | None = None) -> tuple[list[SourceFile], list[ScanProblem]]:
     """Every regular file under root that include matches and exclude does not.
 
     `known` maps a source path to its catalog row from the last run: when size,
@@ -202,13 +217,15 @@ def scan(root: str | os.PathLike[str], include: list[str], exclude: list[str],
     read to hash keeps its bytes (SourceFile.data) within `keep_bytes` in all, for its
     extraction to use instead of reading the drive again.
     Symbolic links to folders are not followed (a drive can hold loops); a file that
-    cannot be read is reported as a problem, not an error.
+    cannot be read is reported as a problem, not an error. A file larger than
+    `read_limit` (the chain's FlowDefinition.source_limit) is not read at all: its
+    doc_id is unread_id's, and the chain fails it as too large.
     """
     known = known or {}
     keep = _Keep(keep_bytes)
     found: list[SourceFile] = []
     problems: list[ScanProblem] = []
-    for r in _each(lambda fr: _look(fr[0], fr[1], known.get(fr[1]), verify, keep),
+    for r in _each(lambda fr: _look(fr[0], fr[1], known.get(fr[1]), verify, keep, read_limit),
                    _candidates(root, include, exclude, problems), threads, slow_call):
         if isinstance(r, SourceFile):
             found.append(r)

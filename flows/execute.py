@@ -361,15 +361,13 @@ class BatchRunner:
         """What the document's first step reads: ("run", inputs, the stage they came from),
         ("failed", the unit that says why the file cannot be read, None) or ("none", ...)
         when nothing upstream is ok. Records nothing, so it may run ahead of its turn."""
-        steps = self.definition.steps
         if indices[0] != 0:
             if isinstance(stored, StoredInputs):
                 return "run", stored, None  # the worker reads them and says from which stage
             if stored is None or not stored.units:
                 return "none", None, None
             return "run", stored.units, stored.stage
-        spec, params = steps[0].spec, steps[0].params
-        limit = spec.source_limit(params) if spec.source_limit else None
+        limit = self.definition.source_limit
         in_hand = doc.data is not None  # the very bytes doc_id was hashed from
         try:
             if limit is not None and doc.size > limit:

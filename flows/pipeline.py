@@ -440,7 +440,8 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
             catalog = store.catalog().to_pylist()  # read once: the scan's stat records, then the plan
             known = known_files(catalog)
             files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
-                                   known=known, verify=verify or model.source.verify)
+                                   known=known, verify=verify or model.source.verify,
+                                   read_limit=definition.source_limit)
             plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog,
                              unread=[p.source_path for p in problems if not p.denied])
             if not accept_removals:

@@ -36,7 +36,8 @@ def preview(definition: FlowDefinition, source_root: str, store_root: str, force
     model = definition.model
     catalog = store.catalog().to_pylist()
     files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
-                           known=known_files(catalog), verify=verify or model.source.verify)
+                           known=known_files(catalog), verify=verify or model.source.verify,
+                           read_limit=definition.source_limit)
     plan = make_plan(definition, store, files, "dry-run", store.next_sequence(), force=force, catalog=catalog,
                      unread=[p.source_path for p in problems if not p.denied])
     refusal = None

@@ -273,3 +273,43 @@ def test_folder_litter_is_left_out_and_control_characters_in_names_are_shown_esc
     assert "    minutes/draft\\nold.md  document\n" in out
     assert cli.main(["trail", "minutes/draft\nold.md", "--store", str(tmp_path / "store")]) == 0
     assert capsys.readouterr().out.startswith("minutes/draft\\nold.md\n")
+
+
+def test_a_file_over_the_size_limit_is_never_read_and_is_read_once_the_limit_allows(prefect_harness, tmp_path):
+    import yaml
+
+    from thresher.flows.config import build_definition, default_config_text
+
+    def definition(max_file_mb: float):
+        data = yaml.safe_load(default_config_text())
+        data["steps"][0].setdefault("params", {})["max_file_mb"] = max_file_mb
+        return build_definition(data, "test")
+
+    drive = _drive(tmp_path / "drive")
+    # A disk image on a share: 7,209 bytes here, over a limit of 0.002 MB (2,000 bytes).
+    (drive / "backup.img").write_bytes(b"# Image\n\n" + b"Quillfern backup block. " * 300)
+    store = tmp_path / "store"
+    opened = _OPENED.setdefault(str(drive) + os.sep, Counter())
+    if _count_opens not in _HOOKED:
+        sys.addaudithook(_count_opens)
+        _HOOKED.append(_count_opens)
+
+    opened.clear()
+    first = pipeline.run(definition(0.002), str(drive), str(store), workers=1, quiet=True)
+    assert "backup.img" not in opened and opened == {"rota.md": 1, "vans.md": 1}
+    assert first["documents"]["hashed"] == 2
+    assert [(f["source_path"], f["reason"]) for f in first["failed_units"]] == [
+        ("backup.img", "file too large: 0.0072 MB over the limit of 0.002 MB")]
+    os.utime(drive / "backup.img")  # touched: a new stat record, still not read
+    opened.clear()
+    second = pipeline.run(definition(0.002), str(drive), str(store), workers=1, quiet=True)
+    assert opened == {} and second["documents"]["hashed"] == 0 and second["documents"]["processed"] == 1
+
+    # The limit raised: the file is read once (hashed, and extracted from those bytes) and
+    # is a document like any other. (The new limit is a new definition: the other files
+    # are extracted again, from their unchanged stat records, not hashed.)
+    opened.clear()
+    third = pipeline.run(definition(1), str(drive), str(store), workers=1, quiet=True)
+    assert opened["backup.img"] == 1 and third["documents"]["hashed"] == 1 and third["failed_units"] == []
+    row = next(r for r in Store(store).catalog().to_pylist() if r["source_path"] == "backup.img")
+    assert row["doc_id"] == file_doc_id(drive / "backup.img")
