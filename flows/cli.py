@@ -450,7 +450,8 @@ def cmd_status(args: argparse.Namespace) -> int:
         d = m.get("documents", {})
         print(f"  {r.run_id}  {m.get('kind', 'run'):<5} {m.get('finished_at', '')[:19]}  "
               f"{m.get('seconds', 0):6.1f} s  {d.get('processed', 0)} processed, {d.get('unchanged', 0)} unchanged, "
-              f"{m.get('chunks', 0)} chunks, {m.get('tokens', 0):,} tokens, {m.get('failures', 0)} failed units")
+              + "".join(f"{d[k]} {k}, " for k in ("removed", "held") if d.get(k))
+              + f"{m.get('chunks', 0)} chunks, {m.get('tokens', 0):,} tokens, {m.get('failures', 0)} failed units")
     print("current view by stage:")
     print("\n".join(format_stage_counts(counts)))
     print("judgements (see the README's 'Judgements' for how to overrule each):")

@@ -60,7 +60,7 @@ def _catalog(store: Path) -> dict[str, dict]:
     return {r["source_path"]: r for r in Store(store).catalog().to_pylist()}
 
 
-def test_a_file_that_cannot_be_read_keeps_its_chunks_until_it_is_read_or_gone(prefect_harness, tmp_path):
+def test_a_file_that_cannot_be_read_keeps_its_chunks_until_it_is_read_or_gone(prefect_harness, tmp_path, capsys):
     drive = tmp_path / "drive"
     drive.mkdir()
     (drive / "rota.md").write_text("# Rota\n\nThe Saturday rota changes from March at every branch of Quillfern.\n")
@@ -95,6 +95,8 @@ def test_a_file_that_cannot_be_read_keeps_its_chunks_until_it_is_read_or_gone(pr
     assert verify(Store(store)) == []  # a held document is a consistent state of the store
     summary = "\n".join(run_summary_lines(second))
     assert "1 held (unreadable this run, kept as stored)" in summary and "policy.md" in summary
+    assert cli.main(["status", "--store", str(store)]) == 0
+    assert "1 processed, 0 unchanged, 1 held, " in capsys.readouterr().out
     page = write_report(Store(store), tmp_path / "report.html").summary.read_text()
     assert "held (unreadable this run, kept as stored)" in page
     # Re-running the held document is refused with the reason, before any change.
