@@ -560,7 +560,7 @@ def cmd_trail(args: argparse.Namespace) -> int:
             if c.get("container_doc_id"):
                 holder = next((x["canonical_path"] for x in catalog if x["doc_id"] == c["container_doc_id"]
                                and x["present"]), c["container_doc_id"])
-                print(f"  inside {shown(holder)} (doc_id {c['container_doc_id'][:12]}) as {c['member_name']}")
+                print(f"  inside {shown(holder)} (doc_id {c['container_doc_id'][:12]}) as {shown(c['member_name'])}")
         inside = sorted(x["source_path"] for x in catalog if x.get("container_doc_id") == doc_id and x["present"])
         if inside:
             print(f"  holds {len(inside)} document(s): {', '.join(map(shown, inside[:10]))}"
