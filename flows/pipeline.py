@@ -31,13 +31,12 @@ from prefect.utilities.annotations import quote
 
 from thresher.flows.config import FlowDefinition, build_definition
 from thresher.flows.corpus import changed_groups, inputs_key, live_inputs, run_corpus_step, stored_result
-from thresher.flows.discover import known_files, scan
 from thresher.flows.execute import (BatchJob, BatchResult, BatchRunner, DocJob, local_workers, prewarm_run,
                                     stored_read_order, unit_kind)
 from thresher.flows.isolate import limit_workers, prewarm
 from thresher.flows.faults import fault as _fault  # fault points: see flows/faults.py
 from thresher.flows.handoff import build_handoff, handoff_basis
-from thresher.flows.plan import Plan, TooManyRemovals, add_members, check_removals, inside_count, make_plan
+from thresher.flows.plan import Plan, TooManyRemovals, add_members, check_removals, inside_count, scan_and_plan
 from thresher.flows.progress import for_run as progress_for_run
 from thresher.flows.rerun import RerunError, describe, make_rerun_plan, target_for_document, targets_for_failed
 from thresher.flows.store import Store, new_run_id
@@ -437,13 +436,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         files: list = []
         t0 = time.perf_counter()
         if rerun is None:
-            catalog = store.catalog().to_pylist()  # read once: the scan's stat records, then the plan
-            known = known_files(catalog)
-            files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
-                                   known=known, verify=verify or model.source.verify,
-                                   read_limit=definition.source_limit)
-            plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog,
-                             unread=[p.source_path for p in problems if not p.denied])
+            files, problems, plan = scan_and_plan(definition, store, source_root, run_id, sequence, force, verify)
             if not accept_removals:
                 check_removals(plan, model.source.removal_limit, source_root)
             held = f", {len(plan.held)} held (kept as stored: unreadable this run)" if plan.held else ""
@@ -509,8 +502,7 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
         tokens = handoff.tokens
         pages = next((c.total for c in current if c.stage == definition.steps[0].name), 0)
         # The documents this run changed (written at some stage, or removed).
-        per_doc = document_rows(plan.live, by_doc, doc_pages, handoff.per_doc,
-                                {d: (plan.previous_live or {}).get(d) for d in plan.deleted})
+        per_doc = document_rows(plan.live, by_doc, doc_pages, handoff.per_doc, plan.removed_paths)
         from prefect.runtime import flow_run as _flow_run
 
         manifest = {

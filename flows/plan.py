@@ -16,7 +16,7 @@ import pyarrow as pa
 from thresher.flows import schema
 from thresher.flows.access import catalog_columns, document_access, inherit_container_access
 from thresher.flows.config import FlowDefinition, SourceSection
-from thresher.flows.discover import SourceFile, matches
+from thresher.flows.discover import ScanProblem, SourceFile, known_files, matches, scan
 from thresher.flows.execute import DocJob, MemberInfo
 from thresher.flows.store import Store
 
@@ -61,6 +61,12 @@ class Plan:
     def unchanged(self) -> int:
         """Documents reused as stored because they are current (not held)."""
         return len(self.skipped) - len(self.held)
+
+    @property
+    def removed_paths(self) -> dict[str, str | None]:
+        """doc_id -> last live path of each document this run removes."""
+        previous = self.previous_live or {}
+        return {d: previous.get(d) for d in self.deleted}
 
 
 def _ts(epoch: float) -> datetime:
@@ -150,6 +156,21 @@ def held_paths(unread: Sequence[str]) -> Callable[[str], bool]:
     files = {p for p in unread if not p.endswith("/")}
     folders = tuple("" if p == "./" else p for p in unread if p.endswith("/"))
     return lambda path: path in files or path.startswith(folders)
+
+
+def scan_and_plan(definition: FlowDefinition, store: Store, source_root: str, run_id: str, sequence: int,
+                  force: bool = False, verify: bool = False
+                  ) -> tuple[list[SourceFile], list[ScanProblem], Plan]:
+    """A run's scan of the source folder and its plan (for a run, and for a dry run):
+    the catalog read once, for the scan's stat records and then the plan; the scan's
+    problems hold what was last read there, but where reading was refused."""
+    source = definition.model.source
+    catalog = store.catalog().to_pylist()
+    files, problems = scan(source_root, list(source.include), list(source.exclude), known=known_files(catalog),
+                           verify=verify or source.verify, read_limit=definition.source_limit)
+    plan = make_plan(definition, store, files, run_id, sequence, force=force, catalog=catalog,
+                     unread=[p.source_path for p in problems if not p.denied])
+    return files, problems, plan
 
 
 def make_plan(definition: FlowDefinition, store: Store, files: list[SourceFile], run_id: str,

@@ -11,8 +11,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from thresher.flows.config import FlowDefinition
-from thresher.flows.discover import ScanProblem, known_files, scan
-from thresher.flows.plan import TooManyRemovals, check_removals, make_plan
+from thresher.flows.discover import ScanProblem
+from thresher.flows.plan import TooManyRemovals, check_removals, scan_and_plan
 from thresher.flows.store import Store
 from thresher.steps.units import shown
 
@@ -33,16 +33,11 @@ class Preview:
 def preview(definition: FlowDefinition, source_root: str, store_root: str, force: bool = False,
             verify: bool = False) -> Preview:
     store = Store(store_root)
-    model = definition.model
-    catalog = store.catalog().to_pylist()
-    files, problems = scan(source_root, list(model.source.include), list(model.source.exclude),
-                           known=known_files(catalog), verify=verify or model.source.verify,
-                           read_limit=definition.source_limit)
-    plan = make_plan(definition, store, files, "dry-run", store.next_sequence(), force=force, catalog=catalog,
-                     unread=[p.source_path for p in problems if not p.denied])
+    files, problems, plan = scan_and_plan(definition, store, source_root, "dry-run", store.next_sequence(),
+                                          force, verify)
     refusal = None
     try:
-        check_removals(plan, model.source.removal_limit, source_root)
+        check_removals(plan, definition.model.source.removal_limit, source_root)
     except TooManyRemovals as exc:
         refusal = str(exc)
     steps = [s.name for s in definition.steps]
@@ -54,12 +49,11 @@ def preview(definition: FlowDefinition, source_root: str, store_root: str, force
             return "forced (--force)"
         return f"processed before with another definition: from step {steps[start]}"
 
-    previous = plan.previous_live or {}
     return Preview(
         files=len(files), hashed=sum(f.hashed for f in files), live=len(plan.live),
         unchanged=plan.unchanged,
         process=sorted((j.source_path, why(j.known, j.start)) for j in plan.jobs),
-        removed=sorted(previous.get(d) or d for d in plan.deleted),
+        removed=sorted(path or d for d, path in plan.removed_paths.items()),
         held=sorted(plan.live[d][1] for d in plan.held),
         problems=problems, refusal=refusal)
 

@@ -76,3 +76,16 @@ def harness_env(prefect_harness) -> dict:
     env["PREFECT_API_URL"] = PREFECT_API_URL.value()
     env["PYTHONPATH"] = os.pathsep.join([str(REPO / "tests"), env.get("PYTHONPATH", "")])
     return env
+
+
+def definition_with(**params):
+    """The embedded default definition with some steps' parameters set, by step name:
+    definition_with(split={"max_tokens": 300})."""
+    import yaml
+
+    from thresher.flows.config import build_definition, default_config_text
+
+    data = yaml.safe_load(default_config_text())
+    for step in data["steps"]:
+        step["params"] = {**(step.get("params") or {}), **params.get(step["step"], {})}
+    return build_definition(data, "test")

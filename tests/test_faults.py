@@ -248,7 +248,7 @@ def test_a_read_only_store_is_read_but_not_written(world, harness_env, small_fs)
 
 
 def test_source_files_that_vanish_or_change_after_the_scan(world, tmp_path, monkeypatch):
-    from thresher.flows import discover
+    from thresher.flows import discover, plan
 
     store_dir = world.copy(world.base, tmp_path / "store")
     drive = tmp_path / "drive"
@@ -265,7 +265,7 @@ def test_source_files_that_vanish_or_change_after_the_scan(world, tmp_path, monk
         f.write_text(f.read_text() + "\nA sentence added after the scan.\n")  # changed after the scan
         return found
 
-    monkeypatch.setattr(pipeline, "scan", scan_then_change)
+    monkeypatch.setattr(plan, "scan", scan_then_change)  # where a run's scan is called
     _run(drive, store_dir)
 
     def extract_rows() -> dict:
@@ -279,7 +279,7 @@ def test_source_files_that_vanish_or_change_after_the_scan(world, tmp_path, monk
     assert rows["notices/late-notice.md"]["reason"].startswith("cannot read file: No such file")
     assert rows[EDITED]["status"] == "failed" and "changed while the run read it" in rows[EDITED]["reason"]
     _assert_clean(store_dir)
-    monkeypatch.setattr(pipeline, "scan", real_scan)
+    monkeypatch.setattr(plan, "scan", real_scan)
     _run(drive, store_dir)  # the next run reads the new version
     rows = extract_rows()
     assert rows[EDITED]["status"] == "ok" and "added after the scan" in rows[EDITED]["text"]

@@ -8,11 +8,11 @@ import os
 from pathlib import Path
 
 import pytest
-import yaml
+
+from conftest import definition_with
 
 from thresher.flows import pipeline
 from thresher.flows.access import document_access
-from thresher.flows.config import build_definition, default_config_text
 from thresher.flows.handoff import build_handoff, handoff_basis
 from thresher.flows.plan import live_documents
 from thresher.flows.store import Store
@@ -33,11 +33,7 @@ SHARED = " ".join(f"Members may renew a loan twice online or at any desk, unless
 
 
 def _definition(max_tokens: int = 400):
-    data = yaml.safe_load(default_config_text())
-    for step in data["steps"]:
-        if step["step"] == "split":
-            step["params"]["max_tokens"] = max_tokens
-    return build_definition(data, "test")
+    return definition_with(split={"max_tokens": max_tokens})
 
 
 def _run(drive: Path, store: Path, definition, **kw) -> dict:

@@ -17,12 +17,11 @@ import zipfile
 from pathlib import Path
 
 import pytest
-import yaml
 
-from thresher.flows import pipeline
-from thresher.flows import cli
+from conftest import definition_with
+
+from thresher.flows import cli, pipeline
 from thresher.flows.cli import run_summary_lines
-from thresher.flows.config import build_definition, default_config_text
 from thresher.flows.discover import CANNOT_LIST
 from thresher.flows.plan import REMOVAL_FLOOR, TooManyRemovals, held_paths
 from thresher.flows.preview import preview
@@ -35,11 +34,7 @@ POLICY = ("# Lending policy\n\nMembers of Quillfern libraries may borrow twelve 
 
 
 def _definition(max_tokens: int = 400):
-    data = yaml.safe_load(default_config_text())
-    for step in data["steps"]:
-        if step["step"] == "split":
-            step["params"]["max_tokens"] = max_tokens
-    return build_definition(data, "test")
+    return definition_with(split={"max_tokens": max_tokens})
 
 
 def _run(drive: Path, store: Path, max_tokens: int = 400) -> dict:

@@ -276,14 +276,10 @@ def test_folder_litter_is_left_out_and_control_characters_in_names_are_shown_esc
 
 
 def test_a_file_over_the_size_limit_is_never_read_and_is_read_once_the_limit_allows(prefect_harness, tmp_path):
-    import yaml
-
-    from thresher.flows.config import build_definition, default_config_text
+    from conftest import definition_with
 
     def definition(max_file_mb: float):
-        data = yaml.safe_load(default_config_text())
-        data["steps"][0].setdefault("params", {})["max_file_mb"] = max_file_mb
-        return build_definition(data, "test")
+        return definition_with(extract={"max_file_mb": max_file_mb})
 
     drive = _drive(tmp_path / "drive")
     # A disk image on a share: 7,209 bytes here, over a limit of 0.002 MB (2,000 bytes).
