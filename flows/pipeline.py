@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
+from thresher.flows.runtime import keep_one_client
 
 from prefect import flow, get_run_logger, task
 from prefect.artifacts import create_markdown_artifact, create_table_artifact
@@ -199,7 +200,7 @@ def _task_runner(kind: str, workers: int, address: str | None = None):
     # warm worker (the batches' documents run there) starts preloading at once, beside
     # the pool process's own start of its first task, not when that task asks for it.
     if kind == "processes":
-        return ProcessPoolTaskRunner(max_workers=workers, initializer=prewarm, initargs=(1,))
+        return ProcessPoolTaskRunner(max_workers=workers, initializer=_pool_process_setup)
     if kind == "dask":
         from prefect_dask import DaskTaskRunner
 
@@ -217,6 +218,13 @@ def _task_runner(kind: str, workers: int, address: str | None = None):
     # One thread more than warm workers: the next batch starts (its task run, its first
     # document read) while the workers are busy, and waits for one (isolate.take_worker).
     return ThreadPoolTaskRunner(max_workers=local_workers(kind, workers) + 1)
+
+
+def _pool_process_setup() -> None:
+    """Run once in each process of a process pool, before its first task: its warm
+    worker starts preloading at once, and it keeps one Prefect client."""
+    prewarm(1)
+    keep_one_client()
 
 
 @contextmanager
