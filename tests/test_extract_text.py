@@ -114,6 +114,21 @@ def test_utf8_bom_and_utf16_with_and_without_bom():
     assert page.text == "Grüße aus der Bücherei" and page.payload["encoding"] == "utf-16-le"
 
 
+@pytest.mark.parametrize("encoding", ["utf-16-le", "utf-16-be", "utf-32-le", "utf-32-be"])
+def test_wide_text_without_bom_with_characters_whose_low_byte_is_nul(encoding):
+    # The GPL's text (Debian base-files, /usr/share/common-licenses/GPL-3) with
+    # characters whose low byte is 00 in UTF-16 (U+0100, U+2000, the ideographic
+    # space U+3000, U+4E00) and one past U+FFFF (U+10300, a surrogate pair in UTF-16)
+    # put in: a NUL on the "wrong" side of a byte pair made such a file binary.
+    licence = Path("/usr/share/common-licenses/GPL-3").read_text()[:6000]
+    text = licence.replace("freedom", "freedom \u0100\u2000\u3000\u4e00 \U00010300", 3)
+    page = one(text.encode(encoding), "licence.txt")
+    assert page.status == OK, page.reason
+    assert page.payload["encoding"] == encoding
+    assert "\u0100\u2000\u3000\u4e00 \U00010300" in page.text
+    assert page.text.lstrip().startswith("GNU GENERAL PUBLIC LICENSE")
+
+
 def test_decode_prefers_bom_over_declared_charset():
     decoded = decode(codecs.BOM_UTF8 + "café".encode(), declared="iso-8859-1")
     assert decoded.text == "café" and decoded.encoding == "utf-8"

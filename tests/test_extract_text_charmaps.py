@@ -1,7 +1,7 @@
 """Legacy single-byte text files decoded as the C library's charmaps say they should be.
 
 Outside reference: glibc's charmap files as Debian ships them (package locales,
-/usr/share/i18n/charmaps/CP1252.gz, KOI8-R.gz, ISO-8859-1.gz, CP1250.gz): each maps byte values
+/usr/share/i18n/charmaps/CP1252.gz, KOI8-R.gz, ISO-8859-1.gz, CP1250.gz, CP1254.gz): each maps byte values
 to Unicode code points ("<U20AC> /x80 EURO SIGN"). The expected text is built from
 those tables byte by byte, not from Python's codecs, so both the detection of the
 encoding and the decoding are checked. The sample sentences are our own.
@@ -60,13 +60,27 @@ SAMPLES = {
                "pond\u011bl\u00ed. Knihy m\u016f\u017eete vr\u00e1tit v kter\u00e9koli "
                "pobo\u010dce, d\u011bkujeme za trp\u011blivost a t\u011b\u0161\u00edme se na "
                "shledanou v nov\u00e9 \u010d\u00edt\u00e1rn\u011b.\n"),
+    # Turkish: the dotless i, s and g with cedilla and breve sit where CP1252 has
+    # Icelandic letters, so read as CP1252 it looks like Western European prose.
+    "CP1254": ("Okuma salonu pazartesiye kadar kapal\u0131. Kitaplar\u0131 herhangi bir "
+               "\u015fubeye iade edebilirsiniz; sabr\u0131n\u0131z i\u00e7in "
+               "te\u015fekk\u00fcr ederiz.\n\n\u00c7ay oca\u011f\u0131 her sabah dokuzda "
+               "a\u00e7\u0131l\u0131r; \u0130kinci kattaki toplant\u0131 odas\u0131 "
+               "a\u011fustos boyunca kapal\u0131 kalacak.\n"),
+    # Icelandic in CP1252: the same byte values as Turkish letters above, with the
+    # accented vowels Turkish does not write; it must stay CP1252.
+    "CP1252-is": ("Lesstofan er loku\u00f0 fram \u00e1 m\u00e1nudag. \u00de\u00fa getur "
+                  "skila\u00f0 b\u00f3kum \u00ed hva\u00f0a \u00fatib\u00fa sem er; "
+                  "\u00fe\u00f6kkum \u00feolinm\u00e6\u00f0ina og sj\u00e1umst \u00ed "
+                  "n\u00fdju lesstofunni.\n"),
 }
-CODECS = {"CP1252": "cp1252", "KOI8-R": "koi8-r", "ISO-8859-1": "latin-1", "CP1250": "cp1250"}
+CODECS = {"CP1252": "cp1252", "KOI8-R": "koi8-r", "ISO-8859-1": "latin-1", "CP1250": "cp1250", "CP1254": "cp1254",
+          "CP1252-is": "cp1252"}
 
 
 @pytest.mark.parametrize("name", sorted(SAMPLES))
 def test_legacy_text_decodes_as_the_charmap_says(name):
-    table = charmap(name)
+    table = charmap(name.split("-is")[0])
     data = SAMPLES[name].encode(CODECS[name])
     expected = "".join(table.get(b, chr(b)) if b >= 0x80 else chr(b) for b in data)
     source = Source(doc_id="d", source_path="notices/notice.txt", data=data, size=len(data), mtime=0.0)

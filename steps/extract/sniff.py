@@ -211,17 +211,43 @@ def _normalise_newlines(text: str) -> str:
     return text.replace("\r\n", "\n").replace("\r", "\n")
 
 
-def _utf16_without_bom(sample: bytes) -> str | None:
-    """UTF-16 text without a BOM: NULs in about half the bytes, all on one side."""
-    if len(sample) < 4:
+def _wide_without_bom(sample: bytes) -> str | None:
+    """UTF-32 or UTF-16 text without a BOM, or None.
+
+    Told by where its NULs fall: in UTF-32 the top byte of every four is NUL (the
+    next one too for all but the rare characters past U+FFFF); in UTF-16 the high byte
+    of every Latin, Greek or Cyrillic character is NUL, while the other side of a pair
+    is NUL only for the few characters whose low byte is 00 (U+0100, U+2000, U+3000,
+    U+4E00, surrogates such as U+DC00), so a small share there is allowed. The sample
+    must then decode without error to text with at most 5 % control characters (C0
+    other than layout and ESC, DEL, C1; our rule of thumb). A
+    16-bit or 32-bit binary table can share the NUL pattern but not both checks.
+    UTF-16 text with no characters below U+0100 (Chinese, say) has too few NULs to
+    tell without a BOM; it is read as binary.
+    """
+    if len(sample) < 8:
         return None
-    even = sample[0::2].count(0)
-    odd = sample[1::2].count(0)
+    quarters = [sample[i::4].count(0) for i in range(4)]
+    n4 = len(sample) // 4
+    even, odd = sample[0::2].count(0), sample[1::2].count(0)
     half = len(sample) // 2
-    if odd >= 0.3 * half and even == 0:
-        return "utf-16-le"
-    if even >= 0.3 * half and odd == 0:
-        return "utf-16-be"
+    candidates = []
+    if quarters[3] >= 0.98 * n4 and quarters[2] >= 0.5 * n4 and quarters[0] < 0.9 * n4:
+        candidates.append(("utf-32-le", 4))
+    if quarters[0] >= 0.98 * n4 and quarters[1] >= 0.5 * n4 and quarters[3] < 0.9 * n4:
+        candidates.append(("utf-32-be", 4))
+    if odd >= 0.3 * half and even <= 0.05 * odd:
+        candidates.append(("utf-16-le", 2))
+    if even >= 0.3 * half and odd <= 0.05 * even:
+        candidates.append(("utf-16-be", 2))
+    for name, width in candidates:
+        try:
+            text = codecs.getincrementaldecoder(name)().decode(sample[:len(sample) - len(sample) % width])
+        except UnicodeDecodeError:
+            continue
+        controls = sum(1 for c in text if (c < " " and c not in "\t\n\r\x0b\x0c\x1b") or "\x7f" <= c <= "\x9f")
+        if text and controls <= 0.05 * len(text):
+            return name
     return None
 
 
@@ -258,10 +284,11 @@ def _decode_replacing(data: bytes, encoding: str) -> tuple[str, int]:
 def decode(data: bytes, declared: str | None = None) -> Decoded:
     """Decode text bytes; raises NotText when no encoding fits.
 
-    Order: byte-order mark; UTF-16 without one (NULs on one side of every byte pair);
+    Order: byte-order mark; UTF-32 or UTF-16 without one (_wide_without_bom);
     a declared charset (HTML <meta>); strict UTF-8; UTF-8 with
     a few bad sequences (when valid multi-byte sequences outnumber the bad ones, the
-    file is UTF-8 with damage, not a legacy encoding: our rule of thumb); windows-1252
+    file is UTF-8 with damage, not a legacy encoding: our rule of thumb); windows-1254
+    when the text reads as Turkish in it (see _turkish_cp1254); windows-1252
     when the text reads as Western European prose in it (see _western_cp1252), unless
     charset-normalizer names a Central European code page and language; else
     charset-normalizer's best guess (legacy single-byte code pages such as KOI8-R).
@@ -276,7 +303,7 @@ def decode(data: bytes, declared: str | None = None) -> Decoded:
             warnings.append(f"{bad} invalid byte sequences replaced (declared {name} by BOM)")
         return Decoded(_normalise_newlines(text), name, warnings)
 
-    utf16 = _utf16_without_bom(data[:SAMPLE])
+    utf16 = _wide_without_bom(data[:SAMPLE])
     if utf16:
         text, bad = _decode_replacing(data, utf16)
         if bad:
@@ -307,6 +334,9 @@ def decode(data: bytes, declared: str | None = None) -> Decoded:
         warnings.append(f"{bad} invalid byte sequences replaced")
         return Decoded(_normalise_newlines(text), "utf-8", warnings)
 
+    turkish = _turkish_cp1254(data)
+    if turkish is not None:
+        return Decoded(_normalise_newlines(turkish), "cp1254", warnings)
     matches = list(charset_normalizer.from_bytes(data))
     western = _western_cp1252(data)
     if western is not None and not _central_european(matches):
@@ -359,6 +389,35 @@ def _western_cp1252(data: bytes) -> str | None:
     letters = sum(1 for c in text if c.isalpha())
     accented = sum(1 for c in non_ascii if c.isalpha())
     return text if accented <= 0.3 * max(1, letters) else None
+
+
+# Turkish letters windows-1254 puts where windows-1252 has Icelandic ones (0xD0, 0xDD,
+# 0xDE, 0xF0, 0xFD, 0xFE), and the other letters of Turkish outside ASCII.
+_TURKISH_ONLY = set("\u011e\u011f\u0130\u0131\u015e\u015f")
+_TURKISH = _TURKISH_ONLY | set("\u00e7\u00c7\u00f6\u00d6\u00fc\u00dc\u00e2\u00c2\u00ee\u00ce\u00fb\u00db")
+
+
+def _turkish_cp1254(data: bytes) -> str | None:
+    """The text as windows-1254, when it reads as Turkish there; else None.
+
+    Read as windows-1252, Turkish comes out with Icelandic letters ("yap\u00fdlan" for
+    "yap\u0131lan"), every one of them a letter, so it passed for Western European prose,
+    and charset-normalizer, given a short text, named other code pages (cp1257
+    "Croatian" for a Turkish notice of ours). Taken when at least one non-ASCII
+    character in windows-1254 is a letter only Turkish has there and every one is a
+    Turkish letter or a typographic mark: Icelandic, which writes \u00f0, \u00fe and
+    \u00fd at those bytes, also writes \u00e1, \u00e9, \u00ed, \u00f3, \u00fa and \u00e6,
+    which Turkish does not. Our rule of thumb, checked against glibc's CP1254 and
+    CP1252 charmaps (tests/test_extract_text_charmaps.py).
+    """
+    try:
+        text = data.decode("cp1254")
+    except UnicodeDecodeError:
+        return None  # bytes windows-1254 leaves undefined
+    non_ascii = [c for c in text if ord(c) > 127]
+    if any(c in _TURKISH_ONLY for c in non_ascii) and all(c in _TURKISH or c in _TYPOGRAPHIC for c in non_ascii):
+        return text
+    return None
 
 
 def _central_european(matches) -> bool:
@@ -540,7 +599,7 @@ def sniff(data: bytes, source_path: str) -> Sniffed:
     sample = data[:SAMPLE]
     declared = None
     stray, stray_warning = 0, ""
-    if not _bom(data) and not _utf16_without_bom(sample):
+    if not _bom(data) and not _wide_without_bom(sample):
         controls = _control_count(sample)
         few = STRAY_CONTROL_FEW if len(sample) >= STRAY_CONTROL_MIN_BYTES else 0
         if controls > max(few, STRAY_CONTROL_LIMIT * len(sample)):
