@@ -181,6 +181,24 @@ def test_title_heading_joins_its_first_subsection():
     assert chunks[1].heading_path == ["Members' handbook", "Leaving"]
 
 
+def test_a_heading_alone_joins_the_next_section_at_any_level():
+    # A site banner heading above the page's own (shallower) heading, and the first of
+    # two signatures of one function (same level): neither has text of its own, so
+    # neither is a chunk of one line. A heading alone at the very end stays a chunk.
+    pages = [page(1, H("Cooperative library", 2), H("Opening hours", 1), P("Weekdays nine to six."),
+                  H("lend(book)", 2), H("lend(book, days)", 2), P("Lends a book for some days."),
+                  H("See also", 2))]
+    chunks = split(pages, SplitParams(**NOMERGE), CTX)
+    assert [c.text for c in chunks] == [
+        "Cooperative library\n\nOpening hours\n\nWeekdays nine to six.",
+        "lend(book)\n\nlend(book, days)\n\nLends a book for some days.",
+        "See also",
+    ]
+    assert [c.heading_path for c in chunks] == [
+        ["Opening hours"], ["Opening hours", "lend(book, days)"], ["Opening hours", "See also"]]
+    check_invariants(pages, chunks, SplitParams(**NOMERGE))
+
+
 def test_long_section_splits_at_sentences_within_budget():
     params = SplitParams(max_tokens=60)
     pages = [page(1, H("Lending rules", 2), P(sentences(30)), P(sentences(5, "fines")))]
