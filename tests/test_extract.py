@@ -58,7 +58,7 @@ METHODS = {"pdf": "text-layer", "docx": "docx", "html": "html", "markdown": "mar
 
 
 def test_spec_names_the_step():
-    assert EXTRACT.name == "extract" and EXTRACT.version == "6"
+    assert EXTRACT.name == "extract" and EXTRACT.version == "7"
     assert (EXTRACT.consumes, EXTRACT.produces, EXTRACT.scope) == ("source", "pages", "document")
     assert EXTRACT.params is ExtractParams and EXTRACT.run is extract
     assert EXTRACT.summary

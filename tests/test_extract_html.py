@@ -178,3 +178,20 @@ def test_deep_nesting_is_read_or_fails_the_page_never_dropped_in_silence():
     assert page.status == "failed"
     assert page.reason == ("could not extract HTML: NestedTooDeep: elements nested too deep to read "
                            "(hundreds of levels, one inside another; pages people write nest a few dozen)")
+
+
+def test_heading_permalinks_are_not_text():
+    # Sphinx ends each heading with a permalink "¶" (Debian's policy manual, package
+    # debian-policy, as Sphinx wrote it); rustdoc puts "§" before its item headings.
+    # Links to a place in the page with words in them stay.
+    from pathlib import Path
+
+    sphinx = Path("/usr/share/doc/debian-policy/policy.html/ch-scope.html")
+    page = one(sphinx.read_bytes(), "ch-scope.html")
+    headings = [b.text for b in page.blocks if b.kind == HEADING]
+    assert headings[:2] == ["1. About this manual", "1.1. Scope"]
+    assert "\u00b6" not in page.text
+    page = one('<section id="impl-Clone"><a class="src" href="../src/lib.rs.html#4">Source</a>'
+               '<a href="#impl-Clone" class="anchor">\u00a7</a><h3>impl Clone for Shelf</h3></section>'
+               '<p>Copies a shelf; see <a href="#impl-Clone">the impl</a> and <a href="#top">#</a>.</p>')
+    assert page.text == "Source\n\nimpl Clone for Shelf\n\nCopies a shelf; see the impl and ."

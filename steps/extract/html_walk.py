@@ -3,8 +3,9 @@
 
 Dropped with everything inside: script, style, noscript, template, nav, aside, form
 and form controls, embedded objects, anything marked hidden (the `hidden` attribute,
-aria-hidden="true", an inline display:none), and the ARIA landmarks that mean the
-same as the dropped elements (navigation, banner, contentinfo, complementary, search).
+aria-hidden="true", an inline display:none), the ARIA landmarks that mean the
+same as the dropped elements (navigation, banner, contentinfo, complementary, search),
+and a heading's permalink (a link to "#..." whose text is only a sign such as "¶").
 `header` and `footer` are dropped when they belong to the page as a whole; inside an
 article, section or main they introduce or close that content (HTML standard, the
 header and footer elements) and are kept.
@@ -55,6 +56,11 @@ BLOCKISH = {
     "ul", "ol", "menu", "dir", "search",
 }
 _HIDDEN_STYLE = re.compile(r"display\s*:\s*none|visibility\s*:\s*hidden", re.IGNORECASE)
+# A link to a place in the same page whose text is only these signs is a heading's
+# permalink (Sphinx's "¶", rustdoc's "§", "#" or a link symbol elsewhere): without this
+# it ended every heading ("1. About this manual¶"). Signs from the generators' pages
+# on this machine; no standard names them.
+_PERMALINK_SIGNS = re.compile("[\\s\u00a7\u00b6#\U0001f517\u2693\u200b\ufe0e\ufe0f]+")
 
 
 # Elements whose own text a <pre>'s text leaves out, as beautifulsoup4's get_text does
@@ -138,6 +144,8 @@ def _dropped(tag) -> bool:
             return True
     if name in ("header", "footer"):
         return not any(p.tag in SECTIONING for p in tag.iterancestors())
+    if name == "a" and str(tag.get("href", "")).startswith("#"):
+        return _PERMALINK_SIGNS.sub("", "".join(tag.itertext())) == ""
     return False
 
 

@@ -305,7 +305,7 @@ def _time_limit(params: ExtractParams) -> float:
 
 EXTRACT = StepSpec(
     name="extract",
-    version="6",
+    version="7",
     consumes="source",
     produces="pages",
     scope="document",
