@@ -195,3 +195,23 @@ def test_heading_permalinks_are_not_text():
                '<a href="#impl-Clone" class="anchor">\u00a7</a><h3>impl Clone for Shelf</h3></section>'
                '<p>Copies a shelf; see <a href="#impl-Clone">the impl</a> and <a href="#top">#</a>.</p>')
     assert page.text == "Source\n\nimpl Clone for Shelf\n\nCopies a shelf; see the impl and ."
+
+
+def test_prev_next_bars_of_docbook_and_texinfo_pages_are_not_text():
+    # DocBook's bar (the Debian FAQ, package debian-faq: Prev / Next links with
+    # keyboard shortcuts in a table) and Texinfo's ("Next: ..., Previous: ..., Up: ...
+    # [Index]", libffi's manual, package libffi-dev: rel links in a paragraph) stood
+    # first (and last) on every page of such manuals.
+    from pathlib import Path
+
+    faq = one(Path("/usr/share/doc/debian/FAQ/basic-defs.en.html").read_bytes(), "basic-defs.en.html")
+    assert faq.blocks[0].kind == HEADING and faq.blocks[0].text == "Chapter 1. Definitions and overview"
+    assert not any(b.kind == TABLE and "Next" in b.text for b in faq.blocks)
+    ffi = one(Path("/usr/share/doc/libffi8/html/Introduction.html").read_bytes(), "Introduction.html")
+    assert ffi.blocks[0].text == "1 What is libffi?"
+    assert "Previous:" not in ffi.text
+    # A sentence that links to the next page, and a data table of links, stay.
+    page = one('<p>Read <a href="b.html" rel="next">the next part</a> after this one, it explains loans.</p>'
+               '<table><tr><th>Branch</th><th>Page</th></tr><tr><td>North</td><td><a href="n.html">n</a></td></tr>'
+               '<tr><td>South</td><td><a href="s.html">s</a></td></tr></table>')
+    assert page.text.startswith("Read the next part after this one") and "North | n" in page.text

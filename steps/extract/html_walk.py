@@ -5,7 +5,9 @@ Dropped with everything inside: script, style, noscript, template, nav, aside, f
 and form controls, embedded objects, anything marked hidden (the `hidden` attribute,
 aria-hidden="true", an inline display:none), the ARIA landmarks that mean the
 same as the dropped elements (navigation, banner, contentinfo, complementary, search),
-and a heading's permalink (a link to "#..." whose text is only a sign such as "¶").
+a heading's permalink (a link to "#..." whose text is only a sign such as "¶"),
+and a page-to-page navigation bar (`_navigation_bar`: DocBook's and Texinfo's
+Prev / Up / Next).
 `header` and `footer` are dropped when they belong to the page as a whole; inside an
 article, section or main they introduce or close that content (HTML standard, the
 header and footer elements) and are kept.
@@ -60,6 +62,13 @@ _HIDDEN_STYLE = re.compile(r"display\s*:\s*none|visibility\s*:\s*hidden", re.IGN
 # permalink (Sphinx's "¶", rustdoc's "§", "#" or a link symbol elsewhere): without this
 # it ended every heading ("1. About this manual¶"). Signs from the generators' pages
 # on this machine; no standard names them.
+# Link types of the HTML standard (and HTML 4's) that move between the pages of one
+# work, and the bound on a navigation bar's size: at most this many elements, and this
+# many characters of text per link (the linked pages' titles; ours, from DocBook's and
+# Texinfo's bars, 55-80 characters for 2-4 links).
+_NAV_RELS = frozenset({"next", "prev", "previous", "up", "index", "contents", "toc", "start", "first", "last"})
+NAV_BAR_ELEMENTS = 200
+NAV_BAR_CHARS_PER_LINK = 60
 _PERMALINK_SIGNS = re.compile("[\\s\u00a7\u00b6#\U0001f517\u2693\u200b\ufe0e\ufe0f]+")
 
 
@@ -146,7 +155,30 @@ def _dropped(tag) -> bool:
         return not any(p.tag in SECTIONING for p in tag.iterancestors())
     if name == "a" and str(tag.get("href", "")).startswith("#"):
         return _PERMALINK_SIGNS.sub("", "".join(tag.itertext())) == ""
+    if name in ("p", "table"):
+        return _navigation_bar(tag)
     return False
+
+
+def _navigation_bar(tag) -> bool:
+    """A paragraph or table whose every link is a page-to-page navigation link (one
+    with a keyboard shortcut, `accesskey`, or a `rel` of the HTML standard's
+    sequential and hierarchical link types: next, prev, up, index, ...), at least two
+    of them, and little text besides: the Prev / Up / Next bar DocBook and Texinfo put
+    above and below every page ("Next: Using libffi, Previous: libffi, Up: libffi
+    [Index]"). Only a small element is looked at (NAV_BAR_ELEMENTS), so a long table
+    costs nothing and nested tables cannot make the walk quadratic."""
+    links = 0
+    for k, el in enumerate(tag.iter()):
+        if k > NAV_BAR_ELEMENTS:
+            return False
+        if el.tag == "a" and el.get("href") is not None:
+            if el.get("accesskey") is None and not set(str(el.get("rel", "")).lower().split()) & _NAV_RELS:
+                return False
+            links += 1
+    if links < 2:
+        return False
+    return len(" ".join("".join(tag.itertext()).split())) <= NAV_BAR_CHARS_PER_LINK * links
 
 
 def inline_text(node) -> str:
