@@ -5,9 +5,7 @@ batch asks for it. Dask calls `dask_setup` once per worker, before it takes task
 from __future__ import annotations
 
 from thresher.flows.isolate import prewarm
-from thresher.flows.runtime import keep_one_client
 
 
 def dask_setup(worker) -> None:  # noqa: ARG001 - Dask's preload hook passes the worker
     prewarm(1)
-    keep_one_client()

@@ -35,13 +35,15 @@ PREFECT_DEFAULTS = {
     "PREFECT_CLI_PROMPT": "false",
 }
 
+
 def keep_one_client() -> None:
-    """In a process of a process pool or a Dask worker: one Prefect API client for
-    the process's life. Without it every task run Prefect starts there builds two
-    clients of its own, each loading the certificate bundle into a new TLS context
-    (about 22 ms each on this machine, even for an http:// API): with the settings it
-    rebuilds, about a tenth of a second of CPU per task run (py-spy of the scale
-    bench's process pool). Left open: the process ends with the pool."""
+    """In a process of a process pool: one Prefect API client for the process's life.
+    Without it every task run Prefect starts there builds two clients of its own, each
+    loading the certificate bundle into a new TLS context (about 22 ms each on this
+    machine, even for an http:// API): with the settings it rebuilds, about a tenth of
+    a second of CPU per task run (py-spy of the scale bench's process pool). Left open:
+    the process ends with the pool. Not in a Dask worker: its tasks run in a thread
+    that does not see a client made in the worker's start (tried: no CPU saved)."""
     from prefect.context import SyncClientContext
 
     SyncClientContext().__enter__()

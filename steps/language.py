@@ -361,7 +361,8 @@ def _by_script(text: str, ranked: list, seed: int):
     langdetect 1.0.9 reads Traditional Chinese as Korean (with Hangul absent) and
     Chinese mixed with Latin identifiers as Vietnamese or as an even split between
     Korean and Chinese: on Debian's Traditional Chinese message catalogues it named
-    Korean on 108 of 153 pages and Chinese on none (tests/test_language_cjk.py). So a
+    Korean on 108 of 153 pages and Chinese on none (a scratch count over every
+    catalogue here; tests/test_language_cjk.py checks the rule on them). So a
     text written mostly in CJK scripts (at least half as many of those characters as
     of other letters: an ideograph stands for a word) is judged again among the
     languages its scripts allow (Japanese with kana, Korean with Hangul, else
