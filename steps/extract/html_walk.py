@@ -69,6 +69,8 @@ _HIDDEN_STYLE = re.compile(r"display\s*:\s*none|visibility\s*:\s*hidden", re.IGN
 _NAV_RELS = frozenset({"next", "prev", "previous", "up", "index", "contents", "toc", "start", "first", "last"})
 NAV_BAR_ELEMENTS = 200
 NAV_BAR_CHARS_PER_LINK = 60
+# A permalink's text is a sign or two, with spaces around it.
+PERMALINK_CHARS = 16
 _PERMALINK_SIGNS = re.compile("[\\s\u00a7\u00b6#\U0001f517\u2693\u200b\ufe0e\ufe0f]+")
 
 
@@ -154,7 +156,7 @@ def _dropped(tag) -> bool:
     if name in ("header", "footer"):
         return not any(p.tag in SECTIONING for p in tag.iterancestors())
     if name == "a" and str(tag.get("href", "")).startswith("#"):
-        return _PERMALINK_SIGNS.sub("", "".join(tag.itertext())) == ""
+        return _permalink(tag)
     if name in ("p", "table"):
         return _navigation_bar(tag)
     return False
@@ -178,7 +180,31 @@ def _navigation_bar(tag) -> bool:
             links += 1
     if links < 2:
         return False
-    return len(" ".join("".join(tag.itertext()).split())) <= NAV_BAR_CHARS_PER_LINK * links
+    return _text_within(tag, NAV_BAR_CHARS_PER_LINK * links)
+
+
+def _permalink(tag) -> bool:
+    """A link whose text is only permalink signs (a few characters). Read piece by
+    piece and given up at the first other character or past PERMALINK_CHARS: an
+    unclosed link can hold the rest of the page, and reading all of it for each of
+    hundreds of nested links took seconds."""
+    n = 0
+    for piece in tag.itertext():
+        n += len(piece)
+        if n > PERMALINK_CHARS or _PERMALINK_SIGNS.sub("", piece):
+            return False
+    return True
+
+
+def _text_within(tag, limit: int) -> bool:
+    """Whether the element's text, runs of whitespace counted as one, holds at most
+    `limit` characters (read only until it is over)."""
+    n = 0
+    for piece in tag.itertext():
+        n += len(" ".join(piece[:limit + 2].split())) + 1  # a prefix: a long piece is over anyway
+        if n > limit + 1:
+            return False
+    return True
 
 
 def inline_text(node) -> str:
