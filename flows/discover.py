@@ -183,20 +183,19 @@ def _look(full: str, rel: str, known: dict | None, verify: bool,
             return None
         rec = stat_record(st)
         too_large = read_limit is not None and st.st_size > read_limit
-        if not verify and known is not None and known.get("doc_id") and all(known.get(k) == rec[k] for k in STAT_FIELDS) \
-                and (too_large or known["doc_id"] != unread_id(rel, st)):  # left unread: read once the limit allows
-            return SourceFile(rel, full, st.st_size, st.st_mtime, known["doc_id"], rec["mtime_ns"],
-                              rec["inode"], rec["device"], rec["ctime_ns"], hashed=False,
-                              facts=read_facts(full, st))
-        if too_large:  # a drive's disk images and videos: the chain would not read them either
-            return SourceFile(rel, full, st.st_size, st.st_mtime, unread_id(rel, st), rec["mtime_ns"],
-                              rec["inode"], rec["device"], rec["ctime_ns"], hashed=False,
-                              facts=read_facts(full, st))
-        doc_id, data = _read_and_hash(full, st.st_size, keep)
+        unchanged = not verify and known is not None and known.get("doc_id") \
+            and all(known.get(k) == rec[k] for k in STAT_FIELDS)
+        data, hashed = None, False
+        if unchanged and (too_large or known["doc_id"] != unread_id(rel, st)):  # left unread: read once allowed
+            doc_id = known["doc_id"]
+        elif too_large:  # a drive's disk images and videos: the chain would not read them either
+            doc_id = unread_id(rel, st)
+        else:
+            (doc_id, data), hashed = _read_and_hash(full, st.st_size, keep), True
     except OSError as exc:
         return ScanProblem(rel, f"cannot read file: {exc.strerror or exc}", _denied(exc))
-    return SourceFile(rel, full, st.st_size, st.st_mtime, doc_id, rec["mtime_ns"], rec["inode"],
-                      rec["device"], rec["ctime_ns"], facts=read_facts(full, st), data=data)
+    return SourceFile(rel, full, st.st_size, st.st_mtime, doc_id, rec["mtime_ns"], rec["inode"], rec["device"],
+                      rec["ctime_ns"], hashed=hashed, facts=read_facts(full, st), data=data)
 
 
 def known_files(catalog_rows: list[dict]) -> dict[str, dict]:

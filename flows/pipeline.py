@@ -19,8 +19,7 @@ from importlib import metadata
 from pathlib import Path
 from typing import Any, Callable
 
-from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
-from thresher.flows.runtime import keep_one_client
+from thresher.flows import runtime  # Prefect settings before Prefect loads
 
 from prefect import flow, get_run_logger, task
 from prefect.artifacts import create_markdown_artifact, create_table_artifact
@@ -220,11 +219,24 @@ def _task_runner(kind: str, workers: int, address: str | None = None):
     return ThreadPoolTaskRunner(max_workers=local_workers(kind, workers) + 1)
 
 
+# The client context each process of a process pool keeps open for its life (held
+# here: a context manager collected as garbage would close it).
+_pool_client: list = []
+
+
 def _pool_process_setup() -> None:
     """Run once in each process of a process pool, before its first task: its warm
-    worker starts preloading at once, and it keeps one Prefect client."""
+    worker starts preloading at once, and runtime.client_context's client is kept for
+    the process's life. Without it every task run Prefect starts there builds two
+    clients of its own, each loading the certificate bundle into a new TLS context
+    (about 22 ms each on this machine, even for an http:// API): with the settings it
+    rebuilds, about a tenth of a second of CPU per task run (py-spy of the scale
+    bench's process pool). Not in a Dask worker: its tasks run in a thread that does
+    not see a client made in the worker's start (tried: no CPU saved)."""
     prewarm(1)
-    keep_one_client()
+    held = runtime.client_context()
+    held.__enter__()
+    _pool_client.append(held)
 
 
 @contextmanager
@@ -567,9 +579,9 @@ def execute_run(definition: FlowDefinition, source_root: str, store_root: str, r
 
     try:
         if per_doc:  # a week that changed nothing has no rows to show
-            shown_rows = f"the first {ARTIFACT_ROWS:,} of " if len(per_doc) > ARTIFACT_ROWS else ""
+            first = f"the first {ARTIFACT_ROWS:,} of " if len(per_doc) > ARTIFACT_ROWS else ""
             create_table_artifact(key="thresher-documents", table=per_doc[:ARTIFACT_ROWS],
-                                  description=f"thresher {kind} {run_id}: {shown_rows}{len(per_doc):,} documents "
+                                  description=f"thresher {kind} {run_id}: {first}{len(per_doc):,} documents "
                                               "this run changed (written at some stage, or removed), failed first")
         lines = [f"# thresher {kind} {run_id}", "",
                  f"{manifest['chunks']} chunks, {tokens:,} tokens; {handoff.upserts} to upsert, "

@@ -35,20 +35,6 @@ PREFECT_DEFAULTS = {
     "PREFECT_CLI_PROMPT": "false",
 }
 
-
-def keep_one_client() -> None:
-    """In a process of a process pool: one Prefect API client for the process's life.
-    Without it every task run Prefect starts there builds two clients of its own, each
-    loading the certificate bundle into a new TLS context (about 22 ms each on this
-    machine, even for an http:// API): with the settings it rebuilds, about a tenth of
-    a second of CPU per task run (py-spy of the scale bench's process pool). Left open:
-    the process ends with the pool. Not in a Dask worker: its tasks run in a thread
-    that does not see a client made in the worker's start (tried: no CPU saved)."""
-    from prefect.context import SyncClientContext
-
-    SyncClientContext().__enter__()
-
-
 NO_LOCAL_PORT = ("needs a local port on 127.0.0.1 for thresher's embedded Prefect server (is the loopback "
                  "interface up?), or PREFECT_API_URL set to a Prefect server")
 

@@ -58,10 +58,6 @@ BLOCKISH = {
     "ul", "ol", "menu", "dir", "search",
 }
 _HIDDEN_STYLE = re.compile(r"display\s*:\s*none|visibility\s*:\s*hidden", re.IGNORECASE)
-# A link to a place in the same page whose text is only these signs is a heading's
-# permalink (Sphinx's "¶", rustdoc's "§", "#" or a link symbol elsewhere): without this
-# it ended every heading ("1. About this manual¶"). Signs from the generators' pages
-# on this machine; no standard names them.
 # Link types of the HTML standard (and HTML 4's) that move between the pages of one
 # work, and the bound on a navigation bar's size: at most this many elements, and this
 # many characters of text per link (the linked pages' titles; ours, from DocBook's and
@@ -69,7 +65,10 @@ _HIDDEN_STYLE = re.compile(r"display\s*:\s*none|visibility\s*:\s*hidden", re.IGN
 _NAV_RELS = frozenset({"next", "prev", "previous", "up", "index", "contents", "toc", "start", "first", "last"})
 NAV_BAR_ELEMENTS = 200
 NAV_BAR_CHARS_PER_LINK = 60
-# A permalink's text is a sign or two, with spaces around it.
+# A link to a place in the same page whose text is only these signs is a heading's
+# permalink (Sphinx's "¶", rustdoc's "§", "#" or a link symbol elsewhere): without this
+# it ended every heading ("1. About this manual¶"). Signs from the generators' pages
+# on this machine; no standard names them. Its text is a sign or two, with spaces.
 PERMALINK_CHARS = 16
 _PERMALINK_SIGNS = re.compile("[\\s\u00a7\u00b6#\U0001f517\u2693\u200b\ufe0e\ufe0f]+")
 

@@ -219,9 +219,8 @@ def _wide_without_bom(sample: bytes) -> str | None:
     of every Latin, Greek or Cyrillic character is NUL, while the other side of a pair
     is NUL only for the few characters whose low byte is 00 (U+0100, U+2000, U+3000,
     U+4E00, surrogates such as U+DC00), so a small share there is allowed. The sample
-    must then decode without error to text with at most 5 % control characters (C0
-    other than layout and ESC, DEL, C1; our rule of thumb). A
-    16-bit or 32-bit binary table can share the NUL pattern but not both checks.
+    must then decode without error. A 16-bit or 32-bit binary table can share the NUL
+    pattern and decode: sniff's check of the decoded text (unprintable_count) refuses it.
     UTF-16 text with no characters below U+0100 (Chinese, say) has too few NULs to
     tell without a BOM; it is read as binary.
     """
@@ -242,12 +241,10 @@ def _wide_without_bom(sample: bytes) -> str | None:
         candidates.append(("utf-16-be", 2))
     for name, width in candidates:
         try:
-            text = codecs.getincrementaldecoder(name)().decode(sample[:len(sample) - len(sample) % width])
+            codecs.getincrementaldecoder(name)().decode(sample[:len(sample) - len(sample) % width])
         except UnicodeDecodeError:
             continue
-        controls = sum(1 for c in text if (c < " " and c not in "\t\n\r\x0b\x0c\x1b") or "\x7f" <= c <= "\x9f")
-        if text and controls <= 0.05 * len(text):
-            return name
+        return name
     return None
 
 
