@@ -180,10 +180,20 @@ def stage_schema(stage: str, unit: str) -> pa.Schema:
     return pa.schema(COMMON + unit_cols + payload)
 
 
+# Columns a stored row has that its input unit does not take: ids, lineage and times
+# are made anew for the next stage's rows, and a page's text is its blocks' (Page.text).
+# Converting them to Python was most of reading a stage back (a chunk row's started_at
+# alone cost as much as all the columns a unit takes; pyarrow 26, scratch timing).
+_RECORD_ONLY = {"run_id", "source_path", "unit_id", "parent_ids", "step", "step_version", "config_digest",
+                "attempt", "started_at", "duration_ms", "document_ms"}
+
+
 def unit_columns(unit: str) -> list[str]:
-    """The columns a stored row of `unit` becomes a step's input unit from: the common
-    and unit columns, not the stage's payload (rows.row_to_page, rows.row_to_chunk)."""
-    return [f.name for f in COMMON + (PAGE_COLUMNS if unit == "pages" else CHUNK_COLUMNS)]
+    """The columns a stored row of `unit` becomes a step's input unit from
+    (rows.row_to_page, rows.row_to_chunk): doc_id, the unit's own columns and its outcome;
+    not the stage's payload, nor the record-keeping columns (_RECORD_ONLY)."""
+    skip = _RECORD_ONLY | ({"text"} if unit == "pages" else {"page"})
+    return [f.name for f in COMMON + (PAGE_COLUMNS if unit == "pages" else CHUNK_COLUMNS) if f.name not in skip]
 
 
 @lru_cache(maxsize=None)

@@ -51,3 +51,40 @@ def test_input_units_carry_no_payload_of_the_stage_before_on_either_path(tmp_pat
         row = stored[u.chunk_id]
         assert (u.text, u.heading_path, u.token_count, u.language) == \
             (row["text"], row["heading_path"], row["token_count"], row["language"])
+
+
+def test_a_stored_unit_read_back_as_an_input_keeps_every_field_a_step_sees(tmp_path):
+    """Reading a stage back takes only the columns an input unit is made from
+    (schema.unit_columns): every field a step receives must still come back, for pages
+    and chunks, with nulls and empty values as stored."""
+    from dataclasses import fields, replace
+    from datetime import datetime, timezone
+
+    from thresher.flows.inputs import Stage, read_units
+    from thresher.flows.rows import RowContext, rows_to_table, to_row
+    from thresher.flows.store import Store
+    from thresher.steps.units import Block, Chunk, Page
+
+    store = Store(tmp_path / "store")
+    page = Page(locator="page/2", page=2, title="Annual plan", format="pdf", language="de", language_prob=0.97,
+                blocks=[Block("heading", "Plan", 1, "de", 0.9), Block("paragraph", "Text hier.", 0, None, None)],
+                warnings=["a running header was removed"], parents=["page/2"], payload={"chars_removed": 3})
+    bare = Page(locator="file", blocks=[Block("paragraph", "x")])
+    chunk = Chunk(locator="chunk/0003", index=3, text="| a | b |\n| 1 | 2 |", heading_path=["Plan", "Costs"],
+                  page_start=2, page_end=3, char_start=40, char_end=52, prefix_chars=10, title="Annual plan",
+                  format="pdf", language="de", language_prob=0.88, token_count=17, encoding="cl100k_base",
+                  chunk_id="c" * 32, warnings=["cut inside a table"], parents=["page/2"])
+    started = datetime(2026, 12, 5, 6, 0, tzinfo=timezone.utc)
+    for stage, kind, units in (("clean", "pages", [page, bare]), ("split", "chunks", [chunk])):
+        ctx = RowContext("r1", "d1", "plan.pdf", stage, "1", "digest", kind, "before", started, 2.5, {})
+        table = rows_to_table(stage, kind, [to_row(ctx, u) for u in units])
+        store.write_stage_part(stage, "r1", "b0", table, [("d1", "document")])
+        got = read_units(store, [Stage(stage, kind, False)], ["d1"], "r1")["d1"]
+        assert got.stage == stage
+        # An input unit has no lineage, payload or time of the stage it came from.
+        expected = [replace(u, parents=[], payload={}, duration_ms=None) for u in units]
+        by_locator = {u.locator: u for u in got.units}
+        for want in expected:
+            have = by_locator[want.locator]
+            for f in fields(want):
+                assert getattr(have, f.name) == getattr(want, f.name), (stage, want.locator, f.name)
