@@ -199,3 +199,42 @@ def test_a_rebuild_sorted_into_groups_through_scratch_files_writes_what_one_grou
             held = regrouped.read(stage, k).sort_by("chunk_id")
             assert held.num_rows > 0
             assert held == store.current(stage, "chunks", group, columns=columns).sort_by("chunk_id")
+
+
+@pytest.mark.timeout(300)
+@pytest.mark.parametrize("harm", ["altered", "pages zeroed"])
+def test_a_week_with_an_edit_rebuilds_a_published_handoff_that_is_not_the_recorded_file(
+        prefect_harness, tmp_path, harm):
+    """The published file is checked against its run's record (size and SHA-256) while
+    the copy runs beside it: a file altered by hand, or cut short so that the copy cannot
+    even read it, is never the base of the new hand-off; the run rebuilds it from the
+    stages and goes on."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    drive, store_dir = tmp_path / "drive", tmp_path / "store"
+    (drive / "notes").mkdir(parents=True)
+    for i, topic in enumerate(TOPICS):
+        (drive / "notes" / f"{i:02d}.md").write_text(_note(topic, i))
+    definition = _definition()
+    _run(drive, store_dir, definition)
+    chunks = store_dir / "handoff" / "chunks.parquet"
+    if harm == "altered":
+        table = pq.read_table(chunks)
+        texts = table.column("text").to_pylist()
+        texts[-1] = "altered by hand"
+        pq.write_table(table.set_column(table.schema.get_field_index("text"), "text", pa.array(texts, pa.string()),),
+                       chunks)
+    else:
+        # The footer kept (the basis is read from it), the column chunks before it gone:
+        # the copy fails reading the file, and the run does not.
+        data = chunks.read_bytes()
+        footer = int.from_bytes(data[-8:-4], "little") + 8
+        chunks.write_bytes(data[:4] + b"\0" * (len(data) - footer - 4) + data[-footer:])
+    (drive / "notes" / "03.md").write_text(_note("van route", 3).replace("branch 3", "the north branch"))
+    edited = _run(drive, store_dir, definition)
+    assert edited["documents"]["processed"] == 1 and edited["handoff"] == "rebuilt", edited["handoff"]
+    texts = _texts(store_dir)
+    assert "altered by hand" not in [t for ts in texts.values() for t in ts]
+    assert "the north branch" in texts["notes/03.md"][0]
+    _same_as_rebuild(store_dir, definition, edited)
