@@ -291,54 +291,22 @@ def previous_digests(store: Store) -> pa.Table:
     return _digest_table(store.read_table(previous))
 
 
-def _published_basis(store: Store) -> tuple[str | None, str | None]:
+def _previous_basis(store: Store) -> tuple[str | None, str | None]:
     """(published hand-off's store path, the basis recorded in its metadata), or Nones
-    when there is none or its footer cannot be read (then it is rebuilt). Whether it is
-    the file its run recorded is _PublishedCheck's to say."""
+    when it is not the file its run recorded (size and SHA-256): a damaged or altered
+    hand-off is rebuilt from the stages, never copied forward."""
     rel = store.published("handoff/chunks.parquet")
     if rel is None:
         return None, None
-    try:
-        with store.fs.open_input_file(store.path(rel)) as f:
-            meta = pq.read_schema(f).metadata or {}
-    except (OSError, pa.ArrowException):
-        return None, None
+    for name in ("handoff/chunks.parquet", "handoff/digests.parquet"):
+        here = store.published(name)
+        recorded = store.published_record(name)
+        if here is None or recorded is None or recorded != store.file_record(here):
+            return None, None
+    with store.fs.open_input_file(store.path(rel)) as f:
+        meta = pq.read_schema(f).metadata or {}
     basis = meta.get(BASIS_KEY)
     return rel, basis.decode() if basis else None
-
-
-class _PublishedCheck:
-    """Whether the published hand-off and its digests are the files their run recorded
-    (size and SHA-256): a damaged or altered hand-off is rebuilt from the stages, never
-    copied forward nor kept. Hashed in a thread while the run decides what to read and
-    copies (hashlib and Parquet both leave the interpreter lock): the hash was a read of
-    the whole file before the copy's own read of it (py-spy of a week with 1 % of a
-    documentation drive changed: 14 % of the hand-off's time). What the copy made is
-    used only after `passed` says yes."""
-
-    def __init__(self, store: Store):
-        import threading
-
-        self._result: list[bool] = []
-        self._thread = threading.Thread(target=self._check, args=(store,), name="handoff-check", daemon=True)
-        self._thread.start()
-
-    def _check(self, store: Store) -> None:
-        ok = False
-        try:
-            ok = all(
-                (here := store.published(name)) is not None
-                and (recorded := store.published_record(name)) is not None
-                and recorded == store.file_record(here)
-                for name in ("handoff/chunks.parquet", "handoff/digests.parquet"))
-        except OSError:
-            ok = False
-        finally:
-            self._result.append(ok)
-
-    def passed(self) -> bool:
-        self._thread.join()
-        return self._result[0]
 
 
 class _Output:
@@ -618,14 +586,13 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
     withheld = {live[d][1]: f"access allows nobody ({access[d][2]})" for d in live if not access[d][0]}
     order = sorted((d for d in live if access[d][0]), key=lambda d: live[d][1])
     old = previous_digests(store)
-    previous_rel, previous_basis = _published_basis(store) if basis else (None, None)
+    previous_rel, previous_basis = _previous_basis(store) if basis else (None, None)
     reading = None
     if previous_rel is not None and previous_basis == basis:
-        check = _PublishedCheck(store)
         reading = _to_read(definition, store, run_id, live, order, old, copies, previous_live)
         if reading is not None and len(reading[0]) * 2 > len(order):
             reading = None  # reading most of it anyway: a rebuild has no copy to make
-    if reading is not None and not reading[0] and _unchanged(old, order, access) and check.passed():
+    if reading is not None and not reading[0] and _unchanged(old, order, access):
         # Every row a copy would write is the published one's, in the same place: the
         # published hand-off and digests stand (no rewrite of the drive's chunks in a
         # quiet week); only the counts are read, and the change set is empty.
@@ -634,25 +601,14 @@ def build_handoff(definition: FlowDefinition, store: Store, run_id: str, live: d
         return HandoffResult(sum(counts.values()), sum(tokens.values()), 0, 0,
                              {d: (counts[d], tokens[d]) for d in counts}, withheld, KEPT)
     sch = schema.HANDOFF.with_metadata({BASIS_KEY: basis.encode()}) if basis else schema.HANDOFF
-
-    def write(fill: Callable[[_Output], pa.Table]) -> tuple[pa.Table, _Output]:
-        with store.parquet_writer(chunks_rel, sch, run_id=run_id) as writer:
-            out = _Output(writer)
-            made = fill(out)
-            out.close()
-        return made, out
-
-    if reading is not None:
-        try:
-            new, out = write(partial(_copy_forward, definition, store, run_id, previous_rel, old, live, access,
-                                     order, copies=copies, fresh=reading[0]))
-        except (OSError, pa.ArrowException):
-            if check.passed():
-                raise
-        if not check.passed():
-            reading = None  # the file copied was not the one published: its copy is written over
-    if reading is None:
-        new, out = write(partial(_rebuild, definition, store, run_id, live, access, order, copies=copies))
+    with store.parquet_writer(chunks_rel, sch, run_id=run_id) as writer:
+        out = _Output(writer)
+        if reading is not None:
+            new = _copy_forward(definition, store, run_id, previous_rel, old, live, access, order, out, copies,
+                                reading[0])
+        else:
+            new = _rebuild(definition, store, run_id, live, access, order, out, copies)
+        out.close()
     counts, tokens = out.counts, out.tokens
     if reading is None:
         mode = "rebuilt"

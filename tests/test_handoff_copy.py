@@ -205,10 +205,10 @@ def test_a_rebuild_sorted_into_groups_through_scratch_files_writes_what_one_grou
 @pytest.mark.parametrize("harm", ["altered", "pages zeroed"])
 def test_a_week_with_an_edit_rebuilds_a_published_handoff_that_is_not_the_recorded_file(
         prefect_harness, tmp_path, harm):
-    """The published file is checked against its run's record (size and SHA-256) while
-    the copy runs beside it: a file altered by hand, or cut short so that the copy cannot
-    even read it, is never the base of the new hand-off; the run rebuilds it from the
-    stages and goes on."""
+    """The published file is checked against its run's record (size and SHA-256) before
+    it is copied: a file altered by hand, or one whose pages are gone so that a copy
+    could not even read it, is never the base of the new hand-off; the run rebuilds it
+    from the stages and goes on."""
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -226,8 +226,7 @@ def test_a_week_with_an_edit_rebuilds_a_published_handoff_that_is_not_the_record
         pq.write_table(table.set_column(table.schema.get_field_index("text"), "text", pa.array(texts, pa.string()),),
                        chunks)
     else:
-        # The footer kept (the basis is read from it), the column chunks before it gone:
-        # the copy fails reading the file, and the run does not.
+        # The footer kept (it still names the basis), the column chunks before it gone.
         data = chunks.read_bytes()
         footer = int.from_bytes(data[-8:-4], "little") + 8
         chunks.write_bytes(data[:4] + b"\0" * (len(data) - footer - 4) + data[-footer:])
