@@ -182,8 +182,9 @@ def stage_schema(stage: str, unit: str) -> pa.Schema:
 
 # Columns a stored row has that its input unit does not take: ids, lineage and times
 # are made anew for the next stage's rows, and a page's text is its blocks' (Page.text).
-# Converting them to Python was most of reading a stage back (a chunk row's started_at
-# alone cost as much as all the columns a unit takes; pyarrow 26, scratch timing).
+# Converting them to Python was two thirds of turning a stage's rows into Python (a
+# chunk row's started_at alone cost as much as all the columns a unit takes; pyarrow
+# 26, scratch timing), a quarter of a worker's read of its batch's inputs.
 _RECORD_ONLY = {"run_id", "source_path", "unit_id", "parent_ids", "step", "step_version", "config_digest",
                 "attempt", "started_at", "duration_ms", "document_ms"}
 
