@@ -7,6 +7,10 @@ one Prefect server, as a weekly schedule does them: the first (everything), one 
 nothing changed, and one with 1 % of the files edited (a paragraph appended to text,
 Markdown, HTML and copyright files). Prints each run's wall time, the phases of the
 flow (the manifest's `timings`), and the two weekly runs as shares of the first.
+Then two more weeks (nothing changed; 1 % of the files edited again) each in a fresh
+process, as a weekly schedule runs them, for their peak memory beside the first run's:
+the run's own process (getrusage here, VmHWM in the fresh ones) and its process tree, workers included (psutil,
+every 0.1 s; the Prefect server, a child of this process, left out).
 
 What the drive holds depends on the packages installed (`make test` and `make bench`
 install the ones the tests and benchmarks read), so compare runs on one machine only.
@@ -66,7 +70,7 @@ def edit(drive: Path, share: float, seed: int = 7) -> list[Path]:
 
 
 def main() -> None:
-    from bench.warm import start_prefect
+    from bench.memory import TreePeak, measure, prefect_server
 
     from thresher.flows import pipeline
     from thresher.flows.config import load_definition
@@ -76,29 +80,42 @@ def main() -> None:
         return
 
     print(f"load average at start {os.getloadavg()[0]:.1f}, {os.cpu_count()} cores", flush=True)
-    with tempfile.TemporaryDirectory() as td:
+    with prefect_server() as server, tempfile.TemporaryDirectory() as td:
         drive, store = Path(td) / "drive", Path(td) / "store"
         files = build(drive)
-        start_prefect()
         definition = load_definition()
+        skip = frozenset({server.server_process.pid})
         walls: dict[str, float] = {}
+        first_peaks = (0, 0)
         for week in ("first", "same", "edited"):
             label = {"first": "first run", "same": "nothing changed"}.get(week) \
                 or f"{len(edit(drive, SHARE))} files changed ({SHARE:.0%})"
             t = time.perf_counter()
-            m = pipeline.run(definition, str(drive), str(store), quiet=True)
+            with TreePeak(os.getpid(), skip) as tree:
+                m = pipeline.run(definition, str(drive), str(store), quiet=True)
             walls[label] = time.perf_counter() - t
+            if week == "first":
+                first_peaks = (resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024, tree.peak)  # KiB
             docs = m.get("documents") or {}
             phases = ", ".join(f"{k} {v:.1f}" for k, v in (m.get("timings") or {}).items())
             print(f"{label}: {walls[label]:.2f} s wall; {docs.get('processed', 0)} of {docs.get('distinct', 0)} "
                   f"documents processed, {docs.get('hashed', 0)} files read to hash; {m.get('pages')} pages, "
                   f"{m.get('chunks')} chunks; phases (s): {phases}", flush=True)
+        # A weekly schedule starts a fresh process each week: its memory is the week's own.
+        fresh = {"nothing changed": measure(drive, store, dict(os.environ))}
+        label = f"{len(edit(drive, SHARE, seed=8))} files changed"
+        fresh[label] = measure(drive, store, dict(os.environ))
     full = walls.pop("first run")
-    print(f"\n{files} files from {DOCS}; load average at end {os.getloadavg()[0]:.1f}; "
-          f"peak memory of this process over the three runs "
-          f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
+    print(f"\n{files} files from {DOCS}; load average at end {os.getloadavg()[0]:.1f}")
     for label, wall in walls.items():
         print(f"{label}: {wall / full:.1%} of the first run ({wall:.2f} s against {full:.2f} s)")
+    mb = 2 ** 20
+    print(f"\npeak memory (MB; process tree: the run's process and its workers, not the Prefect server)\n"
+          f"first run, in this process: process {first_peaks[0] / mb:.0f}, tree {first_peaks[1] / mb:.0f}")
+    for label, r in fresh.items():
+        print(f"{label}, a fresh process ({r['processed']} documents processed, run {r['seconds']:.2f} s): "
+              f"process {r['self'] / mb:.0f} ({r['self'] / first_peaks[0]:.0%} of the first run's), "
+              f"tree {r['tree'] / mb:.0f} ({r['tree'] / max(first_peaks[1], 1):.0%})")
 
 
 if __name__ == "__main__":

@@ -4,7 +4,7 @@ the demo drive, 3 % multi-page PDFs, the rest Markdown and HTML notes; bench/dri
 Each run is the default definition in a fresh child process, against one Prefect
 server started here first (the server is Prefect's, shared by every run of a team,
 and not part of a run's memory). Two figures per run: the peak resident set of the
-run's own process, exact (getrusage RUSAGE_SELF: it holds the plan, the catalog,
+run's own process, exact (VmHWM in /proc/self/status: it holds the plan, the catalog,
 the corpus steps and the hand-off build), and the peak of its whole process tree
 (that process plus the extraction children it forks), polled every 0.1 s with psutil.
 Issue 14's target: the larger drive's peaks within 1.5 x the smaller's.
@@ -19,6 +19,7 @@ import sys
 import tempfile
 import threading
 import time
+from contextlib import contextmanager
 from pathlib import Path
 
 from bench.drive import make_drive
@@ -29,40 +30,61 @@ FACTOR = 10
 LIMIT = 1.5
 
 CHILD = r"""
-import json, resource, sys
+import json, sys
+from pathlib import Path
 from thresher.flows import pipeline
 from thresher.flows.config import load_definition
 m = pipeline.run(load_definition(), sys.argv[1], sys.argv[2], quiet=True)
-kb = 1024  # ru_maxrss is in KiB on Linux
-print(json.dumps({"self": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * kb,
-                  "files": m["documents"]["files"], "pages": m["pages"], "chunks": m["chunks"],
+# VmHWM, not getrusage's ru_maxrss: Linux carries a forked child's resident size (its
+# parent's, until exec) into ru_maxrss, so a large parent would show as this run's peak.
+hwm = next(line for line in Path("/proc/self/status").read_text().splitlines() if line.startswith("VmHWM:"))
+print(json.dumps({"self": int(hwm.split()[1]) * 1024,
+                  "files": m["documents"]["files"],
+                  "processed": m["documents"].get("processed", 0), "pages": m["pages"], "chunks": m["chunks"],
                   "seconds": m["seconds"]}))
 """
 
 
-def measure(drive: Path, store: Path, env: dict) -> dict:
-    proc = subprocess.Popen([sys.executable, "-c", CHILD, str(drive), str(store)], env=env,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    done = threading.Event()
-    peak = 0
+class TreePeak:
+    """The peak resident memory of process `pid` and its children (not those in `skip`
+    and theirs), polled every 0.1 s with psutil while the block runs (shared pages count
+    in each process)."""
 
-    def poll() -> None:
-        nonlocal peak
-        while not done.is_set():
-            peak = max(peak, _tree_rss(proc.pid))
+    def __init__(self, pid: int, skip: frozenset[int] = frozenset()) -> None:
+        self.pid, self.skip, self.peak = pid, skip, 0
+        self._done = threading.Event()
+        self._thread = threading.Thread(target=self._poll, daemon=True)
+
+    def _poll(self) -> None:
+        while not self._done.is_set():
+            self.peak = max(self.peak, _tree_rss(self.pid, skip=self.skip))
             time.sleep(0.1)
 
-    watcher = threading.Thread(target=poll, daemon=True)
-    watcher.start()
-    out, err = proc.communicate()
-    done.set()
-    watcher.join()
+    def __enter__(self) -> "TreePeak":
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._done.set()
+        self._thread.join()
+
+
+def measure(drive: Path, store: Path, env: dict) -> dict:
+    """One run of the default definition in a fresh child process: its manifest's
+    figures, its own peak (`self`) and its process tree's (`tree`), in bytes."""
+    proc = subprocess.Popen([sys.executable, "-c", CHILD, str(drive), str(store)], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    with TreePeak(proc.pid) as tree:
+        out, err = proc.communicate()
     if proc.returncode != 0:
         raise RuntimeError(f"run on {drive} failed: {err[-3000:]}")
-    return {**json.loads(out.strip().splitlines()[-1]), "tree": peak}
+    return {**json.loads(out.strip().splitlines()[-1]), "tree": tree.peak}
 
 
-def main() -> None:
+@contextmanager
+def prefect_server():
+    """A Prefect server (prefect's SubprocessASGIServer, its process a child of this one)
+    for this process and its children: PREFECT_API_URL is set while the block runs."""
     from thresher.flows import runtime  # noqa: F401
     from prefect.server.api.server import SubprocessASGIServer
 
@@ -70,15 +92,24 @@ def main() -> None:
 
     server = SubprocessASGIServer(port=_free_port())
     server.start(timeout=120)
-    env = {**os.environ, "PREFECT_API_URL": server.api_url}
-    results = {}
+    before = os.environ.get("PREFECT_API_URL")
+    os.environ["PREFECT_API_URL"] = server.api_url
     try:
-        with tempfile.TemporaryDirectory() as tmp:
-            for n in (DOCUMENTS, DOCUMENTS * FACTOR):
-                drive = make_drive(Path(tmp) / f"drive-{n}", n)
-                results[n] = measure(drive, Path(tmp) / f"store-{n}", env)
+        yield server
     finally:
         server.stop()
+        if before is None:
+            os.environ.pop("PREFECT_API_URL", None)
+        else:
+            os.environ["PREFECT_API_URL"] = before
+
+
+def main() -> None:
+    results = {}
+    with prefect_server(), tempfile.TemporaryDirectory() as tmp:
+        for n in (DOCUMENTS, DOCUMENTS * FACTOR):
+            drive = make_drive(Path(tmp) / f"drive-{n}", n)
+            results[n] = measure(drive, Path(tmp) / f"store-{n}", dict(os.environ))
     small, large = results[DOCUMENTS], results[DOCUMENTS * FACTOR]
     print(f"{'drive':<18} {'files':>6} {'pages':>6} {'chunks':>7} {'run s':>6} {'process MB':>10} {'tree MB':>8}")
     for n, r in results.items():

@@ -34,22 +34,27 @@ LARGE_PDFS = int(os.environ.get("THRESHER_BENCH_SCALE_LARGE", "6"))
 BATCH_SIZE = os.environ.get("THRESHER_BENCH_SCALE_BATCH")
 
 
-def _tree_rss(pid: int, cpu: dict[int, float]) -> int:
-    """The process tree's resident memory now; `cpu` keeps each process's last seen CPU
-    seconds (a process gone between two polls loses at most one poll's worth)."""
+def _tree_rss(pid: int, cpu: dict[int, float] | None = None, skip: frozenset[int] = frozenset()) -> int:
+    """The process tree's resident memory now, without the processes in `skip` and
+    theirs; `cpu`, if given, keeps each process's last seen CPU seconds (a process gone
+    between two polls loses at most one poll's worth)."""
     import psutil
 
     try:
         proc = psutil.Process(pid)
         procs = [proc] + proc.children(recursive=True)
+        for other in skip:
+            gone = {p.pid for p in psutil.Process(other).children(recursive=True)} | {other}
+            procs = [p for p in procs if p.pid not in gone]
     except psutil.NoSuchProcess:
         return 0
     total = 0
     for p in procs:
         try:
             total += p.memory_info().rss
-            t = p.cpu_times()
-            cpu[p.pid] = t.user + t.system
+            if cpu is not None:
+                t = p.cpu_times()
+                cpu[p.pid] = t.user + t.system
         except psutil.NoSuchProcess:
             pass
     return total
