@@ -3,9 +3,12 @@ still converts pandas objects for code that uses them (flows/arrow_setup.py)."""
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 import textwrap
+
+import pyarrow as pa
 
 
 def _run(code: str) -> str:
@@ -45,3 +48,27 @@ def test_pandas_objects_still_convert_both_ways():
         print(type(back).__name__, back["tokens"].sum())
     """)
     assert got == "DataFrame 7"
+
+
+def test_tables_are_allocated_from_jemalloc_unless_the_environment_says_otherwise():
+    # pyarrow's default, mimalloc, held on to about a quarter more memory in a run
+    # (flows/arrow_setup.py has the figures).
+    code = """
+        from thresher.flows import schema  # noqa: F401 - the pool is chosen when schemas load
+        import pyarrow as pa
+
+        t = pa.table({"text": ["a" * 1000] * 1000})
+        print(pa.default_memory_pool().backend_name, pa.total_allocated_bytes() >= 1_000_000)
+    """
+    try:
+        pa.jemalloc_memory_pool()
+        expected = "jemalloc"
+    except NotImplementedError:  # a pyarrow built without it
+        expected = "system"
+    assert _run(code) == f"{expected} True"
+
+    env = {**os.environ, "ARROW_DEFAULT_MEMORY_POOL": "mimalloc"}
+    out = subprocess.run([sys.executable, "-c", textwrap.dedent(code)], capture_output=True, text=True,
+                         timeout=120, env=env)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "mimalloc True"
