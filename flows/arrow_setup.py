@@ -1,13 +1,6 @@
-"""How thresher sets up pyarrow: its memory pool, and no pandas until something hands
-pyarrow a pandas object.
+"""pyarrow without pandas until something hands pyarrow a pandas object.
 
-Memory pool: jemalloc where this pyarrow has it, else the C library's allocator, not
-pyarrow's default mimalloc (pyarrow 26), which in a run held on to far more memory and
-was slower. The documentation drive (`python -m bench docdrive`'s), a fresh process per
-run, two rounds each, mimalloc then jemalloc (scratch timing): first run 68.5 and 69.1 s
-against 65.0 and 66.0 s, its process's peak 1,307 and 1,261 MB against 948 and 949 MB;
-a week with 1 % of the files edited 4.98 and 5.27 s against 3.07 and 3.61 s, peak 761
-and 741 MB against 589 and 554 MB. ARROW_DEFAULT_MEMORY_POOL, if set, is left to decide.
+(pyarrow's memory pool is chosen in flows/__init__.py, before pyarrow loads.)
 
 pyarrow looks for pandas the first time it turns Python objects into arrays or back
 (`pa.array`, `Table.to_pylist`, reading Parquet, `import pyarrow.dataset`) and, pandas
@@ -21,7 +14,6 @@ objects it is given and `to_pandas()` still works, importing pandas then
 
 from __future__ import annotations
 
-import os
 import sys
 import threading
 
@@ -53,14 +45,4 @@ def answer_pandas_look() -> None:
         sys.meta_path.remove(finder)
 
 
-def choose_memory_pool() -> None:
-    if os.environ.get("ARROW_DEFAULT_MEMORY_POOL"):
-        return  # the user's (or pyarrow's own documented) choice
-    try:
-        pa.set_memory_pool(pa.jemalloc_memory_pool())
-    except NotImplementedError:  # a pyarrow built without jemalloc (Windows wheels)
-        pa.set_memory_pool(pa.system_memory_pool())
-
-
-choose_memory_pool()
 answer_pandas_look()
