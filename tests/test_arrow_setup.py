@@ -9,7 +9,6 @@ import sys
 import textwrap
 
 
-
 def _run(code: str, env: dict[str, str] | None = None) -> str:
     # A new interpreter: pandas may be imported in this one already.
     out = subprocess.run([sys.executable, "-c", textwrap.dedent(code)], capture_output=True, text=True, timeout=120,
