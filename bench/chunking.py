@@ -172,7 +172,6 @@ def profile(top: int = 14) -> None:
     }
     # The same split in parts, without the profiler (CPU seconds, fastest of ROUNDS).
     from thresher.steps import split as split_module
-    from thresher.steps.token_offsets import SliceCounter
 
     enc = ctx.encoding("cl100k_base")
     params = SplitParams()

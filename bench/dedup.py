@@ -16,8 +16,9 @@ unedited: exact copies), so planted similarities spread over about 0.7-1.0, acro
 the 0.8 threshold. Unrelated chunks share no 5-word shingle in practice (checked by
 exact all-pairs Jaccard at 10k), so ground truth is exact Jaccard within families.
 
-Peak memory is the child's ru_maxrss (resource.getrusage; the resident set's high-water
-mark, which includes the generated corpus); "corpus alone" is the resident set after
+Peak memory is the child's VmHWM (bench.peak_mb: the resident set's high-water mark,
+which includes the generated corpus; stop 34 mended it: ru_maxrss, used before, showed
+the parent's size in every child); "corpus alone" is the resident set after
 the corpus was generated. Times are wall-clock (time.perf_counter) and CPU time of the
 process (time.process_time); on a shared machine the CPU figures are the steadier
 ones, and the scaling exponents use them.
@@ -34,11 +35,10 @@ import subprocess
 import sys
 import tempfile
 import time
-from pathlib import Path
 
+from bench import REPO, peak_mb
 from thresher.flows.corpus import DOCS_PER_BATCH  # as the flow loads them
 
-REPO = Path(__file__).resolve().parents[1]
 SIZES = (10_000, 100_000, 1_000_000)
 CHUNKS_PER_DOC = 10
 VOCAB = 20_000
@@ -48,12 +48,6 @@ SEED = 2026
 def _rss_mb() -> float:
     with open("/proc/self/statm") as f:
         return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2 ** 20
-
-
-def _peak_mb() -> float:
-    import resource
-
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux
 
 
 def _vocab():
@@ -235,7 +229,7 @@ def child_full(n: int, out_dir: str) -> dict:
     t, c = time.perf_counter(), time.process_time()
     dec = decide(table, params)
     decide_s, decide_cpu = time.perf_counter() - t, time.process_time() - c
-    peak = _peak_mb()
+    peak = peak_mb()
 
     dropped = {int(c[1:]) for c, s in zip(dec.column("chunk_id").to_pylist(), dec.column("status").to_pylist())
                if s == "dropped"}
@@ -309,7 +303,7 @@ def child_incremental(n: int, out_dir: str) -> dict:
     dec = decide(pa.concat_tables([fresh, stored], promote_options="default"), params)
     seconds, cpu = time.perf_counter() - t, time.process_time() - c
     statuses = dec.column("status").to_pylist()
-    return {"n": n, "read_s": read_s, "incremental_s": seconds, "incremental_cpu": cpu, "rss_before_mb": before, "peak_mb": _peak_mb(),
+    return {"n": n, "read_s": read_s, "incremental_s": seconds, "incremental_cpu": cpu, "rss_before_mb": before, "peak_mb": peak_mb(),
             "decisions": dec.num_rows, "new_dropped": statuses.count("dropped")}
 
 

@@ -26,6 +26,8 @@ import tempfile
 import time
 from pathlib import Path
 
+from bench import REPO
+
 ROWS = 100_000
 XLS_ROWS = 60_000
 
@@ -45,7 +47,8 @@ def _make_xlsx(path: Path, rows: int) -> None:
 
 
 _CHILD = r"""
-import io, json, resource, sys, time
+import io, json, sys, time
+from bench import peak_mb  # run from the repository (cwd)
 kind, path = sys.argv[1], sys.argv[2]
 start = time.perf_counter()
 cells = 0
@@ -77,14 +80,13 @@ elif kind == "extract":
     assert all(p.status == "ok" for p in pages), [p.reason for p in pages]
     cells = sum(len(p.text) for p in pages)
 seconds = time.perf_counter() - start
-print(json.dumps({"seconds": seconds, "cells": cells,
-                  "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+print(json.dumps({"seconds": seconds, "cells": cells, "peak_mb": peak_mb()}))
 """
 
 
 def measure(kind: str, path: Path) -> dict:
     out = subprocess.run([sys.executable, "-c", _CHILD, kind, str(path)], check=True,
-                         capture_output=True, text=True)
+                         capture_output=True, text=True, cwd=REPO)
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 

@@ -4,7 +4,7 @@ the demo drive, 3 % multi-page PDFs, the rest Markdown and HTML notes; bench/dri
 Each run is the default definition in a fresh child process, against one Prefect
 server started here first (the server is Prefect's, shared by every run of a team,
 and not part of a run's memory). Two figures per run: the peak resident set of the
-run's own process, exact (VmHWM in /proc/self/status: it holds the plan, the catalog,
+run's own process, exact (VmHWM, bench.peak_mb: it holds the plan, the catalog,
 the corpus steps and the hand-off build), and the peak of its whole process tree
 (that process plus the extraction children it forks), polled every 0.1 s with psutil.
 Issue 14's target: the larger drive's peaks within 1.5 x the smaller's.
@@ -22,6 +22,7 @@ import time
 from contextlib import contextmanager
 from pathlib import Path
 
+from bench import REPO
 from bench.drive import make_drive
 from bench.scale import _tree_rss
 
@@ -31,14 +32,11 @@ LIMIT = 1.5
 
 CHILD = r"""
 import json, sys
-from pathlib import Path
+from bench import peak_mb  # run from the repository (cwd)
 from thresher.flows import pipeline
 from thresher.flows.config import load_definition
 m = pipeline.run(load_definition(), sys.argv[1], sys.argv[2], quiet=True)
-# VmHWM, not getrusage's ru_maxrss: Linux carries a forked child's resident size (its
-# parent's, until exec) into ru_maxrss, so a large parent would show as this run's peak.
-hwm = next(line for line in Path("/proc/self/status").read_text().splitlines() if line.startswith("VmHWM:"))
-print(json.dumps({"self": int(hwm.split()[1]) * 1024,
+print(json.dumps({"self": int(peak_mb() * 2**20),
                   "files": m["documents"]["files"],
                   "processed": m["documents"].get("processed", 0), "pages": m["pages"], "chunks": m["chunks"],
                   "seconds": m["seconds"]}))
@@ -72,7 +70,7 @@ class TreePeak:
 def measure(drive: Path, store: Path, env: dict) -> dict:
     """One run of the default definition in a fresh child process: its manifest's
     figures, its own peak (`self`) and its process tree's (`tree`), in bytes."""
-    proc = subprocess.Popen([sys.executable, "-c", CHILD, str(drive), str(store)], env=env,
+    proc = subprocess.Popen([sys.executable, "-c", CHILD, str(drive), str(store)], env=env, cwd=REPO,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     with TreePeak(proc.pid) as tree:
         out, err = proc.communicate()

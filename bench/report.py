@@ -1,7 +1,7 @@
 """The review pages on a generated drive of N and of 10N documents, side by side.
 
 Each store is built by the real flow. `thresher report` is timed in a fresh child
-process (so its peak memory is its own, ru_maxrss): written the first time (every
+process (so its peak memory is its own: VmHWM, bench.peak_mb): written the first time (every
 document's page), again with nothing changed, and again after 1% of the files changed
 and a run processed them. The summary file's size and the folder's size are printed
 with each. A child that only imports the report modules gives the memory floor.
@@ -18,28 +18,30 @@ import tempfile
 import time
 from pathlib import Path
 
+from bench import REPO
 from bench.drive import change_files, make_drive
 
 N = int(os.environ.get("THRESHER_BENCH_REPORT_N", "300"))
 
 CHILD = """
-import json, resource, sys, time
+import json, sys, time
+from bench import peak_mb  # run from the repository (cwd)
 from thresher.flows.report import write_report
 from thresher.flows.store import Store
 if sys.argv[1] == "-":
-    print(json.dumps({"seconds": 0.0, "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+    print(json.dumps({"seconds": 0.0, "peak_mb": peak_mb()}))
     sys.exit(0)
 t = time.perf_counter()
 done = write_report(Store(sys.argv[1]), sys.argv[2])
 seconds = time.perf_counter() - t
-print(json.dumps({"seconds": seconds, "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+print(json.dumps({"seconds": seconds, "peak_mb": peak_mb(),
                   "written": done.pages_written, "documents": done.documents}))
 """
 
 
 def _report(store: Path, out: Path) -> dict:
     done = subprocess.run([sys.executable, "-c", CHILD, str(store), str(out)], check=True, capture_output=True,
-                          text=True)
+                          text=True, cwd=REPO)
     figures = json.loads(done.stdout.strip().splitlines()[-1])
     if str(store) != "-":
         figures["summary_kb"] = out.stat().st_size / 1024
@@ -74,7 +76,7 @@ def main() -> None:
 
     definition = load_definition()
     floor = json.loads(subprocess.run([sys.executable, "-c", CHILD, "-"], check=True, capture_output=True,
-                                      text=True).stdout)["peak_mb"]
+                                      text=True, cwd=REPO).stdout)["peak_mb"]
     results = []
     for documents in (N, 10 * N):
         with tempfile.TemporaryDirectory() as tmp:

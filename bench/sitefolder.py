@@ -20,7 +20,6 @@ import statistics
 import tempfile
 import time
 import tracemalloc
-from dataclasses import replace
 from pathlib import Path
 
 from bench.drive import _paragraph

@@ -20,8 +20,7 @@ from pathlib import Path
 
 from thresher.flows.housekeeping import compact
 from thresher.flows.rows import RowContext, rows_to_table, to_row
-from thresher.flows import store as store_module
-from thresher.flows.store import Store
+from thresher.flows.store import Store, forget_cached_ledgers
 from thresher.steps.units import Block, Page
 
 DOCS = 2000
@@ -64,8 +63,7 @@ def _trail_ms(root: Path, probes: list[str]) -> float:
 def _cold() -> None:
     """Forget what this process cached of the store (ledgers), as a new `thresher
     trail` process starts with nothing."""
-    for cache in (store_module._LEDGERS, store_module._LEDGER_FILES, store_module._COMPACTED):
-        cache.clear()
+    forget_cached_ledgers()
 
 
 def _round(root: Path, probes: list[str]) -> float:

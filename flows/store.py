@@ -85,6 +85,18 @@ _COMPACTED: dict[tuple[str, str, str], "CompactedLedger"] = {}
 # (store base, run id) of committed runs whose one ledger file was looked for: whether
 # their ledgers came from it (False: none, or unreadable; read part by part).
 _RUN_LEDGER_READ: dict[tuple[str, str], bool] = {}
+
+
+def forget_cached_ledgers() -> None:
+    """Forget every ledger this process cached, as a new process starts (tests and
+    benchmarks that read as a fresh `thresher trail` would). All of them together:
+    _RUN_LEDGER_READ kept alone would make the next read take a run's ledgers as
+    cached, and find them empty."""
+    with _LEDGERS_LOCK:
+        for cache in (_LEDGERS, _LEDGER_FILES, _RUNNING_LEDGERS, _COMPACTED, _RUN_LEDGER_READ):
+            cache.clear()
+
+
 # Up to this many documents, a read of a compacted stage looks up only their ledger
 # entries instead of loading the whole ledger (a trail, a page re-run).
 LEDGER_LOOKUP_DOCS = 64

@@ -191,11 +191,9 @@ def test_a_running_runs_ledger_shows_each_part_as_it_is_written(tmp_path):
 
 def _forget_ledgers() -> None:
     """As a new process finds them: nothing of the store's ledgers cached."""
-    from thresher.flows import store as store_module
+    from thresher.flows.store import forget_cached_ledgers
 
-    for cache in (store_module._LEDGERS, store_module._LEDGER_FILES, store_module._RUNNING_LEDGERS,
-                  store_module._RUN_LEDGER_READ):
-        cache.clear()
+    forget_cached_ledgers()
 
 
 def test_a_committed_runs_ledgers_come_from_its_one_ledger_file_or_else_from_each_part(tmp_path):
