@@ -19,6 +19,7 @@ import os
 import subprocess
 import tempfile
 import time
+import warnings
 from pathlib import Path
 
 DOCUMENTS = 1000
@@ -26,7 +27,7 @@ CHUNK_CHARS = 2000
 
 
 def _debian_texts() -> list[str]:
-    from bs4 import BeautifulSoup
+    from bs4 import BeautifulSoup, XMLParsedAsHTMLWarning
 
     out = []
     for pdf in ("/usr/share/doc/shared-mime-info/shared-mime-info-spec.pdf",
@@ -35,7 +36,9 @@ def _debian_texts() -> list[str]:
             out.append(subprocess.run(["pdftotext", "-layout", pdf, "-"], capture_output=True, text=True,
                                       check=True).stdout)
     for html in sorted(glob.glob("/usr/share/doc/libxslt1-dev/**/*.html", recursive=True)):
-        out.append(BeautifulSoup(Path(html).read_bytes(), "lxml").get_text("\n"))
+        with warnings.catch_warnings():  # some of these manuals are XHTML; their text is what is wanted
+            warnings.simplefilter("ignore", XMLParsedAsHTMLWarning)
+            out.append(BeautifulSoup(Path(html).read_bytes(), "lxml").get_text("\n"))
     return out
 
 

@@ -89,8 +89,8 @@ def main() -> None:
     print(f"{'report':<28}{'N':>12}{'10N':>12}{'ratio':>8}")
 
     def line(label: str, a: float, b: float, unit: str, fmt: str = ".2f") -> None:
-        ratio = b / a if a else float("nan")
-        print(f"{label:<28}{a:>10{fmt}} {unit:<1}{b:>10{fmt}} {unit:<1}{ratio:>7.2f}x")
+        ratio = f"{b / a:>7.2f}x" if a else f"{'-':>8}"
+        print(f"{label:<28}{a:>10{fmt}} {unit:<1}{b:>10{fmt}} {unit:<1}{ratio}")
 
     for key, label in (("first", "first write"), ("again", "nothing changed"), ("changed", "1% changed")):
         a, b = small[key], large[key]
