@@ -71,7 +71,8 @@ def edit(drive: Path, share: float, seed: int = 7) -> list[Path]:
 
 def main() -> None:
     from bench import peak_mb, reset_peak
-    from bench.memory import TreePeak, measure, prefect_server
+    from bench.memory import TreePeak, measure
+    from bench.warm import prefect_server
 
     from thresher.flows import pipeline
     from thresher.flows.config import load_definition

@@ -28,6 +28,7 @@ from pathlib import Path
 
 from bench.drive import change_files, make_drive
 from bench.extract import BASE_PDFS, RULED_PDFS, _plain, read_pdfium, read_pdfplumber, read_thresher
+from bench.warm import start_prefect_server
 
 REPO = Path(__file__).resolve().parents[1]
 TEXT_BYTES = 1_000_000
@@ -215,9 +216,6 @@ def fixed_start(env: dict) -> None:
 
 def main() -> None:
     from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
-    from prefect.server.api.server import SubprocessASGIServer
-
-    from thresher.flows.pipeline import _free_port
 
     print(f"load average at start {os.getloadavg()[0]:.1f}, {os.cpu_count()} cores", flush=True)
     with tempfile.TemporaryDirectory() as td:
@@ -233,8 +231,7 @@ def main() -> None:
         pdfium_rate = pages / (time.perf_counter() - t)
         text_steps()
         weekly_runs(tmp)
-        server = SubprocessASGIServer(port=_free_port())
-        server.start(timeout=120)
+        server = start_prefect_server()
         try:
             env = dict(os.environ, PREFECT_API_URL=server.api_url)
             whole_chain(paths, env, tmp, pdfium_rate)

@@ -19,11 +19,11 @@ import sys
 import tempfile
 import threading
 import time
-from contextlib import contextmanager
 from pathlib import Path
 
 from bench import REPO
 from bench.drive import make_drive
+from bench.warm import prefect_server
 from bench.scale import _tree_rss
 
 DOCUMENTS = int(os.environ.get("THRESHER_BENCH_MEMORY_DOCUMENTS", "300"))
@@ -77,29 +77,6 @@ def measure(drive: Path, store: Path, env: dict) -> dict:
     if proc.returncode != 0:
         raise RuntimeError(f"run on {drive} failed: {err[-3000:]}")
     return {**json.loads(out.strip().splitlines()[-1]), "tree": tree.peak}
-
-
-@contextmanager
-def prefect_server():
-    """A Prefect server (prefect's SubprocessASGIServer, its process a child of this one)
-    for this process and its children: PREFECT_API_URL is set while the block runs."""
-    from thresher.flows import runtime  # noqa: F401
-    from prefect.server.api.server import SubprocessASGIServer
-
-    from thresher.flows.pipeline import _free_port
-
-    server = SubprocessASGIServer(port=_free_port())
-    server.start(timeout=120)
-    before = os.environ.get("PREFECT_API_URL")
-    os.environ["PREFECT_API_URL"] = server.api_url
-    try:
-        yield server
-    finally:
-        server.stop()
-        if before is None:
-            os.environ.pop("PREFECT_API_URL", None)
-        else:
-            os.environ["PREFECT_API_URL"] = before
 
 
 def main() -> None:

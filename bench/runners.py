@@ -142,10 +142,9 @@ def run_once(drive: Path, store: Path, runner: dict, env: dict, tmp: Path, serve
 
 def main() -> None:
     from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
-    from prefect.server.api.server import SubprocessASGIServer
 
     from bench.goals import debian_pdfs, pdf_drive
-    from thresher.flows.pipeline import _free_port
+    from bench.warm import start_prefect_server
 
     kinds = os.environ.get("THRESHER_BENCH_RUNNERS", "threads,processes,dask").split(",")
     rounds = int(os.environ.get("THRESHER_BENCH_ROUNDS", "1"))
@@ -156,8 +155,7 @@ def main() -> None:
             print("no Debian documentation PDFs here (make bench-deps installs some)")
             return
         drive = pdf_drive(paths, tmp)
-        server = SubprocessASGIServer(port=_free_port())
-        server.start(timeout=120)
+        server = start_prefect_server()
         env = dict(os.environ, PREFECT_API_URL=server.api_url)
         configs = [("sequential", 1)] + [(k, 2) for k in kinds]
         results: dict[tuple[str, int], list[dict]] = {c: [] for c in configs}
@@ -207,10 +205,9 @@ def against(tree: str, rounds: int) -> None:
     import statistics
 
     from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
-    from prefect.server.api.server import SubprocessASGIServer
 
     from bench.goals import debian_pdfs, pdf_drive
-    from thresher.flows.pipeline import _free_port
+    from bench.warm import start_prefect_server
 
     configs = [("sequential", 1), ("threads", 2)]
     with tempfile.TemporaryDirectory() as td:
@@ -224,8 +221,7 @@ def against(tree: str, rounds: int) -> None:
         # tree's package first on the import path of the runs.
         (tmp / "before-path").mkdir()
         os.symlink(Path(tree).resolve(), tmp / "before-path" / "thresher")
-        server = SubprocessASGIServer(port=_free_port())
-        server.start(timeout=120)
+        server = start_prefect_server()
         base = dict(os.environ, PREFECT_API_URL=server.api_url)
         envs = {"before": dict(base, PYTHONPATH=str(tmp / "before-path")), "after": base}
         results: dict[tuple[str, str], list[dict]] = {}

@@ -26,6 +26,7 @@ import time
 from pathlib import Path
 
 from bench.drive import add_large_pdfs, make_drive
+from bench.warm import start_prefect_server
 
 SMALL_DOCUMENTS = int(os.environ.get("THRESHER_BENCH_SCALE_DOCUMENTS", "1200"))
 LARGE_PDFS = int(os.environ.get("THRESHER_BENCH_SCALE_LARGE", "6"))
@@ -101,10 +102,7 @@ def _measure(cmd: list[str], env: dict, server) -> tuple[float, int, dict, tuple
 
 
 def main() -> None:
-    from thresher.flows import runtime  # noqa: F401
-    from prefect.server.api.server import SubprocessASGIServer
-
-    from thresher.flows.pipeline import _free_port
+    from thresher.flows import runtime  # noqa: F401 - Prefect settings before Prefect loads
 
     import yaml
 
@@ -113,8 +111,7 @@ def main() -> None:
     default = yaml.safe_load(default_config_text())["runner"]
     batch_size = int(BATCH_SIZE or default["batch_size"])
     workers = os.cpu_count() or 2
-    server = SubprocessASGIServer(port=_free_port())
-    server.start(timeout=120)
+    server = start_prefect_server()
     env = dict(os.environ)
     env["PREFECT_API_URL"] = server.api_url
     thresher = str(Path(sys.executable).with_name("thresher"))

@@ -60,16 +60,10 @@ def _trail_ms(root: Path, probes: list[str]) -> float:
     return min(_round(root, probes) for _ in range(3))
 
 
-def _cold() -> None:
-    """Forget what this process cached of the store (ledgers), as a new `thresher
-    trail` process starts with nothing."""
-    forget_cached_ledgers()
-
-
 def _round(root: Path, probes: list[str]) -> float:
     times = []
     for d in probes:
-        _cold()
+        forget_cached_ledgers()  # as a new `thresher trail` process starts: nothing cached
         store = Store(root)  # a fresh reader, as `thresher trail` is
         t0 = time.perf_counter()
         for stage in STAGES:

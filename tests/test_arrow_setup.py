@@ -51,7 +51,7 @@ def test_pandas_objects_still_convert_both_ways():
 
 def test_a_dataset_read_allocates_from_jemalloc_unless_the_environment_says_otherwise(tmp_path):
     # pyarrow's default, mimalloc, held on to about a third more memory in a run
-    # (flows/__init__.py has the figures). A Parquet read through pyarrow.dataset takes
+    # (DEVELOPERS.md, stop 34, has the figures). A Parquet read through pyarrow.dataset takes
     # pyarrow's process-wide default pool, which pa.set_memory_pool does not change.
     pq_file = tmp_path / "t.parquet"
     code = f"""

@@ -14,7 +14,7 @@ import pytest
 
 from thresher.flows import schema
 from thresher.flows.rows import RowContext, rows_to_table, to_row, unit_id
-from thresher.flows.store import Store, StoreLocked
+from thresher.flows.store import Store, StoreLocked, forget_cached_ledgers
 from thresher.steps.units import Block, Page
 
 
@@ -189,13 +189,6 @@ def test_a_running_runs_ledger_shows_each_part_as_it_is_written(tmp_path):
     assert _current_texts(store, "docB", include_run="r1") == {"page/1": "two"}
 
 
-def _forget_ledgers() -> None:
-    """As a new process finds them: nothing of the store's ledgers cached."""
-    from thresher.flows.store import forget_cached_ledgers
-
-    forget_cached_ledgers()
-
-
 def test_a_committed_runs_ledgers_come_from_its_one_ledger_file_or_else_from_each_part(tmp_path):
     root = tmp_path / "s"
     store = Store(root)
@@ -214,7 +207,7 @@ def test_a_committed_runs_ledgers_come_from_its_one_ledger_file_or_else_from_eac
         ledgers = {r: (s._ledger("extract", r).files, sorted(s._ledger("extract", r).full)) for r in ("r1", "r2")}
         return ledgers, _current_texts(s, "docA"), _current_texts(s, "docB")
 
-    _forget_ledgers()
+    forget_cached_ledgers()  # as a new process finds them
     from_parts = seen()
     assert from_parts[1] == {"page/1": "one", "page/2": "deux"} and from_parts[2] == {"page/1": "uno"}
     # Without the per-part ledger files, a new process still reads the same view: from
@@ -222,11 +215,11 @@ def test_a_committed_runs_ledgers_come_from_its_one_ledger_file_or_else_from_eac
     parts_dir = tmp_path / "writes-aside"
     for r in ("r1", "r2"):
         (root / "runs" / r / "writes").rename(parts_dir.with_name(f"writes-{r}"))
-    _forget_ledgers()
+    forget_cached_ledgers()  # as a new process finds them
     assert seen() == from_parts
     # A store written before the one file existed: read part by part, as before.
     for r in ("r1", "r2"):
         parts_dir.with_name(f"writes-{r}").rename(root / "runs" / r / "writes")
         (root / "runs" / r / "ledger.parquet").unlink()
-    _forget_ledgers()
+    forget_cached_ledgers()  # as a new process finds them
     assert seen() == from_parts
