@@ -237,6 +237,7 @@ def _pool_process_setup() -> None:
     bench's process pool). Not in a Dask worker: its tasks run in a thread that does
     not see a client made in the worker's start (tried: no CPU saved)."""
     prewarm(1)
+    runtime.collections_without_dask()
     held = runtime.client_context()
     held.__enter__()
     _pool_client.append(held)

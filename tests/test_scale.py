@@ -61,6 +61,28 @@ def test_threads_and_processes_hand_off_what_one_worker_does(one_worker, tmp_pat
     assert _handoff_bytes(Store(tmp_path / "store")) == expected
 
 
+def test_a_process_pool_leaves_dask_unloaded(prefect_harness):
+    # A task run in a pool process hydrates its flow run's context; looking up the block
+    # type its result store names made Prefect import every installed collection,
+    # prefect-dask with dask and distributed among them: 0.33 s of CPU in each pool
+    # process, for a runner that never uses Dask (runtime.collections_without_dask).
+    from prefect import flow, task
+
+    @task
+    def modules_here() -> dict:
+        from prefect.plugins import load_prefect_collections
+
+        return {"distributed": "distributed" in sys.modules, "collections": sorted(load_prefect_collections())}
+
+    @flow(task_runner=pipeline._task_runner("processes", 1), persist_result=False)
+    def probe() -> dict:
+        return modules_here.submit().result()
+
+    seen = probe()
+    assert seen["distributed"] is False
+    assert "prefect_dask" not in seen["collections"]
+
+
 def _free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
