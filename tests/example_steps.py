@@ -171,6 +171,13 @@ def timed_pieces(pieces):
         yield (n, os.getpid())
 
 
+def pieces_then_failure(n):
+    """A streamed call: `n` timed pieces of no work, then an error in the next piece's
+    cheap set-up (before any Clock), as a step's inputs failing to sort would."""
+    yield from timed_pieces([(None, 0.0)] * n)
+    raise ValueError("the set-up after the last piece failed")
+
+
 def pass_chunks_along(chunks, params, ctx):
     """A chunk step that hands its input chunks on as they are (payload included)."""
     return [replace(c, parents=[c.locator]) for c in chunks]

@@ -62,6 +62,20 @@ def test_a_streamed_call_times_each_piece_from_its_own_start_and_a_stopped_worke
         assert again[0][1] != worker
 
 
+def test_every_result_a_streamed_call_made_arrives_before_its_error():
+    # A result travels with the Clock after it (one message, not two); a result with no
+    # Clock after it, because the call failed first, is still sent, before the error.
+    from example_steps import pieces_then_failure
+    from thresher.flows.isolate import RemoteError
+
+    with IsolatedCaller() as caller:
+        seen = []
+        with pytest.raises(RemoteError) as info:
+            for n, _ in caller.stream(pieces_then_failure, (3,)):
+                seen.append(n)
+        assert seen == [0, 1, 2] and "set-up after the last piece failed" in str(info.value)
+
+
 def test_a_call_queued_behind_another_runs_in_the_same_worker_timed_from_its_own_start():
     from example_steps import timed_pieces
 
