@@ -203,26 +203,42 @@ def _fast_detector_class():
             self.langprob = [0.0] * n_langs
             rand = self.random
             rand.seed(self.seed)
+            # random.choice(ngrams) as CPython draws it (Random._randbelow with
+            # getrandbits: k bits, drawn again while the number is out of range),
+            # without its two calls per draw.
+            getrandbits, n_grams = rand.getrandbits, len(ngrams)
+            bits = n_grams.bit_length()
+            exact = rand._randbelow == rand._randbelow_with_getrandbits
             choice = rand.choice
             conv, limit = self.CONV_THRESHOLD, self.ITERATION_LIMIT
             rows = _rows
             if len(rows) > ROW_CACHE:
                 rows.clear()
+            step = np.empty(n_langs)
+            add, multiply = np.add, np.multiply
             for _ in range(self.n_trial):
                 prob = np.array(self._init_probability())
                 alpha = self.alpha + rand.gauss(0.0, 1.0) * self.ALPHA_WIDTH
                 weight = alpha / self.BASE_FREQ
                 i = 0
                 while True:
-                    word = choice(ngrams)
+                    if exact:
+                        r = getrandbits(bits)
+                        while r >= n_grams:
+                            r = getrandbits(bits)
+                        word = ngrams[r]
+                    else:
+                        word = choice(ngrams)
                     row = rows.get(word)
                     if row is None:
                         listed = table.get(word)
                         if listed is not None:
                             row = rows[word] = np.array(listed)
                     if row is not None:
-                        # Element by element the same two operations as the original.
-                        prob *= weight + row
+                        # Element by element the same two operations as the original
+                        # (weight + row, then prob times that), into a kept array.
+                        add(row, weight, out=step)
+                        multiply(prob, step, out=prob)
                     if i % 5 == 0:
                         # Python's own sum, as the original: numpy's sum adds pairwise.
                         prob /= sum(prob.tolist())
