@@ -185,9 +185,10 @@ WEEKS = 3  # weekly runs of each kind; the median is the figure
 def weekly_runs(tmp: Path) -> None:
     """Full, then WEEKS with nothing changed and WEEKS with another 1 % of the files
     changed each time, in this process against one warm Prefect server. The median of
-    each kind is the figure: about one run in 55 (5 of 280 here) waits 2-2.5 s for Prefect's client to
-    retry its flow run's creation, which the temporary server's SQLite answered with 503
-    (busy), and one such run made a single-run figure meaningless (stop 34: 61 %)."""
+    each kind is the figure: about one run in 55 (5 of 280 here) waits 2-2.5 s for
+    Prefect's client to retry its flow run's creation, which the temporary server's
+    SQLite answered with 503 (busy), and one such run made a single-run figure
+    meaningless (stop 34: 61 %)."""
     from statistics import median
 
     from bench.warm import start_prefect
@@ -211,7 +212,10 @@ def weekly_runs(tmp: Path) -> None:
     for k in range(WEEKS):
         changed.append(len(change_files(drive, 0.01, seed=11 + k)))
         ones.append(timed())
-    shown = lambda runs: ", ".join(f"{r:.2f}" for r in runs)  # noqa: E731
+
+    def shown(runs: list[float]) -> str:
+        return ", ".join(f"{r:.2f}" for r in runs)
+
     row("a run with nothing changed", f"{median(same) / full:.1%} of a full run",
         f"median of {shown(same)} s against {full:.2f} s, {WEEK_DOCUMENTS} documents", "<= 3 %")
     row(f"1 % of the files changed ({changed[0]})", f"{median(ones) / full:.1%} of a full run",

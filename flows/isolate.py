@@ -20,8 +20,9 @@ the next step's set-up between them is cheap, and the parent, which reads every
 worker's messages under one interpreter lock, reads half as many (scale bench drive,
 one worker: the parent's CPU 4.5 s against 4.7 s, medians of seven runs each). A
 generator that did long work between a result and the next Clock would hold that
-result back meanwhile; run_segment yields a Clock before each step's work. The preload also loads the default token encoding and the
-language profiles (flows/warm.py), so a new child starts warm.
+result back meanwhile; run_segment yields a Clock before each step's work. The
+preload also loads the default token encoding and the language profiles
+(flows/warm.py), so a new child starts warm.
 """
 
 from __future__ import annotations
@@ -135,9 +136,9 @@ def _child_main(conn: Connection) -> None:
                         if held:
                             conn.send(("item", *held))
                         held = [item]
-                conn.send(("item", *held) if held else ("end",))
                 if held:
-                    conn.send(("end",))
+                    conn.send(("item", *held))
+                conn.send(("end",))
             else:
                 conn.send(("ok", result))
         except BaseException as exc:  # noqa: BLE001 - reported to the parent as data
