@@ -15,14 +15,8 @@ charged to the document.
 A streamed call (`stream`) runs a generator in the child: a document's steps one after
 the other (flows/segment.py). The child sends each step's result as soon as it is
 ready, and before each step a Clock with that step's own limit, so each step is timed
-from its own start. A result goes out with the Clock that follows it, as one message:
-the next step's set-up between them is cheap, and the parent, which reads every
-worker's messages under one interpreter lock, reads half as many (scale bench drive,
-one worker: the parent's CPU 4.5 s against 4.7 s, medians of seven runs each). A
-generator that did long work between a result and the next Clock would hold that
-result back meanwhile; run_segment yields a Clock before each step's work. The
-preload also loads the default token encoding and the language profiles
-(flows/warm.py), so a new child starts warm.
+from its own start. The preload also loads the default token encoding and the
+language profiles (flows/warm.py), so a new child starts warm.
 """
 
 from __future__ import annotations
@@ -124,26 +118,15 @@ def _child_main(conn: Connection) -> None:
             return
         fn, args = msg
         conn.send(("started",))  # the document is unpacked here: its clock starts now
-        held: list = []  # a result not sent yet: it goes with the Clock that follows it
         try:
             result = fn(*args)
             if inspect.isgenerator(result):
                 for item in result:
-                    if isinstance(item, Clock):
-                        conn.send(("item", *held, item))
-                        held = []
-                    else:
-                        if held:
-                            conn.send(("item", *held))
-                        held = [item]
-                if held:
-                    conn.send(("item", *held))
+                    conn.send(("item", item))
                 conn.send(("end",))
             else:
                 conn.send(("ok", result))
         except BaseException as exc:  # noqa: BLE001 - reported to the parent as data
-            if held:
-                conn.send(("item", *held))
             conn.send(("error", type(exc).__name__, str(exc),
                        "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))))
 
@@ -311,11 +294,10 @@ class IsolatedCaller:
                     finished = True
                     raise TimeLimitExceeded(limit, self.last_seconds)
                 if reply[0] == "item":
-                    for item in reply[1:]:
-                        if isinstance(item, Clock):
-                            limit, started, self.current = item.seconds, time.monotonic(), item.tag
-                        else:
-                            yield item
+                    if isinstance(reply[1], Clock):
+                        limit, started, self.current = reply[1].seconds, time.monotonic(), reply[1].tag
+                        continue
+                    yield reply[1]
                 elif reply[0] == "end":
                     finished = True
                     return

@@ -178,6 +178,19 @@ def pieces_then_failure(n):
     raise ValueError("the set-up after the last piece failed")
 
 
+def changed_after_yield():
+    """A streamed call that changes a result after yielding it, as segment.run_segment
+    clears the payload and time of the units it hands to the next step."""
+    from thresher.flows.isolate import Clock
+
+    result = {"payload": "the step's own"}
+    yield Clock(None, 0)
+    yield result
+    result["payload"] = "cleared for the next step"
+    yield Clock(None, 1)
+    yield "next step done"
+
+
 def pass_chunks_along(chunks, params, ctx):
     """A chunk step that hands its input chunks on as they are (payload included)."""
     return [replace(c, parents=[c.locator]) for c in chunks]

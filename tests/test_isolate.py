@@ -62,9 +62,18 @@ def test_a_streamed_call_times_each_piece_from_its_own_start_and_a_stopped_worke
         assert again[0][1] != worker
 
 
+def test_a_result_arrives_as_it_was_when_yielded():
+    # The worker changes a step's units after yielding them (segment.as_next_inputs).
+    # Holding a result back to send it with the next Clock, one message instead of two
+    # (tried in stop 35), sent the changed units, and every stored row lost its payload
+    # and time.
+    from example_steps import changed_after_yield
+
+    with IsolatedCaller() as caller:
+        assert list(caller.stream(changed_after_yield, ())) == [{"payload": "the step's own"}, "next step done"]
+
+
 def test_every_result_a_streamed_call_made_arrives_before_its_error():
-    # A result travels with the Clock after it (one message, not two); a result with no
-    # Clock after it, because the call failed first, is still sent, before the error.
     from example_steps import pieces_then_failure
     from thresher.flows.isolate import RemoteError
 
