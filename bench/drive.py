@@ -11,7 +11,8 @@ import random
 import shutil
 from pathlib import Path
 
-REPO = Path(__file__).resolve().parents[1]
+from bench import REPO
+
 SAMPLE = REPO / "sample_inputs"
 
 SUBJECTS = ["The branch team", "The mobile library", "The board", "Every volunteer", "The duty manager",

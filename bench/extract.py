@@ -36,7 +36,8 @@ from collections import Counter
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
-REPO = Path(__file__).resolve().parents[1]
+from bench import REPO
+
 SAMPLE = REPO / "sample_inputs"
 
 BASE_PDFS = [

@@ -26,11 +26,11 @@ import tempfile
 import time
 from pathlib import Path
 
+from bench import REPO
 from bench.drive import change_files, make_drive
 from bench.extract import BASE_PDFS, RULED_PDFS, _plain, read_pdfium, read_pdfplumber, read_thresher
-from bench.warm import start_prefect_server
+from bench.warm import start_prefect, start_prefect_server
 
-REPO = Path(__file__).resolve().parents[1]
 TEXT_BYTES = 1_000_000
 WEEK_DOCUMENTS = 300
 ROWS: list[tuple[str, str, str, str]] = []  # figure, measured, anchor (same run), goal
@@ -190,8 +190,6 @@ def weekly_runs(tmp: Path) -> None:
     SQLite answered with 503 (busy), and one such run made a single-run figure
     meaningless (stop 34: 61 %)."""
     from statistics import median
-
-    from bench.warm import start_prefect
 
     from thresher.flows import pipeline
     from thresher.flows.config import load_definition

@@ -22,7 +22,7 @@ import tempfile
 import time
 from pathlib import Path
 
-REPO = Path(__file__).resolve().parents[1]
+from bench import REPO
 
 CHILD = r"""
 import json, sys, time

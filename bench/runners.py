@@ -34,7 +34,7 @@ import threading
 import time
 from pathlib import Path
 
-REPO = Path(__file__).resolve().parents[1]
+from bench import REPO
 
 
 def _cpu_of(proc) -> float:

@@ -148,8 +148,9 @@ def _filesystem(root: str) -> tuple[pafs.FileSystem, str]:
 
 
 def _latest_attempts(rows: pa.Table, seq: dict[str, int], floors: dict[str, int]) -> np.ndarray:
-    """Row positions of each unit's latest attempt: from runs in `seq`, not older than
-    the document's floor (its latest whole rewrite), latest by (run sequence, attempt).
+    """Per row, whether it is its unit's latest attempt: from runs in `seq`, not older
+    than the document's floor (its latest whole rewrite), latest by (run sequence,
+    attempt). A boolean mask in row order, for Table.filter.
 
     Arrow compute and numpy, not pandas: a run asks this for a few documents at every
     stage, where pandas' fixed cost per call was most of the time (tools/profile_weekly.py).
@@ -170,11 +171,13 @@ def _latest_attempts(rows: pa.Table, seq: dict[str, int], floors: dict[str, int]
                      "attempt": rows.column("attempt").filter(mask)})
     order = pc.sort_indices(keys, sort_keys=[("unit_id", "ascending"), ("seq", "ascending"),
                                              ("attempt", "ascending")]).to_numpy()
+    latest = np.zeros(rows.num_rows, dtype=bool)
     if len(order) == 0:
-        return order
+        return latest
     # the last row of each unit in that order is its latest attempt
     last = run_ends(keys.column("unit_id").take(pa.array(order)).combine_chunks()).to_numpy(zero_copy_only=False)
-    return np.sort(kept[order[last]])
+    latest[kept[order[last]]] = True
+    return latest
 
 
 @dataclass
@@ -1034,20 +1037,14 @@ class Store:
                                floors=floors if doc_ids is not None else None, tolerant=tolerant)
         if rows.num_rows == 0:
             return rows if columns is None else rows.select(columns)
-        winners = _latest_attempts(rows, seq, floors)
+        latest = _latest_attempts(rows, seq, floors)
         # Every row the latest (the usual case): no copy. A week's read of dedup's stored
         # signatures for 55,418 chunks: 0.18-0.37 s with the copy, 0.14-0.24 s without
-        # (scratch timing, three rounds each). Otherwise a filter, not a take: the
-        # winners are in row order, and Arrow's take over a table of many part files'
-        # chunks is slow on list columns (dedup's stored rows after a few weeks, 61,116
-        # rows in 142 chunks, 57,015 current: take 0.32-0.63 s, filter 0.04-0.10 s,
-        # scratch timing, three rounds).
-        if len(winners) == rows.num_rows:
-            out = rows
-        else:
-            mask = np.zeros(rows.num_rows, dtype=bool)
-            mask[winners] = True
-            out = rows.filter(pa.array(mask))
+        # (scratch timing, three rounds each). Otherwise a filter, not a take: Arrow's
+        # take over a table of many part files' chunks is slow on list columns (dedup's
+        # stored rows after a few weeks, 61,116 rows in 142 chunks, 57,015 current: take
+        # 0.32-0.63 s, filter 0.04-0.10 s, scratch timing, three rounds).
+        out = rows if latest.all() else rows.filter(pa.array(latest))
         return out if columns is None else out.select(columns)
 
     def max_attempts(self, stage: str, unit: str, doc_ids: Iterable[str]) -> dict[str, int]:
